@@ -1,0 +1,25 @@
+"""Named numerical tolerances and defaults, in one place.
+
+Inner code imports these instead of scattering literals.
+"""
+
+from __future__ import annotations
+
+#: Tolerance for "a point lies inside the design space" (absolute, in protocol units).
+FEASIBILITY_TOL = 1e-9
+#: Tolerance on a mixture total when reading measured runs (absolute, fraction units).
+MIXTURE_SUM_TOL = 2e-3
+#: A factor whose real range is narrower than this is treated as fixed.
+FIXED_RANGE_TOL = 1e-9
+#: Initial Cholesky jitter, relative to the mean diagonal of the kernel matrix.
+JITTER_START = 1e-10
+#: Largest jitter tried before a factorisation is declared failed.
+JITTER_MAX = 1e-4
+#: Rows of candidates predicted at once (bounds memory for large pools).
+PREDICT_CHUNK = 4096
+#: Hit-and-run steps discarded before the first kept sample.
+HIT_AND_RUN_BURN_IN = 200
+#: Hit-and-run steps between kept samples per chain.
+HIT_AND_RUN_THIN = 5
+#: Number of near misses kept in a decision-log record, at least.
+NEAR_MISS_COUNT = 20

@@ -1,0 +1,1 @@
+"""Guardband safety: the limit screen, the decision log and the caution texts."""

@@ -1,0 +1,19 @@
+#!/usr/bin/env bash
+# Set up a virtual environment (if needed) and run the whole test suite.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+VENV="${GUARDBAND_VENV:-.venv}"
+if [ ! -x "$VENV/bin/python" ]; then
+  python3 -m venv "$VENV"
+fi
+"$VENV/bin/python" -m pip install --quiet --upgrade pip >/dev/null
+"$VENV/bin/python" -m pip install --quiet -e ".[test]"
+set +e
+"$VENV/bin/python" -m pytest -q "$@"
+rc=$?
+set -e
+if [ "$rc" -eq 5 ]; then
+  echo "error: no tests were collected" >&2
+  exit 1
+fi
+exit "$rc"

@@ -1,0 +1,524 @@
+"""The study protocol: a TOML file validated once, at the edge.
+
+A protocol declares the study, its factors (continuous settings, mixture
+components, discrete levels), linear rules over the factors, the objective,
+the limited responses with the probability each limit must hold with, and
+the screening, ranking, batch and model settings. Everything inside the
+planner trusts a :class:`Protocol` once it exists.
+
+A bad protocol raises :class:`planner.errors.ProtocolError` with the file
+name, the field path (``factors[2].upper``) and a plain sentence.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from functools import cached_property
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from .errors import ProtocolError
+from .linexpr import LinearRule, RuleSyntaxError, parse_rule
+
+__all__ = [
+    "Protocol",
+    "Study",
+    "Factor",
+    "Mixture",
+    "Rule",
+    "Objective",
+    "Limit",
+    "Screen",
+    "Forbidden",
+    "Ranking",
+    "Batch",
+    "ModelSettings",
+    "StartRegion",
+    "load_protocol",
+    "parse_protocol",
+    "RANKING_RULES",
+]
+
+RANKING_RULES = ("ei", "pi", "bound", "mean")
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def _check_name(value: str, what: str) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise ValueError(f"{what} must be a non-empty text")
+    if value != value.strip():
+        raise ValueError(f"{what} {value!r} has leading or trailing spaces; remove them")
+    if any(ord(ch) < 32 for ch in value) or "`" in value:
+        raise ValueError(f"{what} {value!r} contains a control character or a backquote")
+    return value
+
+
+class Study(_Strict):
+    """Who wrote the protocol, and what kind of study it is."""
+
+    title: str = Field(min_length=1)
+    version: str = Field(min_length=1)
+    author: str = Field(min_length=1)
+    kind: Literal["formulation", "dose"] = "formulation"
+    description: str = ""
+
+
+class Factor(_Strict):
+    """One factor: a continuous setting, a mixture component or a discrete factor.
+
+    A component or continuous factor with ``lower == upper`` is fixed (for
+    example an active ingredient at a fixed fraction).
+    """
+
+    name: str
+    kind: Literal["continuous", "component", "discrete"]
+    lower: float | None = None
+    upper: float | None = None
+    levels: tuple[float, ...] | None = None
+    unit: str = ""
+
+    @model_validator(mode="after")
+    def _check(self):
+        _check_name(self.name, "factor name")
+        if self.kind == "discrete":
+            if self.levels is None or len(self.levels) == 0:
+                raise ValueError(
+                    f"discrete factor {self.name!r} needs `levels`, e.g. levels = [5, 10, 20]"
+                )
+            if self.lower is not None or self.upper is not None:
+                raise ValueError(
+                    f"discrete factor {self.name!r} takes `levels` only, not lower/upper"
+                )
+            if any(not math.isfinite(v) for v in self.levels):
+                raise ValueError(f"levels of {self.name!r} must be finite numbers")
+            if len(set(self.levels)) != len(self.levels):
+                raise ValueError(f"levels of {self.name!r} repeat a value: {list(self.levels)}")
+            if list(self.levels) != sorted(self.levels):
+                raise ValueError(
+                    f"levels of {self.name!r} must be in increasing order: {list(self.levels)}"
+                )
+        else:
+            if self.levels is not None:
+                raise ValueError(
+                    f"{self.kind} factor {self.name!r} takes lower/upper, not `levels` "
+                    "(use kind = \"discrete\" for a factor with fixed levels)"
+                )
+            if self.lower is None or self.upper is None:
+                raise ValueError(f"{self.kind} factor {self.name!r} needs both `lower` and `upper`")
+            if not (math.isfinite(self.lower) and math.isfinite(self.upper)):
+                raise ValueError(f"bounds of {self.name!r} must be finite numbers")
+            if self.lower > self.upper:
+                raise ValueError(
+                    f"bounds of {self.name!r} are reversed: lower = {self.lower:g} is above "
+                    f"upper = {self.upper:g}; swap them"
+                )
+            if self.kind == "component" and self.lower < 0:
+                raise ValueError(
+                    f"component {self.name!r} has a negative lower bound ({self.lower:g}); "
+                    "mixture fractions cannot be negative"
+                )
+        return self
+
+    @property
+    def low(self) -> float:
+        return float(self.levels[0]) if self.kind == "discrete" else float(self.lower)
+
+    @property
+    def high(self) -> float:
+        return float(self.levels[-1]) if self.kind == "discrete" else float(self.upper)
+
+
+class Mixture(_Strict):
+    """The total that the component factors add up to."""
+
+    total: float = Field(default=1.0, gt=0)
+    tolerance: float = Field(
+        default=2e-3, gt=0, description="how far a measured run's components may miss the total"
+    )
+
+
+class Rule(_Strict):
+    """A named linear rule over factor names, e.g. ``mcc >= 2 * lactose``."""
+
+    name: str = ""
+    rule: str
+
+    @cached_property
+    def parsed(self) -> tuple[LinearRule, ...]:
+        return parse_rule(self.rule)
+
+
+class Objective(_Strict):
+    """The performance response to improve."""
+
+    name: str
+    direction: Literal["maximize", "minimize"]
+    unit: str = ""
+
+    @model_validator(mode="after")
+    def _check(self):
+        _check_name(self.name, "objective name")
+        return self
+
+
+class Limit(_Strict):
+    """A limited response: it must stay within [lower, upper] with ``probability``."""
+
+    name: str
+    unit: str = ""
+    lower: float | None = None
+    upper: float | None = None
+    probability: float = Field(gt=0, lt=1)
+    min_runs: int | None = Field(default=None, ge=1)
+    source: str = ""
+
+    @model_validator(mode="after")
+    def _check(self):
+        _check_name(self.name, "limit name")
+        if self.lower is None and self.upper is None:
+            raise ValueError(f"limit {self.name!r} needs `upper`, `lower` or both")
+        for side in ("lower", "upper"):
+            v = getattr(self, side)
+            if v is not None and not math.isfinite(v):
+                raise ValueError(f"{side} of limit {self.name!r} must be a finite number")
+        if self.lower is not None and self.upper is not None and self.lower >= self.upper:
+            raise ValueError(
+                f"limit {self.name!r} is reversed or empty: lower = {self.lower:g}, "
+                f"upper = {self.upper:g}"
+            )
+        return self
+
+    @property
+    def sides(self) -> str:
+        if self.lower is not None and self.upper is not None:
+            return "two-sided"
+        return "upper" if self.upper is not None else "lower"
+
+    def describe(self) -> str:
+        unit = f" {self.unit}" if self.unit else ""
+        if self.sides == "two-sided":
+            return f"{self.lower:g} <= {self.name} <= {self.upper:g}{unit}"
+        if self.sides == "upper":
+            return f"{self.name} <= {self.upper:g}{unit}"
+        return f"{self.name} >= {self.lower:g}{unit}"
+
+
+class Forbidden(_Strict):
+    """A region the protocol forbids: every point meeting all its rules is excluded."""
+
+    name: str
+    rules: tuple[str, ...] = Field(min_length=1)
+
+    @cached_property
+    def parsed(self) -> tuple[LinearRule, ...]:
+        return tuple(r for text in self.rules for r in parse_rule(text))
+
+
+class Screen(_Strict):
+    """Safety-screen settings."""
+
+    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach")
+    joint: Literal["bound", "independent"] = "bound"
+    min_runs: int = Field(default=5, ge=1)
+    max_step: float | None = Field(
+        default=None,
+        gt=0,
+        description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
+    )
+    forbidden: tuple[Forbidden, ...] = ()
+
+
+class Ranking(_Strict):
+    """Which ranking rule orders the survivors."""
+
+    rule: Literal["ei", "pi", "bound", "mean"] = "ei"
+    kappa: float = Field(default=2.0, ge=0)
+    xi: float = Field(default=0.0, ge=0)
+
+
+class Batch(_Strict):
+    """Batch and search settings."""
+
+    size: int = Field(default=4, ge=1, le=100)
+    pool: int = Field(default=4000, ge=50, le=500_000)
+    refine: int = Field(default=4, ge=0, le=50)
+
+
+class ModelSettings(_Strict):
+    """Gaussian-process fitting settings."""
+
+    restarts: int = Field(default=4, ge=1, le=50)
+
+
+class StartRegion(_Strict):
+    """A region known to be safe where a campaign with no runs may start."""
+
+    rules: tuple[str, ...] = Field(min_length=1)
+    note: str = ""
+
+    @cached_property
+    def parsed(self) -> tuple[LinearRule, ...]:
+        return tuple(r for text in self.rules for r in parse_rule(text))
+
+
+class Protocol(_Strict):
+    """A validated study protocol."""
+
+    study: Study
+    factors: tuple[Factor, ...] = Field(min_length=1)
+    mixture: Mixture | None = None
+    constraints: tuple[Rule, ...] = ()
+    objective: Objective
+    limits: tuple[Limit, ...] = ()
+    screen: Screen
+    ranking: Ranking = Ranking()
+    batch: Batch = Batch()
+    model: ModelSettings = ModelSettings()
+    start: StartRegion | None = None
+    seed: int | None = Field(default=None, ge=0, lt=2**63)
+
+    @model_validator(mode="after")
+    def _cross_checks(self):
+        names = [f.name for f in self.factors]
+        seen: set[str] = set()
+        for n in names:
+            if n in seen:
+                raise ValueError(f"factor name {n!r} is used twice")
+            seen.add(n)
+        responses = [self.objective.name] + [lim.name for lim in self.limits]
+        for r in responses:
+            if r in seen:
+                raise ValueError(f"name {r!r} is used for a factor and a response (or twice)")
+            seen.add(r)
+        if "run_id" in seen or "notes" in seen:
+            raise ValueError("`run_id` and `notes` are reserved column names; rename that factor or response")
+        components = [f for f in self.factors if f.kind == "component"]
+        if components and self.mixture is None:
+            raise ValueError(
+                "factors of kind 'component' need a [mixture] table with the `total` they add up to"
+            )
+        if self.mixture is not None and not components:
+            raise ValueError("a [mixture] table was given but no factor has kind = \"component\"")
+        if components:
+            total = self.mixture.total
+            low = sum(f.lower for f in components)
+            high = sum(f.upper for f in components)
+            if low > total + 1e-12:
+                raise ValueError(
+                    f"mixture: the component lower bounds add up to {low:g}, more than the total "
+                    f"{total:g}; lower some bounds"
+                )
+            if high < total - 1e-12:
+                raise ValueError(
+                    f"mixture: the component upper bounds add up to {high:g}, less than the total "
+                    f"{total:g}; raise some bounds"
+                )
+        return self
+
+    # ----------------------------------------------------------------- names
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return tuple(f.name for f in self.factors)
+
+    @property
+    def limit_names(self) -> tuple[str, ...]:
+        return tuple(lim.name for lim in self.limits)
+
+    @property
+    def response_names(self) -> tuple[str, ...]:
+        return (self.objective.name,) + self.limit_names
+
+    @property
+    def maximize(self) -> bool:
+        return self.objective.direction == "maximize"
+
+    def min_runs_for(self, limit: Limit) -> int:
+        return limit.min_runs if limit.min_runs is not None else self.screen.min_runs
+
+    # ----------------------------------------------------------- fingerprint
+    def canonical(self) -> bytes:
+        """Canonical JSON of the validated protocol (sorted keys, no NaN)."""
+        data = self.model_dump(mode="json")
+        return json.dumps(
+            data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+        ).encode("utf-8")
+
+    @property
+    def fingerprint(self) -> str:
+        """SHA-256 of :meth:`canonical`; equal protocols share it whatever their layout."""
+        return hashlib.sha256(self.canonical()).hexdigest()
+
+    # ---------------------------------------------------------- design space
+    def rule_rows(self, rules, *, label_prefix: str = "") -> tuple[np.ndarray, np.ndarray, list[str]]:
+        """Rows ``A x <= b`` over the factors for parsed rules."""
+        names = self.factor_names
+        rows, rhs, labels = [], [], []
+        for rule in rules:
+            for a, b in rule.upper_rows(names):
+                rows.append(a)
+                rhs.append(b)
+                labels.append(f"{label_prefix}{rule.text!r} ({rule.describe()})")
+        d = len(names)
+        return (
+            np.asarray(rows, dtype=float).reshape(-1, d),
+            np.asarray(rhs, dtype=float).reshape(-1),
+            labels,
+        )
+
+    def design_space(self):
+        """Build the :class:`planner.space.DesignSpace` this protocol describes."""
+        from .space import DesignSpace
+
+        names = self.factor_names
+        d = len(names)
+        lower = np.array([f.low for f in self.factors])
+        upper = np.array([f.high for f in self.factors])
+        A_eq = np.zeros((0, d))
+        b_eq = np.zeros(0)
+        eq_labels: list[str] = []
+        if self.mixture is not None:
+            row = np.array([1.0 if f.kind == "component" else 0.0 for f in self.factors])
+            A_eq = row[None, :]
+            b_eq = np.array([self.mixture.total])
+            eq_labels = [f"mixture total (components add up to {self.mixture.total:g})"]
+        A_ub, b_ub, ub_labels = [], [], []
+        for k, c in enumerate(self.constraints):
+            label = c.name or f"constraints[{k}]"
+            A, b, labels = self.rule_rows(c.parsed, label_prefix=f"constraint {label}: ")
+            A_ub.append(A)
+            b_ub.append(b)
+            ub_labels += labels
+        levels = {
+            i: np.asarray(f.levels, dtype=float)
+            for i, f in enumerate(self.factors)
+            if f.kind == "discrete"
+        }
+        return DesignSpace(
+            names=names,
+            lower=lower,
+            upper=upper,
+            A_eq=A_eq,
+            b_eq=b_eq,
+            A_ub=np.vstack(A_ub) if A_ub else np.zeros((0, d)),
+            b_ub=np.concatenate(b_ub) if b_ub else np.zeros(0),
+            eq_labels=tuple(eq_labels),
+            ub_labels=tuple(ub_labels),
+            levels=levels,
+            units=tuple(f.unit for f in self.factors),
+        )
+
+    def start_rows(self) -> tuple[np.ndarray, np.ndarray, list[str]] | None:
+        """The starting region as rows ``A x <= b``, or None when none is declared."""
+        if self.start is None:
+            return None
+        return self.rule_rows(self.start.parsed, label_prefix="start region: ")
+
+
+# ----------------------------------------------------------------- loading
+def _format_loc(loc: tuple) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out or "(top level)"
+
+
+def _plain(err: dict) -> str:
+    kind = err.get("type", "")
+    msg = err.get("msg", "")
+    if kind == "extra_forbidden":
+        return "unknown key; check its spelling (see the example protocols in protocols/)"
+    if kind == "missing":
+        return "this field is required"
+    if msg.startswith("Value error, "):
+        msg = msg[len("Value error, ") :]
+    inp = err.get("input")
+    if kind in ("greater_than", "less_than", "greater_than_equal", "less_than_equal") and inp is not None:
+        msg = f"{msg} (got {inp!r})"
+    return msg
+
+
+def _rule_fields(p: Protocol):
+    """(field path, rule text) for every rule in the protocol."""
+    for k, c in enumerate(p.constraints):
+        yield f"constraints[{k}].rule", c, "parsed"
+    for k, f in enumerate(p.screen.forbidden):
+        yield f"screen.forbidden[{k}].rules", f, "parsed"
+    if p.start is not None:
+        yield "start.rules", p.start, "parsed"
+
+
+def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
+    """Validate a protocol given as a dict (already parsed TOML).
+
+    Raises
+    ------
+    ProtocolError
+        Naming ``source``, the field path and what to change.
+    """
+    try:
+        protocol = Protocol.model_validate(data)
+    except ValidationError as exc:
+        lines = [f"{source}: {_format_loc(e['loc'])}: {_plain(e)}" for e in exc.errors()]
+        raise ProtocolError("\n".join(lines)) from None
+    names = set(protocol.factor_names)
+    factor = {f.name: f for f in protocol.factors}
+    for path, holder, attr in _rule_fields(protocol):
+        try:
+            rules = getattr(holder, attr)
+        except RuleSyntaxError as exc:
+            raise ProtocolError(f"{source}: {path}: cannot read the rule: {exc}") from None
+        for rule in rules:
+            unknown = [n for n in rule.names if n not in names]
+            if unknown:
+                raise ProtocolError(
+                    f"{source}: {path}: rule {rule.text!r} names unknown factor(s) "
+                    f"{', '.join(repr(u) for u in unknown)}; known factors: "
+                    f"{', '.join(sorted(names))}"
+                )
+            for coefs, const in rule.divisors:
+                low = const + sum(
+                    min(c * factor[n].low, c * factor[n].high) for n, c in coefs
+                )
+                if low < 0:
+                    raise ProtocolError(
+                        f"{source}: {path}: rule {rule.text!r} divides by a quantity that can be "
+                        f"negative within the factor bounds (as low as {low:g}); write the rule "
+                        "without division"
+                    )
+    return protocol
+
+
+def load_protocol(path: str | Path) -> Protocol:
+    """Read and validate a protocol TOML file.
+
+    Raises
+    ------
+    ProtocolError
+        When the file cannot be read, is not TOML, or is not a valid protocol.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ProtocolError(f"{path}: cannot read the protocol file ({exc.strerror})") from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise ProtocolError(f"{path}: the protocol is not UTF-8 text (byte {exc.start})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProtocolError(f"{path}: not valid TOML: {exc}") from None
+    return parse_protocol(data, source=str(path.name))

@@ -1,0 +1,415 @@
+"""Atomic file writing, file digests and CSV output that spreadsheets cannot run.
+
+Every file Guardband writes goes through :func:`atomic_write_bytes` (or one
+of its wrappers): the data go to a temporary file in the target's folder,
+are flushed and synced to disk, and the temporary file is then renamed over
+the target with :func:`os.replace`. A reader, or a crash, sees either the
+whole old file or the whole new one, never a mixture.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import numbers
+import os
+import stat
+import tempfile
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Union
+
+import numpy as np
+
+from planner.errors import OutputError
+
+__all__ = [
+    "CSV_FORMULA_PREFIXES",
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "atomic_write_many",
+    "sha256_file",
+    "csv_safe_cell",
+    "write_csv_text",
+]
+
+PathLike = Union[str, "os.PathLike[str]"]
+
+#: Leading characters that make a spreadsheet read a CSV cell as a formula.
+#: OWASP "CSV Injection" lists ``= + - @``, tab (0x09) and carriage return
+#: (0x0D); OWASP ASVS 5.0 requirement 1.2.10 adds NUL (0x00).
+CSV_FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r", "\0")
+
+_READ_CHUNK = 1 << 20
+
+
+def _current_umask() -> int:
+    # os.umask can only be read by setting it; do it once, at import, rather
+    # than on every write (setting it is not thread-safe).
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+_UMASK = _current_umask()
+
+
+def _describe(exc: OSError) -> str:
+    return exc.strerror or str(exc) or type(exc).__name__
+
+
+def _fsync_directory(directory: str) -> None:
+    """Sync a folder so that a rename inside it survives a power cut.
+
+    Windows cannot open a folder this way, and some file systems refuse
+    ``fsync`` on one; the rename has already happened then, so the failure
+    is ignored rather than reported as a failed write.
+    """
+    if os.name == "nt":  # pragma: no cover - not exercised on POSIX
+        return
+    try:
+        fd = os.open(directory, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _as_bytes(path: str, data: object) -> bytes:
+    if isinstance(data, (bytes, bytearray, memoryview)):
+        return bytes(data)
+    raise TypeError(
+        f"data for {path} must be bytes, got {type(data).__name__}; "
+        "use atomic_write_text for text"
+    )
+
+
+def _target_mode(path: str) -> int:
+    """Permission bits for the new file: the old file's, else 0o666 minus umask."""
+    try:
+        return stat.S_IMODE(os.stat(path).st_mode)
+    except OSError:
+        return 0o666 & ~_UMASK
+
+
+def _stage(path: str, data: bytes) -> str:
+    """Write ``data`` to a synced temporary file next to ``path``; return its name.
+
+    On failure the temporary file is removed and :class:`OutputError` raised.
+    """
+    directory = os.path.dirname(os.path.abspath(path))
+    base = os.path.basename(path)
+    try:
+        fd, tmp = tempfile.mkstemp(dir=directory, prefix=f".{base}.", suffix=".tmp")
+    except OSError as exc:
+        raise OutputError(f"could not write {path}: {_describe(exc)}") from exc
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.chmod(tmp, _target_mode(path))
+    except BaseException as exc:
+        _remove_quietly(tmp)
+        if isinstance(exc, OSError):
+            raise OutputError(f"could not write {path}: {_describe(exc)}") from exc
+        raise
+    return tmp
+
+
+def _remove_quietly(path: str) -> None:
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
+
+
+def atomic_write_bytes(path: PathLike, data: bytes) -> None:
+    """Replace the file at ``path`` with ``data``, all or nothing.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file to write. Its folder must exist.
+    data : bytes
+        The complete new content.
+
+    Raises
+    ------
+    OutputError
+        The file could not be written; it is left exactly as it was and no
+        temporary file remains.
+
+    Notes
+    -----
+    Sequence: ``mkstemp`` in the same folder, write, flush, ``os.fsync``,
+    ``os.replace`` over the target, then ``fsync`` of the folder where the
+    operating system allows it. An existing file's permission bits are kept;
+    a new file gets ``0o666`` less the process umask (read at import).
+    """
+    path = os.fspath(path)
+    payload = _as_bytes(path, data)
+    tmp = _stage(path, payload)
+    try:
+        os.replace(tmp, path)
+    except BaseException as exc:
+        _remove_quietly(tmp)
+        if isinstance(exc, OSError):
+            raise OutputError(f"could not write {path}: {_describe(exc)}") from exc
+        raise
+    _fsync_directory(os.path.dirname(os.path.abspath(path)))
+
+
+def atomic_write_text(path: PathLike, text: str, *, encoding: str = "utf-8") -> None:
+    """Replace the file at ``path`` with ``text``, all or nothing.
+
+    The text is encoded as given (no newline translation), then written with
+    :func:`atomic_write_bytes`.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file to write.
+    text : str
+        The complete new content.
+    encoding : str, default "utf-8"
+        Text encoding.
+
+    Raises
+    ------
+    OutputError
+        The file could not be written; it is left exactly as it was.
+    """
+    if not isinstance(text, str):
+        raise TypeError(f"text for {os.fspath(path)} must be str, got {type(text).__name__}")
+    atomic_write_bytes(path, text.encode(encoding))
+
+
+def atomic_write_many(files: Mapping[PathLike, bytes | str]) -> list[str]:
+    """Write several files, staging all of them before replacing any.
+
+    Parameters
+    ----------
+    files : mapping of path to bytes or str
+        New content per file; ``str`` values are encoded as UTF-8.
+
+    Returns
+    -------
+    list of str
+        The paths written, in the order they were replaced.
+
+    Raises
+    ------
+    OutputError
+        A file could not be written. The message says which files, if any,
+        were already replaced.
+
+    Notes
+    -----
+    Each file on its own is replaced atomically. The set is not: every
+    file is first written and synced to a temporary file, so a failure
+    while writing (disk full, permission denied) changes nothing at all;
+    but the renames then happen one after another, so a crash or a failed
+    rename part-way leaves the earlier files new and the later ones old.
+    The error message lists both groups. Readers that need a consistent
+    set should check a digest recorded with it (for example in the
+    decision log).
+    """
+    entries: list[tuple[str, bytes]] = []
+    seen: dict[str, str] = {}
+    for raw_path, content in files.items():
+        path = os.fspath(raw_path)
+        key = os.path.normcase(os.path.abspath(path))
+        if key in seen:
+            raise ValueError(f"the same file is listed twice: {seen[key]} and {path}")
+        seen[key] = path
+        payload = content.encode("utf-8") if isinstance(content, str) else _as_bytes(path, content)
+        entries.append((path, payload))
+
+    staged: list[tuple[str, str]] = []
+    try:
+        for path, payload in entries:
+            staged.append((path, _stage(path, payload)))
+    except BaseException:
+        for _, tmp in staged:
+            _remove_quietly(tmp)
+        raise
+
+    done: list[str] = []
+    for position, (path, tmp) in enumerate(staged):
+        try:
+            os.replace(tmp, path)
+        except BaseException as exc:
+            for _, rest in staged[position:]:
+                _remove_quietly(rest)
+            if not isinstance(exc, OSError):
+                raise
+            not_done = [p for p, _ in staged[position:]]
+            already = ", ".join(done) if done else "none"
+            raise OutputError(
+                f"could not write {path}: {_describe(exc)}. "
+                f"Already replaced: {already}. Unchanged: {', '.join(not_done)}"
+            ) from exc
+        done.append(path)
+    for directory in sorted({os.path.dirname(os.path.abspath(p)) for p in done}):
+        _fsync_directory(directory)
+    return done
+
+
+def sha256_file(path: PathLike) -> str:
+    """SHA-256 of a file's bytes.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file to read.
+
+    Returns
+    -------
+    str
+        64 lowercase hexadecimal digits.
+
+    Raises
+    ------
+    OSError
+        The file cannot be read (missing, no permission).
+    """
+    digest = hashlib.sha256()
+    with open(os.fspath(path), "rb") as handle:
+        for chunk in iter(lambda: handle.read(_READ_CHUNK), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _is_number(value: object) -> bool:
+    # bool is an int; numpy.bool_ is not a numbers.Number but is not text either.
+    return isinstance(value, (numbers.Number, np.number, np.bool_)) and not isinstance(value, str)
+
+
+def csv_safe_cell(value: object) -> object:
+    """Make one CSV cell safe to open in a spreadsheet.
+
+    Follows the OWASP advice on CSV injection: a text cell that starts with
+    ``=``, ``+``, ``-``, ``@``, tab, carriage return or NUL (see
+    :data:`CSV_FORMULA_PREFIXES`) gets a leading single quote, which the
+    spreadsheet reads as "this is text". Quoting of commas, quotes and line
+    breaks is left to the :mod:`csv` writer.
+
+    Parameters
+    ----------
+    value : object
+        A cell value.
+
+    Returns
+    -------
+    object
+        Numbers (Python or numpy) and ``None`` unchanged; anything else as a
+        ``str``, escaped when needed.
+
+    Notes
+    -----
+    Only real text is escaped. Our writers pass numeric values as numbers,
+    so ``-1.5`` (a float) stays a number, while the string ``"-1.5"`` gets a
+    quote like any other text starting with ``-``. Non-text objects other
+    than numbers are converted with ``str`` first, because the csv module
+    would write that string anyway.
+    """
+    if value is None or _is_number(value):
+        return value
+    text = str(value)  # also turns a numpy.str_ into a plain str
+    if text.startswith(CSV_FORMULA_PREFIXES):
+        return "'" + text
+    return text
+
+
+def _format_cell(value: object, float_format: str | None) -> object:
+    value = csv_safe_cell(value)
+    if value is None or isinstance(value, str):
+        return value
+    if isinstance(value, (bool, np.bool_)):
+        return str(bool(value))
+    if isinstance(value, (numbers.Integral, np.integer)):
+        return str(int(value))
+    if isinstance(value, (numbers.Real, np.floating)):
+        if float_format is not None:
+            return format(float(value), float_format)
+        if isinstance(value, np.floating) and not isinstance(value, np.float64):
+            # str gives the shortest digits that identify the value at its own
+            # precision (float32 0.1 -> "0.1"), where float() would add noise.
+            return str(value)
+        return repr(float(value))
+    return str(value)  # complex and other numbers: as Python writes them
+
+
+def write_csv_text(
+    rows: Iterable[Sequence[object] | Mapping[str, object]],
+    header: Sequence[str],
+    *,
+    comment_lines: Iterable[str] = (),
+    float_format: str | None = None,
+) -> str:
+    """Render a table as CSV text with spreadsheet-safe cells.
+
+    Parameters
+    ----------
+    rows : iterable of sequences or mappings
+        One entry per row: a sequence of ``len(header)`` cells, or a mapping
+        from column name to cell (columns missing from it are left empty).
+    header : sequence of str
+        Column names, written as the first non-comment line.
+    comment_lines : iterable of str, optional
+        Lines written first, each as ``"# " + line`` (used for cautions).
+        A line containing line breaks becomes several comment lines, so a
+        comment can never spill into the data.
+    float_format : str, optional
+        A :func:`format` spec for floats, e.g. ``".10g"``. By default floats
+        are written with :func:`repr`, the shortest text that reads back as
+        the same float.
+
+    Returns
+    -------
+    str
+        The CSV text, lines ending in ``"\\n"``.
+
+    Raises
+    ------
+    ValueError
+        A row has the wrong number of cells, or a mapping row has a column
+        that is not in the header.
+
+    Notes
+    -----
+    Readers must skip the comment lines (``pandas.read_csv(...,
+    comment="#")``, or drop lines starting with ``#``). Every cell, header
+    included, goes through :func:`csv_safe_cell`.
+    """
+    header = [str(name) for name in header]
+    buffer = io.StringIO()
+    for line in comment_lines:
+        for part in str(line).splitlines() or [""]:
+            buffer.write(f"# {part}".rstrip() + "\n")
+    writer = csv.writer(buffer, lineterminator="\n", quoting=csv.QUOTE_MINIMAL)
+    writer.writerow([csv_safe_cell(name) for name in header])
+    width = len(header)
+    for number, row in enumerate(rows, start=1):
+        if isinstance(row, Mapping):
+            unknown = [key for key in row if key not in header]
+            if unknown:
+                raise ValueError(
+                    f"row {number} has columns that are not in the header: {unknown}; "
+                    f"header is {header}"
+                )
+            cells = [row.get(name) for name in header]
+        else:
+            cells = list(row)
+            if len(cells) != width:
+                raise ValueError(
+                    f"row {number} has {len(cells)} cells but the header has {width} "
+                    f"columns ({len(cells)} != {width})"
+                )
+        writer.writerow([_format_cell(cell, float_format) for cell in cells])
+    return buffer.getvalue()

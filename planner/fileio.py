@@ -392,8 +392,21 @@ def write_csv_text(
     for line in comment_lines:
         for part in str(line).splitlines() or [""]:
             buffer.write(f"# {part}".rstrip() + "\n")
-    writer = csv.writer(buffer, lineterminator="\n", quoting=csv.QUOTE_MINIMAL)
-    writer.writerow([csv_safe_cell(name) for name in header])
+    row_buffer = io.StringIO()
+    # The csv module quotes a cell only for the characters of its own line
+    # terminator, so with "\n" a bare carriage return inside a cell would be
+    # left unquoted and split the row for readers. Write each row with
+    # "\r\n" (every cell holding CR or LF gets quoted, as RFC 4180 2.6
+    # asks) and swap that final terminator for "\n".
+    writer = csv.writer(row_buffer, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
+
+    def write_row(cells: list[object]) -> None:
+        row_buffer.seek(0)
+        row_buffer.truncate()
+        writer.writerow(cells)
+        buffer.write(row_buffer.getvalue()[:-2] + "\n")
+
+    write_row([csv_safe_cell(name) for name in header])
     width = len(header)
     for number, row in enumerate(rows, start=1):
         if isinstance(row, Mapping):
@@ -411,5 +424,5 @@ def write_csv_text(
                     f"row {number} has {len(cells)} cells but the header has {width} "
                     f"columns ({len(cells)} != {width})"
                 )
-        writer.writerow([_format_cell(cell, float_format) for cell in cells])
+        write_row([_format_cell(cell, float_format) for cell in cells])
     return buffer.getvalue()

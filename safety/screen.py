@@ -1,0 +1,283 @@
+"""The safety screen: hard rules, per-limit probabilities and the joint figure.
+
+Every candidate ends either surviving or excluded with one reason that names
+the rule, the limit, the probability and the threshold. Rules are applied
+in a fixed order and the first one that fails is the recorded reason; the
+probabilities are still computed for every candidate so that a reviewer
+can see how near each near miss came.
+
+1. ``outside-design-space``: not inside the polytope and discrete levels.
+2. ``forbidden-region``: inside a region the protocol forbids.
+3. ``step-too-large``: farther from the nearest run that met every limit
+   than the protocol's ``max_step`` (unit-scaled distance over the free
+   factors, divided by sqrt(number of free factors), so 1 is the diagonal).
+4. ``too-few-runs`` / ``model-not-fitted`` (fail closed): a limit whose
+   model cannot vouch for anything excludes every candidate.
+5. ``limit-probability``: P(limit i met) below that limit's probability.
+6. ``joint-below-threshold``: the joint figure below the screen threshold.
+
+Per-limit probabilities use the predictive distribution of a new
+*measurement* (latent variance plus noise variance), because the limit
+applies to what the lab will measure. The joint figure is by default the
+bound max(0, 1 - sum(1 - p_i)) (Boole/Bonferroni), valid whatever the
+correlation between limits; the product of the p_i (independence) is used
+only when the protocol names it.
+
+This module works on numbers (means, standard deviations, distances); it
+does not fit models and does not import the command line.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.special import ndtr
+
+__all__ = [
+    "REASONS",
+    "LimitPrediction",
+    "ScreenResult",
+    "limit_probability",
+    "joint_figure",
+    "run_screen",
+    "step_distance",
+]
+
+#: Exclusion reasons in the order they are applied.
+REASONS = (
+    "outside-design-space",
+    "forbidden-region",
+    "step-too-large",
+    "too-few-runs",
+    "model-not-fitted",
+    "limit-probability",
+    "joint-below-threshold",
+)
+
+
+@dataclass(frozen=True)
+class LimitPrediction:
+    """What a limit's model says at the candidates, or why it cannot say.
+
+    ``status`` is "ok" (mean and sd given), "too-few-runs" or
+    "model-not-fitted" (then ``message`` says why and every candidate is
+    excluded by this limit).
+    """
+
+    name: str
+    probability: float
+    lower: float | None
+    upper: float | None
+    status: str = "ok"
+    mean: np.ndarray | None = None
+    sd: np.ndarray | None = None
+    message: str = ""
+
+
+def limit_probability(mean, sd, *, lower=None, upper=None) -> np.ndarray:
+    """P(lower <= Y <= upper) for Y ~ N(mean, sd^2), elementwise.
+
+    sd = 0 gives 1 or 0 according to whether the mean is within the limit.
+    """
+    mean = np.asarray(mean, dtype=float)
+    sd = np.asarray(sd, dtype=float)
+    safe_sd = np.where(sd > 0, sd, 1.0)
+    p_up = np.ones_like(mean)
+    p_low = np.zeros_like(mean)
+    if upper is not None:
+        p_up = np.where(sd > 0, ndtr((upper - mean) / safe_sd), (mean <= upper).astype(float))
+    if lower is not None:
+        p_low = np.where(sd > 0, ndtr((lower - mean) / safe_sd), (mean < lower).astype(float))
+    return np.clip(p_up - p_low, 0.0, 1.0)
+
+
+def joint_figure(P, *, method: str = "bound") -> np.ndarray:
+    """Joint figure from per-limit probabilities.
+
+    Parameters
+    ----------
+    P : array of shape (n_candidates, n_limits)
+    method : {"bound", "independent"}
+        "bound": max(0, 1 - sum(1 - p_i)), which holds whatever the
+        correlation between the limited responses; "independent": prod(p_i).
+    """
+    P = np.asarray(P, dtype=float)
+    if P.ndim != 2:
+        raise ValueError("P must have shape (n_candidates, n_limits)")
+    if P.shape[1] == 0:
+        return np.ones(P.shape[0])
+    if method == "bound":
+        return np.maximum(0.0, 1.0 - np.sum(1.0 - P, axis=1))
+    if method == "independent":
+        return np.prod(P, axis=1)
+    raise ValueError(f"unknown joint method {method!r}; use 'bound' or 'independent'")
+
+
+def step_distance(U, U_safe) -> np.ndarray:
+    """Distance from each candidate to the nearest safe run, per sqrt(factor).
+
+    Parameters
+    ----------
+    U : array of shape (n_candidates, k)
+        Candidates in unit-scaled coordinates of the free factors.
+    U_safe : array of shape (n_safe, k)
+
+    Returns
+    -------
+    ndarray of shape (n_candidates,); inf when there is no safe run.
+    """
+    U = np.asarray(U, dtype=float)
+    U_safe = np.asarray(U_safe, dtype=float)
+    if U_safe.shape[0] == 0:
+        return np.full(U.shape[0], np.inf)
+    k = max(U.shape[1], 1)
+    best = np.full(U.shape[0], np.inf)
+    for start in range(0, U_safe.shape[0], 256):
+        block = U_safe[start : start + 256]
+        d2 = (
+            np.einsum("ij,ij->i", U, U)[:, None]
+            - 2.0 * U @ block.T
+            + np.einsum("ij,ij->i", block, block)[None, :]
+        )
+        best = np.minimum(best, np.min(d2, axis=1))
+    return np.sqrt(np.maximum(best, 0.0) / k)
+
+
+@dataclass(frozen=True)
+class ScreenResult:
+    """Outcome of the screen for every candidate.
+
+    Attributes
+    ----------
+    survives : bool array (n,)
+    reason : array of str (n,)
+        "" for survivors, else one of :data:`REASONS`.
+    detail : list of str (n,)
+        A plain sentence for each excluded candidate.
+    P : array (n, n_limits)
+        Per-limit probabilities (NaN where the limit could not vouch).
+    joint : array (n,)
+        Joint figure (0 where a limit could not vouch).
+    step : array (n,)
+        Distance to the nearest safe run (inf when there is none).
+    limit_names : tuple of str
+    messages : tuple of str
+        Screen-wide notes (e.g. a limit that excludes everything).
+    """
+
+    survives: np.ndarray
+    reason: np.ndarray
+    detail: list[str]
+    P: np.ndarray
+    joint: np.ndarray
+    step: np.ndarray
+    limit_names: tuple[str, ...]
+    messages: tuple[str, ...] = field(default=())
+
+    @property
+    def n(self) -> int:
+        return int(self.survives.shape[0])
+
+    def counts(self) -> dict[str, int]:
+        """Number of candidates per outcome ("survived" and each reason)."""
+        out = {"survived": int(self.survives.sum())}
+        for r in REASONS:
+            out[r] = int(np.sum(self.reason == r))
+        return out
+
+
+def run_screen(
+    *,
+    inside: np.ndarray,
+    outside_detail: list[str] | None = None,
+    forbidden: np.ndarray | None = None,
+    forbidden_detail: list[str] | None = None,
+    step: np.ndarray | None = None,
+    max_step: float | None = None,
+    step_basis: str = "run that met every limit",
+    limits: list[LimitPrediction],
+    threshold: float,
+    joint: str = "bound",
+) -> ScreenResult:
+    """Screen candidates.
+
+    Parameters
+    ----------
+    inside : bool array (n,)
+        Whether each candidate lies inside the design space.
+    outside_detail : list of str, optional
+        The violated constraint for each candidate outside.
+    forbidden : bool array (n,), optional
+        Whether each candidate lies in a forbidden region.
+    forbidden_detail : list of str, optional
+    step : array (n,), optional
+        Distance to the nearest run that met every limit (see :func:`step_distance`).
+    max_step : float, optional
+        The protocol's largest step; None turns the rule off.
+    step_basis : str
+        What ``step`` was measured from, for the messages.
+    limits : list of LimitPrediction
+    threshold : float
+        The joint figure a candidate must reach.
+    joint : {"bound", "independent"}
+    """
+    inside = np.asarray(inside, dtype=bool)
+    n = inside.shape[0]
+    m = len(limits)
+    P = np.full((n, m), np.nan)
+    messages = []
+    vouch = np.ones(n, dtype=bool)
+    for j, lim in enumerate(limits):
+        if lim.status == "ok":
+            P[:, j] = limit_probability(lim.mean, lim.sd, lower=lim.lower, upper=lim.upper)
+        else:
+            vouch[:] = False
+            messages.append(f"limit {lim.name!r} cannot vouch for any candidate: {lim.message}")
+    J = joint_figure(np.nan_to_num(P, nan=0.0), method=joint)
+    J = np.where(vouch, J, 0.0)
+    if step is None:
+        step = np.full(n, np.nan)
+    reason = np.full(n, "", dtype=object)
+    detail = [""] * n
+
+    def mark(mask, code, text_of):
+        idx = np.flatnonzero(mask & (reason == ""))
+        for i in idx:
+            reason[i] = code
+            detail[i] = text_of(i)
+
+    mark(~inside, "outside-design-space",
+         lambda i: (outside_detail[i] if outside_detail else "outside the design space"))
+    if forbidden is not None:
+        mark(np.asarray(forbidden, dtype=bool), "forbidden-region",
+             lambda i: (forbidden_detail[i] if forbidden_detail else "inside a forbidden region"))
+    if max_step is not None:
+        too_far = ~(np.asarray(step) <= max_step)
+        mark(too_far, "step-too-large",
+             lambda i: (f"step {step[i]:.3f} from the nearest {step_basis} exceeds max_step {max_step:g}"
+                        if np.isfinite(step[i])
+                        else f"no step can be measured: there is no {step_basis} yet"))
+    for lim in limits:
+        if lim.status != "ok":
+            mark(np.ones(n, dtype=bool), lim.status,
+                 lambda i, lim=lim: f"limit {lim.name!r}: {lim.message}")
+    for j, lim in enumerate(limits):
+        if lim.status == "ok":
+            low = P[:, j] < lim.probability
+            mark(low, "limit-probability",
+                 lambda i, j=j, lim=lim: (f"limit {lim.name!r}: probability {P[i, j]:.4f} is below "
+                                          f"the required {lim.probability:g}"))
+    mark(J < threshold, "joint-below-threshold",
+         lambda i: f"joint figure ({joint}) {J[i]:.4f} is below the threshold {threshold:g}")
+    survives = reason == ""
+    return ScreenResult(
+        survives=survives,
+        reason=reason.astype(str),
+        detail=detail,
+        P=P,
+        joint=J,
+        step=np.asarray(step, dtype=float),
+        limit_names=tuple(lim.name for lim in limits),
+        messages=tuple(messages),
+    )

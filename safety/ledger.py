@@ -35,6 +35,12 @@ ECMAScript writes a double (``1e+21``, ``0.000001``, ``100`` for ``100.0``,
 exactly however large they are (RFC 8785 reads every number as a double,
 so an integer beyond 2**53 would be rounded there), and NaN and infinity
 are refused rather than silently written as ``null``.
+
+One consequence of the ECMAScript number form: a float with an integral
+value is written without a decimal point (``2.0`` -> ``2``,
+``1e16`` -> ``10000000000000000``), so :func:`json.loads` reads it back as
+an ``int``. ``float()`` of that int is the same double again, and the
+canonical text (hence every hash) is unchanged by the round trip.
 """
 
 from __future__ import annotations
@@ -551,9 +557,10 @@ def _check_expectations(
             first_bad = None
         else:
             following = count - 1 - where
+            verb = "follows" if following == 1 else "follow"
             problem = (
                 f"head hash differs from the expected head: the expected head is record "
-                f"{where}, and {_plural(following)} follow it"
+                f"{where}, and {_plural(following)} {verb} it"
             )
             first_bad = where + 1
         return dataclasses.replace(result, ok=False, first_bad=first_bad, problem=problem)

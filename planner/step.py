@@ -217,9 +217,10 @@ def _prior_mean_for(limit: Limit) -> float:
 
 
 def _loo_summary(model, y) -> tuple[float, float]:
-    mu, sd = model.loo()
-    inside = np.abs(y - mu) <= Z95 * sd
-    return float(np.mean(inside)), float(np.sqrt(np.mean((y - mu) ** 2)))
+    loo = model.loo()
+    sd = np.sqrt(loo.variance)
+    inside = np.abs(loo.residual) <= Z95 * sd
+    return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed):

@@ -1,0 +1,307 @@
+"""The ``guardband`` command line: parse, call one function, print.
+
+Data goes to stdout in the format asked for (``table``, ``csv``, ``json``);
+messages go to stderr. Exit codes (see :mod:`planner.errors`):
+
+====  ==========================================================
+0     ok
+2     usage error (unknown option, missing argument)
+3     bad protocol, or its design space is empty
+4     bad runs data
+5     a decision log failed verification, or a replay differed
+6     no candidate passed the safety screen
+7     a model could not be fitted or cannot be trusted
+8     an output could not be written
+====  ==========================================================
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import sys
+from enum import Enum
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from . import __version__
+from .errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
+from .fileio import atomic_write_text, write_csv_text
+from .textable import render_table
+
+app = typer.Typer(
+    name="guardband",
+    help=(
+        "Plan the next runs of a formulation or dose study: Gaussian-process models, "
+        "a safety screen on every limit, and a tamper-evident decision log. "
+        "Decision support only: a qualified person reviews every proposed run."
+    ),
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+class Format(str, Enum):
+    table = "table"
+    csv = "csv"
+    json = "json"
+
+
+FORMAT_HELP = "Output format on stdout: table (readable), csv or json."
+
+
+def _err(text: str = "") -> None:
+    typer.echo(text, err=True)
+
+
+def _cautions_block(cautions) -> str:
+    return "CAUTIONS:\n" + "\n".join(f"  - {c}" for c in cautions)
+
+
+def _guarded(func):
+    """Turn a domain error into ``Error: ...`` on stderr and its exit code."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except GuardbandError as exc:
+            _err(f"Error: {exc}")
+            raise typer.Exit(exc.exit_code) from None
+
+    return wrapper
+
+
+def _json(obj) -> str:
+    from safety.ledger import to_jsonable
+
+    return json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False, allow_nan=False)
+
+
+@app.callback(invoke_without_command=True)
+def _root(
+    version: bool = typer.Option(False, "--version", help="Print the tool version and exit."),
+) -> None:
+    if version:
+        typer.echo(f"guardband {__version__}")
+        raise typer.Exit(0)
+
+
+# ------------------------------------------------------------------- check
+@app.command()
+@_guarded
+def check(
+    protocol: Path = typer.Argument(..., help="The protocol TOML file."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Check a protocol: validity, empty design space, real factor ranges, centre, fingerprint."""
+    from .workflow import check_protocol
+
+    report = check_protocol(protocol)
+    data = report.to_dict()
+    rows = report.rows()
+    if format is Format.json:
+        typer.echo(_json(data))
+    elif format is Format.csv:
+        header = list(rows[0].keys())
+        typer.echo(write_csv_text([list(r.values()) for r in rows], header,
+                                  comment_lines=[f"fingerprint {report.protocol.fingerprint}"]
+                                  + [f"CAUTION: {c}" for c in data["cautions"]]), nl=False)
+    else:
+        p = report.protocol
+        typer.echo(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
+        typer.echo(f"fingerprint: {p.fingerprint}")
+        typer.echo(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
+        if p.limits:
+            typer.echo("limits: " + "; ".join(
+                f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
+        typer.echo(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
+                   f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
+        typer.echo(_cautions_block(data["cautions"]))
+    if report.empty:
+        _err("Error: the design space is empty. Conflicting constraints:")
+        for c in report.conflicts:
+            _err(f"  - {c}")
+        raise typer.Exit(EXIT_PROTOCOL)
+    _err(f"ok: {report.message}")
+
+
+# ------------------------------------------------------------------- start
+@app.command()
+@_guarded
+def start(
+    protocol: Path = typer.Argument(..., help="The protocol TOML file."),
+    runs: int = typer.Option(..., "--runs", "-n", min=1, max=10000, help="How many starting runs."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Write the design as CSV to this file."),
+    seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's)."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Make a starting design for a campaign with no runs yet, ready to fill in."""
+    from .protocol import load_protocol
+    from .workflow import cautions_of, start_design
+
+    p = load_protocol(protocol)
+    seed_used = seed if seed is not None else (p.seed if p.seed is not None else 0)
+    header, rows, notes = start_design(p, runs, seed=seed_used)
+    cautions = cautions_of(p)
+    comments = [f"Guardband starting design - {p.study.title}",
+                f"protocol fingerprint {p.fingerprint}; seed {seed_used}; tool version {__version__}",
+                "fill in the response columns as runs are measured; leave a cell empty if not measured",
+                *notes, "CAUTIONS:", *[f"- {c}" for c in cautions]]
+    text = write_csv_text(rows, header, comment_lines=comments, float_format=".6g")
+    if out is not None:
+        atomic_write_text(out, text)
+        _err(f"wrote {len(rows)} starting runs to {out}")
+    if format is Format.json:
+        typer.echo(_json({"header": header, "rows": rows, "seed": seed_used, "notes": notes,
+                          "cautions": list(cautions)}))
+    elif format is Format.csv:
+        typer.echo(text, nl=False)
+    else:
+        typer.echo(render_table(header, rows))
+        for n in notes:
+            typer.echo(f"note: {n}")
+        typer.echo(_cautions_block(cautions))
+
+
+# -------------------------------------------------------------------- plan
+@app.command()
+@_guarded
+def plan(
+    protocol: Path = typer.Argument(..., help="The protocol TOML file."),
+    runs: Path = typer.Argument(..., help="The runs file (CSV) with the runs made so far."),
+    out: Path = typer.Option(..., "--out", "-o", help="Campaign folder: plan, exclusions, decision log."),
+    count: Optional[int] = typer.Option(None, "--count", "-k", min=1, max=100,
+                                        help="How many runs to propose (default: the protocol's batch size)."),
+    seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's; else drawn and recorded)."),
+    pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000, help="Candidate pool size (default: the protocol's)."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
+    from .workflow import cautions_of, plan_table, run_plan
+
+    outcome = run_plan(protocol, runs, out, count=count, seed=seed, pool_size=pool)
+    result = outcome.result
+    cautions = cautions_of(result.protocol)
+    header, rows = plan_table(result, step_label=outcome.record["body"]["step_label"])
+    if format is Format.json:
+        body = dict(outcome.record["body"])
+        body["log"] = {"file": outcome.log_path.name, "head": outcome.head, "count": outcome.count}
+        typer.echo(_json(body))
+    elif format is Format.csv:
+        typer.echo(outcome.files["plan"].read_text(encoding="utf-8"), nl=False)
+    else:
+        p = result.protocol
+        inc = result.incumbent
+        typer.echo(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
+        typer.echo(f"mode: {result.mode}; incumbent: "
+                   + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
+        counts = result.counts()
+        typer.echo("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
+        for m in result.messages:
+            typer.echo(f"note: {m}")
+        if rows:
+            typer.echo(render_table(header, rows))
+        typer.echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
+        typer.echo(_cautions_block(cautions))
+    if outcome.seed_drawn:
+        _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
+    for f in result.flags:
+        _err(f"warning: {f}")
+    _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
+    if not result.proposals:
+        _err("Error: no candidate passed the safety screen; see the exclusion table for why")
+        raise typer.Exit(EXIT_NO_SAFE)
+
+
+# ------------------------------------------------------------------ verify
+@app.command()
+@_guarded
+def verify(
+    log: Path = typer.Argument(..., help="The decision log (decisions.jsonl)."),
+    expect_head: Optional[str] = typer.Option(None, "--expect-head", help="Head hash printed by an earlier report."),
+    expect_count: Optional[int] = typer.Option(None, "--expect-count", min=0, help="Number of records the log must have."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Verify a decision log's hash chain and name the first bad record."""
+    from safety import ledger
+
+    try:
+        result = ledger.verify(log, expect_head=expect_head, expect_count=expect_count)
+    except ValueError as exc:
+        _err(f"Error: {exc}")
+        raise typer.Exit(2)
+    if format is Format.json:
+        typer.echo(_json(result.to_dict()))
+    elif format is Format.csv:
+        d = result.to_dict()
+        typer.echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
+    else:
+        if result.ok:
+            typer.echo(f"ok: {result.count} records, head {result.head}")
+        else:
+            typer.echo(f"FAILED: {result.problem}")
+    if not result.ok:
+        _err(f"Error: decision log {log} failed verification: {result.problem}")
+        raise typer.Exit(EXIT_VERIFY)
+
+
+# ------------------------------------------------------------------ replay
+@app.command()
+@_guarded
+def replay(
+    log: Path = typer.Argument(..., help="The decision log (decisions.jsonl)."),
+    record: int = typer.Option(..., "--record", "-r", min=0, help="Index of the plan record to re-run (0 is the first)."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Re-run a recorded planning step from its recorded inputs and compare the plans."""
+    from .workflow import replay_record
+
+    outcome = replay_record(log, record)
+    if format is Format.json:
+        typer.echo(_json(outcome.to_dict()))
+    elif format is Format.csv:
+        d = outcome.to_dict()
+        d["differences"] = "; ".join(d["differences"])
+        typer.echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
+    else:
+        if outcome.identical:
+            typer.echo(f"identical: record {record} replays to the same plan (sha256 {outcome.replayed_sha256})")
+        else:
+            typer.echo(f"DIFFERENT: record {record}: " + "; ".join(outcome.differences))
+    if not outcome.identical:
+        raise typer.Exit(EXIT_VERIFY)
+
+
+# -------------------------------------------------------------------- demo
+@app.command()
+@_guarded
+def demo(
+    out: Path = typer.Option(Path("guardband-demo"), "--out", "-o", help="Folder for everything the demo writes."),
+) -> None:
+    """Run check, plan, verify and replay on the bundled tablet-blend protocol."""
+    from .demo import run_demo
+
+    lines = run_demo(out, echo=typer.echo)
+    for line in lines:
+        _err(line)
+
+
+def main() -> None:
+    """Console entry point. An unexpected failure prints one line, not a traceback."""
+    try:
+        app()
+    except Exception as exc:
+        if os.environ.get("GUARDBAND_DEBUG"):
+            raise
+        _err(f"Internal error: {type(exc).__name__}: {exc}. "
+             "Set GUARDBAND_DEBUG=1 to see the traceback, and please report it.")
+        sys.exit(1)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

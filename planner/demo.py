@@ -1,0 +1,95 @@
+"""``guardband demo``: check, plan, verify and replay on the bundled tablet blend.
+
+Everything goes into one folder: copies of the demo protocol and runs, the
+plan and exclusion tables, the decision log and a short summary text.
+The demo data is invented (see ``protocols/make_demo_runs.py``).
+"""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+from typing import Callable
+
+from .errors import GuardbandError, OutputError
+from .fileio import atomic_write_text
+from .textable import render_table
+
+__all__ = ["DEMO_PROTOCOL", "DEMO_RUNS", "examples_dir", "run_demo"]
+
+DEMO_PROTOCOL = "tablet_blend.toml"
+DEMO_RUNS = "tablet_blend_runs.csv"
+
+
+def examples_dir() -> Path:
+    """The folder that holds the example protocols (``protocols/`` of the source tree)."""
+    here = Path(__file__).resolve().parent
+    for candidate in (here.parent / "protocols", here / "examples"):
+        if (candidate / DEMO_PROTOCOL).exists():
+            return candidate
+    raise OutputError(
+        "the example protocols were not found next to the package; run the demo from a "
+        "source checkout (see the README)"
+    )
+
+
+def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -> list[str]:
+    """Run the demo into ``out``; return the summary lines (also written to SUMMARY.txt)."""
+    from safety import ledger
+
+    from .workflow import LOG_NAME, cautions_of, check_protocol, plan_table, replay_record, run_plan
+
+    out = Path(out)
+    src = examples_dir()
+    out.mkdir(parents=True, exist_ok=True)
+    protocol_path = out / DEMO_PROTOCOL
+    runs_path = out / DEMO_RUNS
+    shutil.copyfile(src / DEMO_PROTOCOL, protocol_path)
+    shutil.copyfile(src / DEMO_RUNS, runs_path)
+    summary: list[str] = []
+
+    def say(line: str = "") -> None:
+        echo(line)
+        summary.append(line)
+
+    say("== 1. check the protocol")
+    report = check_protocol(protocol_path)
+    p = report.protocol
+    say(f"{p.study.title}: {'EMPTY design space' if report.empty else 'design space not empty'}; "
+        f"fingerprint {p.fingerprint}")
+    rows = report.rows()
+    say(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
+    if report.empty:
+        raise GuardbandError("the demo protocol's design space is empty")
+
+    say("")
+    say("== 2. plan the next batch")
+    outcome = run_plan(protocol_path, runs_path, out)
+    result = outcome.result
+    header, prow = plan_table(result, step_label=outcome.record["body"]["step_label"])
+    inc = result.incumbent
+    say(f"mode {result.mode}; incumbent "
+        + (f"{inc['value']:.4g} (run {inc['run_id']})" if inc else "none"))
+    say("candidates: " + ", ".join(f"{k} {v}" for k, v in result.counts().items() if v))
+    for m in result.messages:
+        say(f"note: {m}")
+    say(render_table(header, prow))
+    say(f"plan table: {outcome.files['plan'].name}; exclusion table: {outcome.files['exclusions'].name}")
+
+    say("")
+    say("== 3. verify the decision log")
+    v = ledger.verify(out / LOG_NAME, expect_head=outcome.head, expect_count=outcome.count)
+    say(f"{'ok' if v.ok else 'FAILED'}: {v.count} record(s), head {v.head}" + ("" if v.ok else f": {v.problem}"))
+
+    say("")
+    say("== 4. replay the planning step")
+    r = replay_record(out / LOG_NAME, outcome.record["index"])
+    say(("identical" if r.identical else "DIFFERENT: " + "; ".join(r.differences))
+        + f" (plan sha256 {r.replayed_sha256[:16]}...)")
+
+    say("")
+    say("CAUTIONS:")
+    for c in cautions_of(p):
+        say(f"  - {c}")
+    atomic_write_text(out / "SUMMARY.txt", "\n".join(summary) + "\n")
+    return [f"demo folder: {out}"]

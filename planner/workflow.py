@@ -1,0 +1,418 @@
+"""What each command does, as plain functions the CLI (or a notebook) calls.
+
+The CLI parses options, calls one function here, and prints what it
+returns. These functions read and write files; the numerical work lives in
+:mod:`planner.step`, :mod:`planner.space` and :mod:`safety.screen`.
+
+Output folder layout of ``plan`` (one folder per campaign)::
+
+    decisions.jsonl            the decision log (hash chain)
+    plan-<hash12>.csv          the proposed runs of one planning step
+    exclusions-<hash12>.csv    every candidate of that step and its fate
+    inputs/protocol-<hash12>.toml, inputs/runs-<hash12>.csv
+                               exact copies of the inputs, for replay
+
+File names carry the first 12 hex digits of the file's own SHA-256, so two
+planning steps never overwrite each other's files and identical inputs
+write identical files.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import secrets
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .errors import ProtocolError, VerificationError
+from .fileio import atomic_write_bytes, write_csv_text
+from .protocol import Protocol, load_protocol
+from .runs import RUN_ID, RunsTable, read_runs
+from .step import PlanResult, plan_step
+
+from safety import cautions as _cautions
+from safety import ledger
+
+__all__ = [
+    "LOG_NAME",
+    "CheckReport",
+    "check_protocol",
+    "start_design",
+    "PlanOutcome",
+    "run_plan",
+    "plan_table",
+    "exclusion_table",
+    "ReplayOutcome",
+    "replay_record",
+    "cautions_of",
+]
+
+LOG_NAME = "decisions.jsonl"
+_FLOAT = ".6g"
+
+
+def cautions_of(protocol: Protocol) -> tuple[str, ...]:
+    """The cautions every output of this protocol carries."""
+    return _cautions.cautions_for(protocol.study.kind)
+
+
+def _short(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()[:12]
+
+
+# ------------------------------------------------------------------ check
+@dataclass(frozen=True)
+class CheckReport:
+    """Result of ``guardband check``."""
+
+    protocol: Protocol
+    empty: bool
+    conflicts: tuple[str, ...]
+    ranges: np.ndarray  # (n_factors, 2)
+    centre: np.ndarray | None
+    radius: float | None
+    message: str
+
+    def rows(self) -> list[dict]:
+        out = []
+        for k, f in enumerate(self.protocol.factors):
+            out.append(
+                {
+                    "factor": f.name,
+                    "kind": f.kind,
+                    "unit": f.unit,
+                    "declared_low": f.low,
+                    "declared_high": f.high,
+                    "real_low": float(self.ranges[k, 0]) if not self.empty else None,
+                    "real_high": float(self.ranges[k, 1]) if not self.empty else None,
+                    "centre": float(self.centre[k]) if self.centre is not None else None,
+                }
+            )
+        return out
+
+    def to_dict(self) -> dict:
+        p = self.protocol
+        return {
+            "protocol": {"title": p.study.title, "version": p.study.version, "author": p.study.author,
+                         "kind": p.study.kind, "fingerprint": p.fingerprint},
+            "empty": self.empty,
+            "conflicts": list(self.conflicts),
+            "factors": self.rows(),
+            "centre_radius": self.radius,
+            "limits": [lim.describe() for lim in p.limits],
+            "message": self.message,
+            "tool_version": __version__,
+            "cautions": list(cautions_of(p)),
+        }
+
+
+def check_protocol(path: str | Path) -> CheckReport:
+    """Validate a protocol and describe its design space.
+
+    Raises
+    ------
+    ProtocolError
+        For an invalid protocol. An empty design space is *returned* (with
+        ``empty=True`` and the conflicting constraints) so that the caller
+        can show it; the CLI then exits with the protocol error code.
+    """
+    protocol = load_protocol(path)
+    space = protocol.design_space()
+    result = space.check()
+    start = protocol.start_rows()
+    message = result.message
+    if not result.empty and start is not None:
+        region = space.add_inequalities(*start).check()
+        if region.empty:
+            return CheckReport(
+                protocol, True, ("the starting region does not meet the design space", *region.conflicts),
+                np.asarray(result.ranges), None, None,
+                message + "; the starting region does not meet the design space",
+            )
+    return CheckReport(
+        protocol=protocol,
+        empty=bool(result.empty),
+        conflicts=tuple(result.conflicts),
+        ranges=np.asarray(result.ranges),
+        centre=None if result.empty else np.asarray(result.centre),
+        radius=None if result.empty else float(result.radius),
+        message=message,
+    )
+
+
+# ------------------------------------------------------------------ start
+def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], list[list], list[str]]:
+    """A starting design of ``n`` runs in protocol units, ready to fill in.
+
+    Returns
+    -------
+    header, rows, notes
+        ``header`` is run_id, the factors, the (empty) responses and notes.
+    """
+    from .designs import starting_design
+
+    if n < 1:
+        raise ProtocolError("--runs must be at least 1")
+    space = protocol.design_space()
+    check = space.check()
+    if check.empty:
+        raise ProtocolError("the design space is empty; conflicting constraints: " + "; ".join(check.conflicts))
+    region = protocol.start_rows()
+    mixture = [k for k, f in enumerate(protocol.factors) if f.kind == "component"] or None
+    X, labels = starting_design(
+        space, n, rng=np.random.default_rng(seed), mixture_indices=mixture,
+        region=None if region is None else (region[0], region[1]),
+    )
+    header = [RUN_ID, *protocol.factor_names, *protocol.response_names, "notes"]
+    rows = []
+    width = max(2, len(str(n)))
+    for i, (x, label) in enumerate(zip(X, labels), start=1):
+        rows.append([f"S{i:0{width}d}", *[float(v) for v in x], *[""] * len(protocol.response_names), label])
+    notes = []
+    if region is not None:
+        notes.append("every starting run lies inside the protocol's starting region")
+    return header, rows, notes
+
+
+# ------------------------------------------------------------------- plan
+def plan_table(result: PlanResult, *, step_label: str) -> tuple[list[str], list[list]]:
+    """The plan table: proposed runs and what the models say about each."""
+    p = result.protocol
+    obj = p.objective.name
+    header = [
+        "rank", RUN_ID, *p.factor_names,
+        f"{obj}_mean", f"{obj}_lo95", f"{obj}_hi95",
+        *[f"p_{n}" for n in p.limit_names],
+        "joint", "ei", "pi", "bound", "mean", "origin",
+    ]
+    rows = []
+    for prop in result.proposals:
+        v = prop.values
+        rows.append([
+            prop.rank, f"{step_label}-{prop.rank:02d}", *[float(x) for x in prop.x],
+            prop.mean, prop.lo95, prop.hi95,
+            *[prop.p[n] for n in p.limit_names],
+            prop.joint, v.get("ei"), v.get("pi"), v.get("bound"), v.get("mean"), prop.origin,
+        ])
+    return header, rows
+
+
+def exclusion_table(result: PlanResult) -> tuple[list[str], list[list]]:
+    """Every candidate of the step: survived or excluded, and why."""
+    p = result.protocol
+    s = result.screen
+    header = ["candidate", "origin", "status", "reason", "detail", *p.factor_names,
+              *[f"p_{n}" for n in p.limit_names], "joint", "step", "score"]
+    rows = []
+    for i in range(s.n):
+        rows.append([
+            i, str(result.origin[i]), "survived" if s.survives[i] else "excluded",
+            str(s.reason[i]), s.detail[i], *[float(x) for x in result.pool[i]],
+            *[_cell(s.P[i, j]) for j in range(len(p.limit_names))],
+            float(s.joint[i]), _cell(s.step[i]), _cell(result.scores[i]),
+        ])
+    return header, rows
+
+
+def _cell(v):
+    v = float(v)
+    return v if np.isfinite(v) else None
+
+
+def _header_lines(result: PlanResult, what: str, extra: list[str] = ()) -> list[str]:
+    p = result.protocol
+    lines = [
+        f"Guardband {what} - {p.study.title}",
+        f"protocol fingerprint {p.fingerprint}; runs file sha256 {result.runs_sha256}; "
+        f"seed {result.seed}; tool version {result.version}",
+        *extra,
+        "CAUTIONS:",
+        *[f"- {c}" for c in cautions_of(p)],
+    ]
+    return lines
+
+
+@dataclass(frozen=True)
+class PlanOutcome:
+    """What ``guardband plan`` did."""
+
+    result: PlanResult
+    seed: int
+    seed_drawn: bool
+    record: dict
+    log_path: Path
+    files: dict[str, Path] = field(default_factory=dict)
+    head: str = ""
+    count: int = 0
+
+
+def _warm_start_from_log(log_path: Path, fingerprint: str) -> dict:
+    """Hyperparameters of the last plan on this protocol in the log."""
+    if not log_path.exists():
+        return {}
+    for rec in reversed(ledger.read_records(log_path)):
+        body = rec.get("body", {})
+        if rec.get("kind") == "plan" and body.get("protocol_fingerprint") == fingerprint:
+            return {m["response"]: m["hyperparameters"] for m in body.get("models", [])
+                    if m.get("hyperparameters")}
+    return {}
+
+
+def run_plan(
+    protocol_path: str | Path,
+    runs_path: str | Path,
+    out_dir: str | Path,
+    *,
+    count: int | None = None,
+    seed: int | None = None,
+    pool_size: int | None = None,
+) -> PlanOutcome:
+    """Plan the next batch and record it.
+
+    Reads and checks both inputs before anything is computed, runs one
+    planning step, writes the plan table, the exclusion table and copies of
+    the inputs (each atomically), then appends the decision-log record that
+    names them by hash. A failure before the append leaves the log as it was.
+    """
+    protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
+    protocol = load_protocol(protocol_path)
+    runs = read_runs(runs_path, protocol)
+    protocol_bytes = protocol_path.read_bytes()
+    runs_bytes = runs_path.read_bytes()
+    seed_drawn = False
+    if seed is None:
+        seed = protocol.seed
+    if seed is None:
+        seed = secrets.randbelow(2**63)
+        seed_drawn = True
+    log_path = out_dir / LOG_NAME
+    if log_path.exists():
+        ledger.verify_or_raise(log_path)
+    warm = _warm_start_from_log(log_path, protocol.fingerprint)
+    result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
+    return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
+                       seed, seed_drawn, count, pool_size, protocol_path, runs_path)
+
+
+def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
+    body_id = _short(ledger.canonical_json({"p": result.proposal_dicts(), "s": result.seed,
+                                            "f": result.protocol.fingerprint, "r": result.runs_sha256}))
+    step_label = f"P{body_id[:6]}"
+    header, rows = plan_table(result, step_label=step_label)
+    extra = [f"mode: {result.mode}; ranking rule: "
+             f"{result.protocol.ranking.rule if result.mode == 'improve' else 'joint figure'}; "
+             f"threshold {result.protocol.screen.threshold:g} ({result.protocol.screen.joint})"]
+    extra += [f"note: {m}" for m in result.messages]
+    plan_text = write_csv_text(rows, header, comment_lines=_header_lines(result, "plan", extra),
+                               float_format=_FLOAT)
+    eh, er = exclusion_table(result)
+    excl_text = write_csv_text(er, eh, comment_lines=_header_lines(result, "exclusion table"),
+                               float_format=_FLOAT)
+    return plan_text.encode("utf-8"), excl_text.encode("utf-8"), step_label
+
+
+def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
+                count, pool_size, protocol_path, runs_path) -> PlanOutcome:
+    plan_bytes, excl_bytes, step_label = _render(result, count)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    (out_dir / "inputs").mkdir(exist_ok=True)
+    files = {
+        "plan": out_dir / f"plan-{_short(plan_bytes)}.csv",
+        "exclusions": out_dir / f"exclusions-{_short(excl_bytes)}.csv",
+        "protocol_copy": out_dir / "inputs" / f"protocol-{_short(protocol_bytes)}.toml",
+        "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}.csv",
+    }
+    for key, data in (("protocol_copy", protocol_bytes), ("runs_copy", runs_bytes),
+                      ("exclusions", excl_bytes), ("plan", plan_bytes)):
+        atomic_write_bytes(files[key], data)
+    body = result.record_body()
+    body.update({
+        "step_label": step_label,
+        "count_requested": count,
+        "pool_size_requested": pool_size,
+        "seed_drawn": seed_drawn,
+        "protocol_file": {"name": protocol_path.name, "sha256": hashlib.sha256(protocol_bytes).hexdigest(),
+                          "copy": files["protocol_copy"].relative_to(out_dir).as_posix()},
+        "runs_file": {"name": runs_path.name, "sha256": result.runs_sha256,
+                      "copy": files["runs_copy"].relative_to(out_dir).as_posix()},
+        "plan_table": {"file": files["plan"].name, "sha256": hashlib.sha256(plan_bytes).hexdigest()},
+        "exclusion_table": {"file": files["exclusions"].name,
+                            "sha256": hashlib.sha256(excl_bytes).hexdigest()},
+        "cautions": list(cautions_of(protocol)),
+    })
+    record = ledger.append_record(log_path, "plan", body)
+    head, n = ledger.head_and_count(log_path)
+    return PlanOutcome(result=result, seed=int(seed), seed_drawn=seed_drawn, record=record,
+                       log_path=log_path, files=files, head=head, count=n)
+
+
+# ----------------------------------------------------------------- replay
+@dataclass(frozen=True)
+class ReplayOutcome:
+    """Whether re-running a recorded planning step gave the same plan."""
+
+    index: int
+    identical: bool
+    differences: tuple[str, ...]
+    recorded_sha256: str
+    replayed_sha256: str
+
+    def to_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
+def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
+    """Re-run the planning step of record ``index`` from its recorded inputs.
+
+    The inputs are the copies the plan kept under ``inputs/``; their hashes
+    must match the record. The step runs with the recorded seed, warm start,
+    batch size and pool size, and the regenerated plan table is compared
+    byte for byte (by SHA-256) with the recorded one.
+
+    Raises
+    ------
+    VerificationError
+        The log fails verification, the record is not a plan, or an input
+        copy is missing or altered.
+    """
+    log_path = Path(log_path)
+    ledger.verify_or_raise(log_path)
+    records = ledger.read_records(log_path)
+    if not 0 <= index < len(records):
+        raise VerificationError(f"{log_path.name}: there is no record {index} (the log has {len(records)})")
+    rec = records[index]
+    if rec["kind"] != "plan":
+        raise VerificationError(f"{log_path.name}: record {index} is a {rec['kind']!r} record, not a plan")
+    body = rec["body"]
+    base = log_path.parent
+    copies = {}
+    for key in ("protocol_file", "runs_file"):
+        path = base / body[key]["copy"]
+        try:
+            data = path.read_bytes()
+        except OSError:
+            raise VerificationError(f"record {index}: the input copy {body[key]['copy']} is missing") from None
+        if hashlib.sha256(data).hexdigest() != body[key]["sha256"]:
+            raise VerificationError(f"record {index}: the input copy {body[key]['copy']} was altered (hash differs)")
+        copies[key] = path
+    protocol = load_protocol(copies["protocol_file"])
+    runs: RunsTable = read_runs(copies["runs_file"], protocol)
+    differences = []
+    if protocol.fingerprint != body["protocol_fingerprint"]:
+        differences.append("the protocol fingerprint differs")
+    if body.get("tool_version") != __version__:
+        differences.append(f"recorded with tool version {body.get('tool_version')}, replayed with {__version__}")
+    result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
+                       warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
+    plan_bytes, excl_bytes, _ = _render(result, body.get("count_requested"))
+    replayed = hashlib.sha256(plan_bytes).hexdigest()
+    recorded = body["plan_table"]["sha256"]
+    if replayed != recorded:
+        differences.append("the regenerated plan table differs from the recorded one")
+    if hashlib.sha256(excl_bytes).hexdigest() != body["exclusion_table"]["sha256"]:
+        differences.append("the regenerated exclusion table differs from the recorded one")
+    return ReplayOutcome(index=index, identical=not differences, differences=tuple(differences),
+                         recorded_sha256=recorded, replayed_sha256=replayed)

@@ -26,6 +26,7 @@ from __future__ import annotations
 import itertools
 import math
 import types
+import warnings
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any, Mapping
@@ -213,7 +214,9 @@ def _inscribed_ellipsoid(G: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.n
     prob = cp.Problem(cp.Maximize(cp.log_det(B)),
                       [cp.norm(G @ B, 2, axis=1) + G @ c <= h])
     try:
-        prob.solve(solver="CLARABEL")
+        with warnings.catch_warnings():  # an inaccurate ellipsoid is still usable: checked below
+            warnings.simplefilter("ignore", UserWarning)
+            prob.solve(solver="CLARABEL")
     except cp.error.SolverError:
         return None
     if prob.status not in _FEASIBLE or B.value is None:
@@ -232,7 +235,8 @@ class _SliceFamily:
     """
 
     def __init__(self, space: "DesignSpace", fixed: np.ndarray, lo: np.ndarray,
-                 width: np.ndarray, blo: np.ndarray, bhi: np.ndarray):
+                 width: np.ndarray, blo: np.ndarray, bhi: np.ndarray,
+                 eq_rows: np.ndarray | None = None, ub_rows: np.ndarray | None = None):
         self.space = space
         self.fixed = fixed
         self.free = np.flatnonzero(~fixed)
@@ -240,7 +244,10 @@ class _SliceFamily:
         self.lo = lo[F]
         self.width = width[F]
         f = F.size
-        A_eq, A_ub = space.A_eq, space.A_ub
+        # Rows taken into account (default all); the others are checked elsewhere.
+        self.eq_rows = np.ones(space.A_eq.shape[0], bool) if eq_rows is None else eq_rows
+        self.ub_rows = np.ones(space.A_ub.shape[0], bool) if ub_rows is None else ub_rows
+        A_eq, A_ub = space.A_eq[self.eq_rows], space.A_ub[self.ub_rows]
         # Unit-scaled coordinates z: x[F] = lo + width * z.
         self.E = A_eq[:, F] * self.width
         self.C = np.vstack([A_ub[:, F] * self.width, np.eye(f), -np.eye(f)])
@@ -263,8 +270,10 @@ class _SliceFamily:
         """Right-hand sides (e, d) of E z = e and C z <= d for fixed values ``v``."""
         s = self.space
         F, nf = self.free, self.fixed
-        e = s.b_eq - s.A_eq[:, F] @ self.lo - s.A_eq[:, nf] @ v[nf]
-        d_ub = s.b_ub - s.A_ub[:, F] @ self.lo - s.A_ub[:, nf] @ v[nf]
+        A_eq, b_eq = s.A_eq[self.eq_rows], s.b_eq[self.eq_rows]
+        A_ub, b_ub = s.A_ub[self.ub_rows], s.b_ub[self.ub_rows]
+        e = b_eq - A_eq[:, F] @ self.lo - A_eq[:, nf] @ v[nf]
+        d_ub = b_ub - A_ub[:, F] @ self.lo - A_ub[:, nf] @ v[nf]
         return e, np.concatenate([d_ub, self._d_box])
 
     def _chebyshev(self, G, gnorm, h, t_mid, *, cached: bool) -> tuple[np.ndarray, float]:
@@ -759,9 +768,9 @@ class DesignSpace:
                  f"{sl.dim} free directions, Chebyshev radius {sl.radius:.3g} "
                  "(unit-scaled)"]
         if self.levels:
-            n_all = math.prod(int(lv.size) for lv in self.levels.values())
+            n_all = self._n_combinations
             if n_all <= MAX_ENUMERATED_COMBINATIONS:
-                n_ok = len(self._enumerated[1])
+                n_ok = self._enumerated.shape[0]
                 if n_ok == 0:
                     return empty([f"levels of {self.names[j]}" for j in self.levels],
                                  "no combination of the discrete levels is feasible; none "
@@ -844,17 +853,27 @@ class DesignSpace:
         return np.where(free, r[:, 0] + U * (r[:, 1] - r[:, 0]), r.mean(axis=1))
 
     # ---------------------------------------------------- discrete combinations
+    # Discrete factors. Rows of A_eq / A_ub split into "mixed" rows, which touch
+    # a free continuous factor and so shape the continuous slice, and the rest,
+    # which a level combination meets or not on its own (checked exactly, in
+    # bulk). Combinations that shift the mixed rows by the same amounts share
+    # one slice: its LP is solved once and cached under that shift.
     @cached_property
-    def _discrete_family(self) -> _SliceFamily:
+    def _discrete_setup(self):
         r = self._geometry[0]
         width = r[:, 1] - r[:, 0]
         fixed = width < FIXED_RANGE_TOL
         fixed[self._discrete] = True
-        return _SliceFamily(self, fixed, r[:, 0], np.where(fixed, 1.0, width),
-                            self.lower, self.upper)
+        free = ~fixed
+        mixed_eq = np.any(self.A_eq[:, free] != 0, axis=1)
+        mixed_ub = np.any(self.A_ub[:, free] != 0, axis=1)
+        family = _SliceFamily(self, fixed, r[:, 0], np.where(fixed, 1.0, width),
+                              self.lower, self.upper, mixed_eq, mixed_ub)
+        return family, fixed, mixed_eq, mixed_ub
 
-    def _candidate_levels(self, ranges: np.ndarray) -> list[np.ndarray]:
+    def _candidate_levels(self) -> list[np.ndarray]:
         """Levels of each discrete factor that fall inside its real range."""
+        ranges = self._geometry[0]
         out = []
         for j in self._discrete:
             lv = self.levels[j]
@@ -862,80 +881,108 @@ class DesignSpace:
             out.append(lv[(lv >= ranges[j, 0] - tol) & (lv <= ranges[j, 1] + tol)])
         return out
 
-    def _prefilter(self, V: np.ndarray, ranges: np.ndarray) -> np.ndarray:
-        """Cheap necessary test of combinations V (n, n_discrete) row by row."""
+    def _combination_points(self, V: np.ndarray) -> np.ndarray:
+        """Relaxed centre with the discrete columns set to each combination, (n, n_factors)."""
+        X = np.repeat(self._geometry[1].base[None, :], V.shape[0], axis=0)
+        X[:, self._discrete] = V
+        return X
+
+    def _shift_key(self, V: np.ndarray) -> np.ndarray:
+        """How each combination (n, n_discrete) shifts the mixed rows, (n, n_mixed)."""
+        _, _, mixed_eq, mixed_ub = self._discrete_setup
         D = self._discrete
-        cont = np.setdiff1d(np.arange(self.n_factors), D)
-        lo, hi = ranges[cont, 0], ranges[cont, 1]
+        return np.hstack([V @ self.A_eq[mixed_eq][:, D].T, V @ self.A_ub[mixed_ub][:, D].T])
+
+    def _feasible_combinations(self, V: np.ndarray) -> np.ndarray:
+        """Which combinations (rows of V, shape (n, n_discrete)) admit a point."""
+        family, fixed, mixed_eq, mixed_ub = self._discrete_setup
+        X = self._combination_points(V)
         ok = np.ones(V.shape[0], dtype=bool)
-        for A, b, is_eq in ((self.A_ub, self.b_ub, False), (self.A_eq, self.b_eq, True)):
-            if not A.shape[0]:
+        scale = FEASIBILITY_TOL * self._tol_scale
+        n_b, n_l = self.n_factors, len(self.levels)
+        eq_scale = scale[n_b + n_l: n_b + n_l + self.A_eq.shape[0]]
+        ub_scale = scale[n_b + n_l + self.A_eq.shape[0]:]
+        # Rows that only involve discrete and fixed factors: exact test.
+        if (~mixed_eq).any():
+            r = np.abs(X @ self.A_eq[~mixed_eq].T - self.b_eq[~mixed_eq])
+            ok &= np.all(r <= eq_scale[~mixed_eq], axis=1)
+        if (~mixed_ub).any():
+            r = X @ self.A_ub[~mixed_ub].T - self.b_ub[~mixed_ub]
+            ok &= np.all(r <= ub_scale[~mixed_ub], axis=1)
+        # Mixed rows: a necessary test over the continuous ranges, then the LP.
+        ranges = self._geometry[0]
+        cont = ~fixed
+        lo, hi = ranges[cont, 0], ranges[cont, 1]
+        for A, b, rows, tol, is_eq in ((self.A_ub, self.b_ub, mixed_ub, ub_scale, False),
+                                       (self.A_eq, self.b_eq, mixed_eq, eq_scale, True)):
+            if not rows.any():
                 continue
-            Ac = A[:, cont]
+            Ac = A[rows][:, cont]
+            rest = X @ A[rows].T - X[:, cont] @ Ac.T  # fixed and discrete part
             smin = np.minimum(Ac * lo, Ac * hi).sum(axis=1)
             smax = np.maximum(Ac * lo, Ac * hi).sum(axis=1)
-            tol = FEASIBILITY_TOL * np.maximum(1.0, np.abs(b)) + 1e-12
-            fixed_part = V @ A[:, D].T
-            ok &= np.all(fixed_part + smin <= b + tol, axis=1)
+            ok &= np.all(rest + smin <= b[rows] + tol[rows], axis=1)
             if is_eq:
-                ok &= np.all(fixed_part + smax >= b - tol, axis=1)
+                ok &= np.all(rest + smax >= b[rows] - tol[rows], axis=1)
+        idx = np.flatnonzero(ok)
+        if idx.size:
+            keys = np.round(self._shift_key(V[idx]), 12)
+            _, first, inverse = np.unique(keys, axis=0, return_index=True, return_inverse=True)
+            has_slice = np.array([self._slice_for(V[idx[i]]) is not None for i in first])
+            ok[idx] = has_slice[inverse.reshape(-1)]
         return ok
 
-    def _slice_for(self, combo: tuple[float, ...]) -> _Slice | None:
-        """Slice of the continuous factors with discrete factors at ``combo`` (cached)."""
+    def _slice_for(self, combo: np.ndarray) -> _Slice | None:
+        """Slice of the continuous factors for a combination (cached by its row shift)."""
+        key = tuple(np.round(self._shift_key(combo[None, :])[0], 12))
         cache = self._slice_cache
-        if combo not in cache:
-            v = self._geometry[1].base.copy()
-            v[self._discrete] = combo
-            sl = self._discrete_family.build(v)
+        if key not in cache:
+            family = self._discrete_setup[0]
+            v = self._combination_points(combo[None, :])[0]
+            sl = family.build(v)
             if sl is not None and not self.contains(sl.base)[0]:
                 sl = None
-            cache[combo] = sl
-        return cache[combo]
+            cache[key] = sl
+        return cache[key]
 
     @cached_property
-    def _enumerated(self) -> tuple[np.ndarray, list[_Slice]]:
-        """All feasible level combinations (rows) and their slices."""
-        ranges = self._geometry[0]
-        cand = self._candidate_levels(ranges)
-        if any(c.size == 0 for c in cand):
-            return np.zeros((0, self._discrete.size)), []
-        V = np.array(list(itertools.product(*cand)), dtype=float)
-        V = V[self._prefilter(V, ranges)]
-        combos, slices = [], []
-        for row in V:
-            sl = self._slice_for(tuple(row))
-            if sl is not None:
-                combos.append(row)
-                slices.append(sl)
-        return np.array(combos).reshape(-1, self._discrete.size), slices
+    def _n_combinations(self) -> int:
+        return math.prod(int(lv.size) for lv in self.levels.values())
 
-    def _draw_combinations(self, n: int, rng: np.random.Generator):
-        """Feasible combinations (rows) and slices, and a row index for each of n samples."""
-        n_all = math.prod(int(lv.size) for lv in self.levels.values())
-        if n_all <= MAX_ENUMERATED_COMBINATIONS:
-            combos, slices = self._enumerated
-        else:
-            ranges = self._geometry[0]
-            cand = self._candidate_levels(ranges)
-            V = np.column_stack([c[rng.integers(c.size, size=N_SAMPLED_COMBINATIONS)]
-                                 for c in cand])
-            V = np.unique(V, axis=0)
-            V = V[self._prefilter(V, ranges)]
-            combos, slices = [], []
-            for row in V:
-                sl = self._slice_for(tuple(row))
-                if sl is not None:
-                    combos.append(row)
-                    slices.append(sl)
-            combos = np.array(combos).reshape(-1, self._discrete.size)
-        if not slices:
+    @cached_property
+    def _enumerated(self) -> np.ndarray:
+        """All feasible level combinations, shape (n_feasible, n_discrete)."""
+        cand = self._candidate_levels()
+        if any(c.size == 0 for c in cand):
+            return np.zeros((0, self._discrete.size))
+        V = np.array(list(itertools.product(*cand)), dtype=float)
+        return _frozen(V[self._feasible_combinations(V)])
+
+    def _draw_combinations(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """A feasible combination for each of n samples, uniform over the feasible ones."""
+        D = self._discrete
+        if self._n_combinations <= MAX_ENUMERATED_COMBINATIONS:
+            combos = self._enumerated
+            if combos.shape[0] == 0:
+                raise ProtocolError(self.check().message)
+            return combos[rng.integers(combos.shape[0], size=n)]
+        # Too many to enumerate: draw uniformly and keep the feasible ones.
+        cand = self._candidate_levels()
+        out, have, drawn = np.empty((n, D.size)), 0, 0
+        while have < n and drawn < 50 * max(n, N_SAMPLED_COMBINATIONS):
+            m = max(2 * (n - have), 64)
+            V = np.column_stack([c[rng.integers(c.size, size=m)] for c in cand])
+            V = V[self._feasible_combinations(V)][: n - have]
+            out[have: have + V.shape[0]] = V
+            have += V.shape[0]
+            drawn += m
+        if have < n:
             raise ProtocolError(
-                "no feasible combination of discrete levels was found "
-                f"({', '.join(self.names[j] for j in self._discrete)}); "
-                "widen the levels or relax the constraints that involve them"
+                f"only {have} of {drawn} random combinations of the levels of "
+                f"{', '.join(self.names[j] for j in D)} were feasible; the feasible ones "
+                "are too rare to sample; narrow the levels to those that can occur"
             )
-        return combos, slices, rng.integers(len(slices), size=n)
+        return out
 
     # --------------------------------------------------------------- sampling
     def sample(self, n: int, *, rng, method: str = "hit-and-run",
@@ -990,25 +1037,29 @@ class DesignSpace:
         if not self.levels:
             X[:] = self._walk(self._geometry[1], n, rng, burn_in, thin, n_chains)
             return X
-        combos, slices, which = self._draw_combinations(n, rng)
-        for i in np.unique(which):
-            rows = np.flatnonzero(which == i)
-            X[rows] = self._walk(slices[i], rows.size, rng, burn_in, thin, n_chains)
-            X[np.ix_(rows, self._discrete)] = combos[i]
+        V = self._draw_combinations(n, rng)
+        # Samples whose combinations shift the mixed rows alike share a slice.
+        _, group = np.unique(np.round(self._shift_key(V), 12), axis=0, return_inverse=True)
+        group = group.reshape(-1)
+        for g in range(int(group.max()) + 1):
+            rows = np.flatnonzero(group == g)
+            sl = self._slice_for(V[rows[0]])
+            X[rows] = self._walk(sl, rows.size, rng, burn_in, thin, n_chains, V[rows])
         return X
 
     def _walk(self, sl: _Slice, n: int, rng, burn_in: int, thin: int,
-              n_chains: int | None) -> np.ndarray:
-        """n points of one slice, each checked with :meth:`contains`."""
+              n_chains: int | None, discrete: np.ndarray | None = None) -> np.ndarray:
+        """n points of one slice (discrete columns from ``discrete``), each checked."""
         if sl.dim == 0:
-            return np.repeat(sl.base[None, :], n, axis=0)
-        chains = min(n, DEFAULT_N_CHAINS) if n_chains is None else max(1, min(int(n_chains), n))
-        T = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
-        X = sl.to_x(T)
-        X = self._tidy(sl, X)
+            S = np.zeros((n, 0))
+        else:
+            chains = min(n, DEFAULT_N_CHAINS) if n_chains is None else max(1, min(int(n_chains), n))
+            S = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
+        X = self._finish(sl, sl.to_x(S), discrete)
         ok = self.contains(X)
         if not ok.all():
-            X[~ok] = self._tidy(sl, sl.to_x(sl.pull_in(sl.to_s(X[~ok]))))
+            X[~ok] = self._finish(sl, sl.to_x(sl.pull_in(sl.to_s(X[~ok]))),
+                                  None if discrete is None else discrete[~ok])
             ok = self.contains(X)
         if not ok.all():
             good = np.flatnonzero(ok)
@@ -1020,10 +1071,12 @@ class DesignSpace:
             X[~ok] = X[rng.choice(good, size=int((~ok).sum()))]
         return X
 
-    def _tidy(self, sl: _Slice, X: np.ndarray) -> np.ndarray:
-        """Exact values on fixed columns and box clipping of rounding-level excursions."""
+    def _finish(self, sl: _Slice, X: np.ndarray, discrete: np.ndarray | None) -> np.ndarray:
+        """Exact values on fixed and discrete columns; clip rounding-level box excursions."""
         fixed = np.setdiff1d(np.arange(self.n_factors), sl.free)
         X[:, fixed] = sl.base[fixed]
+        if discrete is not None:
+            X[:, self._discrete] = discrete
         lo, hi = self._relaxed_bounds
         F = sl.free
         X[:, F] = np.clip(X[:, F], lo[F], hi[F])
@@ -1061,6 +1114,7 @@ class DesignSpace:
         w = np.where(self.free, r[:, 1] - r[:, 0], 1.0)
         lo, hi = self._relaxed_bounds
         y = self._qp(x, w, lo, hi)
+        combo = None
         if not self.levels:
             sl = self._geometry[1]
         else:
@@ -1069,9 +1123,10 @@ class DesignSpace:
             lo2[self._discrete] = combo
             hi2[self._discrete] = combo
             y = self._qp(x, w, lo2, hi2)
-        y = self._tidy(sl, sl.to_x(sl.pull_in(sl.to_s(y[None, :]))))[0]
+            combo = combo[None, :]
+        y = self._finish(sl, sl.to_x(sl.pull_in(sl.to_s(y[None, :]))), combo)[0]
         if not self.contains(y)[0]:
-            y = sl.base.copy()
+            y = self._finish(sl, sl.base[None, :].copy(), combo)[0]
         return y
 
     def _qp(self, x, w, lo, hi) -> np.ndarray:
@@ -1092,15 +1147,17 @@ class DesignSpace:
     def _nearest_combination(self, y, w) -> tuple[np.ndarray, _Slice]:
         """Feasible level combination nearest (unit-scaled) to y's discrete part."""
         D = self._discrete
-        snapped = tuple(float(self.levels[j][np.argmin(np.abs(self.levels[j] - y[j]))])
-                        for j in D)
-        sl = self._slice_for(snapped)
-        if sl is not None:
-            return np.array(snapped), sl
-        combos, slices, _ = self._draw_combinations(0, np.random.default_rng(0))
+        snapped = np.array([self.levels[j][np.argmin(np.abs(self.levels[j] - y[j]))]
+                            for j in D])
+        if self._feasible_combinations(snapped[None, :])[0]:
+            return snapped, self._slice_for(snapped)
+        if self._n_combinations <= MAX_ENUMERATED_COMBINATIONS:
+            combos = self._enumerated
+        else:
+            combos = self._draw_combinations(N_SAMPLED_COMBINATIONS, np.random.default_rng(0))
         dist = np.sum(((combos - y[D]) / w[D]) ** 2, axis=1)
-        i = int(np.argmin(dist))
-        return combos[i], slices[i]
+        best = combos[int(np.argmin(dist))]
+        return best, self._slice_for(best)
 
 
 def _hit_and_run(G: np.ndarray, h: np.ndarray, n: int, n_chains: int, burn_in: int,

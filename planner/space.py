@@ -27,6 +27,7 @@ import itertools
 import math
 import types
 import warnings
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any, Mapping
@@ -34,6 +35,11 @@ from typing import Any, Mapping
 import cvxpy as cp
 import numpy as np
 from scipy.linalg import null_space
+
+try:  # installed with scikit-learn; small matrix products are faster on one thread
+    from threadpoolctl import threadpool_limits
+except ImportError:  # pragma: no cover
+    threadpool_limits = None
 
 from planner.errors import ProtocolError
 from planner.settings import (
@@ -180,7 +186,8 @@ class _Slice:
             return np.repeat(self.base[None, :], S.shape[0], axis=0)
         Z = S @ (self.M.T * self.width)
         if self.free.size == self.base.size:
-            return Z + self.base
+            Z += self.base
+            return Z
         X = np.repeat(self.base[None, :], S.shape[0], axis=0)
         X[:, self.free] += Z
         return X
@@ -621,7 +628,18 @@ class DesignSpace:
         -------
         ndarray of bool, shape (n,)
         """
-        return np.all(self.violations(X) <= tol * self._tol_scale, axis=1)
+        X = self._as_points(X)
+        s = tol * self._tol_scale
+        d, n_l, m_eq = self.n_factors, len(self.levels), self.A_eq.shape[0]
+        ok = np.all(X >= self.lower - s[:d], axis=1)
+        ok &= np.all(X <= self.upper + s[:d], axis=1)
+        for k, (j, lv) in enumerate(self.levels.items()):
+            ok &= np.min(np.abs(X[:, j, None] - lv[None, :]), axis=1) <= s[d + k]
+        if m_eq:
+            ok &= np.all(np.abs(X @ self.A_eq.T - self.b_eq) <= s[d + n_l: d + n_l + m_eq], axis=1)
+        if self.A_ub.shape[0]:
+            ok &= np.all(X @ self.A_ub.T - self.b_ub <= s[d + n_l + m_eq:], axis=1)
+        return ok
 
     def describe_violation(self, x, *, tol: float = FEASIBILITY_TOL) -> str:
         """Name the first constraint a point breaks, or return "" if it breaks none.
@@ -1054,7 +1072,9 @@ class DesignSpace:
             S = np.zeros((n, 0))
         else:
             chains = min(n, DEFAULT_N_CHAINS) if n_chains is None else max(1, min(int(n_chains), n))
-            S = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
+            limit = threadpool_limits(1, user_api="blas") if threadpool_limits else nullcontext()
+            with limit:
+                S = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
         X = self._finish(sl, sl.to_x(S), discrete)
         ok = self.contains(X)
         if not ok.all():
@@ -1073,13 +1093,16 @@ class DesignSpace:
 
     def _finish(self, sl: _Slice, X: np.ndarray, discrete: np.ndarray | None) -> np.ndarray:
         """Exact values on fixed and discrete columns; clip rounding-level box excursions."""
-        fixed = np.setdiff1d(np.arange(self.n_factors), sl.free)
-        X[:, fixed] = sl.base[fixed]
-        if discrete is not None:
-            X[:, self._discrete] = discrete
         lo, hi = self._relaxed_bounds
         F = sl.free
-        X[:, F] = np.clip(X[:, F], lo[F], hi[F])
+        if F.size == self.n_factors:
+            np.clip(X, lo, hi, out=X)
+        else:
+            fixed = np.setdiff1d(np.arange(self.n_factors), F)
+            X[:, fixed] = sl.base[fixed]
+            X[:, F] = np.clip(X[:, F], lo[F], hi[F])
+        if discrete is not None:
+            X[:, self._discrete] = discrete
         return X
 
     # ------------------------------------------------------------- projection

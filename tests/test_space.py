@@ -456,3 +456,15 @@ def test_project_snaps_discrete_factors_to_a_feasible_level():
 def test_check_to_dict_is_json():
     out = json.loads(json.dumps(thin_mixture().check().to_dict(), allow_nan=False))
     assert out["empty"] is False and len(out["ranges"]) == 10 and out["dimension"] == 9
+
+
+@pytest.mark.parametrize("make", list(SPACES.values()), ids=list(SPACES))
+def test_contains_agrees_with_violations(make):
+    # Two paths: the direct membership test and the per-group violation table.
+    space = make()
+    rng = np.random.default_rng(12)
+    X = space.sample(200, rng=13)
+    X = np.vstack([X, X + rng.normal(scale=1e-3, size=X.shape),
+                   X + rng.normal(scale=1e-9, size=X.shape)])
+    via_table = np.array([space.describe_violation(x) == "" for x in X])
+    np.testing.assert_array_equal(space.contains(X), via_table)

@@ -118,7 +118,8 @@ class SpaceCheck:
         Real minimum and maximum of each factor over the space (discrete
         factors relaxed to their level range); NaN when empty.
     centre : ndarray of shape (n_factors,)
-        Chebyshev centre in the affine hull of the equalities; NaN when empty.
+        Chebyshev centre in the affine hull of the equalities (discrete
+        factors relaxed, so they may sit between levels); NaN when empty.
     radius : float
         Chebyshev radius in unit-scaled coordinates; NaN when empty.
     message : str
@@ -782,9 +783,9 @@ class DesignSpace:
             return empty(self.group_labels, "the design space is too thin to hold a point "
                          f"within the tolerance {FEASIBILITY_TOL:g}")
         n_fixed = int(np.sum(ranges[:, 1] - ranges[:, 0] < FIXED_RANGE_TOL))
-        parts = [f"the design space is not empty: {d} factors, {n_fixed} fixed, "
-                 f"{sl.dim} free directions, Chebyshev radius {sl.radius:.3g} "
-                 "(unit-scaled)"]
+        parts = [f"the design space is not empty: {d} factor{'s' * (d != 1)}, {n_fixed} "
+                 f"fixed, {sl.dim} free direction{'s' * (sl.dim != 1)}, Chebyshev radius "
+                 f"{sl.radius:.3g} (unit-scaled)"]
         if self.levels:
             n_all = self._n_combinations
             if n_all <= MAX_ENUMERATED_COMBINATIONS:

@@ -46,6 +46,7 @@ __all__ = [
 ]
 
 RANKING_RULES = ("ei", "pi", "bound", "mean")
+_SPACES: dict = {}  # fingerprint -> DesignSpace (see Protocol.design_space)
 
 
 class _Strict(BaseModel):
@@ -375,7 +376,21 @@ class Protocol(_Strict):
         )
 
     def design_space(self):
-        """Build the :class:`planner.space.DesignSpace` this protocol describes."""
+        """The :class:`planner.space.DesignSpace` this protocol describes.
+
+        Built once per protocol content (keyed by fingerprint) and shared:
+        a DesignSpace is immutable and caches its LP results.
+        """
+        key = self.fingerprint
+        space = _SPACES.get(key)
+        if space is None:
+            space = self._build_design_space()
+            if len(_SPACES) >= 64:
+                _SPACES.pop(next(iter(_SPACES)))
+            _SPACES[key] = space
+        return space
+
+    def _build_design_space(self):
         from .space import DesignSpace
 
         names = self.factor_names

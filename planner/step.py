@@ -19,7 +19,8 @@ The flow (see DESIGN.md):
    and says so;
 6. the batch is chosen greedily: take the best survivor, condition every
    model on its fantasised results (the posterior mean, "kriging
-   believer"), re-screen and re-rank, repeat. A candidate must pass the
+   believer", which also updates the incumbent), re-screen and re-rank,
+   repeat; two runs of one batch are never closer than MIN_SEPARATION. A candidate must pass the
    screen under the models fitted to real data *and* under the models with
    the fantasies, so fantasised data can never admit a candidate that the
    real data would exclude. Every value shown for a proposal comes from
@@ -52,6 +53,10 @@ MIN_OBJECTIVE_RUNS = 3
 Z95 = 1.959963984540054
 #: Share of the pool drawn between safe runs and pool points (local candidates).
 LOCAL_SHARE = 0.25
+#: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
+MIN_SEPARATION = 0.01
+#: Local refinement aims this far inside each probability requirement.
+REFINE_MARGIN = 1e-3
 
 
 @dataclass(frozen=True)
@@ -112,6 +117,14 @@ class PlanResult:
     n_pending: int
     flags: tuple[str, ...] = field(default=())
     version: str = __version__
+    #: Fitted models by response name (None where a limit could not vouch), and
+    #: the design space; for reports and diagnostics, not part of the record.
+    fitted: dict = field(default_factory=dict, repr=False, compare=False)
+    space: object = field(default=None, repr=False, compare=False)
+
+    def unit(self, X) -> np.ndarray:
+        """Protocol units -> the unit-cube coordinates the models take."""
+        return _Scaler(self.space).unit(X)
 
     # ------------------------------------------------------------ summaries
     def counts(self) -> dict[str, int]:
@@ -327,7 +340,6 @@ def plan_step(
     warm_start = dict(warm_start or {})
     children = np.random.SeedSequence(seed).spawn(2 + len(protocol.response_names))
     rng_pool = np.random.default_rng(children[0])
-    rng_refine = np.random.default_rng(children[1])
     scaler = _Scaler(space)
     messages: list[str] = []
 
@@ -460,7 +472,7 @@ def plan_step(
     if protocol.batch.refine > 0 and np.any(result.survives):
         refined = _refine(
             protocol, space, scaler, X_pool, scores, result, obj_model, limit_models,
-            inc_value, mode, rank_kw, rng_refine,
+            inc_value, mode, rank_kw,
         )
         if refined.shape[0]:
             Ur, mur, sdr, limsr = predict_all(refined, obj_model, limit_models)
@@ -476,9 +488,10 @@ def plan_step(
     chosen: list[int] = []
     obj_f, lim_f = obj_model, list(limit_models)
     cur_result, cur_scores = result, scores
+    fantasy_inc = inc_value
+    too_close = np.zeros(X_pool.shape[0], dtype=bool)
     for k in range(count):
-        ok = base_result.survives & cur_result.survives
-        ok[chosen] = False
+        ok = base_result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
             if k == 0:
                 messages.append("no candidate passed the safety screen; nothing is proposed")
@@ -494,10 +507,17 @@ def plan_step(
         if k + 1 == count:
             break
         u_new = U_pool[best : best + 1]
+        # a batch never holds two runs closer than MIN_SEPARATION
+        too_close |= step_distance(U_pool, u_new) < MIN_SEPARATION
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             f_mu, _ = obj_f.predict(u_new)
             obj_f = obj_f.condition(u_new, f_mu)
+            # kriging believer: the fantasised result also counts for the
+            # incumbent, so the next pick must improve on it
+            if fantasy_inc is not None:
+                v = float(f_mu[0])
+                fantasy_inc = max(fantasy_inc, v) if maximize else min(fantasy_inc, v)
             new_lims = []
             for lm in lim_f:
                 if lm is None:
@@ -508,7 +528,7 @@ def plan_step(
             lim_f = new_lims
             _, mu_f, sd_f, lims_f = predict_all(X_pool, obj_f, lim_f)
         cur_result = screen_of(X_pool, U_pool, lims_f)
-        cur_scores = scores_of(mu_f, sd_f, cur_result, inc_value)
+        cur_scores = scores_of(mu_f, sd_f, cur_result, fantasy_inc)
 
     proposals = []
     for r, i in enumerate(chosen, start=1):
@@ -551,6 +571,8 @@ def plan_step(
         n_runs_used=int(used.sum()),
         n_pending=int(runs.pending.sum()),
         flags=runs.flags,
+        fitted={obj.name: obj_model, **{lim.name: lm for lim, lm in zip(protocol.limits, limit_models)}},
+        space=space,
     )
 
 
@@ -592,7 +614,7 @@ def _local_candidates(space, X_safe, X_pool, n, rng) -> np.ndarray:
 
 
 def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_models,
-            inc_value, mode, rank_kw, rng) -> np.ndarray:
+            inc_value, mode, rank_kw) -> np.ndarray:
     """Refine the best survivors locally with SLSQP.
 
     Variables are the free continuous factors (discrete levels are kept),
@@ -641,9 +663,11 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
     def screen_cons(u, x0):
         U = scaler.unit(full(x0, u)[None, :])
         P = _probs(U)
-        req = np.array([lim.probability for lim in limits])
+        # aim a little inside the screen so that the refined point still
+        # passes it after rounding (REFINE_MARGIN)
+        req = np.array([lim.probability for lim in limits]) + REFINE_MARGIN
         J = joint_figure(P, method=protocol.screen.joint)
-        return np.concatenate([P[0] - req, J - protocol.screen.threshold])
+        return np.concatenate([P[0] - req, J - (protocol.screen.threshold + REFINE_MARGIN)])
 
     if any(lm is None for lm in limit_models):
         return np.zeros((0, X_pool.shape[1]))
@@ -675,6 +699,8 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
                 )
         except (ValueError, np.linalg.LinAlgError, ModelError):
             continue
+        if not res.success or -res.fun <= -objective(u0, x0):
+            continue  # keep only refinements that converged and improved the score
         x = full(x0, np.clip(res.x, 0.0, 1.0))
         if np.all(np.isfinite(x)) and bool(np.asarray(space.contains(x[None, :]))[0]):
             out.append(x)

@@ -46,6 +46,7 @@ __all__ = [
     "plan_table",
     "exclusion_table",
     "ReplayOutcome",
+    "rerun_record",
     "replay_record",
     "cautions_of",
 ]
@@ -364,13 +365,16 @@ class ReplayOutcome:
         return dict(self.__dict__)
 
 
-def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
-    """Re-run the planning step of record ``index`` from its recorded inputs.
+def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
+    """Re-run the planning step of plan record ``index`` from its recorded inputs.
 
     The inputs are the copies the plan kept under ``inputs/``; their hashes
     must match the record. The step runs with the recorded seed, warm start,
-    batch size and pool size, and the regenerated plan table is compared
-    byte for byte (by SHA-256) with the recorded one.
+    batch size and pool size.
+
+    Returns
+    -------
+    (PlanResult, record)
 
     Raises
     ------
@@ -400,13 +404,26 @@ def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
         copies[key] = path
     protocol = load_protocol(copies["protocol_file"])
     runs: RunsTable = read_runs(copies["runs_file"], protocol)
+    result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
+                       warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
+    return result, rec
+
+
+def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
+    """Re-run a recorded planning step and compare its tables byte for byte.
+
+    Raises
+    ------
+    VerificationError
+        As :func:`rerun_record`.
+    """
+    result, rec = rerun_record(log_path, index)
+    body = rec["body"]
     differences = []
-    if protocol.fingerprint != body["protocol_fingerprint"]:
+    if result.protocol.fingerprint != body["protocol_fingerprint"]:
         differences.append("the protocol fingerprint differs")
     if body.get("tool_version") != __version__:
         differences.append(f"recorded with tool version {body.get('tool_version')}, replayed with {__version__}")
-    result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
-                       warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
     plan_bytes, excl_bytes, _ = _render(result, body.get("count_requested"))
     replayed = hashlib.sha256(plan_bytes).hexdigest()
     recorded = body["plan_table"]["sha256"]

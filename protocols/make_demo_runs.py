@@ -25,8 +25,8 @@ def tablet_truth(x: dict) -> dict:
     dis = (58 + 520 * x["croscarmellose"] - 230 * x["povidone"] - 1300 * x["mg_stearate"]
            + 18 * x["lactose"] - 1.1 * (x["force"] - 6) - 0.04 * (x["force"] - 12) ** 2)
     deg = 0.035 + 1.9 * x["povidone"] + 0.9 * x["croscarmellose"] + 0.003 * (x["force"] - 6)
-    fri = (1.55 - 0.075 * (x["force"] - 6) - 7.5 * x["povidone"] - 0.7 * x["mcc"]
-           + 14 * x["mg_stearate"] + 0.002 * (x["force"] - 6) ** 2)
+    fri = 0.1 + 1.6 * np.exp(-0.09 * (x["force"] - 6) - 9 * x["povidone"] - 0.6 * x["mcc"]
+                             + 10 * x["mg_stearate"])
     return {"dissolution_30min": dis, "degradant_b": deg, "friability": fri}
 
 

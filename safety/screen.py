@@ -92,6 +92,15 @@ def limit_probability(mean, sd, *, lower=None, upper=None) -> np.ndarray:
     return np.clip(p_up - p_low, 0.0, 1.0)
 
 
+def _fmt_p(p: float, required: float) -> str:
+    """Four decimals, or as many as it takes to show that p < required."""
+    for digits in (4, 6, 9):
+        text = f"{p:.{digits}f}"
+        if float(text) < required:
+            return text
+    return repr(float(p))
+
+
 def joint_figure(P, *, method: str = "bound") -> np.ndarray:
     """Joint figure from per-limit probabilities.
 
@@ -266,10 +275,10 @@ def run_screen(
         if lim.status == "ok":
             low = P[:, j] < lim.probability
             mark(low, "limit-probability",
-                 lambda i, j=j, lim=lim: (f"limit {lim.name!r}: probability {P[i, j]:.4f} is below "
-                                          f"the required {lim.probability:g}"))
+                 lambda i, j=j, lim=lim: (f"limit {lim.name!r}: probability {_fmt_p(P[i, j], lim.probability)} "
+                                          f"is below the required {lim.probability:g}"))
     mark(J < threshold, "joint-below-threshold",
-         lambda i: f"joint figure ({joint}) {J[i]:.4f} is below the threshold {threshold:g}")
+         lambda i: f"joint figure ({joint}) {_fmt_p(J[i], threshold)} is below the threshold {threshold:g}")
     survives = reason == ""
     return ScreenResult(
         survives=survives,

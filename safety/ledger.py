@@ -21,6 +21,10 @@ record onwards with every later hash recomputed: for those, compare with a
 head hash and record count kept elsewhere (every report prints them) by
 passing ``expect_head`` / ``expect_count``.
 
+Writers take a lock file (``<log>.lock``, left in place afterwards) and
+replace the whole log atomically, so readers never need the lock: they see
+the old file or the new one.
+
 Records are never changed. A mistake is put right by appending a record of
 kind ``"correction"`` whose body names the superseded record
 (``"supersedes"``) and says why (``"reason"``); see :func:`effective_records`.
@@ -54,6 +58,7 @@ import re
 from collections.abc import Mapping
 from datetime import datetime, timezone
 from decimal import Decimal
+from json.encoder import encode_basestring as _json_string  # C; keeps non-ASCII as is
 from typing import Any, Union
 
 import filelock
@@ -177,7 +182,7 @@ def to_jsonable(obj: Any, *, path: str = "$") -> Any:
     )
 
 
-def _format_number(value: float) -> str:
+def _format_number_general(value: float) -> str:
     """Write a finite double as ECMAScript's Number::toString does.
 
     ``repr`` gives the shortest digit string that reads back as the same
@@ -187,7 +192,7 @@ def _format_number(value: float) -> str:
     if value == 0.0:
         return "0"  # also -0.0
     if value < 0.0:
-        return "-" + _format_number(-value)
+        return "-" + _format_number_general(-value)
     _, digit_tuple, exponent = Decimal(repr(value)).as_tuple()
     digits = "".join(map(str, digit_tuple)).rstrip("0")
     exponent += len(digit_tuple) - len(digits)
@@ -204,42 +209,66 @@ def _format_number(value: float) -> str:
     return f"{mantissa}e{'+' if e >= 0 else '-'}{abs(e)}"
 
 
-def _utf16_key(item: tuple[str, Any]) -> bytes:
+def _format_number(value: float) -> str:
+    """ECMAScript text of a finite double, with a fast path for common values."""
+    text = repr(value)
+    if "e" not in text:
+        # repr is in fixed notation for 1e-4 <= |value| < 1e16, where
+        # ECMAScript also uses fixed notation with the same digits; it only
+        # drops the ".0" of an integral value.
+        if text.endswith(".0"):
+            text = text[:-2]
+        return "0" if text == "-0" else text
+    return _format_number_general(value)
+
+
+def _sorted_keys(obj: dict[str, Any]) -> list[str]:
+    keys = list(obj)
+    if all(key.isascii() for key in keys):
+        return sorted(keys)  # code-point order is UTF-16 order here
     # Big-endian UTF-16 bytes compare in the same order as UTF-16 code units.
-    return item[0].encode("utf-16-be", "surrogatepass")
+    return sorted(keys, key=lambda key: key.encode("utf-16-be", "surrogatepass"))
 
 
 def _write_canonical(value: Any, parts: list[str]) -> None:
-    if value is None:
+    """Append the canonical text of plain JSON data (exact types) to ``parts``."""
+    kind = type(value)
+    if kind is str:
+        # The escapes match ECMAScript's JSON.stringify for valid text:
+        # \" \\ \b \f \n \r \t, other controls as \u00xx, nothing else.
+        parts.append(_json_string(value))
+    elif kind is float:
+        parts.append(_format_number(value))
+    elif kind is int:
+        parts.append(int.__repr__(value))
+    elif kind is dict:
+        parts.append("{")
+        first = True
+        for key in _sorted_keys(value):
+            if not first:
+                parts.append(",")
+            first = False
+            parts.append(_json_string(key))
+            parts.append(":")
+            _write_canonical(value[key], parts)
+        parts.append("}")
+    elif kind is list:
+        parts.append("[")
+        first = True
+        for item in value:
+            if not first:
+                parts.append(",")
+            first = False
+            _write_canonical(item, parts)
+        parts.append("]")
+    elif value is None:
         parts.append("null")
     elif value is True:
         parts.append("true")
     elif value is False:
         parts.append("false")
-    elif isinstance(value, int):
-        parts.append(str(value))
-    elif isinstance(value, float):
-        parts.append(_format_number(value))
-    elif isinstance(value, str):
-        # Python's escapes match ECMAScript's JSON.stringify for valid text:
-        # \" \\ \b \f \n \r \t, other controls as \u00xx, nothing else.
-        parts.append(json.dumps(value, ensure_ascii=False))
-    elif isinstance(value, list):
-        parts.append("[")
-        for i, item in enumerate(value):
-            if i:
-                parts.append(",")
-            _write_canonical(item, parts)
-        parts.append("]")
-    else:  # dict: to_jsonable produced nothing else
-        parts.append("{")
-        for i, (key, item) in enumerate(sorted(value.items(), key=_utf16_key)):
-            if i:
-                parts.append(",")
-            parts.append(json.dumps(key, ensure_ascii=False))
-            parts.append(":")
-            _write_canonical(item, parts)
-        parts.append("}")
+    else:  # pragma: no cover - to_jsonable and json.loads give nothing else
+        raise TypeError(f"unexpected {kind.__name__} in canonical JSON")
 
 
 def canonical_json(obj: Any) -> bytes:
@@ -465,6 +494,25 @@ def _plural(n: int) -> str:
     return f"{n} record" if n == 1 else f"{n} records"
 
 
+def _record_texts(record: dict[str, Any]) -> tuple[bytes, bytes]:
+    """Canonical bytes of a parsed record without and with its hash.
+
+    Same result as ``canonical_json`` (keys sort as body, hash, index, kind,
+    prev, time), but the body is written once for both and the values,
+    already plain JSON, skip :func:`to_jsonable`.
+    """
+    parts = ['{"body":']
+    _write_canonical(record["body"], parts)
+    head = "".join(parts)
+    rest = (
+        f',"index":{int.__repr__(record["index"])},"kind":{_json_string(record["kind"])}'
+        f',"prev":{_json_string(record["prev"])},"time":{_json_string(record["time"])}}}'
+    )
+    unhashed = (head + rest).encode("utf-8")
+    full = (head + ',"hash":' + _json_string(record["hash"]) + rest).encode("utf-8")
+    return unhashed, full
+
+
 def _check_chain(data: bytes) -> tuple[list[dict[str, Any]], VerifyResult]:
     """Walk the records in ``data``; return the good prefix and the result."""
     lines, last_complete = _split_lines(data)
@@ -493,14 +541,18 @@ def _check_chain(data: bytes) -> tuple[list[dict[str, Any]], VerifyResult]:
         if problem:
             return good, bad(position, f"record {position} (line {number}) is malformed: {problem}")
         try:
-            recomputed = record_hash(record)
-        except ValueError as exc:  # e.g. a lone surrogate escape in a string
-            return good, bad(position, f"record {position} (line {number}) is malformed: {exc}")
-        if record["hash"] != recomputed:
+            unhashed, canonical_line = _record_texts(record)
+        except UnicodeEncodeError:  # a lone surrogate escape such as "\ud800"
+            return good, bad(
+                position,
+                f"record {position} (line {number}) is malformed: it holds text that is "
+                "not valid Unicode",
+            )
+        if record["hash"] != _sha256(unhashed):
             return good, bad(
                 position, f"record {position} was edited: its hash does not match its content"
             )
-        if raw != canonical_json(record):
+        if raw != canonical_line:
             return good, bad(
                 position,
                 f"record {position} is not stored in canonical form "

@@ -113,8 +113,16 @@ def parse_runs_text(
     if text.startswith("\ufeff"):
         text = text[1:]
     text = text.replace("\r\n", "\n").replace("\r", "\n")
-    delimiter, decimal = _sniff(text, delimiter)
-    rows = list(csv.reader(io.StringIO(text), delimiter=delimiter))
+    # leading "# ..." lines are comments (our own outputs carry their
+    # cautions and fingerprints there); they are skipped, and the row
+    # numbers below still count them, as a spreadsheet would
+    lines = text.split("\n")
+    n_comments = 0
+    while n_comments < len(lines) and lines[n_comments].lstrip().startswith("#"):
+        n_comments += 1
+    body = "\n".join(lines[n_comments:])
+    delimiter, decimal = _sniff(body, delimiter)
+    rows = list(csv.reader(io.StringIO(body), delimiter=delimiter))
     # blank trailing rows (spreadsheets leave them) are dropped
     while rows and all(not c.strip() for c in rows[-1]):
         rows.pop()
@@ -177,7 +185,7 @@ def parse_runs_text(
     flags: list[str] = []
     seen_ids: dict[str, int] = {}
     for i, row in enumerate(rows[1:]):
-        line = i + 2
+        line = i + 2 + n_comments
         if all(not c.strip() for c in row):
             problems.append(f"row {line}: the row is blank; delete it")
             continue

@@ -95,3 +95,12 @@ def test_semicolon_and_decimal_comma_with_bom_and_blank_trailing_rows():
 def test_header_whitespace_and_matching_unit_are_accepted():
     t = parse(GOOD.replace("t,y", " t [C] , y "))
     np.testing.assert_allclose(t.X[:, 2], [20, 25, 15])
+
+
+def test_leading_comment_lines_are_skipped_and_rows_still_count_them():
+    # our own starting designs begin with "# ..." lines (fingerprint, cautions)
+    text = "# Guardband starting design - a, b\n# CAUTIONS:\n" + GOOD
+    t = parse(text)
+    assert t.run_ids == ("R1", "R2", "R3")
+    with pytest.raises(RunsDataError, match=re.escape("row 5 (run R2), column a: 'abc' is not a number")):
+        parse(text.replace("R2,0.5", "R2,abc"))

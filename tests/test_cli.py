@@ -1,0 +1,206 @@
+"""The command line as a user meets it: files under tmp_path, exit codes, stderr."""
+
+import csv
+import io
+import json
+import re
+import shutil
+
+import pytest
+from typer.testing import CliRunner
+
+from planner.cli import app
+from planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY
+
+from conftest import PROTOCOLS
+
+runner = CliRunner()
+
+
+def run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+def data_rows(text):
+    return [r for r in csv.reader(io.StringIO(text)) if r and not r[0].startswith("#")]
+
+
+def test_every_command_has_help():
+    import typer.main
+
+    group = typer.main.get_command(app)
+    assert set(group.commands) >= {"check", "start", "plan", "verify", "replay", "demo"}
+    for name, command in group.commands.items():
+        assert command.help and len(command.help) > 20, name
+        res = run(name, "--help")
+        assert res.exit_code == 0 and "Usage" in res.output
+
+
+@pytest.mark.parametrize("protocol", sorted(PROTOCOLS.glob("*.toml")), ids=lambda p: p.name)
+def test_check_every_example_protocol(protocol):
+    res = run("check", protocol)
+    assert res.exit_code == 0, res.output
+    assert "fingerprint" in res.output and "CAUTIONS" in res.output
+    js = run("check", protocol, "--format", "json")
+    data = json.loads(js.stdout)
+    assert len(data["protocol"]["fingerprint"]) == 64
+    assert data["cautions"]
+    for f in data["factors"]:
+        assert f["real_low"] <= f["centre"] + 1e-9 and f["centre"] <= f["real_high"] + 1e-9
+
+
+def test_check_empty_design_space(tmp_path):
+    text = (PROTOCOLS / "tablet_blend.toml").read_text()
+    # a ratio rule that cannot hold together with the bounds of mcc and lactose
+    text = text.replace('rule = "mcc / lactose <= 4"', 'rule = "mcc >= 2 * lactose + 0.45"')
+    bad = tmp_path / "empty.toml"
+    bad.write_text(text)
+    res = run("check", bad)
+    assert res.exit_code == EXIT_PROTOCOL
+    assert "the design space is empty" in res.stderr
+    assert "filler ratio" in res.stderr
+
+
+def test_check_bad_protocol_names_field(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text((PROTOCOLS / "tablet_blend.toml").read_text().replace("threshold = 0.90", "threshold = 1.5"))
+    res = run("check", bad)
+    assert res.exit_code == EXIT_PROTOCOL
+    assert "bad.toml: screen.threshold: Input should be less than 1" in res.stderr
+    assert "Traceback" not in res.output
+
+
+@pytest.mark.parametrize("protocol", sorted(PROTOCOLS.glob("*.toml")), ids=lambda p: p.name)
+def test_start_writes_fillable_design(tmp_path, protocol):
+    out = tmp_path / "start.csv"
+    res = run("start", protocol, "--runs", 7, "--out", out, "--format", "csv")
+    assert res.exit_code == 0, res.output
+    rows = data_rows(out.read_text())
+    assert rows[0][0] == "run_id" and len(rows) == 8
+    assert out.read_text().startswith("# Guardband starting design")
+    # the written file reads back as a runs table with every run pending
+    from planner.protocol import load_protocol
+    from planner.runs import read_runs
+
+    p = load_protocol(protocol)
+    table = read_runs(out, p)
+    assert table.pending.all()
+    # values are written to 6 significant digits, so the check allows 1e-5
+    assert p.design_space().contains(table.X, tol=1e-5).all()
+    if p.start is not None:  # inside the starting region
+        A, b, _ = p.start_rows()
+        assert (table.X @ A.T <= b + 1e-9).all()
+
+
+@pytest.fixture(scope="module")
+def campaign(tmp_path_factory):
+    out = tmp_path_factory.mktemp("campaign")
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv",
+              "--out", out, "--count", 3, "--pool", 500)
+    assert res.exit_code == 0, res.output
+    return out, res
+
+
+def test_plan_writes_table_log_and_cautions(campaign):
+    out, res = campaign
+    assert "CAUTIONS" in res.stdout and "qualified person" in res.stdout
+    plans = list(out.glob("plan-*.csv"))
+    assert len(plans) == 1
+    text = plans[0].read_text()
+    assert "# CAUTIONS:" in text
+    rows = data_rows(text)
+    assert rows[0][:3] == ["rank", "run_id", "active"] and len(rows) == 4
+    assert {"p_degradant_b", "p_friability", "joint", "ei", "pi", "bound", "mean"} <= set(rows[0])
+    assert len(list(out.glob("exclusions-*.csv"))) == 1
+    assert run("verify", out / "decisions.jsonl").exit_code == 0
+
+
+def test_plan_json_is_parseable_and_carries_cautions(tmp_path):
+    res = run("plan", PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv",
+              "--out", tmp_path, "--format", "json", "--pool", 300)
+    assert res.exit_code == 0, res.output
+    data = json.loads(res.stdout)
+    assert any("ethics committee" in c for c in data["cautions"])
+    assert data["log"]["count"] == 1 and len(data["proposals"]) >= 1
+    for prop in data["proposals"]:  # inside the starting region's neighbourhood and off the forbidden corner
+        assert not (prop["x"]["dose_a"] >= 40 and prop["x"]["dose_b"] >= 8)
+
+
+def test_tampered_log_fails_at_the_right_record(tmp_path):
+    args = (PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", "--out", tmp_path, "--pool", 300, "--count", 1)
+    assert run("plan", *args).exit_code == 0
+    assert run("plan", *args, "--seed", 99).exit_code == 0
+    log = tmp_path / "decisions.jsonl"
+    ok = run("verify", log, "--format", "json")
+    head = json.loads(ok.stdout)["head"]
+    lines = log.read_text().splitlines()
+    edited = lines[0].replace('"seed":20261201', '"seed":20261202')
+    assert edited != lines[0]
+    log.write_text("\n".join([edited, lines[1]]) + "\n")
+    res = run("verify", log)
+    assert res.exit_code == EXIT_VERIFY
+    assert "record 0" in res.stderr
+    # truncation is caught only against the expected head / count
+    log.write_text(lines[0] + "\n")
+    assert run("verify", log).exit_code == 0
+    res = run("verify", log, "--expect-count", 2)
+    assert res.exit_code == EXIT_VERIFY and "expected 2" in res.stderr
+    assert run("verify", log, "--expect-head", head).exit_code == EXIT_VERIFY
+
+
+def test_replay_is_identical(campaign):
+    out, _ = campaign
+    res = run("replay", out / "decisions.jsonl", "--record", 0)
+    assert res.exit_code == 0, res.output
+    assert res.stdout.startswith("identical")
+
+
+def test_replay_detects_altered_input_copy(tmp_path, campaign):
+    src, _ = campaign
+    dst = tmp_path / "c"
+    shutil.copytree(src, dst)
+    copy = next((dst / "inputs").glob("runs-*.csv"))
+    copy.write_text(copy.read_text().replace("R01", "R99"))
+    res = run("replay", dst / "decisions.jsonl", "--record", 0)
+    assert res.exit_code == EXIT_VERIFY
+    assert "was altered" in res.stderr
+
+
+def test_no_safe_candidate_exit_code(tmp_path):
+    text = (PROTOCOLS / "tablet_blend.toml").read_text().replace("min_runs = 6", "min_runs = 40")
+    p = tmp_path / "strict.toml"
+    p.write_text(text)
+    res = run("plan", p, PROTOCOLS / "tablet_blend_runs.csv", "--out", tmp_path / "o", "--pool", 200)
+    assert res.exit_code == EXIT_NO_SAFE
+    assert "no candidate passed the safety screen" in res.stderr
+    # the decision is still recorded, with its reason
+    assert run("verify", tmp_path / "o" / "decisions.jsonl").exit_code == 0
+
+
+def test_drawn_seed_is_printed_and_recorded(tmp_path):
+    text = (PROTOCOLS / "tablet_blend.toml").read_text().replace("seed = 20261201", "")
+    p = tmp_path / "noseed.toml"
+    p.write_text(text)
+    res = run("plan", p, PROTOCOLS / "tablet_blend_runs.csv", "--out", tmp_path / "o", "--pool", 200, "--format", "json")
+    assert res.exit_code == 0, res.output
+    m = re.search(r"seed used: (\d+) \(drawn; recorded in the log\)", res.stderr)
+    assert m
+    assert json.loads(res.stdout)["seed"] == int(m.group(1))
+
+
+def test_runs_error_exit_code(tmp_path):
+    bad = tmp_path / "runs.csv"
+    bad.write_text((PROTOCOLS / "tablet_blend_runs.csv").read_text().replace("R03,0.1", "R03,zero"))
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", bad, "--out", tmp_path / "o")
+    assert res.exit_code == 4
+    assert "row 4 (run R03), column active: 'zero' is not a number" in res.stderr
+    assert not (tmp_path / "o").exists()  # nothing written
+
+
+def test_demo_runs_everything(tmp_path):
+    res = run("demo", "--out", tmp_path / "demo")
+    assert res.exit_code == 0, res.output
+    summary = (tmp_path / "demo" / "SUMMARY.txt").read_text()
+    assert "== 4. replay" in summary and "identical" in summary
+    assert "ok: 1 record(s)" in summary
+    assert "CAUTIONS" in summary

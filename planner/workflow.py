@@ -307,6 +307,8 @@ def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, 
              f"{result.protocol.ranking.rule if result.mode == 'improve' else 'joint figure'}; "
              f"threshold {result.protocol.screen.threshold:g} ({result.protocol.screen.joint})"]
     extra += [f"note: {m}" for m in result.messages]
+    extra.append("rank is the order of the greedy batch choice: after each pick its fantasised "
+                 "results are added to the models, so a later rank may show a larger single-run value")
     plan_text = write_csv_text(rows, header, comment_lines=_header_lines(result, "plan", extra),
                                float_format=_FLOAT)
     eh, er = exclusion_table(result)

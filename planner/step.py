@@ -43,7 +43,14 @@ from .protocol import Limit, Protocol
 from .runs import RunsTable
 from .settings import FEASIBILITY_TOL, NEAR_MISS_COUNT
 
-from safety.screen import LimitPrediction, ScreenResult, run_screen, step_distance
+from safety.screen import (
+    LimitPrediction,
+    ScreenResult,
+    joint_figure,
+    limit_probability,
+    run_screen,
+    step_distance,
+)
 
 __all__ = ["ModelSummary", "Proposal", "PlanResult", "plan_step", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
@@ -55,6 +62,8 @@ Z95 = 1.959963984540054
 LOCAL_SHARE = 0.25
 #: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
 MIN_SEPARATION = 0.01
+#: Forward-difference step (unit-scaled) for the refinement's gradients.
+FD_STEP = 1e-6
 #: Local refinement aims this far inside each probability requirement.
 REFINE_MARGIN = 1e-3
 
@@ -633,41 +642,55 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
     lo = space.lower[cont]
     span = np.where(space.upper[cont] - lo > 0, space.upper[cont] - lo, 1.0)
     limits = protocol.limits
-    from safety.screen import joint_figure, limit_probability
 
     def full(x0, u):
         x = x0.copy()
         x[cont] = lo + span * u
         return x
 
-    def objective(u, x0):
-        x = full(x0, u)[None, :]
-        U = scaler.unit(x)
-        if mode == "feasibility-first":
-            return -float(_joint_at(U))
-        mu, sd = obj_model.predict(U)
-        if protocol.ranking.rule == "ei":
-            return -float(log_expected_improvement(mu, sd, inc_value, maximize=rank_kw["maximize"])[0])
-        return -float(rule_score(protocol.ranking.rule, mu, sd, inc_value, **rank_kw)[0])
+    req = np.array([lim.probability for lim in limits]) + REFINE_MARGIN
+    thr = protocol.screen.threshold + REFINE_MARGIN
 
-    def _probs(U):
-        P = []
-        for lim, lm in zip(limits, limit_models):
-            m, s = lm.predict(U, include_noise=True)
-            P.append(limit_probability(m, s, lower=lim.lower, upper=lim.upper))
-        return np.column_stack(P) if P else np.ones((U.shape[0], 0))
-
-    def _joint_at(U):
-        return joint_figure(_probs(U), method=protocol.screen.joint)[0]
-
-    def screen_cons(u, x0):
-        U = scaler.unit(full(x0, u)[None, :])
-        P = _probs(U)
-        # aim a little inside the screen so that the refined point still
-        # passes it after rounding (REFINE_MARGIN)
-        req = np.array([lim.probability for lim in limits]) + REFINE_MARGIN
+    def values_at(X):
+        """Score (to maximise) and screen slack (>= 0 where it passes) at rows X."""
+        U = scaler.unit(X)
+        P = [limit_probability(*lm.predict(U, include_noise=True), lower=lim.lower, upper=lim.upper)
+             for lim, lm in zip(limits, limit_models)]
+        P = np.column_stack(P) if P else np.ones((U.shape[0], 0))
         J = joint_figure(P, method=protocol.screen.joint)
-        return np.concatenate([P[0] - req, J - (protocol.screen.threshold + REFINE_MARGIN)])
+        if mode == "feasibility-first":
+            score = J
+        else:
+            mu, sd = obj_model.predict(U)
+            if protocol.ranking.rule == "ei":
+                score = log_expected_improvement(mu, sd, inc_value, maximize=rank_kw["maximize"])
+            else:
+                score = rule_score(protocol.ranking.rule, mu, sd, inc_value, **rank_kw)
+        # aim a little inside the screen (REFINE_MARGIN) so that the refined
+        # point still passes it after rounding
+        slack = np.column_stack([P - req, J - thr])
+        return np.maximum(score, -1e300), slack
+
+    def make_problem(x0):
+        """Objective and constraints with forward-difference gradients, all
+        points of one gradient predicted in a single batched call."""
+        k = cont.size
+        last = {}
+
+        def at(u):
+            key = u.tobytes()
+            if last.get("key") != key:
+                Uv = np.vstack([u, u + FD_STEP * np.eye(k)])
+                X = np.repeat(x0[None, :], k + 1, axis=0)
+                X[:, cont] = lo + span * Uv
+                last["key"], last["val"] = key, values_at(X)
+            return last["val"]
+
+        fun = lambda u: -float(at(u)[0][0])
+        jac = lambda u: -(at(u)[0][1:] - at(u)[0][0]) / FD_STEP
+        cfun = lambda u: at(u)[1][0]
+        cjac = lambda u: ((at(u)[1][1:] - at(u)[1][0]) / FD_STEP).T
+        return fun, jac, cfun, cjac
 
     if any(lm is None for lm in limit_models):
         return np.zeros((0, X_pool.shape[1]))
@@ -686,20 +709,20 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
             A = space.A_eq[:, cont] * span
             b = space.b_eq - space.A_eq @ rest
             cons.append({"type": "eq", "fun": lambda u, A=A, b=b: A @ u - b, "jac": lambda u, A=A: A})
-        if limits:
-            cons.append({"type": "ineq", "fun": lambda u, x0=x0: screen_cons(u, x0)})
+        fun, jac, cfun, cjac = make_problem(x0)
+        cons.append({"type": "ineq", "fun": cfun, "jac": cjac})
         u0 = (x0[cont] - lo) / span
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 res = minimize(
-                    objective, u0, args=(x0,), method="SLSQP",
+                    fun, u0, jac=jac, method="SLSQP",
                     bounds=[(0.0, 1.0)] * cont.size, constraints=cons,
                     options={"maxiter": 60, "ftol": 1e-7},
                 )
         except (ValueError, np.linalg.LinAlgError, ModelError):
             continue
-        if not res.success or -res.fun <= -objective(u0, x0):
+        if not res.success or res.fun >= fun(u0):
             continue  # keep only refinements that converged and improved the score
         x = full(x0, np.clip(res.x, 0.0, 1.0))
         if np.all(np.isfinite(x)) and bool(np.asarray(space.contains(x[None, :]))[0]):

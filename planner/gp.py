@@ -43,6 +43,8 @@ in the model (``GaussianProcess.jitter``) and acts as extra noise.
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import math
 import warnings
 from collections.abc import Mapping
@@ -55,6 +57,11 @@ from scipy.spatial.distance import cdist
 
 from . import settings
 from .errors import ModelError
+
+try:  # a dependency of scikit-learn, so normally present
+    from threadpoolctl import ThreadpoolController
+except ImportError:  # pragma: no cover
+    ThreadpoolController = None
 
 __all__ = [
     "Hyperparameters",
@@ -96,6 +103,13 @@ VARIANCE_ROUNDOFF = 1e-10
 MAX_JOINT_COV = 5000
 #: The fit caches pairwise squared differences, n^2 d doubles, up to this many.
 PAIRWISE_CACHE_MAX = 2**23
+#: BLAS threads while fitting, predicting, conditioning. The matrices are
+#: n_runs square (hundreds) and the search factorises them hundreds of times;
+#: waking BLAS threads for each costs more than it saves (measured: one thread
+#: about twice as fast as two on a 2-core machine, see benchmarks/models.py),
+#: and one thread gives the same bits on any machine. ``None`` leaves the
+#: process's BLAS setting alone.
+BLAS_THREADS = 1
 
 STATUS_OK = "ok"
 STATUS_WARNING = "warning"
@@ -106,6 +120,30 @@ _LOG_2PI = math.log(2.0 * math.pi)
 
 class _NotPositiveDefinite(Exception):
     """Internal: the factorisation failed even at the largest jitter."""
+
+
+@functools.cache
+def _controller():
+    # created on first use, after numpy's and scipy's BLAS libraries are loaded
+    return ThreadpoolController()
+
+
+def _blas_limit():
+    """Context manager holding BLAS at ``BLAS_THREADS`` threads."""
+    if ThreadpoolController is None or BLAS_THREADS is None:
+        return contextlib.nullcontext()
+    return _controller().limit(limits=BLAS_THREADS, user_api="blas")
+
+
+def _limited_blas(method):
+    """Run ``method`` under :func:`_blas_limit`."""
+
+    @functools.wraps(method)
+    def wrapper(*args, **kwargs):
+        with _blas_limit():
+            return method(*args, **kwargs)
+
+    return wrapper
 
 
 # ---------------------------------------------------------------------------
@@ -234,9 +272,22 @@ def matern52(X1, X2, length_scales, signal_variance) -> np.ndarray:
     K : array of shape (n1, n2)
     """
     ls = np.asarray(length_scales, dtype=float)
-    r = cdist(np.asarray(X1, dtype=float) / ls, np.asarray(X2, dtype=float) / ls, "euclidean")
-    sr = _SQRT5 * r
-    return signal_variance * (1.0 + sr + sr * sr / 3.0) * np.exp(-sr)
+    sr = cdist(np.asarray(X1, dtype=float) / ls, np.asarray(X2, dtype=float) / ls, "euclidean")
+    sr *= _SQRT5
+    return _matern_from_sr(sr, signal_variance)
+
+
+def _matern_from_sr(sr: np.ndarray, signal_variance: float, e: np.ndarray | None = None) -> np.ndarray:
+    """``sf2 (1 + sr + sr^2 / 3) exp(-sr)`` with ``sr = sqrt(5) r``, in place where possible."""
+    if e is None:
+        e = np.exp(-sr)
+    K = sr * sr
+    K *= 1.0 / 3.0
+    K += sr
+    K += 1.0
+    K *= e
+    K *= signal_variance
+    return K
 
 
 def _cholesky(K: np.ndarray, *, first_jitter: float | None = None):
@@ -344,9 +395,10 @@ def _lml_and_gradient(pairs: _Pairwise, z: np.ndarray, theta: np.ndarray):
     sf2 = math.exp(theta[d])
     sn2 = math.exp(theta[d + 1])
     inv_l2 = 1.0 / (ls * ls)
-    sr = _SQRT5 * np.sqrt(pairs.r2(inv_l2))
+    sr = np.sqrt(pairs.r2(inv_l2))
+    sr *= _SQRT5
     e = np.exp(-sr)
-    Kf = sf2 * (1.0 + sr + sr * sr / 3.0) * e
+    Kf = _matern_from_sr(sr, sf2, e)
     Ky = Kf.copy()
     Ky.flat[:: n + 1] += sn2
     L, _ = _cholesky(Ky)
@@ -357,13 +409,16 @@ def _lml_and_gradient(pairs: _Pairwise, z: np.ndarray, theta: np.ndarray):
     W -= _inverse_from_cholesky(L)
     grad = np.empty(d + 2)
     # dK / d log l_k = G * D_k / l_k^2 with G = 5/3 sf2 (1 + sqrt5 r) exp(-sqrt5 r)
-    G = (5.0 / 3.0) * sf2 * (1.0 + sr) * e
-    grad[:d] = 0.5 * pairs.weighted_sums(W * G) * inv_l2
+    G = sr + 1.0
+    G *= e
+    G *= W
+    grad[:d] = (0.5 * 5.0 / 3.0 * sf2) * pairs.weighted_sums(G) * inv_l2
     grad[d] = 0.5 * np.einsum("ij,ij->", W, Kf)  # dK / d log sf2 = Kf
     grad[d + 1] = 0.5 * sn2 * np.trace(W)  # dK / d log sn2 = sn2 I
     return lml, grad
 
 
+@_limited_blas
 def log_marginal_likelihood(X, z, theta, *, include_prior: bool = False):
     """Log marginal likelihood of standardised responses, with its gradient.
 
@@ -617,6 +672,7 @@ class GaussianProcess:
         return self.scale**2 * self._k(X1, X2)
 
     # -- prediction -----------------------------------------------------------
+    @_limited_blas
     def predict(self, Xs, *, return_cov: bool = False, include_noise: bool = False, chunk_size: int | None = None):
         """Posterior mean and sd (or joint covariance) in response units.
 
@@ -673,6 +729,7 @@ class GaussianProcess:
         return self.prior_mean + s * mean, s * np.sqrt(var)
 
     # -- leave-one-out --------------------------------------------------------
+    @_limited_blas
     def loo(self) -> LeaveOneOut:
         """Closed-form leave-one-out predictions of every training run.
 
@@ -695,6 +752,7 @@ class GaussianProcess:
         return LeaveOneOut(mean, variance, self.y - mean)
 
     # -- fantasies ------------------------------------------------------------
+    @_limited_blas
     def condition(self, X_new, y_new) -> GaussianProcess:
         """A new model that also has the observations (X_new, y_new).
 
@@ -812,21 +870,22 @@ def _starts(z, n_factors, bounds, warm_start, n_restarts, rng) -> list[np.ndarra
     return starts
 
 
-def _search(X, z, starts, bounds):
-    """L-BFGS-B on the negative log posterior from each start."""
+def _search(X, z, starts, bounds, use_priors=True):
+    """L-BFGS-B on the negative log posterior (or likelihood) from each start."""
     pairs = _Pairwise(X)
 
     def objective(theta):
         try:
-            lml, grad = _lml_and_gradient(pairs, z, theta)
+            value, grad = _lml_and_gradient(pairs, z, theta)
         except _NotPositiveDefinite:
             # back off: L-BFGS-B's line search shortens the step
             return math.inf, np.zeros_like(theta)
-        lp, glp = _log_prior(theta)
-        value = -(lml + lp)
+        if use_priors:
+            lp, glp = _log_prior(theta)
+            value, grad = value + lp, grad + glp
         if not math.isfinite(value):
             return math.inf, np.zeros_like(theta)
-        return value, -(grad + glp)
+        return -value, -grad
 
     results = []
     for x0 in starts:
@@ -842,8 +901,8 @@ def _search(X, z, starts, bounds):
     return results
 
 
-def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor):
-    """MAP hyperparameters by L-BFGS-B from several starts.
+def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True):
+    """MAP (or maximum-likelihood) hyperparameters by L-BFGS-B from several starts.
 
     Returns ``(hyperparameters, notes, warn)``.
     """
@@ -851,15 +910,15 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor):
     generator = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(0 if rng is None else rng)
     bounds = _bounds(d, noise_floor)
     starts = _starts(z, d, bounds, warm_start, n_restarts, generator)
-    results = _search(X, z, starts, bounds)
+    results = _search(X, z, starts, bounds, use_priors)
     finite = [r for r in results if math.isfinite(r.fun)]
     if not finite:
         raise ModelError("the hyperparameter search failed from every start: " + _not_pd_advice(n))
     best = min(finite, key=lambda r: r.fun)
     converged = sum(bool(r.success) for r in results)
-    notes = [
-        f"MAP search from {len(starts)} start(s), {converged} converged; best log posterior {-best.fun:.6g}"
-    ]
+    what = "MAP search" if use_priors else "maximum-likelihood search (no priors)"
+    target = "log posterior" if use_priors else "log likelihood"
+    notes = [f"{what} from {len(starts)} start(s), {converged} converged; best {target} {-best.fun:.6g}"]
     warn = False
     if not best.success:
         warn = True
@@ -874,6 +933,7 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor):
     return Hyperparameters.from_theta(best.x), notes, warn
 
 
+@_limited_blas
 def fit_gp(
     X,
     y,
@@ -885,6 +945,7 @@ def fit_gp(
     noise_floor: float = NOISE_FLOOR,
     optimize: bool = True,
     hyperparameters: Hyperparameters | Mapping | None = None,
+    use_priors: bool = True,
 ) -> GaussianProcess:
     """Fit a GP response model by maximum a posteriori hyperparameters.
 
@@ -909,6 +970,10 @@ def fit_gp(
         If False, no search: use ``warm_start`` or the prior centres.
     hyperparameters : Hyperparameters or dict, optional
         Fixed hyperparameters; when given no search is made.
+    use_priors : bool
+        True: maximum a posteriori with the weak priors of this module.
+        False: maximum likelihood within the same bounds (for comparisons,
+        or many runs); with few runs it tends to be overconfident.
 
     Returns
     -------
@@ -965,7 +1030,9 @@ def fit_gp(
         origin = "the warm start" if warm_start is not None else "their prior centres"
         notes.insert(0, f"no search: hyperparameters from {origin}")
     else:
-        hp, search_notes, search_warn = _map_fit(X, z, warm_start, int(n_restarts), rng, noise_floor)
+        hp, search_notes, search_warn = _map_fit(
+            X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors)
+        )
         notes[:0] = search_notes
         warn = warn or search_warn
 

@@ -1,19 +1,42 @@
 """The runs table: finished (and pending) runs, checked once into numpy arrays.
 
-A runs file is CSV with a header row: ``run_id``, one column per factor,
-one per response (objective and limits), and an optional ``notes`` column.
-A header may state a unit in brackets (``force [kN]``); it must then match
-the protocol's unit. A response cell left empty means "not measured yet":
-a run with every response empty is *pending* and is not used as data.
+A runs file is CSV (or tab-separated text) or an ``.xlsx`` workbook with a
+header row: ``run_id``, one column per factor, one per response (objective
+and limits), and an optional ``notes`` column. A response cell left empty
+means "not measured yet": a run with every response empty is *pending* and
+is not used as data.
 
-Every problem in the file is collected and reported together, naming the
-row (as a spreadsheet shows it: the header is row 1) and the column.
-Values outside a factor's bounds are kept but flagged.
+Files as laboratories export them are read without guessing:
+
+* a byte-order mark (UTF-8 or UTF-16), leading ``# ...`` comment lines
+  (our own starting designs carry them) and an Excel ``sep=;`` line;
+* comma, semicolon or tab separators, found from the header line or
+  stated (``delimiter``); decimal commas, found from the cells (a file that
+  mixes decimal points and commas is refused) or stated (``decimal``); in
+  a comma-separated file a comma inside a number is never read as a
+  decimal mark unless stated;
+* spaces around headers and cells, blank rows at the end;
+* in a workbook, the first sheet or the one named (``sheet``); numbers
+  stay numbers, text is trimmed; a formula without a saved result, an
+  error value (``#DIV/0!``), a date or TRUE/FALSE in a number column is
+  refused, naming the cell (``Sheet1!C5``).
+
+A header may state a unit in brackets (``force [N]``); the column's values
+are then converted to the protocol's unit, or refused where that is not
+safe (see :mod:`planner.units`). Each conversion is listed in ``flags``. A
+limit's ``lower``/``upper`` are in the limit's (the response's) unit.
+
+Every problem in the file is collected and reported together, before
+anything is computed, naming the row (as a spreadsheet shows it: the header
+is row 1) and the column. Values outside a factor's bounds are kept but
+flagged.
 """
 
 from __future__ import annotations
 
 import csv
+import datetime as _dt
+import difflib
 import hashlib
 import io
 import math
@@ -25,13 +48,39 @@ import numpy as np
 
 from .errors import RunsDataError
 from .protocol import Protocol
+from .units import UnitError, conversion
 
-__all__ = ["RunsTable", "read_runs", "parse_runs_text", "RUN_ID", "NOTES"]
+__all__ = [
+    "RunsTable",
+    "read_runs",
+    "read_runs_bytes",
+    "parse_runs_text",
+    "RUN_ID",
+    "NOTES",
+    "DELIMITERS",
+    "DECIMALS",
+]
 
 RUN_ID = "run_id"
 NOTES = "notes"
+#: Field separators a runs text file may use, by the names an option takes.
+DELIMITERS = {",": ",", ";": ";", "tab": "\t", "\t": "\t"}
+DECIMALS = (".", ",")
 _MAX_PROBLEMS = 50
 _HEADER_UNIT = re.compile(r"^(?P<name>.*?)\s*\[(?P<unit>[^\]]*)\]\s*$")
+_PAREN_UNIT = re.compile(r"^(?P<name>.*?)\s*\((?P<unit>[^)]*)\)\s*$")
+_SEP_LINE = re.compile(r"^\s*sep=(.)\s*$")
+_FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r", "\0")
+_EXP = r"(?:[eE][+-]?[0-9]+)?"
+_NUM_DOT = re.compile(rf"^[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+){_EXP}$")
+_NUM_COMMA = re.compile(rf"^[+-]?(?:[0-9]+,?[0-9]*|,[0-9]+){_EXP}$")
+_HAS_DOT = re.compile(rf"^[+-]?(?:[0-9]*\.[0-9]+|[0-9]+\.){_EXP}$")
+_HAS_COMMA = re.compile(rf"^[+-]?(?:[0-9]*,[0-9]+|[0-9]+,){_EXP}$")
+_GROUPED = re.compile(r"^[+-]?[0-9]{1,3}(?:[.,' \u00a0\u202f][0-9]{3})+(?:[.,][0-9]+)?$")
+_WITH_UNIT = re.compile(r"^(?P<num>[+-]?[0-9][0-9.,]*)\s*(?P<unit>[A-Za-zµμ°%‰][^0-9]*)$")
+_NOT_FINITE = {"nan", "inf", "-inf", "+inf", "infinity", "-infinity", "+infinity"}
+_ZIP_MAGIC = b"PK\x03\x04"
+_OLE_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
 
 
 @dataclass(frozen=True)
@@ -44,10 +93,11 @@ class RunsTable:
     X : ndarray of shape (n_runs, n_factors)
         Factor values in protocol units.
     Y : dict of str to ndarray of shape (n_runs,)
-        Each response; NaN where not measured.
+        Each response in protocol units; NaN where not measured.
     notes : tuple of str
     flags : tuple of str
-        Warnings that did not stop the run from being used (e.g. outside bounds).
+        Warnings that did not stop the run from being used (outside bounds,
+        a unit conversion).
     sha256 : str
         SHA-256 of the file's bytes.
     source : str
@@ -78,226 +128,33 @@ class RunsTable:
         return ~np.any(np.column_stack([np.isfinite(v) for v in self.Y.values()]), axis=1)
 
 
-def _sniff(text: str, delimiter: str | None) -> tuple[str, str]:
-    """Choose the field separator and decimal mark.
+# ------------------------------------------------------------ cell kinds
+@dataclass(frozen=True)
+class _Formula:
+    """A workbook cell holding a formula whose result was never saved."""
 
-    Semicolon-separated files (as spreadsheets export them where the comma
-    is the decimal mark) are detected from the header line.
-    """
-    first = text.split("\n", 1)[0]
-    if delimiter is None:
-        delimiter = ";" if first.count(";") > first.count(",") else ","
-    decimal = "," if delimiter == ";" else "."
-    return delimiter, decimal
+    text: str
 
 
-def _number(cell: str, decimal: str) -> float:
-    s = cell.strip()
-    if decimal == ",":
-        s = s.replace(",", ".")
-    value = float(s)  # raises ValueError for text
-    return value
+@dataclass(frozen=True)
+class _SheetError:
+    """A workbook cell holding an error value such as ``#DIV/0!``."""
+
+    code: str
 
 
-def parse_runs_text(
-    text: str,
-    protocol: Protocol,
-    *,
-    source: str = "runs.csv",
-    sha256: str | None = None,
-    delimiter: str | None = None,
-) -> RunsTable:
-    """Check a runs table given as text; see :func:`read_runs`."""
-    if sha256 is None:
-        sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
-    if text.startswith("\ufeff"):
-        text = text[1:]
-    text = text.replace("\r\n", "\n").replace("\r", "\n")
-    # leading "# ..." lines are comments (our own outputs carry their
-    # cautions and fingerprints there); they are skipped, and the row
-    # numbers below still count them, as a spreadsheet would
-    lines = text.split("\n")
-    n_comments = 0
-    while n_comments < len(lines) and lines[n_comments].lstrip().startswith("#"):
-        n_comments += 1
-    body = "\n".join(lines[n_comments:])
-    delimiter, decimal = _sniff(body, delimiter)
-    rows = list(csv.reader(io.StringIO(body), delimiter=delimiter))
-    # blank trailing rows (spreadsheets leave them) are dropped
-    while rows and all(not c.strip() for c in rows[-1]):
-        rows.pop()
-    if not rows:
-        raise RunsDataError(f"{source}: the file is empty; it needs a header row")
-    problems: list[str] = []
-    header_raw = rows[0]
-    header: list[str] = []
-    units_in_header: dict[int, str] = {}
-    for j, cell in enumerate(header_raw):
-        name = cell.strip()
-        m = _HEADER_UNIT.match(name)
-        if m:
-            name = m.group("name").strip()
-            units_in_header[j] = m.group("unit").strip()
-        header.append(name)
+@dataclass
+class _Grid:
+    """Cells as read, before any checking."""
 
-    factors = protocol.factors
-    factor_names = [f.name for f in factors]
-    responses = list(protocol.response_names)
-    unit_of = {f.name: f.unit for f in factors}
-    unit_of[protocol.objective.name] = protocol.objective.unit
-    unit_of.update({lim.name: lim.unit for lim in protocol.limits})
-    known = set(factor_names) | set(responses) | {RUN_ID, NOTES}
-
-    col: dict[str, int] = {}
-    for j, name in enumerate(header):
-        letter = _column_letter(j)
-        if not name:
-            if any(j < len(r) and r[j].strip() for r in rows[1:]):
-                problems.append(f"column {letter} has values but no header")
-            continue
-        if name in col:
-            problems.append(f"column {letter}: header {name!r} appears twice")
-            continue
-        if name not in known:
-            problems.append(
-                f"column {letter}: unknown column {name!r}; expected {RUN_ID}, the factors "
-                f"({', '.join(factor_names)}), the responses ({', '.join(responses)}) or {NOTES}"
-            )
-            continue
-        if j in units_in_header and name in unit_of and units_in_header[j] != unit_of[name]:
-            problems.append(
-                f"column {letter} ({name}): the header states unit [{units_in_header[j]}] but the "
-                f"protocol's unit is [{unit_of[name]}]; convert the values or fix the header"
-            )
-        col[name] = j
-    for name in [RUN_ID] + factor_names + responses:
-        if name not in col and not any(p.endswith(f"{name!r} appears twice") for p in problems):
-            problems.append(f"missing column {name!r}")
-    if problems:
-        raise RunsDataError(_join(source, problems))
-
-    n = len(rows) - 1
-    d = len(factor_names)
-    X = np.full((n, d), np.nan)
-    Y = {r: np.full(n, np.nan) for r in responses}
-    ids: list[str] = []
-    notes: list[str] = []
-    flags: list[str] = []
-    seen_ids: dict[str, int] = {}
-    for i, row in enumerate(rows[1:]):
-        line = i + 2 + n_comments
-        if all(not c.strip() for c in row):
-            problems.append(f"row {line}: the row is blank; delete it")
-            continue
-        if len(row) > len(header):
-            extra = [c for c in row[len(header):] if c.strip()]
-            if extra:
-                problems.append(f"row {line}: {len(row)} cells but the header has {len(header)}")
-
-        def cell(name: str) -> str:
-            j = col[name]
-            return row[j].strip() if j < len(row) else ""
-
-        rid = cell(RUN_ID)
-        where = f"row {line}" + (f" (run {rid})" if rid else "")
-        if not rid:
-            problems.append(f"row {line}, column {RUN_ID}: the run id is empty")
-        elif rid in seen_ids:
-            problems.append(f"{where}, column {RUN_ID}: run id {rid!r} is also used in row {seen_ids[rid]}")
-        else:
-            seen_ids[rid] = line
-        ids.append(rid)
-        notes.append(cell(NOTES) if NOTES in col else "")
-        for k, f in enumerate(factors):
-            raw = cell(f.name)
-            if not raw:
-                problems.append(f"{where}, column {f.name}: the factor value is empty")
-                continue
-            try:
-                v = _number(raw, decimal)
-            except ValueError:
-                problems.append(f"{where}, column {f.name}: {raw!r} is not a number")
-                continue
-            if not math.isfinite(v):
-                problems.append(f"{where}, column {f.name}: {raw!r} is not a finite number")
-                continue
-            X[i, k] = v
-            tol = 1e-9 * max(1.0, abs(f.high))
-            if f.kind == "discrete":
-                if min(abs(v - lv) for lv in f.levels) > tol:
-                    flags.append(
-                        f"{where}, column {f.name}: {v:g} is not one of the levels "
-                        f"{list(f.levels)} (kept)"
-                    )
-            elif v < f.low - tol or v > f.high + tol:
-                flags.append(
-                    f"{where}, column {f.name}: {v:g} is outside the bounds "
-                    f"[{f.low:g}, {f.high:g}] (kept)"
-                )
-        for r in responses:
-            raw = cell(r)
-            if not raw:
-                continue
-            try:
-                v = _number(raw, decimal)
-            except ValueError:
-                problems.append(f"{where}, column {r}: {raw!r} is not a number (leave it empty if not measured)")
-                continue
-            if not math.isfinite(v):
-                problems.append(f"{where}, column {r}: {raw!r} is not a finite number")
-                continue
-            Y[r][i] = v
-        if protocol.mixture is not None and not np.any(np.isnan(X[i])):
-            comp = [k for k, f in enumerate(factors) if f.kind == "component"]
-            total = float(X[i, comp].sum())
-            if abs(total - protocol.mixture.total) > protocol.mixture.tolerance:
-                problems.append(
-                    f"{where}: the components add up to {total:.6g}, not {protocol.mixture.total:g} "
-                    f"(tolerance {protocol.mixture.tolerance:g})"
-                )
-        if len(problems) >= _MAX_PROBLEMS:
-            problems.append("... stopping after 50 problems")
-            break
-    if problems:
-        raise RunsDataError(_join(source, problems))
-    return RunsTable(
-        run_ids=tuple(ids),
-        X=X,
-        Y=Y,
-        notes=tuple(notes),
-        flags=tuple(flags),
-        sha256=sha256,
-        source=source,
-        factor_names=tuple(factor_names),
-    )
+    rows: list[list[object]]
+    row_numbers: list[int]
+    sheet: str | None = None  # a workbook sheet: cells are named "Sheet1!C5"
+    delimiter: str | None = None
 
 
-def read_runs(path: str | Path, protocol: Protocol, *, delimiter: str | None = None) -> RunsTable:
-    """Read and check a runs CSV file against a protocol.
-
-    Raises
-    ------
-    RunsDataError
-        Listing every problem with its row and column; nothing is computed.
-    """
-    path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise RunsDataError(f"{path}: cannot read the runs file ({exc.strerror})") from None
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise RunsDataError(
-            f"{path.name}: not UTF-8 text (byte {exc.start}); save the file as UTF-8 CSV"
-        ) from None
-    return parse_runs_text(
-        text,
-        protocol,
-        source=path.name,
-        sha256=hashlib.sha256(raw).hexdigest(),
-        delimiter=delimiter,
-    )
+def _blank(value: object) -> bool:
+    return value is None or (isinstance(value, str) and not value.strip())
 
 
 def _column_letter(j: int) -> str:
@@ -310,6 +167,597 @@ def _column_letter(j: int) -> str:
     return out
 
 
+def _sheet_ref(sheet: str) -> str:
+    return sheet if re.fullmatch(r"[A-Za-z_][A-Za-z0-9_.]*", sheet) else "'" + sheet.replace("'", "''") + "'"
+
+
 def _join(source: str, problems: list[str]) -> str:
-    head = f"{source}: {len(problems)} problem{'s' if len(problems) != 1 else ''} found"
+    if len(problems) > _MAX_PROBLEMS:
+        head = f"{source}: more than {_MAX_PROBLEMS} problems found; the first {_MAX_PROBLEMS}:"
+        problems = problems[:_MAX_PROBLEMS]
+    else:
+        head = f"{source}: {len(problems)} problem{'s' if len(problems) != 1 else ''} found"
     return head + "\n" + "\n".join(f"  - {p}" for p in problems)
+
+
+# ------------------------------------------------------------ reading
+def read_runs(
+    path: str | Path,
+    protocol: Protocol,
+    *,
+    delimiter: str | None = None,
+    decimal: str | None = None,
+    sheet: str | None = None,
+) -> RunsTable:
+    """Read and check a runs file (CSV, tab-separated text or .xlsx) against a protocol.
+
+    Parameters
+    ----------
+    path : str or Path
+    protocol : Protocol
+    delimiter : {",", ";", "tab"}, optional
+        Field separator of a text file; found from the header line if not given.
+    decimal : {".", ","}, optional
+        Decimal mark of text cells; found from the cells if not given.
+    sheet : str, optional
+        Workbook sheet to read; the first sheet if not given.
+
+    Raises
+    ------
+    RunsDataError
+        Listing every problem with its row and column; nothing is computed.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise RunsDataError(f"{path}: cannot read the runs file ({exc.strerror or exc})") from None
+    return read_runs_bytes(raw, protocol, source=path.name, suffix=path.suffix,
+                           delimiter=delimiter, decimal=decimal, sheet=sheet)
+
+
+def read_runs_bytes(
+    raw: bytes,
+    protocol: Protocol,
+    *,
+    source: str = "runs",
+    suffix: str = "",
+    delimiter: str | None = None,
+    decimal: str | None = None,
+    sheet: str | None = None,
+) -> RunsTable:
+    """Check a runs file given as its bytes; see :func:`read_runs`.
+
+    The format is taken from the content (a workbook is a zip archive), not
+    from ``suffix``, which only sharpens the messages. ``sha256`` of the
+    table is the digest of exactly these bytes.
+    """
+    delimiter, decimal = _check_options(source, delimiter, decimal)
+    sha256 = hashlib.sha256(raw).hexdigest()
+    kind = _format_of(raw, suffix, source)
+    if kind == "xlsx":
+        grid = _read_xlsx(raw, source=source, sheet=sheet)
+        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+    if sheet is not None:
+        raise RunsDataError(f"{source}: a sheet ({sheet!r}) was named, but the file is text, not a workbook")
+    return parse_runs_text(_decode(raw, source), protocol, source=source, sha256=sha256,
+                           delimiter=delimiter, decimal=decimal)
+
+
+def _check_options(source: str, delimiter, decimal) -> tuple[str | None, str | None]:
+    if delimiter is not None:
+        if delimiter not in DELIMITERS:
+            raise RunsDataError(
+                f"{source}: delimiter {delimiter!r} is not one of "
+                f"{', '.join(repr(k) for k in DELIMITERS if k != chr(9))}"
+            )
+        delimiter = DELIMITERS[delimiter]
+    if decimal is not None and decimal not in DECIMALS:
+        raise RunsDataError(f"{source}: decimal mark {decimal!r} is not '.' or ','")
+    return delimiter, decimal
+
+
+def _format_of(raw: bytes, suffix: str, source: str) -> str:
+    suffix = suffix.lower()
+    if raw.startswith(_OLE_MAGIC):
+        raise RunsDataError(
+            f"{source}: an old-style Excel .xls workbook or a password-protected workbook; "
+            "save it as .xlsx without a password, or export CSV UTF-8"
+        )
+    if raw.startswith(_ZIP_MAGIC):
+        head = raw[:200]
+        if b"mimetypeapplication/vnd.oasis.opendocument" in head:
+            raise RunsDataError(
+                f"{source}: an OpenDocument spreadsheet; save it as .xlsx or export CSV UTF-8"
+            )
+        if suffix == ".xlsb":
+            raise RunsDataError(f"{source}: a binary .xlsb workbook; save it as .xlsx or export CSV UTF-8")
+        return "xlsx"
+    if suffix in (".xlsx", ".xlsm"):
+        raise RunsDataError(
+            f"{source}: not a valid .xlsx workbook (the file is not a zip archive); "
+            "save it again from the spreadsheet program, or export CSV UTF-8"
+        )
+    return "text"
+
+
+def _decode(raw: bytes, source: str) -> str:
+    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+        try:
+            return raw.decode("utf-16")
+        except UnicodeDecodeError as exc:
+            raise RunsDataError(f"{source}: not valid UTF-16 text (byte {exc.start})") from None
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise RunsDataError(
+            f"{source}: not UTF-8 text (row {line}, byte {exc.start}: 0x{raw[exc.start]:02x}); "
+            "save the file as CSV UTF-8 (the tool does not guess other encodings)"
+        ) from None
+
+
+def parse_runs_text(
+    text: str,
+    protocol: Protocol,
+    *,
+    source: str = "runs.csv",
+    sha256: str | None = None,
+    delimiter: str | None = None,
+    decimal: str | None = None,
+) -> RunsTable:
+    """Check a runs table given as text; see :func:`read_runs`."""
+    delimiter, decimal = _check_options(source, delimiter, decimal)
+    if sha256 is None:
+        sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    text = text.replace("\r\n", "\n").replace("\r", "\n")
+    nul = text.find("\0")
+    if nul >= 0:
+        raise RunsDataError(
+            f"{source}: row {text.count(chr(10), 0, nul) + 1} holds a NUL character; the file is "
+            "binary, or UTF-16 without a byte-order mark: export it as CSV UTF-8"
+        )
+    # leading "# ..." lines are comments (our own outputs carry their
+    # cautions and fingerprints there), and Excel may write a "sep=;" line;
+    # they are skipped, and the row numbers below still count them, as a
+    # spreadsheet would
+    lines = text.split("\n")
+    skip = 0
+    while skip < len(lines) and lines[skip].lstrip().startswith("#"):
+        skip += 1
+    if skip < len(lines):
+        m = _SEP_LINE.match(lines[skip])
+        if m and m.group(1) in DELIMITERS:
+            delimiter = delimiter or DELIMITERS[m.group(1)]
+            skip += 1
+    body = "\n".join(lines[skip:])
+    if delimiter is None:
+        delimiter = _sniff_delimiter(lines[skip] if skip < len(lines) else "")
+    reader = csv.reader(io.StringIO(body), delimiter=delimiter, strict=True)
+    rows: list[list[object]] = []
+    try:
+        for row in reader:
+            rows.append(list(row))
+    except csv.Error as exc:
+        raise RunsDataError(
+            f"{source}: row {len(rows) + 1 + skip}: the file cannot be read as "
+            f"{_delimiter_name(delimiter)}-separated text ({exc}); a quoted cell may not be closed"
+        ) from None
+    grid = _Grid(rows=rows, row_numbers=[skip + i + 1 for i in range(len(rows))], delimiter=delimiter)
+    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+
+
+def _delimiter_name(d: str) -> str:
+    return {",": "comma", ";": "semicolon", "\t": "tab"}.get(d, repr(d))
+
+
+def _sniff_delimiter(header_line: str) -> str:
+    """The separator used most in the header line (outside quotes); comma on a tie."""
+    outside = re.sub(r'"[^"]*"', "", header_line)
+    counts = {d: outside.count(d) for d in (",", ";", "\t")}
+    best = max(counts.values())
+    if best == 0 or counts[","] == best:
+        return ","
+    return ";" if counts[";"] == best else "\t"
+
+
+def _read_xlsx(raw: bytes, *, source: str, sheet: str | None) -> _Grid:
+    import openpyxl
+
+    books = []
+    try:
+        for data_only in (True, False):
+            books.append(openpyxl.load_workbook(io.BytesIO(raw), read_only=True, data_only=data_only))
+    except Exception as exc:  # a damaged workbook raises KeyError, BadZipFile, XML errors, ...
+        for b in books:
+            b.close()
+        raise RunsDataError(
+            f"{source}: cannot read the workbook ({type(exc).__name__}: {exc}); save it again as "
+            ".xlsx, or export CSV UTF-8"
+        ) from None
+    values_book, formula_book = books
+    try:
+        names = list(values_book.sheetnames)
+        if not names:
+            raise RunsDataError(f"{source}: the workbook has no sheets")
+        if sheet is None:
+            title = names[0]
+        elif sheet in names:
+            title = sheet
+        else:
+            raise RunsDataError(
+                f"{source}: there is no sheet {sheet!r}; the sheets are "
+                f"{', '.join(repr(n) for n in names)}"
+            )
+        ws, wf = values_book[title], formula_book[title]
+        if not hasattr(ws, "iter_rows"):
+            raise RunsDataError(f"{source}: sheet {title!r} is a chart, not a table of cells")
+        ws.reset_dimensions()
+        wf.reset_dimensions()
+        formulas: dict[tuple[int, int], str] = {}
+        for number, cells in enumerate(wf.iter_rows(), start=1):
+            for j, c in enumerate(cells):
+                if getattr(c, "data_type", None) == "f" and c.value is not None:
+                    text = c.value if isinstance(c.value, str) else getattr(c.value, "text", str(c.value))
+                    formulas[(getattr(c, "row", number), j)] = str(text)
+        rows: list[list[object]] = []
+        numbers: list[int] = []
+        for number, cells in enumerate(ws.iter_rows(), start=1):
+            number = next((c.row for c in cells if getattr(c, "row", None)), number)
+            row: list[object] = []
+            for j, c in enumerate(cells):
+                v = c.value
+                if getattr(c, "data_type", None) == "e":
+                    v = _SheetError(str(v))
+                elif v is None and (number, j) in formulas:
+                    v = _Formula(formulas[(number, j)])
+                elif isinstance(v, str):
+                    v = v.strip()
+                row.append(v)
+            # rows the sheet skips entirely still count
+            while len(numbers) and numbers[-1] + 1 < number:
+                numbers.append(numbers[-1] + 1)
+                rows.append([])
+            rows.append(row)
+            numbers.append(number)
+    finally:
+        values_book.close()
+        formula_book.close()
+    # leading "# ..." rows (a starting design opened and saved in a spreadsheet)
+    skip = 0
+    while skip < len(rows):
+        first = next((v for v in rows[skip] if not _blank(v)), None)
+        if isinstance(first, str) and first.startswith("#"):
+            skip += 1
+        else:
+            break
+    return _Grid(rows=rows[skip:], row_numbers=numbers[skip:], sheet=_sheet_ref(title))
+
+
+# ------------------------------------------------------------ cells
+def _text_of(value: object) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, str):
+        return value.strip()
+    if isinstance(value, bool):
+        return "TRUE" if value else "FALSE"
+    if isinstance(value, float) and value.is_integer() and abs(value) < 1e15:
+        return str(int(value))
+    if isinstance(value, (_Formula, _SheetError)):
+        return ""
+    return str(value)
+
+
+def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]], stated: str | None,
+                where) -> tuple[str | None, str | None]:
+    """The decimal mark of the text cells, and a problem when the file mixes them."""
+    if stated is not None:
+        return stated, None
+    if grid.delimiter == "," or grid.sheet is not None:
+        # a comma-separated file, or text in a workbook (whose numbers are
+        # numbers): a comma inside a number is reported cell by cell
+        return ".", None
+    first_dot = first_comma = None
+    for i, row in enumerate(grid.rows[1:], start=1):
+        for name, j in numeric_cols:
+            if j >= len(row) or not isinstance(row[j], str):
+                continue
+            s = row[j].strip()
+            if first_dot is None and _HAS_DOT.match(s):
+                first_dot = (i, name, s)
+            elif first_comma is None and _HAS_COMMA.match(s):
+                first_comma = (i, name, s)
+        if first_dot and first_comma:
+            break
+    if first_dot and first_comma:
+        (i1, n1, s1), (i2, n2, s2) = first_dot, first_comma
+        return None, (
+            f"the file mixes decimal points ({where(i1)}, column {n1}: {s1!r}) and decimal commas "
+            f"({where(i2)}, column {n2}: {s2!r}); write every number the same way, or state the "
+            "decimal mark (--decimal . or --decimal ,)"
+        )
+    return ("," if first_comma else "."), None
+
+
+def _number(value: object, decimal: str | None) -> tuple[float | None, str | None]:
+    """A cell as a number: (value, None), (None, None) when empty, or (None, problem).
+
+    The problem "" means "already reported for the whole file".
+    """
+    if value is None:
+        return None, None
+    if isinstance(value, _Formula):
+        return None, (
+            f"the cell holds a formula ({value.text}) with no saved result; open the workbook in a "
+            "spreadsheet program, let it calculate, save it, and try again"
+        )
+    if isinstance(value, _SheetError):
+        return None, f"the cell holds the spreadsheet error {value.code}"
+    if isinstance(value, bool):
+        return None, f"{'TRUE' if value else 'FALSE'} is a true/false value, not a number"
+    if isinstance(value, (_dt.datetime, _dt.date, _dt.time, _dt.timedelta)):
+        return None, f"{value} is a date or time, not a number (is the cell formatted as a date?)"
+    if isinstance(value, (int, float)):
+        v = float(value)
+        if not math.isfinite(v):
+            return None, f"{value!r} is not a finite number"
+        return v, None
+    s = str(value).strip()
+    if not s:
+        return None, None
+    if decimal == "." and _NUM_DOT.match(s):
+        return float(s), None
+    if decimal == "," and _NUM_COMMA.match(s):
+        return float(s.replace(",", ".")), None
+    if decimal is None:
+        if re.fullmatch(rf"[+-]?[0-9]+{_EXP}", s):
+            return float(s), None
+        if _NUM_DOT.match(s) or _NUM_COMMA.match(s):
+            return None, ""
+    return None, _why_not_number(s, decimal)
+
+
+def _why_not_number(s: str, decimal: str | None) -> str:
+    low = s.lower()
+    if low in _NOT_FINITE:
+        return f"{s!r} is not a finite number"
+    if s[0] in "<>≤≥":
+        return (
+            f"{s!r} is a censored value (below or above a reporting limit), not a measurement; "
+            "the tool cannot use it: enter a number or leave the cell empty"
+        )
+    if _GROUPED.match(s) and ("." in s and "," in s or re.search(r"[' \u00a0\u202f]", s)):
+        return f"{s!r} looks like a number with thousands separators; write it without them"
+    if decimal == "." and _HAS_COMMA.match(s) or decimal == "." and _GROUPED.match(s):
+        return (
+            f"{s!r} has a comma: a decimal comma or a thousands separator? write it with a "
+            "decimal point, or state the decimal mark (--decimal ,)"
+        )
+    if decimal == "," and (_HAS_DOT.match(s) or _GROUPED.match(s)):
+        return f"{s!r} has a decimal point, but this file's decimal mark is ','"
+    m = _WITH_UNIT.match(s)
+    if m:
+        return (
+            f"{s!r} holds a unit or symbol; write the number only and state the unit in the header "
+            f"(e.g. 'name [{m.group('unit').strip()}]')"
+        )
+    return f"{s!r} is not a number"
+
+
+# ------------------------------------------------------------ checking
+def _split_header(cell: str) -> tuple[str, str | None]:
+    m = _HEADER_UNIT.match(cell)
+    if m:
+        return m.group("name").strip(), m.group("unit").strip()
+    return cell, None
+
+
+def _suggest(name: str, known: list[str]) -> str:
+    lower = {k.lower(): k for k in known}
+    if name.lower() in lower:
+        return f"; did you mean {lower[name.lower()]!r}? (names are case-sensitive)"
+    m = _PAREN_UNIT.match(name)
+    if m and m.group("name").strip() in known:
+        return (f"; units go in square brackets: '{m.group('name').strip()} "
+                f"[{m.group('unit').strip()}]'")
+    close = difflib.get_close_matches(name, known, n=1, cutoff=0.75)
+    return f"; did you mean {close[0]!r}?" if close else ""
+
+
+def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
+                decimal: str | None) -> RunsTable:
+    rows, numbers = list(grid.rows), list(grid.row_numbers)
+    # blank trailing rows (spreadsheets leave them) are dropped
+    while rows and all(_blank(c) for c in rows[-1]):
+        rows.pop()
+        numbers.pop()
+    if not rows:
+        raise RunsDataError(f"{source}: the file is empty; it needs a header row")
+    header_number = numbers[0]
+    if all(_blank(c) for c in rows[0]):
+        raise RunsDataError(
+            f"{source}: row {header_number} is blank; the header row (run_id, the factors, the "
+            "responses) must come first"
+        )
+
+    def ref(i: int, j: int) -> str:
+        return f" ({grid.sheet}!{_column_letter(j)}{numbers[i]})" if grid.sheet else ""
+
+    factors = protocol.factors
+    factor_names = [f.name for f in factors]
+    responses = list(protocol.response_names)
+    unit_of = {f.name: f.unit for f in factors}
+    unit_of[protocol.objective.name] = protocol.objective.unit
+    unit_of.update({lim.name: lim.unit for lim in protocol.limits})
+    known_list = [RUN_ID, *factor_names, *responses, NOTES]
+    known = set(known_list)
+
+    problems: list[str] = []
+    flags: list[str] = []
+    col: dict[str, int] = {}
+    convert: dict[str, object] = {}
+    twice: set[str] = set()
+    for j, cell in enumerate(rows[0]):
+        letter = _column_letter(j)
+        name, unit = _split_header(_text_of(cell))
+        if not name:
+            if any(j < len(r) and not _blank(r[j]) for r in rows[1:]):
+                problems.append(f"column {letter}{ref(0, j)} has values but no header")
+            continue
+        if name not in known and name[:1] == "'" and name[1:2] in _FORMULA_PREFIXES and name[1:] in known:
+            name = name[1:]  # undo the spreadsheet-safe escape our own outputs carry
+        if name in col:
+            problems.append(f"column {letter}{ref(0, j)}: header {name!r} appears twice")
+            twice.add(name)
+            continue
+        if name not in known:
+            problems.append(
+                f"column {letter}{ref(0, j)}: unknown column {name!r}{_suggest(name, known_list)}; "
+                f"expected {RUN_ID}, the factors ({', '.join(factor_names)}), the responses "
+                f"({', '.join(responses)}) or {NOTES}"
+            )
+            continue
+        col[name] = j
+        if unit is None or not unit:
+            continue
+        if name in (RUN_ID, NOTES):
+            problems.append(f"column {letter} ({name}): a unit [{unit}] makes no sense here; remove it")
+            continue
+        if unit == unit_of[name]:
+            continue
+        try:
+            conv = conversion(unit, unit_of[name])
+        except UnitError as exc:
+            problems.append(
+                f"column {letter} ({name}): the header states unit [{unit}] but the protocol's "
+                f"unit is [{unit_of[name]}]; {exc}"
+            )
+            convert[name] = None
+            continue
+        if not conv.identity:
+            convert[name] = conv
+            flags.append(f"column {letter} ({name}): values converted {conv.describe()}")
+    for name in known_list:
+        if name != NOTES and name not in col and name not in twice:
+            problems.append(f"missing column {name!r}")
+
+    data = list(range(1, len(rows)))
+
+    def where_of(i: int, rid: str = "") -> str:
+        return f"row {numbers[i]}" + (f" (run {rid})" if rid else "")
+
+    numeric_cols = [(n, col[n]) for n in factor_names + responses if n in col]
+    decimal, mixed = _decimal_of(_Grid(rows, numbers, grid.sheet, grid.delimiter), numeric_cols,
+                                 decimal, lambda i: where_of(i))
+    if mixed:
+        problems.append(mixed)
+
+    n = len(data)
+    d = len(factor_names)
+    X = np.full((n, d), np.nan)
+    Y = {r: np.full(n, np.nan) for r in responses}
+    ids: list[str] = []
+    notes: list[str] = []
+    wheres: list[str] = []
+    seen_ids: dict[str, int] = {}
+    width = len(rows[0])
+    for k, i in enumerate(data):
+        row = rows[i]
+        line = numbers[i]
+
+        def cell(name: str) -> object:
+            j = col[name]
+            return row[j] if j < len(row) else None
+
+        if all(_blank(c) for c in row):
+            problems.append(f"row {line}: the row is blank; delete it")
+            ids.append("")
+            notes.append("")
+            wheres.append(f"row {line}")
+            continue
+        if len(row) > width and any(not _blank(c) for c in row[width:]):
+            problems.append(f"row {line}: {len(row)} cells but the header has {width}")
+        rid = _text_of(cell(RUN_ID)) if RUN_ID in col else ""
+        where = where_of(i, rid)
+        wheres.append(where)
+        if RUN_ID in col:
+            if not rid:
+                problems.append(f"row {line}, column {RUN_ID}{ref(i, col[RUN_ID])}: the run id is empty")
+            elif rid in seen_ids:
+                problems.append(
+                    f"{where}, column {RUN_ID}{ref(i, col[RUN_ID])}: run id {rid!r} is also used in "
+                    f"row {seen_ids[rid]}"
+                )
+            else:
+                seen_ids[rid] = line
+        ids.append(rid)
+        notes.append(_text_of(cell(NOTES)) if NOTES in col else "")
+        for q, f in enumerate(factors):
+            if f.name not in col:
+                continue
+            v, problem = _number(cell(f.name), decimal)
+            at = f"{where}, column {f.name}{ref(i, col[f.name])}"
+            if problem is None and v is None:
+                problems.append(f"{at}: the factor value is empty")
+            elif problem:
+                problems.append(f"{at}: {problem}")
+            elif v is not None:
+                X[k, q] = v
+        for r in responses:
+            if r not in col:
+                continue
+            v, problem = _number(cell(r), decimal)
+            if problem:
+                extra = " (leave it empty if not measured)" if problem.endswith("is not a number") else ""
+                problems.append(f"{where}, column {r}{ref(i, col[r])}: {problem}{extra}")
+            elif v is not None:
+                Y[r][k] = v
+        if len(problems) > _MAX_PROBLEMS:
+            break
+
+    # unit conversions, then the checks that need protocol units
+    for q, f in enumerate(factors):
+        conv = convert.get(f.name)
+        if conv is not None:
+            X[:, q] = conv.apply(X[:, q])
+    for r in responses:
+        conv = convert.get(r)
+        if conv is not None:
+            Y[r] = conv.apply(Y[r])
+    comp = [q for q, f in enumerate(factors) if f.kind == "component"]
+    unit_ok = all(convert.get(factors[q].name, True) is not None for q in comp)
+    for k, where in enumerate(wheres):
+        for q, f in enumerate(factors):
+            v = X[k, q]
+            if not np.isfinite(v) or convert.get(f.name, True) is None:
+                continue
+            tol = 1e-9 * max(1.0, abs(f.high))
+            if f.kind == "discrete":
+                if min(abs(v - lv) for lv in f.levels) > tol:
+                    flags.append(f"{where}, column {f.name}: {v:g} is not one of the levels "
+                                 f"{list(f.levels)} (kept)")
+            elif v < f.low - tol or v > f.high + tol:
+                flags.append(f"{where}, column {f.name}: {v:g} is outside the bounds "
+                             f"[{f.low:g}, {f.high:g}] (kept)")
+        if protocol.mixture is not None and unit_ok and comp and np.all(np.isfinite(X[k, comp])):
+            total = float(X[k, comp].sum())
+            if abs(total - protocol.mixture.total) > protocol.mixture.tolerance:
+                problems.append(
+                    f"{where}: the components add up to {total:.6g}, not {protocol.mixture.total:g} "
+                    f"(tolerance {protocol.mixture.tolerance:g})"
+                )
+    if problems:
+        raise RunsDataError(_join(source, problems))
+    return RunsTable(
+        run_ids=tuple(ids),
+        X=X,
+        Y=Y,
+        notes=tuple(notes),
+        flags=tuple(flags),
+        sha256=sha256,
+        source=source,
+        factor_names=tuple(factor_names),
+    )

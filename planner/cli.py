@@ -54,6 +54,17 @@ class Format(str, Enum):
 FORMAT_HELP = "Output format on stdout: table (readable), csv or json."
 
 
+class Delimiter(str, Enum):
+    comma = ","
+    semicolon = ";"
+    tab = "tab"
+
+
+class Decimal(str, Enum):
+    point = "."
+    comma = ","
+
+
 def _err(text: str = "") -> None:
     typer.echo(text, err=True)
 
@@ -173,18 +184,26 @@ def start(
 @_guarded
 def plan(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
-    runs: Path = typer.Argument(..., help="The runs file (CSV) with the runs made so far."),
+    runs: Path = typer.Argument(..., help="The runs file (CSV, tab-separated text or .xlsx) with the runs made so far."),
     out: Path = typer.Option(..., "--out", "-o", help="Campaign folder: plan, exclusions, decision log."),
     count: Optional[int] = typer.Option(None, "--count", "-k", min=1, max=100,
                                         help="How many runs to propose (default: the protocol's batch size)."),
-    seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's; else drawn and recorded)."),
+    seed: Optional[int] = typer.Option(None, "--seed", min=0, max=2**63 - 1,
+                                       help="Random seed (default: the protocol's; else drawn and recorded)."),
     pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000, help="Candidate pool size (default: the protocol's)."),
+    delimiter: Optional[Delimiter] = typer.Option(None, "--delimiter",
+                                                  help="Field separator of a text runs file (default: found from the header line)."),
+    decimal: Optional[Decimal] = typer.Option(None, "--decimal",
+                                              help="Decimal mark of the runs file's numbers (default: found from the cells)."),
+    sheet: Optional[str] = typer.Option(None, "--sheet", help="Sheet of an .xlsx runs file (default: the first)."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
     from .workflow import cautions_of, plan_table, run_plan
 
-    outcome = run_plan(protocol, runs, out, count=count, seed=seed, pool_size=pool)
+    outcome = run_plan(protocol, runs, out, count=count, seed=seed, pool_size=pool,
+                       delimiter=delimiter.value if delimiter else None,
+                       decimal=decimal.value if decimal else None, sheet=sheet)
     result = outcome.result
     cautions = cautions_of(result.protocol)
     header, rows = plan_table(result, step_label=outcome.record["body"]["step_label"])

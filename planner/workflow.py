@@ -27,10 +27,10 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .errors import ProtocolError, VerificationError
+from .errors import OutputError, ProtocolError, RunsDataError, VerificationError
 from .fileio import atomic_write_bytes, write_csv_text
 from .protocol import Protocol, load_protocol
-from .runs import RUN_ID, RunsTable, read_runs
+from .runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
 from .step import PlanResult, plan_step
 
 from safety import cautions as _cautions
@@ -270,6 +270,9 @@ def run_plan(
     count: int | None = None,
     seed: int | None = None,
     pool_size: int | None = None,
+    delimiter: str | None = None,
+    decimal: str | None = None,
+    sheet: str | None = None,
 ) -> PlanOutcome:
     """Plan the next batch and record it.
 
@@ -277,12 +280,24 @@ def run_plan(
     planning step, writes the plan table, the exclusion table and copies of
     the inputs (each atomically), then appends the decision-log record that
     names them by hash. A failure before the append leaves the log as it was.
+    ``delimiter``, ``decimal`` and ``sheet`` are passed to
+    :func:`planner.runs.read_runs` and recorded, so that a replay reads the
+    runs copy the same way.
     """
     protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise OutputError(f"{out_dir} exists and is not a folder; --out names a campaign folder")
+    # The bytes that are hashed, copied and recorded are the bytes that were
+    # checked: the runs are parsed from them, and the protocol must not
+    # change while it is read.
+    protocol_bytes = _read_input(protocol_path, ProtocolError, "protocol")
     protocol = load_protocol(protocol_path)
-    runs = read_runs(runs_path, protocol)
-    protocol_bytes = protocol_path.read_bytes()
-    runs_bytes = runs_path.read_bytes()
+    if _read_input(protocol_path, ProtocolError, "protocol") != protocol_bytes:
+        raise ProtocolError(f"{protocol_path}: the protocol file changed while it was being read; try again")
+    runs_bytes = _read_input(runs_path, RunsDataError, "runs")
+    read_options = {"delimiter": delimiter, "decimal": decimal, "sheet": sheet}
+    runs = read_runs_bytes(runs_bytes, protocol, source=runs_path.name, suffix=runs_path.suffix,
+                           **read_options)
     seed_drawn = False
     if seed is None:
         seed = protocol.seed
@@ -295,7 +310,19 @@ def run_plan(
     warm = _warm_start_from_log(log_path, protocol.fingerprint)
     result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
-                       seed, seed_drawn, count, pool_size, protocol_path, runs_path)
+                       seed, seed_drawn, count, pool_size, protocol_path, runs_path,
+                       read_options=read_options)
+
+
+def _read_input(path: Path, error, what: str) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise error(f"{path}: cannot read the {what} file ({exc.strerror or exc})") from None
+
+
+#: Suffixes a runs copy keeps (a workbook stays a workbook); others become .csv.
+_RUNS_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".xlsm")
 
 
 def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
@@ -318,15 +345,19 @@ def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, 
 
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
-                count, pool_size, protocol_path, runs_path) -> PlanOutcome:
+                count, pool_size, protocol_path, runs_path, *, read_options=None) -> PlanOutcome:
     plan_bytes, excl_bytes, step_label = _render(result, count)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    (out_dir / "inputs").mkdir(exist_ok=True)
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+        (out_dir / "inputs").mkdir(exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the campaign folder {out_dir}: {exc.strerror or exc}") from None
+    runs_suffix = runs_path.suffix.lower() if runs_path.suffix.lower() in _RUNS_SUFFIXES else ".csv"
     files = {
         "plan": out_dir / f"plan-{_short(plan_bytes)}.csv",
         "exclusions": out_dir / f"exclusions-{_short(excl_bytes)}.csv",
         "protocol_copy": out_dir / "inputs" / f"protocol-{_short(protocol_bytes)}.toml",
-        "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}.csv",
+        "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}{runs_suffix}",
     }
     for key, data in (("protocol_copy", protocol_bytes), ("runs_copy", runs_bytes),
                       ("exclusions", excl_bytes), ("plan", plan_bytes)):
@@ -340,7 +371,8 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
         "protocol_file": {"name": protocol_path.name, "sha256": hashlib.sha256(protocol_bytes).hexdigest(),
                           "copy": files["protocol_copy"].relative_to(out_dir).as_posix()},
         "runs_file": {"name": runs_path.name, "sha256": result.runs_sha256,
-                      "copy": files["runs_copy"].relative_to(out_dir).as_posix()},
+                      "copy": files["runs_copy"].relative_to(out_dir).as_posix(),
+                      "read_options": dict(read_options or {})},
         "plan_table": {"file": files["plan"].name, "sha256": hashlib.sha256(plan_bytes).hexdigest()},
         "exclusion_table": {"file": files["exclusions"].name,
                             "sha256": hashlib.sha256(excl_bytes).hexdigest()},
@@ -405,7 +437,8 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
             raise VerificationError(f"record {index}: the input copy {body[key]['copy']} was altered (hash differs)")
         copies[key] = path
     protocol = load_protocol(copies["protocol_file"])
-    runs: RunsTable = read_runs(copies["runs_file"], protocol)
+    runs: RunsTable = read_runs(copies["runs_file"], protocol,
+                                **(body["runs_file"].get("read_options") or {}))
     result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
                        warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
     return result, rec

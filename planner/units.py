@@ -236,6 +236,16 @@ class Conversion:
         return f"[{self.source}] -> [{self.target}] ({self.source_reading} to {self.target_reading})"
 
 
+def _what(r: UnitReading) -> str:
+    if r.ratio:
+        return f"{r.reading}: {r.ratio}"
+    if r._signature[2]:
+        return r.reading
+    if r.dimension == "dimensionless":
+        return f"{r.reading}: a plain number, per what is not said"
+    return f"{r.reading}: {r.dimension}"
+
+
 def conversion(source: str, target: str) -> Conversion:
     """Check that values stated in ``source`` may be converted to ``target``.
 
@@ -276,17 +286,15 @@ def conversion(source: str, target: str) -> Conversion:
         )
     if src.dimension != dst.dimension:
         raise UnitError(
-            f"[{src_text}] reads as {src.reading} ({src.dimension}) and the protocol's "
-            f"[{dst_text}] as {dst.reading} ({dst.dimension}): different kinds of quantity, "
-            "which are never converted"
+            f"[{src_text}] reads as {src.reading} ({src.ratio or src.dimension}) and the protocol's "
+            f"[{dst_text}] as {dst.reading} ({dst.ratio or dst.dimension}): different kinds of "
+            "quantity, which are never converted"
         )
     if src._signature != dst._signature:
-        what_src = src.reading if src._signature[2] else (src.ratio or "a plain number")
-        what_dst = dst.reading if dst._signature[2] else (dst.ratio or "a plain number")
         raise UnitError(
-            f"[{src_text}] ({what_src}) and the protocol's [{dst_text}] ({what_dst}) both reduce "
-            "to plain numbers but measure different things; the tool does not guess: state "
-            f"[{dst_text}] and convert the values yourself"
+            f"[{src_text}] ({_what(src)}) and the protocol's [{dst_text}] ({_what(dst)}) measure "
+            "different things, although the unit library would convert one into the other; the "
+            f"tool does not guess: state [{dst_text}] and convert the values yourself"
         )
     conv = Conversion(src_text, dst_text, identity=False, source_reading=src.reading,
                       target_reading=dst.reading)

@@ -175,7 +175,10 @@ def read_unit(text: str) -> UnitReading:
     merged: dict[str, float] = {}
     for k, e in kinds:
         merged[k] = merged.get(k, 0.0) + e
-    signature = (dim_text, tuple(ratios), tuple(sorted((k, e) for k, e in merged.items() if e)))
+    # compare dimensions as sorted (base, exponent) pairs: their text depends on
+    # the order pint meets them ("[length] * [mass]" for lbf, "[mass] * [length]" for N)
+    dim_key = tuple(sorted((str(k), float(e)) for k, e in dict(dims).items()))
+    signature = (dim_key, tuple(ratios), tuple(sorted((k, e) for k, e in merged.items() if e)))
     return UnitReading(
         text=text,
         kind="unit",
@@ -284,7 +287,7 @@ def conversion(source: str, target: str) -> Conversion:
             f"[{src_text}] is not a unit the tool knows (the protocol's unit reads as "
             f"{dst.reading}); state [{dst_text}] and convert the values, or fix the header"
         )
-    if src.dimension != dst.dimension:
+    if src._signature[0] != dst._signature[0]:
         raise UnitError(
             f"[{src_text}] reads as {src.reading} ({src.ratio or src.dimension}) and the protocol's "
             f"[{dst_text}] as {dst.reading} ({dst.ratio or dst.dimension}): different kinds of "

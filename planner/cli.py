@@ -296,6 +296,45 @@ def replay(
         raise typer.Exit(EXIT_VERIFY)
 
 
+# ------------------------------------------------------------------ report
+def _map_pair(text: Optional[str]) -> Optional[tuple[str, str]]:
+    if text is None:
+        return None
+    parts = [p.strip() for p in text.split(",")]
+    if len(parts) != 2 or not all(parts):
+        raise typer.BadParameter(f"give two factor names separated by a comma, e.g. mcc,force (got {text!r})",
+                                 param_hint="--map")
+    return parts[0], parts[1]
+
+
+@app.command()
+@_guarded
+def report(
+    folder: Path = typer.Argument(..., help="Campaign folder written by `guardband plan --out` (holds decisions.jsonl)."),
+    map: Optional[str] = typer.Option(None, "--map", help="Two factors for the map, as a,b "
+                                      "(default: the two the models are most sensitive to)."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Write a self-contained HTML report (and PNG figures) for every planning step in a folder."""
+    from .report import report_folder
+
+    written = report_folder(folder, map_factors=_map_pair(map))
+    if format is Format.json:
+        typer.echo(_json([w.to_dict() for w in written]))
+    elif format is Format.csv:
+        rows = [[w.record_index, w.step_label, str(w.html), len(w.figures), "; ".join(w.problems)] for w in written]
+        typer.echo(write_csv_text(rows, ["record", "step_label", "report", "figures", "problems"]), nl=False)
+    else:
+        for w in written:
+            typer.echo(f"record {w.record_index}: {w.html} ({len(w.figures)} figures in {w.html.parent / ('figures-' + w.step_label)})")
+    for w in written:
+        for problem in w.problems:
+            _err(f"warning: report {w.html.name}: {problem}")
+    if any("different plan table" in p for w in written for p in w.problems):
+        _err("Error: at least one recorded step did not re-run to its recorded plan; see the reports")
+        raise typer.Exit(EXIT_VERIFY)
+
+
 # -------------------------------------------------------------------- demo
 @app.command()
 @_guarded

@@ -196,6 +196,7 @@ def plan(
     decimal: Optional[Decimal] = typer.Option(None, "--decimal",
                                               help="Decimal mark of the runs file's numbers (default: found from the cells)."),
     sheet: Optional[str] = typer.Option(None, "--sheet", help="Sheet of an .xlsx runs file (default: the first)."),
+    report: bool = typer.Option(False, "--report", help="Also write the HTML report and PNG figures of this step into --out."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
@@ -232,6 +233,10 @@ def plan(
     for f in result.flags:
         _err(f"warning: {f}")
     _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
+    if report:
+        from .report import report_plan
+
+        _err(f"wrote {report_plan(outcome).html}")
     if not result.proposals:
         _err("Error: no candidate passed the safety screen; see the exclusion table for why")
         raise typer.Exit(EXIT_NO_SAFE)

@@ -249,6 +249,8 @@ def verify(
     log: Path = typer.Argument(..., help="The decision log (decisions.jsonl)."),
     expect_head: Optional[str] = typer.Option(None, "--expect-head", help="Head hash printed by an earlier report."),
     expect_count: Optional[int] = typer.Option(None, "--expect-count", min=0, help="Number of records the log must have."),
+    summary: bool = typer.Option(False, "--summary", help="Print the reviewer's summary of every planning step "
+                                 "(inputs, exclusion counts, near misses, corrections) once the log verifies."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Verify a decision log's hash chain and name the first bad record."""
@@ -259,7 +261,11 @@ def verify(
     except ValueError as exc:
         _err(f"Error: {exc}")
         raise typer.Exit(2)
-    if format is Format.json:
+    if summary and result.ok:
+        from .review import summarize_log
+
+        typer.echo(summarize_log(log).render(format.value), nl=False)
+    elif format is Format.json:
         typer.echo(_json(result.to_dict()))
     elif format is Format.csv:
         d = result.to_dict()

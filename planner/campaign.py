@@ -3,23 +3,29 @@
 A campaign starts from a starting design, then repeats planning steps,
 "measures" every proposal with the problem's functions (plus optional
 noise) and feeds the results back, until the budget of planned runs is
-spent. The history records, per run, whether it broke a limit and the best
-measured objective among runs that met every limit so far.
+spent. The history records, per run, the true and the measured responses,
+whether it broke a limit (by the true responses) and the best measured
+objective among runs whose measured responses met every limit so far.
+
+A planning step that proposes nothing (no candidate passed the screen) or
+whose objective model cannot be fitted ends the campaign early: a lab
+would stop there too. The history says so (``stalled``, ``message``).
 """
 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from .designs import starting_design
+from .errors import ModelError
 from .protocol import Protocol
 from .runs import RunsTable
 from .step import plan_step, within_limit
 
-__all__ = ["CampaignHistory", "runs_table_from_arrays", "run_campaign"]
+__all__ = ["CampaignHistory", "runs_table_from_arrays", "run_campaign", "best_so_far", "start_runs"]
 
 
 @dataclass(frozen=True)
@@ -32,9 +38,13 @@ class CampaignHistory:
     Y : dict of response -> array (n_runs,)  (measured, noise included)
     planned : bool array (n_runs,)  False for the starting runs
     broke_limit : bool array (n_runs,)  by the *true* (noise-free) responses
-    best_safe : array (n_runs,)  best measured objective among safe runs so far (NaN before any)
+    best_safe : array (n_runs,)  best measured objective among runs whose
+        measured responses met every limit, so far (NaN before any)
     promised : array (n_runs,)  joint figure the screen promised for planned runs (NaN for starts)
     stalled : bool  True when a step proposed nothing before the budget was spent
+    T : dict of response -> array (n_runs,)  true responses
+    modes : tuple of str  the mode of each planning step ("improve", "feasibility-first")
+    message : str  why the campaign stopped early ("" when it did not)
     """
 
     X: np.ndarray
@@ -44,6 +54,9 @@ class CampaignHistory:
     best_safe: np.ndarray
     promised: np.ndarray
     stalled: bool
+    T: dict = field(default_factory=dict)
+    modes: tuple = ()
+    message: str = ""
 
     @property
     def share_broken_planned(self) -> float:
@@ -70,11 +83,58 @@ def runs_table_from_arrays(protocol: Protocol, X: np.ndarray, Y: dict) -> RunsTa
 
 
 def _broke(protocol: Protocol, truth: dict) -> np.ndarray:
-    n = len(next(iter(truth.values())))
+    n = len(np.asarray(truth[protocol.objective.name]))
     ok = np.ones(n, dtype=bool)
     for lim in protocol.limits:
         ok &= within_limit(np.asarray(truth[lim.name], float), lim)
     return ~ok
+
+
+def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
+    """Running best objective among runs whose values in ``Y`` meet every limit.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    Y : dict of response -> array (n_runs,)
+
+    Returns
+    -------
+    ndarray of shape (n_runs,)
+        NaN until the first run that meets every limit.
+    """
+    y = np.asarray(Y[protocol.objective.name], dtype=float)
+    ok = ~_broke(protocol, Y) & np.isfinite(y)
+    sign = -1.0 if protocol.maximize else 1.0
+    best = np.full(y.shape[0], np.nan)
+    current = np.nan
+    for i in range(y.shape[0]):
+        if ok[i] and (np.isnan(current) or sign * y[i] < sign * current):
+            current = y[i]
+        best[i] = current
+    return best
+
+
+def start_runs(protocol: Protocol, n_start: int, *, rng) -> np.ndarray:
+    """Starting runs of a campaign, shape (n_start, n_factors).
+
+    From :func:`planner.designs.starting_design`, inside the protocol's
+    starting region when it declares one.
+    """
+    space = protocol.design_space()
+    region = protocol.start_rows()
+    mixture = [k for k, f in enumerate(protocol.factors) if f.kind == "component"] or None
+    X, _ = starting_design(space, n_start, rng=rng, mixture_indices=mixture,
+                           region=None if region is None else region[:2])
+    return X
+
+
+def _gaussian(noise: dict, protocol: Protocol):
+    def measure(truth, rng):
+        return {r: np.asarray(truth[r], float)
+                + (rng.normal(0.0, noise[r], len(truth[r])) if noise.get(r) else 0.0)
+                for r in protocol.response_names}
+    return measure
 
 
 def run_campaign(
@@ -86,6 +146,8 @@ def run_campaign(
     seed: int,
     noise: dict | None = None,
     X_start: np.ndarray | None = None,
+    measure=None,
+    pool_size: int | None = None,
 ) -> CampaignHistory:
     """Run one simulated campaign.
 
@@ -96,63 +158,65 @@ def run_campaign(
     evaluate : callable
         ``evaluate(X) -> dict[str, ndarray]`` true responses.
     n_start : int
-        Starting runs (from :func:`planner.designs.starting_design`, inside
-        the protocol's starting region when it declares one).
+        Starting runs (from :func:`start_runs`); ignored when ``X_start`` is given.
     budget : int
         Planned runs after the start.
     seed : int
     noise : dict, optional
-        Measurement noise sd per response.
-    X_start : array, optional
-        Use these starting runs instead of making a design.
+        Gaussian measurement noise sd per response (ignored when ``measure`` is given).
+    X_start : array of shape (n_start, n_factors), optional
+        Use these starting runs instead of making a design (not modified).
+    measure : callable, optional
+        ``measure(truth, rng) -> dict`` of measured values, e.g.
+        :meth:`planner.problems.Problem.measure`; default Gaussian ``noise``.
+    pool_size : int, optional
+        Candidate pool size of every step (default the protocol's).
+
+    Returns
+    -------
+    CampaignHistory
     """
     rng = np.random.default_rng(seed)
-    noise = noise or {}
-    space = protocol.design_space()
+    if measure is None:
+        measure = _gaussian(noise or {}, protocol)
     if X_start is None:
-        region = protocol.start_rows()
-        mixture = [k for k, f in enumerate(protocol.factors) if f.kind == "component"] or None
-        X_start, _ = starting_design(space, n_start, rng=rng, mixture_indices=mixture,
-                                     region=None if region is None else region[:2])
-    X = np.asarray(X_start, dtype=float)
+        X_start = start_runs(protocol, n_start, rng=rng)
+    X = np.array(X_start, dtype=float)
 
-    def measure(Xn):
-        truth = evaluate(Xn)
-        meas = {r: np.asarray(truth[r], float) + (rng.normal(0, noise[r], Xn.shape[0]) if noise.get(r) else 0.0)
-                for r in protocol.response_names}
-        return truth, meas
+    def lab(Xn):
+        truth = {r: np.asarray(v, dtype=float) for r, v in evaluate(Xn).items()}
+        return truth, measure(truth, rng)
 
-    truth, Y = measure(X)
-    broke = list(_broke(protocol, truth))
+    T, Y = lab(X)
     planned = [False] * X.shape[0]
     promised = [np.nan] * X.shape[0]
-    stalled = False
+    stalled, message, modes = False, "", []
+    warm: dict = {}
     step = 0
     while sum(planned) < budget:
         runs = runs_table_from_arrays(protocol, X, Y)
         k = min(protocol.batch.size, budget - sum(planned))
-        result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k)
+        try:
+            result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k,
+                               warm_start=warm, pool_size=pool_size)
+        except ModelError as exc:
+            stalled, message = True, f"step {step + 1}: {exc}"
+            break
         step += 1
+        modes.append(result.mode)
+        warm = result.hyperparameters()
         if not result.proposals:
-            stalled = True
+            stalled, message = True, f"step {step}: no candidate passed the safety screen"
             break
         Xn = np.array([p.x for p in result.proposals])
-        t, m = measure(Xn)
+        t, m = lab(Xn)
         X = np.vstack([X, Xn])
-        Y = {r: np.concatenate([Y[r], m[r]]) for r in Y}
-        broke += list(_broke(protocol, t))
+        Y = {r: np.concatenate([Y[r], m[r]]) for r in protocol.response_names}
+        T = {r: np.concatenate([T[r], t[r]]) for r in protocol.response_names}
         planned += [True] * Xn.shape[0]
         promised += [p.joint for p in result.proposals]
-    best = np.full(X.shape[0], np.nan)
-    y = Y[protocol.objective.name]
-    sign = -1.0 if protocol.maximize else 1.0
-    current = np.nan
-    measured_ok = ~_broke(protocol, {r: Y[r] for r in protocol.limit_names}) if protocol.limits else np.ones(X.shape[0], bool)
-    for i in range(X.shape[0]):
-        if measured_ok[i] and np.isfinite(y[i]) and (np.isnan(current) or sign * y[i] < sign * current):
-            current = y[i]
-        best[i] = current
     return CampaignHistory(
-        X=X, Y=Y, planned=np.array(planned), broke_limit=np.array(broke), best_safe=best,
-        promised=np.array(promised, dtype=float), stalled=stalled,
+        X=X, Y=Y, planned=np.array(planned), broke_limit=_broke(protocol, T),
+        best_safe=best_so_far(protocol, Y), promised=np.array(promised, dtype=float),
+        stalled=stalled, T=T, modes=tuple(modes), message=message,
     )

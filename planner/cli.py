@@ -346,6 +346,81 @@ def report(
         raise typer.Exit(EXIT_VERIFY)
 
 
+# ---------------------------------------------------------------- simulate
+@app.command()
+@_guarded
+def simulate(
+    protocol: Optional[str] = typer.Argument(
+        None, help="Protocol whose planner settings are simulated (threshold, joint, ranking, batch, "
+                   "pool); '-' uses the problem's own."),
+    problem: str = typer.Option(..., "--problem", "-p", help="Test problem: gramacy, tablet, dose or coating."),
+    budget: Optional[int] = typer.Option(None, "--budget", "-b", min=1, max=10000,
+                                         help="Planned runs per campaign (default: the problem's)."),
+    seeds: int = typer.Option(5, "--seeds", "-s", min=1, max=10000, help="Campaigns per strategy."),
+    start: Optional[int] = typer.Option(None, "--start", min=3, max=10000,
+                                        help="Starting runs per campaign (default: the problem's)."),
+    noise: list[str] = typer.Option([], "--noise", help="Measurement noise: a scale of the problem's "
+                                    "noise (0 off, 1 as stated) or NAME=SD; repeat for several."),
+    workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1, max=256,
+                                          help="Worker processes (default: min(2, CPUs))."),
+    strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
+                                   "bound, mean, random, classical, screen-off; or all."),
+    seed: int = typer.Option(0, "--seed", min=0, max=2**63 - 1, help="Base seed."),
+    pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000,
+                                       help="Candidate pool of every planning step (default: the settings')."),
+    settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
+                                               help="Use the problem's own planner settings (same as '-')."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Also write the CSV to this file."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Simulate campaigns on a test problem: what the protocol's settings cost and risk."""
+    import time
+
+    from .simulate import OptionError, simulate_from_options
+
+    if protocol is None and not settings_from_problem:
+        raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",
+                                 param_hint="PROTOCOL")
+    if protocol not in (None, "-") and settings_from_problem:
+        raise typer.BadParameter("give either a settings protocol or --settings-from-problem, not both",
+                                 param_hint="PROTOCOL")
+    show = sys.stdout.isatty() and sys.stderr.isatty()
+    bar: dict = {}
+
+    def progress(done: int, total: int) -> None:
+        if not show:
+            return
+        if "bar" not in bar:
+            bar["bar"] = typer.progressbar(length=total, label="simulating", file=sys.stderr)
+            bar["bar"].__enter__()
+        bar["bar"].update(1)
+
+    began = time.perf_counter()
+    try:
+        result = simulate_from_options(problem, None if settings_from_problem else protocol,
+                                       budget=budget, seeds=seeds, start=start, noise_values=noise,
+                                       strategies=strategies, workers=workers, seed=seed,
+                                       pool_size=pool, progress=progress)
+    except OptionError as exc:
+        raise typer.BadParameter(str(exc)) from None
+    finally:
+        if "bar" in bar:
+            bar["bar"].__exit__(None, None, None)
+    csv_text = result.csv_text()
+    if out is not None:
+        atomic_write_text(out, csv_text)
+    if format is Format.json:
+        typer.echo(_json(result.to_dict()))
+    elif format is Format.csv:
+        typer.echo(csv_text, nl=False)
+    else:
+        typer.echo(result.table_text())
+        typer.echo(_cautions_block(result.cautions()))
+    n = sum(len(v) for k, v in result.histories.items() if k not in result.same_as)
+    _err(f"simulated {n} campaigns in {time.perf_counter() - began:.1f} s with {result.workers} worker(s)"
+         + (f"; wrote {out}" if out is not None else ""))
+
+
 # -------------------------------------------------------------------- demo
 @app.command()
 @_guarded

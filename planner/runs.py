@@ -508,16 +508,21 @@ def _number(value: object, decimal: str | None) -> tuple[float | None, str | Non
     s = str(value).strip()
     if not s:
         return None, None
+    v = None
     if decimal == "." and _NUM_DOT.match(s):
-        return float(s), None
-    if decimal == "," and _NUM_COMMA.match(s):
-        return float(s.replace(",", ".")), None
-    if decimal is None:
+        v = float(s)
+    elif decimal == "," and _NUM_COMMA.match(s):
+        v = float(s.replace(",", "."))
+    elif decimal is None:
         if re.fullmatch(rf"[+-]?[0-9]+{_EXP}", s):
-            return float(s), None
-        if _NUM_DOT.match(s) or _NUM_COMMA.match(s):
+            v = float(s)
+        elif _NUM_DOT.match(s) or _NUM_COMMA.match(s):
             return None, ""
-    return None, _why_not_number(s, decimal)
+    if v is None:
+        return None, _why_not_number(s, decimal)
+    if not math.isfinite(v):  # "1e400" reads as infinity
+        return None, f"{s!r} is too large to be a finite number"
+    return v, None
 
 
 def _why_not_number(s: str, decimal: str | None) -> str:

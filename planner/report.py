@@ -545,6 +545,16 @@ def _svg_inline(data: bytes, prefix: str, label: str) -> str:
     ids = set(re.findall(r'\bid="([^"]+)"', text))
     text = _SVG_ID.sub(lambda m: m.group(1) + (f"{prefix}-{m.group(2)}" if m.group(2) in ids else m.group(2)),
                        text)
+    # matplotlib gives identical images (two colour bars of one map) the same id: number
+    # the repeats, so that every id in the page is unique (references keep the first)
+    seen: dict[str, int] = {}
+
+    def unique(m: re.Match) -> str:
+        n = seen.get(m.group(1), 0)
+        seen[m.group(1)] = n + 1
+        return m.group(0) if n == 0 else f'id="{m.group(1)}-{n}"'
+
+    text = re.sub(r'\bid="([^"]+)"', unique, text)
     label = (label.replace("&", "&amp;").replace('"', "&quot;").replace("<", "&lt;").replace(">", "&gt;"))
     return text.replace("<svg", f'<svg role="img" aria-label="{label}"', 1).strip()
 
@@ -1013,7 +1023,7 @@ def _prob(p, required: float | None = None) -> str:
     return repr(p)
 
 
-def _near_miss_rows(result: PlanResult) -> list[dict]:
+def _near_miss_rows(result: PlanResult, shown: Sequence[str]) -> list[dict]:
     p = result.protocol
     out = []
     groups: dict[tuple, dict] = {}
@@ -1025,18 +1035,18 @@ def _near_miss_rows(result: PlanResult) -> list[dict]:
             for lim in p.limits:
                 v = d["p"].get(lim.name)
                 if v is not None and v < lim.probability:
-                    what = f"limit {lim.name}"
-                    value, required = _prob(v, lim.probability), f"{lim.probability:g}"
-                    gap = f"short by {_fmt(lim.probability - v, 3)}"
+                    what = lim.name
+                    value, required = _prob(v, lim.probability), f"≥ {lim.probability:g}"
+                    gap = f"-{_fmt(lim.probability - v, 3)}"
                     break
         elif reason == "joint-below-threshold":
-            what = f"joint figure ({p.screen.joint})"
-            value, required = _prob(d["joint"], p.screen.threshold), f"{p.screen.threshold:g}"
-            gap = f"short by {_fmt(p.screen.threshold - d['joint'], 3)}"
+            what = "joint figure"
+            value, required = _prob(d["joint"], p.screen.threshold), f"≥ {p.screen.threshold:g}"
+            gap = f"-{_fmt(p.screen.threshold - d['joint'], 3)}"
         elif reason == "step-too-large" and d["step"] is not None and p.screen.max_step is not None:
-            what = "step from the nearest safe run"
-            value, required = _fmt(d["step"]), f"<= {p.screen.max_step:g}"
-            gap = f"over by {_fmt(d['step'] - p.screen.max_step, 3)}"
+            what = "step"
+            value, required = _fmt(d["step"]), f"≤ {p.screen.max_step:g}"
+            gap = f"+{_fmt(d['step'] - p.screen.max_step, 3)}"
         elif reason == "forbidden-region":
             names = [r.name for r in p.screen.forbidden if r.name in d["detail"]]
             what = "forbidden region " + (names[0] if names else "")
@@ -1047,7 +1057,7 @@ def _near_miss_rows(result: PlanResult) -> list[dict]:
             continue
         row = {
             "candidates": [d["candidate"]],
-            "x": [_fmt(d["x"][n]) for n in p.factor_names],
+            "x": [_fmt(d["x"][n]) for n in shown],
             "reason": reason,
             "what": what,
             "value": value,
@@ -1216,6 +1226,7 @@ def build_report(
     count_rows += [{"rule": r, "count": counts[r], "text": _REASON_TEXT.get(r, r)} for r in REASONS]
     model_rows, model_warnings = _model_rows(result)
     fixed = [f"{f.name} = {_fmt(float(geo.ranges[j, 0]))}" for j, f in enumerate(p.factors) if not geo.free[j]]
+    free_names = [f.name for j, f in enumerate(p.factors) if geo.free[j]]
     kind = p.study.kind
     inc = result.incumbent
     context = {
@@ -1254,7 +1265,8 @@ def build_report(
         "notes": notes,
         "counts": count_rows,
         "n_candidates": n_cand,
-        "near_misses": _near_miss_rows(result),
+        "near_misses": _near_miss_rows(result, free_names),
+        "free_names": free_names,
         "models": model_rows,
         "model_warnings": model_warnings,
         "fixed": fixed,
@@ -1400,6 +1412,18 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
     plans = [r for r in records if r["kind"] == "plan"]
     if not plans:
         raise VerificationError(f"{log}: the log holds no plan record, so there is nothing to report")
+    if map_factors is not None:  # refuse a bad --map before the (slow) re-runs
+        from .protocol import load_protocol
+
+        for rec in plans:
+            pf = rec["body"]["protocol_file"]
+            copy = folder / pf["copy"]
+            if not copy.is_file() or hashlib.sha256(copy.read_bytes()).hexdigest() != pf["sha256"]:
+                continue  # rerun_record names the missing or altered copy
+            names = load_protocol(copy).factor_names
+            for n in map_factors:
+                if n not in names:
+                    raise ProtocolError(f"--map: unknown factor {n!r}; the factors are: " + ", ".join(names))
     head, count = ledger.head_and_count(log)
     superseded = _supersession(records)
     out = []

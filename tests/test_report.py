@@ -1,0 +1,401 @@
+"""The HTML report: content, self-containment, escaping, geometry of the plots, a real browser."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+from typer.testing import CliRunner
+
+from planner.cli import app
+from planner.report import map_data, slice_data
+from planner.workflow import LOG_NAME, rerun_record, run_plan
+from safety import ledger
+from safety.cautions import DOSE, cautions_for
+from safety.screen import REASONS, limit_probability
+
+from conftest import PROTOCOLS
+
+POOL = "300"
+runner = CliRunner()
+
+
+def _invoke(args):
+    result = runner.invoke(app, [str(a) for a in args])
+    return result
+
+
+# ----------------------------------------------------------- page structure
+class _Sections(HTMLParser):
+    """Text and element counts per <section id=...> of a page, and the order of sections."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.order: list[str] = []
+        self.text: dict[str, list[str]] = {}
+        self.tags: dict[str, dict[str, int]] = {}
+        self._stack: list[str | None] = []
+        self._depth = 0
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        if tag == "section":
+            sid = attrs.get("id", "")
+            self.order.append(sid)
+            self.text.setdefault(sid, [])
+            self.tags.setdefault(sid, {})
+            self._stack.append(sid)
+        current = next((s for s in reversed(self._stack) if s), None)
+        if current is not None:
+            self.tags[current][tag] = self.tags[current].get(tag, 0) + 1
+
+    def handle_endtag(self, tag):
+        if tag == "section" and self._stack:
+            self._stack.pop()
+
+    def handle_data(self, data):
+        current = next((s for s in reversed(self._stack) if s), None)
+        if current is not None:
+            self.text[current].append(data)
+
+    def joined(self, sid: str) -> str:
+        return re.sub(r"\s+", " ", " ".join(self.text.get(sid, [])))
+
+
+def _sections(html: str) -> _Sections:
+    parser = _Sections()
+    parser.feed(html)
+    return parser
+
+
+def _exclusion_counts(path: Path) -> dict[str, int]:
+    """Candidates per outcome, read from the exclusion table the plan wrote (an independent path)."""
+    lines = [line for line in path.read_text(encoding="utf-8").splitlines() if not line.startswith("#")]
+    counts = {"survived": 0, **{r: 0 for r in REASONS}}
+    for row in csv.DictReader(io.StringIO("\n".join(lines))):
+        counts["survived" if row["status"] == "survived" else row["reason"]] += 1
+    return counts
+
+
+def _plan(protocol, runs, out, *extra):
+    result = _invoke(["plan", protocol, runs, "--out", out, "--pool", POOL, *extra])
+    assert result.exit_code == 0, result.output
+    return result
+
+
+@pytest.fixture(scope="module")
+def dose_campaign(tmp_path_factory):
+    out = tmp_path_factory.mktemp("dose")
+    _plan(PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv", out, "--report")
+    return out
+
+
+@pytest.fixture(scope="module")
+def tablet_campaign(tmp_path_factory):
+    out = tmp_path_factory.mktemp("tablet")
+    _plan(PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", out, "--report", "--count", "2")
+    return out
+
+
+def _only_plan(folder: Path) -> dict:
+    records = ledger.read_records(folder / LOG_NAME)
+    (rec,) = [r for r in records if r["kind"] == "plan"]
+    return rec
+
+
+@pytest.mark.parametrize("which", ["dose_campaign", "tablet_campaign"], ids=["dose", "tablet"])
+def test_report_lists_everything_with_cautions_first(which, request):
+    folder = request.getfixturevalue(which)
+    rec = _only_plan(folder)
+    body = rec["body"]
+    label = body["step_label"]
+    html = (folder / f"report-{label}.html").read_text(encoding="utf-8")
+    page = _sections(html)
+
+    # the cautions come first, before any table or plot, and all of them
+    assert page.order[0] == "cautions"
+    assert html.index('id="cautions"') < html.index("<table") < html.index("<svg")
+    kind = "dose" if "dose" in which else "formulation"
+    caution_text = page.joined("cautions")
+    for c in cautions_for(kind):
+        assert c in caution_text
+    if kind == "dose":
+        assert all(c in caution_text for c in DOSE)
+
+    # fingerprints and the log's head and count
+    head, count = ledger.head_and_count(folder / LOG_NAME)
+    facts = page.joined("fingerprints")
+    for value in (body["protocol_fingerprint"], body["runs_file"]["sha256"], body["tool_version"],
+                  str(body["seed"]), head, f"{count} record", rec["hash"]):
+        assert value in facts
+
+    # every proposal, with all four ranking values as columns
+    batch = page.joined("batch")
+    assert body["proposals"], "the example protocols must propose runs"
+    for prop in body["proposals"]:
+        assert f"{label}-{prop['rank']:02d}" in batch
+    for column in ("ei", "pi", "bound", "mean", "joint"):
+        assert re.search(rf"\b{column}\b", batch)
+
+    # every near miss, and the counts as in the exclusion table the plan wrote
+    exclusions = page.joined("exclusions")
+    for miss in body["near_misses"]:
+        assert f"#{miss['candidate']}" in exclusions
+    counts = _exclusion_counts(folder / body["exclusion_table"]["file"])
+    assert counts == body["counts"]
+    for rule, n in counts.items():
+        assert re.search(rf"{re.escape(rule)} {n}\b", exclusions), (rule, n)
+
+    # one slice figure per proposal, the map, the model checks and the history; each also as PNG
+    n_figures = len(body["proposals"]) + 3
+    assert html.count("<svg") == n_figures
+    pngs = sorted((folder / f"figures-{label}").glob("*.png"))
+    assert len(pngs) == n_figures
+    for png in pngs:
+        with Image.open(png) as im:
+            im.verify()
+    assert sum(page.tags[s].get("svg", 0) for s in ("slices", "map", "models", "history")) == n_figures
+
+    # model checks: the coverage shown is the one recorded by the planning step
+    models = page.joined("models")
+    for m in body["models"]:
+        if m["loo_coverage"] is not None:
+            assert f"{100 * m['loo_coverage']:.0f}%" in models
+
+
+@pytest.mark.parametrize("which", ["dose_campaign", "tablet_campaign"], ids=["dose", "tablet"])
+def test_report_is_self_contained(which, request):
+    folder = request.getfixturevalue(which)
+    label = _only_plan(folder)["body"]["step_label"]
+    html = (folder / f"report-{label}.html").read_text(encoding="utf-8")
+    assert not re.search(r"""(?:src|href)\s*=\s*["']?\s*(?:https?:)?//""", html, re.I)
+    assert not re.search(r"<\s*(?:link|script|img|iframe|object|embed)\b", html, re.I)
+    assert "@import" not in html
+    # every url(...) and every href points inside the page (matplotlib embeds a colour bar
+    # as an inline PNG data URI, which is part of the page)
+    assert all(ref.startswith("#") for ref in re.findall(r"url\(\s*([^)\s]*)", html))
+    refs = re.findall(r"""href\s*=\s*["']([^"']*)""", html, re.I)
+    assert refs and all(ref.startswith(("#", "data:image/png;base64,")) for ref in refs)
+    # ids are unique, so that one plot's references cannot point into another plot
+    ids = re.findall(r'\bid="([^"]+)"', html)
+    assert len(ids) == len(set(ids))
+
+
+def test_report_from_the_folder_matches_the_one_made_with_the_plan(dose_campaign, tmp_path):
+    """`report DIR` re-runs the step from its recorded inputs and draws the same page."""
+    folder = tmp_path / "copy"
+    shutil.copytree(dose_campaign, folder)
+    label = _only_plan(folder)["body"]["step_label"]
+    made_with_plan = (folder / f"report-{label}.html").read_bytes()
+    result = _invoke(["report", folder])
+    assert result.exit_code == 0, result.output
+    assert (folder / f"report-{label}.html").read_bytes() == made_with_plan
+
+
+def test_report_says_when_the_rerun_differs_or_the_step_was_superseded(dose_campaign, tmp_path, monkeypatch):
+    folder = tmp_path / "copy"
+    shutil.copytree(dose_campaign, folder)
+    log = folder / LOG_NAME
+    ledger.append_record(log, "correction", {"note": "test"}, supersedes=0, reason="R04 was entered twice")
+    import planner.workflow as workflow
+
+    real = workflow.plan_step
+
+    def other_seed(protocol, runs, *, seed, **kw):  # a replay that does not reproduce the record
+        return real(protocol, runs, seed=seed + 1, **kw)
+
+    monkeypatch.setattr(workflow, "plan_step", other_seed)
+    result = _invoke(["report", folder, "--map", "dose_b,dose_a"])
+    assert result.exit_code == 5
+    assert "different plan table" in result.stderr
+    label = _only_plan(folder)["body"]["step_label"]
+    html = (folder / f"report-{label}.html").read_text(encoding="utf-8")
+    page = _sections(html)
+    assert page.order[:2] == ["cautions", "problems"]
+    problems = page.joined("problems")
+    assert "different plan table" in problems
+    assert "superseded by record 1" in problems and "R04 was entered twice" in problems
+    assert "Map over dose_b and dose_a" in html
+
+
+def test_report_refuses_an_unknown_map_factor(dose_campaign, tmp_path):
+    folder = tmp_path / "copy"
+    shutil.copytree(dose_campaign, folder)
+    result = _invoke(["report", folder, "--map", "dose_a,nonesuch"])
+    assert result.exit_code == 3
+    assert "--map: unknown factor 'nonesuch'" in result.stderr
+    result = _invoke(["report", folder, "--map", "dose_a"])
+    assert result.exit_code == 2
+
+
+def test_report_needs_a_decision_log(tmp_path):
+    result = _invoke(["report", tmp_path])
+    assert result.exit_code == 5
+    assert "no decision log" in result.stderr
+
+
+# ----------------------------------------------------------------- escaping
+MARKUP_FACTOR = "<script>alert(1)</script>"
+MATH_FACTOR = r"$\nosuchmacro$ & co"
+MARKUP_LIMIT = "<i>haze</i>"
+MARKUP_PROTOCOL = f"""
+seed = 11
+
+[study]
+title = 'Names <img src=x onerror=alert(2)> & "quotes"'
+version = "1"
+author = "<b>someone</b>"
+
+[[factors]]
+name = '{MARKUP_FACTOR}'
+kind = "continuous"
+lower = 0.0
+upper = 1.0
+
+[[factors]]
+name = '{MATH_FACTOR}'
+kind = "continuous"
+lower = 0.0
+upper = 1.0
+
+[objective]
+name = "y"
+direction = "maximize"
+
+[[limits]]
+name = '{MARKUP_LIMIT}'
+upper = 1.0
+probability = 0.8
+
+[screen]
+threshold = 0.7
+min_runs = 4
+
+[batch]
+size = 1
+pool = 300
+refine = 0
+"""
+
+
+def test_names_from_the_protocol_are_shown_as_text(tmp_path):
+    protocol = tmp_path / "markup.toml"
+    protocol.write_text(MARKUP_PROTOCOL, encoding="utf-8")
+    rng = np.random.default_rng(0)
+    X = rng.uniform(0.05, 0.95, size=(9, 2))
+    y = 10 * X[:, 0] + 5 * np.sin(3 * X[:, 1])
+    z = 0.3 + 0.5 * X[:, 0] * X[:, 1]
+    rows = [["run_id", MARKUP_FACTOR, MATH_FACTOR, "y", MARKUP_LIMIT]]
+    rows += [[f"R{i + 1}", *(f"{v:.4f}" for v in (*X[i], y[i], z[i]))] for i in range(len(y))]
+    runs = tmp_path / "runs.csv"
+    with runs.open("w", newline="", encoding="utf-8") as fh:
+        csv.writer(fh).writerows(rows)
+    out = tmp_path / "out"
+    _plan(protocol, runs, out, "--report")
+    label = _only_plan(out)["body"]["step_label"]
+    html = (out / f"report-{label}.html").read_text(encoding="utf-8")
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert "&lt;i&gt;haze&lt;/i&gt;" in html and "&lt;b&gt;someone&lt;/b&gt;" in html
+    assert "&lt;img src=x onerror=alert(2)&gt;" in html
+    assert not re.search(r"<\s*(?:script|img)\b", html, re.I)  # no such element anywhere
+    assert "<i>haze" not in html and "<b>someone" not in html
+    # the mathtext-looking name was drawn as plain text (matplotlib would reject it as TeX)
+    assert r"$\nosuchmacro$ &amp; co" in html
+
+
+# ----------------------------------------------------------- plot geometry
+@pytest.fixture(scope="module")
+def tablet_rerun(tablet_campaign):
+    return rerun_record(tablet_campaign / LOG_NAME, _only_plan(tablet_campaign)["index"])
+
+
+def test_mixture_slices_keep_the_total_and_pass_through_the_proposal(tablet_rerun):
+    result, _ = tablet_rerun
+    p = result.protocol
+    space = result.space
+    comp = np.array([f.kind == "component" for f in p.factors])
+    total = p.mixture.total
+    free = np.flatnonzero(space.free)
+    for prop in result.proposals:
+        for j in free:
+            sl = slice_data(result, prop.x, int(j))
+            assert sl.t.size >= 2, (prop.rank, p.factor_names[j])
+            assert np.all(space.contains(sl.X))
+            np.testing.assert_allclose(sl.X[:, comp].sum(axis=1), total, atol=1e-9)
+            np.testing.assert_allclose(sl.X[:, j], sl.t, atol=0)
+            # the slice goes through the proposal, where the models say what the table says
+            k = int(np.argmin(np.abs(sl.t - prop.x[j])))
+            np.testing.assert_allclose(sl.X[k], prop.x, atol=1e-12)
+            np.testing.assert_allclose(sl.mean[p.objective.name][k], prop.mean, rtol=1e-9, atol=1e-9)
+            for lim in p.limits:
+                pk = limit_probability(sl.mean[lim.name][k], sl.sd[lim.name][k], lower=lim.lower, upper=lim.upper)
+                np.testing.assert_allclose(pk, prop.p[lim.name], rtol=1e-9, atol=1e-12)
+            # only factor j and the components that keep the total move
+            still = ~comp.copy()
+            still[j] = False
+            assert np.all(sl.X[:, still] == prop.x[still])
+
+
+def test_mixture_map_keeps_the_total_and_masks_the_outside(tablet_rerun):
+    result, _ = tablet_rerun
+    p = result.protocol
+    names = p.factor_names
+    comp = np.array([f.kind == "component" for f in p.factors])
+    md = map_data(result, result.proposals[0].x, ("mcc", "force"), n=25)
+    X = md.X.reshape(-1, len(names))
+    inside = md.inside.ravel()
+    assert np.array_equal(inside, result.space.contains(X))
+    assert 0 < inside.sum() < inside.size
+    np.testing.assert_allclose(X[:, comp].sum(axis=1), p.mixture.total, atol=1e-9)
+    joint = md.joint.ravel()
+    assert np.all(np.isnan(joint[~inside])) and np.all(np.isfinite(joint[inside]))
+    assert np.all((joint[inside] >= 0) & (joint[inside] <= 1))
+    np.testing.assert_allclose(X[:, names.index("force")].reshape(md.inside.shape)[:, 0], md.gy)
+
+
+# ------------------------------------------------------------------ browser
+CHROMIUM = shutil.which("chromium") or ("/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+_CONSOLE = re.compile(r":CONSOLE[(:]|Uncaught", re.I)
+
+
+def _screenshot(page: Path, tmp_path: Path) -> tuple[np.ndarray, list[str]]:
+    shot = tmp_path / f"{page.stem}.png"
+    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync",
+           f"--user-data-dir={tmp_path / ('profile-' + page.stem)}", f"--screenshot={shot}",
+           "--window-size=1200,2000", "--hide-scrollbars", "--enable-logging=stderr", "--v=0",
+           page.resolve().as_uri()]
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    with Image.open(shot) as im:
+        pixels = np.asarray(im.convert("L"), dtype=float)
+    return pixels, [line for line in proc.stderr.splitlines() if _CONSOLE.search(line)]
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed; scripts/install_chromium.sh installs it")
+def test_report_loads_in_headless_chromium(tablet_campaign, tmp_path):
+    # the console check can fail: a page with a script error is caught
+    bad = tmp_path / "broken.html"
+    bad.write_text("<!DOCTYPE html><p>x</p><script>no_such_function();</script>", encoding="utf-8")
+    _, bad_console = _screenshot(bad, tmp_path)
+    assert any("no_such_function" in line for line in bad_console)
+
+    label = _only_plan(tablet_campaign)["body"]["step_label"]
+    pixels, console = _screenshot(tablet_campaign / f"report-{label}.html", tmp_path)
+    assert console == []
+    assert pixels.shape == (2000, 1200)
+    # not blank: a white page has no variance; text, tables and the caution box do
+    assert pixels.std() > 20
+    assert (pixels < 128).mean() > 0.01
+    # the caution box (a tinted band) is in the first screenful
+    top = pixels[:500]
+    assert np.any((top > 200) & (top < 250))

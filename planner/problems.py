@@ -489,7 +489,7 @@ def dose_protocol_dict() -> dict:
             {"name": "tox_rate", "upper": 0.25, "probability": 0.95, "unit": "fraction of cohort",
              "source": "example: a target toxicity rate of 25% (Conaway & Wages)"},
         ],
-        "screen": {"threshold": 0.95, "joint": "bound", "min_runs": 4, "max_step": 0.15},
+        "screen": {"threshold": 0.95, "joint": "bound", "min_runs": 4, "max_step": 0.1},
         "start": {"rules": ["dose_a <= 10", "dose_b <= 1"], "note": "low doses cleared for a start"},
         "ranking": {"rule": "ei"},
         "batch": {"size": 2, "pool": 2000, "refine": 0},

@@ -25,7 +25,7 @@ from __future__ import annotations
 import hashlib
 import io
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
@@ -98,6 +98,8 @@ MAP_ANNOTATE_MAX = 80
 PNG_DPI = 100
 #: A component within this share of its range from a bound counts as on the bound.
 BOUND_TOL = 1e-6
+#: A constraint row whose slope along a slice is smaller than this does not limit it.
+_SLOPE_TOL = 1e-15
 
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
 _RC = {
@@ -316,11 +318,7 @@ class _Geometry:
             rows.append((s.A_ub @ D, s.b_ub - s.A_ub @ base))
         lo, hi = -np.inf, np.inf
         for g, h in rows:
-            g = np.asarray(g, dtype=float)
-            h = np.asarray(h, dtype=float)
-            if g.ndim == 0:
-                g, h = g[None], h[None]
-            pos, neg = g > 1e-15, g < -1e-15
+            pos, neg = g > _SLOPE_TOL, g < -_SLOPE_TOL
             if np.any(pos):
                 hi = min(hi, float(np.min(h[pos] / g[pos])))
             if np.any(neg):
@@ -617,14 +615,18 @@ def _slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_i
         Line2D([], [], color=OKABE_ITO["vermillion"], ls="--", lw=1.4, label="limit"),
         Line2D([], [], marker="o", color=OKABE_ITO["black"], ls="none", label="run that met every limit"),
         Line2D([], [], marker="^", mfc="white", mec=OKABE_ITO["orange"], mew=1.3, ls="none",
-               label="run that missed a limit"),
+               label="run that missed (or lacks) a limit"),
         Line2D([], [], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], ls=":",
                label=f"proposal {run_id}"),
     ]
+    drop = set()
     if all(j in geo.levels for j in factors):
-        handles = [h for k, h in enumerate(handles) if k not in (0, 1)]
+        drop |= {0, 1}
     elif not any(j in geo.levels for j in factors):
-        handles.pop(2)
+        drop.add(2)
+    if np.all(safe | runs.pending):
+        drop.add(5)  # no run missed a limit
+    handles = [h for k, h in enumerate(handles) if k not in drop]
     legend_ncol = max(2, min(len(handles), int(W // 2.4)))
     top = _legend_rows(len(handles), legend_ncol) + 0.1
     block_h = len(responses) * ph + (len(responses) - 1) * hgap + xlab
@@ -770,8 +772,7 @@ def _edges(g: np.ndarray, discrete: bool) -> np.ndarray:
 
 
 def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanResult, x0: np.ndarray,
-                x0_what: str, pair: tuple[int, int], chosen_how: str, salt: str,
-                step_label: str) -> ReportFigure:
+                x0_what: str, pair: tuple[int, int], chosen_how: str, salt: str) -> ReportFigure:
     a, b = pair
     md = _map(geo, x0, a, b, MAP_POINTS)
     p = geo.protocol
@@ -878,7 +879,7 @@ def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanR
         Line2D([], [], color=OKABE_ITO["black"], lw=2.0, label=f"threshold {thr:g}")
         if cont else Patch(facecolor="#777777", edgecolor="white", hatch="///", label=f"below the threshold {thr:g}"),
         Line2D([], [], marker="o", mfc="white", mec="black", ls="none", label="run that met every limit"),
-        Line2D([], [], marker="^", mfc=OKABE_ITO["orange"], mec="black", ls="none", label="run that missed a limit"),
+        Line2D([], [], marker="^", mfc=OKABE_ITO["orange"], mec="black", ls="none", label="run that missed (or lacks) a limit"),
         Line2D([], [], marker="*", ms=12, color=OKABE_ITO["purple"], mec="white", ls="none",
                label="proposal (rank)"),
         Line2D([], [], marker="X", ms=8, color=OKABE_ITO["vermillion"], mec="white", ls="none",
@@ -978,7 +979,7 @@ def _history_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: P
     ax.scatter(k[ok & safe], y[ok & safe], marker="o", s=30, color=OKABE_ITO["blue"], zorder=3,
                label="run that met every limit")
     ax.scatter(k[ok & ~safe], y[ok & ~safe], marker="^", s=36, facecolor="white",
-               edgecolor=OKABE_ITO["orange"], linewidths=1.3, zorder=3, label="run that missed a limit")
+               edgecolor=OKABE_ITO["orange"], linewidths=1.3, zorder=3, label="run that missed (or lacks) a limit")
     if result.proposals:
         kk = n + np.arange(1, len(result.proposals) + 1)
         m = np.array([q.mean for q in result.proposals])
@@ -1212,7 +1213,7 @@ def build_report(
                     x0 = result.pool[int(np.argmax(geo.space.contains(result.pool)))]
                     x0_what = "a candidate inside the design space"
             map_fig = _map_figure(geo, runs, safe, result, np.asarray(x0, dtype=float), x0_what, pair,
-                                  chosen_how, salt, step_label)
+                                  chosen_how, salt)
         else:
             notes.append("No map: fewer than two factors can move in this design space.")
         loo_fig, loo_rows = _loo_figure(geo, salt)

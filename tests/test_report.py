@@ -18,7 +18,7 @@ from typer.testing import CliRunner
 
 from planner.cli import app
 from planner.report import map_data, slice_data
-from planner.workflow import LOG_NAME, rerun_record, run_plan
+from planner.workflow import LOG_NAME, rerun_record
 from safety import ledger
 from safety.cautions import DOSE, cautions_for
 from safety.screen import REASONS, limit_probability
@@ -196,9 +196,12 @@ def test_report_from_the_folder_matches_the_one_made_with_the_plan(dose_campaign
     shutil.copytree(dose_campaign, folder)
     label = _only_plan(folder)["body"]["step_label"]
     made_with_plan = (folder / f"report-{label}.html").read_bytes()
-    result = _invoke(["report", folder])
+    result = _invoke(["report", folder, "--format", "json"])
     assert result.exit_code == 0, result.output
     assert (folder / f"report-{label}.html").read_bytes() == made_with_plan
+    (entry,) = json.loads(result.stdout)
+    assert Path(entry["html"]) == folder / f"report-{label}.html" and entry["problems"] == []
+    assert len(entry["figures"]) == len(list((folder / f"figures-{label}").glob("*.png")))
 
 
 def test_report_says_when_the_rerun_differs_or_the_step_was_superseded(dose_campaign, tmp_path, monkeypatch):

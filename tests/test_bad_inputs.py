@@ -115,24 +115,46 @@ def _argv(case: dict, tmp_path: Path) -> tuple[list[str], Path, Path | None]:
     return [str(a) for a in argv] + list(case.get("options", [])), out, log
 
 
-def _run(argv: list[str], via: str) -> tuple[int, str, str]:
-    if via == "subprocess":
-        env = dict(os.environ, PYTHONPATH=str(ROOT))
-        env.pop("GUARDBAND_DEBUG", None)
-        proc = subprocess.run([sys.executable, "-m", "planner.cli", *argv], cwd=ROOT, env=env,
-                              capture_output=True, text=True, timeout=120)
-        return proc.returncode, proc.stdout, proc.stderr
+def _env() -> dict:
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    env.pop("GUARDBAND_DEBUG", None)
+    return env
+
+
+def _in_process(argv: list[str]) -> tuple[int, str, str]:
     res = CliRunner().invoke(app, argv)
     # an exception other than the exit itself is what a user would see as a traceback
     assert res.exception is None or isinstance(res.exception, SystemExit), repr(res.exception)
     return res.exit_code, res.stdout, res.stderr
 
 
-@pytest.mark.parametrize("case", CASES, ids=[_case_id(c) for c in CASES])
-def test_bad_input_is_refused_with_its_exit_code_and_message(case, tmp_path):
-    argv, out, log = _argv(case, tmp_path)
-    log_before = log.read_bytes() if log else None
-    code, stdout, stderr = _run(argv, case.get("via", "runner"))
+@pytest.fixture(scope="module")
+def fresh_processes(tmp_path_factory):
+    """The cases run as a user runs them, all started at once (they spend their time importing)."""
+    started = {}
+    for k, case in enumerate(CASES):
+        if case.get("via") == "subprocess":
+            argv, out, log = _argv(case, tmp_path_factory.mktemp(f"case{k}"))
+            before = log.read_bytes() if log else None
+            proc = subprocess.Popen([sys.executable, "-m", "planner.cli", *argv], cwd=ROOT, env=_env(),
+                                    stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+            started[k] = (proc, out, log, before)
+    results = {}
+    for k, (proc, out, log, before) in started.items():
+        stdout, stderr = proc.communicate(timeout=300)
+        results[k] = (proc.returncode, stdout, stderr, out, log, before)
+    return results
+
+
+@pytest.mark.parametrize("index", range(len(CASES)), ids=[_case_id(c) for c in CASES])
+def test_bad_input_is_refused_with_its_exit_code_and_message(index, tmp_path, request):
+    case = CASES[index]
+    if case.get("via") == "subprocess":
+        code, stdout, stderr, out, log, log_before = request.getfixturevalue("fresh_processes")[index]
+    else:
+        argv, out, log = _argv(case, tmp_path)
+        log_before = log.read_bytes() if log else None
+        code, stdout, stderr = _in_process(argv)
     assert code == case["exit"], stderr
     for fragment in case["message"]:
         assert fragment in stderr, f"{fragment!r} not in:\n{stderr}"
@@ -165,6 +187,6 @@ def test_corpus_is_complete():
 def test_good_corpus_bases_plan(tmp_path):
     # the bases the bad files were made from are themselves accepted
     for protocol, runs in (("good_blend.toml", "good_blend_runs.csv"), ("good_dose.toml", "good_dose_runs.csv")):
-        code, stdout, stderr = _run(["plan", str(HERE / protocol), str(HERE / runs),
-                                     "--out", str(tmp_path / protocol), "--seed", "5"], "runner")
+        code, stdout, stderr = _in_process(["plan", str(HERE / protocol), str(HERE / runs),
+                                            "--out", str(tmp_path / protocol), "--seed", "5"])
         assert code == 0, stderr

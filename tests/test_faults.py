@@ -1,6 +1,6 @@
 """Faults: a plan killed at any moment, and two plans at once, leave whole files and a valid log.
 
-The kill test is real: a ``guardband plan`` process is killed with SIGKILL.
+The kill test is real (50 trials): a ``guardband plan`` process is killed with SIGKILL.
 To afford many trials, a driver process (this file run as a script)
 imports the tool once and forks one child per trial; the child runs the
 command line's ``main()`` exactly as ``guardband plan`` does. Most kills
@@ -42,7 +42,7 @@ ROOT = Path(__file__).resolve().parents[1]
 HERE = Path(__file__).resolve().parent / "bad_inputs"
 PROTOCOL = HERE / "good_blend.toml"
 RUNS = HERE / "good_blend_runs.csv"
-N_TRIALS = 60
+N_TRIALS = 50
 #: the folder whose modification time marks the start of writing (the input
 #: copies are written first, each through a new temporary file there)
 WATCH = "inputs"

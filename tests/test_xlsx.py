@@ -301,3 +301,45 @@ def test_comment_lines_cannot_carry_a_formula_into_a_spreadsheet():
     text = write_csv_text([[1.0]], ["a"], comment_lines=["Guardband plan - Blend A,=1+1"])
     # what a spreadsheet sees: every line split at the delimiter
     assert_spreadsheet_safe(list(csv.reader(io.StringIO(text))))
+
+
+# ------------------------------------------------------------------ CSV as labs export it
+def _plain_table():
+    return read_runs(RUNS_CSV, PROTOCOL)
+
+
+def _variants() -> dict[str, tuple[bytes, dict]]:
+    text = RUNS_CSV.read_text(encoding="utf-8")
+    semi = text.replace(",", ";").replace(".", ",")
+    lines = text.splitlines()
+    spaced = "\n".join([",".join(f" {h}\u00a0" for h in lines[0].split(","))] + lines[1:]) + "\n"
+    return {
+        "utf8-bom": (b"\xef\xbb\xbf" + text.encode(), {}),
+        "crlf-and-blank-tail": ((text.replace("\n", "\r\n") + ",,,,,,,,,\r\n\r\n").encode(), {}),
+        "excel-semicolon-decimal-comma": (semi.encode(), {}),
+        "excel-sep-line": (("sep=;\n" + semi).encode(), {}),
+        "stated-semicolon-and-comma": (semi.encode(), {"delimiter": ";", "decimal": ","}),
+        "excel-unicode-text": (text.replace(",", "\t").encode("utf-16"), {}),  # UTF-16 with BOM, tabs
+        "tab-stated": (text.replace(",", "\t").encode(), {"delimiter": "tab"}),
+        "header-spaces-and-nbsp": (spaced.encode(), {}),
+        "comment-lines": (("# exported by the lab\n# 2026-03-01\n" + text).encode(), {}),
+    }
+
+
+@pytest.mark.parametrize("name", sorted(_variants()))
+def test_lab_exports_read_as_the_plain_csv(name):
+    raw, options = _variants()[name]
+    table = read_runs_bytes(raw, PROTOCOL, source="runs.csv", **options)
+    plain = _plain_table()
+    assert table.run_ids == plain.run_ids
+    np.testing.assert_array_equal(table.X, plain.X)
+    for r in PROTOCOL.response_names:
+        np.testing.assert_array_equal(table.Y[r], plain.Y[r])
+
+
+def test_a_wrongly_stated_delimiter_is_reported_not_guessed(tmp_path):
+    res = runner.invoke(app, ["plan", str(PROTOCOL_PATH), str(RUNS_CSV), "--out", str(tmp_path / "c"),
+                              "--delimiter", ";"])
+    assert res.exit_code == 4
+    assert "column A: unknown column 'run_id,filler,binder" in res.stderr
+    assert not (tmp_path / "c").exists()

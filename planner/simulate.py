@@ -64,6 +64,7 @@ same numbers.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import math
 import multiprocessing
@@ -506,6 +507,7 @@ class _Task:
     noise_scale: float
     noise: dict
     pool_size: int | None
+    X_start: np.ndarray | None  # the seed's starting runs (None for classical)
 
 
 def _seeds(base_seed: int, seed_index: int) -> tuple[np.random.Generator, int]:
@@ -518,11 +520,12 @@ def _seeds(base_seed: int, seed_index: int) -> tuple[np.random.Generator, int]:
 def _run_task(task: _Task) -> CampaignHistory:
     base = parse_protocol(task.base_protocol_data, source="simulation")
     measure = functools.partial(task.problem.measure, scale=task.noise_scale, noise=task.noise)
-    start_rng, seed = _seeds(task.base_seed, task.seed_index)
+    _, seed = _seeds(task.base_seed, task.seed_index)
     if task.key == "classical":
         return run_classical(task.problem, base, n_runs=task.n_start + task.budget,
-                             n_start=task.n_start, seed=seed, measure=measure)
-    X_start = start_runs(base, task.n_start, rng=start_rng)
+                             n_start=task.n_start, seed=seed, measure=measure,
+                             pool_size=task.pool_size or CLASSICAL_POOL)
+    X_start = task.X_start
     if task.key == "random":
         return run_random(task.problem, base, X_start=X_start, budget=task.budget, seed=seed,
                           measure=measure)
@@ -531,10 +534,15 @@ def _run_task(task: _Task) -> CampaignHistory:
                         seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size)
 
 
-def _run_one_thread(task: _Task) -> CampaignHistory:
+def _one_thread():
+    """One BLAS thread inside the block (as in the worker processes)."""
     if threadpool_limits is None:  # pragma: no cover
-        return _run_task(task)
-    with threadpool_limits(1):
+        return contextlib.nullcontext()
+    return threadpool_limits(1)
+
+
+def _run_one_thread(task: _Task) -> CampaignHistory:
+    with _one_thread():
         return _run_task(task)
 
 
@@ -841,7 +849,8 @@ def simulate(
     seed : int
         Base seed.
     pool_size : int, optional
-        Overrides the candidate pool of every planning step.
+        Overrides the candidate pool of every planning step and the pool of
+        the classical route (default :data:`CLASSICAL_POOL`).
     progress : callable, optional
         ``progress(done, total)`` after each finished campaign.
 
@@ -891,8 +900,13 @@ def simulate(
     unique = {}
     for st, (owner, data) in runs_as.items():
         unique.setdefault(owner, data)
+    starts = {}
+    if any(owner != "classical" for owner in unique):
+        with _one_thread():
+            # one starting design per seed, shared by every strategy but classical
+            starts = {s: start_runs(protocol, n_start, rng=_seeds(int(seed), s)[0]) for s in range(seeds)}
     tasks = [_Task(owner, s, problem, data, base, n_start, budget, int(seed), float(noise_scale),
-                   noise, pool_size)
+                   noise, pool_size, None if owner == "classical" else starts[s])
              for owner, data in unique.items() for s in range(seeds)]
     done: dict = {}
     total = len(tasks)

@@ -607,7 +607,9 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
     twice: set[str] = set()
     for j, cell in enumerate(rows[0]):
         letter = _column_letter(j)
-        name, unit = _split_header(_text_of(cell))
+        text = _text_of(cell)
+        # a name that itself ends in brackets ("x [1]") is taken whole
+        name, unit = (text, None) if text in known else _split_header(text)
         if not name:
             if any(j < len(r) and not _blank(r[j]) for r in rows[1:]):
                 problems.append(f"column {letter}{ref(0, j)} has values but no header")

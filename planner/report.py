@@ -67,6 +67,7 @@ __all__ = [
     "slice_data",
     "map_data",
     "default_map_factors",
+    "model_warnings",
 ]
 
 #: Okabe & Ito (2008), "Color universal design": eight colours that stay
@@ -592,7 +593,7 @@ def _runs_style():
     return (
         dict(marker="o", s=22, facecolor=OKABE_ITO["black"], edgecolor=OKABE_ITO["black"], linewidths=0.6,
              zorder=4),
-        dict(marker="^", s=28, facecolor="white", edgecolor=OKABE_ITO["orange"], linewidths=1.3, zorder=4),
+        dict(marker="^", s=28, facecolor="white", edgecolor=OKABE_ITO["vermillion"], linewidths=1.3, zorder=4),
     )
 
 
@@ -614,7 +615,7 @@ def _slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_i
         Line2D([], [], color=OKABE_ITO["blue"], marker="s", ls="none", label="discrete level, 95% bar"),
         Line2D([], [], color=OKABE_ITO["vermillion"], ls="--", lw=1.4, label="limit"),
         Line2D([], [], marker="o", color=OKABE_ITO["black"], ls="none", label="run that met every limit"),
-        Line2D([], [], marker="^", mfc="white", mec=OKABE_ITO["orange"], mew=1.3, ls="none",
+        Line2D([], [], marker="^", mfc="white", mec=OKABE_ITO["vermillion"], mew=1.3, ls="none",
                label="run that missed (or lacks) a limit"),
         Line2D([], [], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], ls=":",
                label=f"proposal {run_id}"),
@@ -797,8 +798,10 @@ def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanR
     panels = [(axes[0], caxes[0], J, f"joint figure ({p.screen.joint})", (0.0, 1.0)),
               (axes[1], caxes[1], O, f"{p.objective.name}: posterior mean", None)]
     for ax, cax, Z, label, lim in panels:
-        ax.set_facecolor("white")
         ax.grid(False)
+        # dotted background: what the map leaves blank lies outside the design space
+        ax.add_patch(Rectangle((0, 0), 1, 1, transform=ax.transAxes, facecolor="white", edgecolor="#b0b0b0",
+                               hatch="....", linewidth=0, zorder=-1))
         if Z.count() == 0:
             ax.text(0.5, 0.5, "no point of this map lies in the design space", transform=ax.transAxes,
                     ha="center", va="center")
@@ -860,7 +863,7 @@ def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanR
                        facecolor=OKABE_ITO["vermillion"], edgecolor="white", linewidths=0.8, zorder=5)
         for prop in result.proposals:
             qx, qy = _positions(geo, a, [prop.x[a]])[0], _positions(geo, b, [prop.x[b]])[0]
-            ax.plot([qx], [qy], marker="*", ms=15, color=OKABE_ITO["purple"], mec="white", mew=1.0,
+            ax.plot([qx], [qy], marker="*", ms=15, color=OKABE_ITO["purple"], mec="black", mew=0.9,
                     ls="none", zorder=6)
             ax.annotate(str(prop.rank), (qx, qy), xytext=(6, 5), textcoords="offset points",
                         fontsize=8.5, fontweight="bold", color="black",
@@ -880,13 +883,25 @@ def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanR
         if cont else Patch(facecolor="#777777", edgecolor="white", hatch="///", label=f"below the threshold {thr:g}"),
         Line2D([], [], marker="o", mfc="white", mec="black", ls="none", label="run that met every limit"),
         Line2D([], [], marker="^", mfc=OKABE_ITO["orange"], mec="black", ls="none", label="run that missed (or lacks) a limit"),
-        Line2D([], [], marker="*", ms=12, color=OKABE_ITO["purple"], mec="white", ls="none",
+        Line2D([], [], marker="*", ms=12, color=OKABE_ITO["purple"], mec="black", ls="none",
                label="proposal (rank)"),
         Line2D([], [], marker="X", ms=8, color=OKABE_ITO["vermillion"], mec="white", ls="none",
                label="near miss"),
     ]
     if np.any(md.forbidden & md.inside):
         handles.append(Patch(facecolor="white", edgecolor="black", hatch="xx", label="forbidden region"))
+    reached = md.joint[np.isfinite(md.joint)] >= thr
+    drop = set()
+    if reached.size == 0 or reached.all() or not reached.any():
+        drop.add(0)  # no threshold line or hatching is drawn
+    used = ~runs.pending
+    if not np.any(used & ~safe):
+        drop.add(2)
+    if not result.proposals:
+        drop.add(3)
+    if not result.near_misses():
+        drop.add(4)
+    handles = [h for k, h in enumerate(handles) if k not in drop]
     _legend_top(fig, handles, len(handles))
     names = p.factor_names
     moved = "; ".join(f"{names[k]} = {format_cell(float(x0[k]))}" for k in range(geo.d)
@@ -897,9 +912,13 @@ def _map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanR
     if geo.moves_in_proportion([a, b]):
         parts.append(f"The other free mixture components are scaled in proportion so that the total "
                      f"stays {geo.total:g}. " + _held_note(geo, x0, [a, b]))
-    parts.append("Blank areas lie outside the design space. Runs, proposals and near misses are projected "
+    parts.append("Dotted areas lie outside the design space. Runs, proposals and near misses are projected "
                  "onto these two factors: their other factors may differ from the map's.")
-    if cont:
+    if reached.size and reached.all():
+        parts.append(f"Every point of this map reaches the threshold {thr:g}.")
+    elif reached.size and not reached.any():
+        parts.append(f"No point of this map reaches the threshold {thr:g}.")
+    elif cont:
         parts.append(f"The black line is the threshold {thr:g}; a candidate must reach it to survive.")
     else:
         parts.append(f"Hatched cells are below the threshold {thr:g}.")
@@ -979,7 +998,7 @@ def _history_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: P
     ax.scatter(k[ok & safe], y[ok & safe], marker="o", s=30, color=OKABE_ITO["blue"], zorder=3,
                label="run that met every limit")
     ax.scatter(k[ok & ~safe], y[ok & ~safe], marker="^", s=36, facecolor="white",
-               edgecolor=OKABE_ITO["orange"], linewidths=1.3, zorder=3, label="run that missed (or lacks) a limit")
+               edgecolor=OKABE_ITO["vermillion"], linewidths=1.3, zorder=3, label="run that missed (or lacks) a limit")
     if result.proposals:
         kk = n + np.arange(1, len(result.proposals) + 1)
         m = np.array([q.mean for q in result.proposals])
@@ -1107,7 +1126,7 @@ _REASON_TEXT = {
 
 
 def _model_rows(result: PlanResult) -> tuple[list[dict], list[str]]:
-    rows, warnings = [], []
+    rows = []
     for m in result.models:
         cov = m.loo_coverage
         rows.append({
@@ -1115,6 +1134,26 @@ def _model_rows(result: PlanResult) -> tuple[list[dict], list[str]]:
             "coverage": "-" if cov is None else f"{100 * cov:.0f}%",
             "rmse": _fmt(m.loo_rmse), "message": m.message,
         })
+    return rows, model_warnings(result.models)
+
+
+def model_warnings(models) -> list[str]:
+    """Plain-words warnings about the fitted models.
+
+    Parameters
+    ----------
+    models : sequence of planner.step.ModelSummary
+
+    Returns
+    -------
+    list of str
+        One sentence per model that has no usable fit, that looks
+        miscalibrated (leave-one-out coverage below COVERAGE_WARNING with at
+        least COVERAGE_MIN_RUNS runs), or that rests on too few runs to judge.
+    """
+    warnings = []
+    for m in models:
+        cov = m.loo_coverage
         if m.status != "ok":
             warnings.append(f"The {m.role} {m.response!r} has no usable model ({m.status}: {m.message}); "
                             "it vouches for nothing, so the screen excludes every candidate it would judge.")
@@ -1127,7 +1166,7 @@ def _model_rows(result: PlanResult) -> tuple[list[dict], list[str]]:
         elif cov is not None and m.n_runs < COVERAGE_MIN_RUNS:
             warnings.append(f"The model of {m.response!r} rests on {m.n_runs} runs, too few to judge "
                             "its calibration from the leave-one-out check.")
-    return rows, warnings
+    return warnings
 
 
 def _environment() -> Environment:

@@ -17,7 +17,8 @@ from PIL import Image
 from typer.testing import CliRunner
 
 from planner.cli import app
-from planner.report import map_data, slice_data
+from planner.report import map_data, model_warnings, slice_data
+from planner.step import ModelSummary
 from planner.workflow import LOG_NAME, rerun_record
 from safety import ledger
 from safety.cautions import DOSE, cautions_for
@@ -102,7 +103,7 @@ def dose_campaign(tmp_path_factory):
 @pytest.fixture(scope="module")
 def tablet_campaign(tmp_path_factory):
     out = tmp_path_factory.mktemp("tablet")
-    _plan(PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", out, "--report", "--count", "2")
+    _plan(PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", out, "--report", "--count", "1")
     return out
 
 
@@ -402,3 +403,27 @@ def test_report_loads_in_headless_chromium(tablet_campaign, tmp_path):
     # the caution box (a tinted band) is in the first screenful
     top = pixels[:500]
     assert np.any((top > 200) & (top < 250))
+
+
+# ------------------------------------------------------------ model checks
+@pytest.mark.parametrize(
+    "coverage, n_runs, status, expected",
+    [
+        (0.5, 10, "ok", "looks miscalibrated: only 50%"),
+        (0.79, 8, "ok", "looks miscalibrated: only 79%"),
+        (0.5, 7, "ok", "too few to judge"),
+        (0.8, 8, "ok", None),  # at the line: no warning
+        (1.0, 14, "ok", None),
+        (None, 2, "too-few-runs", "has no usable model"),
+    ],
+    ids=["low", "just-below", "few-runs", "at-line", "good", "not-fitted"],
+)
+def test_model_warnings_follow_the_coverage_rule(coverage, n_runs, status, expected):
+    # trade practice: about 95% of measured values should fall inside a 95% predictive interval
+    summary = ModelSummary("impurity", "limit", n_runs, status, "", loo_coverage=coverage)
+    warnings = model_warnings([summary])
+    if expected is None:
+        assert warnings == []
+    else:
+        (text,) = warnings
+        assert expected in text and "'impurity'" in text

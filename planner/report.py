@@ -534,6 +534,14 @@ def _legend_rows(n: int, ncol: int) -> float:
 
 
 _SVG_ID = re.compile(r'(\bid="|href="#|url\(#)([^")]+)')
+_PATH_DATA = re.compile(r'(\sd=")([^"]*)"')
+_XY = re.compile(r'(\s[xy]=")([^"]*)"')
+_NUMBER = re.compile(r"-?\d+\.\d{3,}")
+
+
+def _round2(m: re.Match) -> str:
+    text = f"{float(m.group(0)):.2f}".rstrip("0").rstrip(".")
+    return "0" if text in ("-0", "") else text
 
 
 def _svg_inline(data: bytes, prefix: str, label: str) -> str:
@@ -541,6 +549,10 @@ def _svg_inline(data: bytes, prefix: str, label: str) -> str:
     text = data.decode("utf-8")
     text = text[text.index("<svg"):]
     text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)
+    # coordinates are in points: two decimals are far below what a screen shows, and the
+    # page is a third smaller
+    text = _PATH_DATA.sub(lambda m: m.group(1) + _NUMBER.sub(_round2, m.group(2)) + '"', text)
+    text = _XY.sub(lambda m: m.group(1) + _NUMBER.sub(_round2, m.group(2)) + '"', text)
     ids = set(re.findall(r'\bid="([^"]+)"', text))
     text = _SVG_ID.sub(lambda m: m.group(1) + (f"{prefix}-{m.group(2)}" if m.group(2) in ids else m.group(2)),
                        text)
@@ -565,7 +577,7 @@ def _finish(fig: Figure, name: str, title: str, caption: str, salt: str) -> Repo
         fig.savefig(svg, format="svg", metadata={"Date": None})
     fig.savefig(png, format="png", dpi=PNG_DPI)
     return ReportFigure(name, title, caption,
-                        _svg_inline(svg.getvalue(), f"{salt}-{name}", title), png.getvalue())
+                        _svg_inline(svg.getvalue(), name, title), png.getvalue())
 
 
 def _factor_label(geo: _Geometry, j: int, *, proportion: bool = False) -> str:
@@ -677,7 +689,7 @@ def _slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_i
             if mean is not None and at is not None:
                 ax.plot([x0], [mean[at]], marker="*", ms=11, color=OKABE_ITO["purple"],
                         mec=OKABE_ITO["black"], mew=0.7, ls="none", zorder=5)
-            ax.xaxis.set_major_locator(MaxNLocator(4))
+            ax.xaxis.set_major_locator(MaxNLocator(4 if ncols <= 3 else 3))
             ax.yaxis.set_major_locator(MaxNLocator(5))
             if sl.discrete:
                 ax.set_xticks(pos)

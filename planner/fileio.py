@@ -14,6 +14,7 @@ import hashlib
 import io
 import numbers
 import os
+import re
 import stat
 import tempfile
 from collections.abc import Iterable, Mapping, Sequence
@@ -345,6 +346,26 @@ def _format_cell(value: object, float_format: str | None) -> object:
     return str(value)  # complex and other numbers: as Python writes them
 
 
+_COMMENT_SPLIT = re.compile(r"([,;\t])")
+
+
+def _safe_comment(line: str) -> str:
+    """A comment line that stays harmless when a spreadsheet splits it into cells.
+
+    A spreadsheet does not know our ``#`` comments: it splits the line at
+    commas, semicolons or tabs. Every piece after such a separator that
+    would start a formula (after spaces) gets the same leading quote as a
+    data cell (OWASP CSV-injection advice), and double quotes become single
+    ones so that no piece can open a quoted cell running into the next line.
+    """
+    pieces = _COMMENT_SPLIT.split(line.replace('"', "'"))
+    for k in range(2, len(pieces), 2):
+        stripped = pieces[k].lstrip(" ")
+        if stripped.startswith(CSV_FORMULA_PREFIXES):
+            pieces[k] = pieces[k][: len(pieces[k]) - len(stripped)] + "'" + stripped
+    return "".join(pieces)
+
+
 def write_csv_text(
     rows: Iterable[Sequence[object] | Mapping[str, object]],
     header: Sequence[str],
@@ -391,7 +412,7 @@ def write_csv_text(
     buffer = io.StringIO()
     for line in comment_lines:
         for part in str(line).splitlines() or [""]:
-            buffer.write(f"# {part}".rstrip() + "\n")
+            buffer.write(_safe_comment(f"# {part}".rstrip()) + "\n")
     row_buffer = io.StringIO()
     # The csv module quotes a cell only for the characters of its own line
     # terminator, so with "\n" a bare carriage return inside a cell would be

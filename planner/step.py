@@ -29,7 +29,9 @@ The flow (see DESIGN.md):
 
 from __future__ import annotations
 
+import os
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -62,6 +64,8 @@ Z95 = 1.959963984540054
 LOCAL_SHARE = 0.25
 #: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
 MIN_SEPARATION = 0.01
+#: Threads that fit the response models side by side.
+FIT_WORKERS = min(2, os.cpu_count() or 1)
 #: Forward-difference step (unit-scaled) for the refinement's gradients.
 FD_STEP = 1e-6
 #: Local refinement aims this far inside each probability requirement.
@@ -366,16 +370,12 @@ def plan_step(
             f"{MIN_OBJECTIVE_RUNS} are needed to plan. Make a starting design with "
             "`guardband start` and measure it first"
         )
-    models: list[ModelSummary] = []
-    obj_model, summary = _fit(
-        obj.name, "objective", U_runs[m_obj], runs.Y[obj.name][m_obj],
-        prior_mean=None, restarts=protocol.model.restarts,
-        warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
-    )
-    models.append(summary)
-    if obj_model is None:
-        raise ModelError(f"the objective model for {obj.name!r} could not be fitted: {summary.message}")
-    limit_models = []
+    # The fits are independent: they run on FIT_WORKERS threads (the heavy
+    # LAPACK/BLAS parts release the GIL; BLAS itself stays on one thread, so
+    # each fit gives the same bits whichever thread runs it).
+    jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
+                 prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]))]
+    early: dict[int, ModelSummary] = {}
     for k, lim in enumerate(protocol.limits):
         mask = used & runs.measured(lim.name)
         n_lim = int(mask.sum())
@@ -383,16 +383,35 @@ def plan_step(
         prior = _prior_mean_for(lim)
         if n_lim < need:
             msg = f"{n_lim} measured run(s), the protocol requires at least {need}"
-            models.append(ModelSummary(lim.name, "limit", n_lim, "too-few-runs", msg, prior_mean=prior))
-            limit_models.append(None)
+            early[k] = ModelSummary(lim.name, "limit", n_lim, "too-few-runs", msg, prior_mean=prior)
             continue
-        model, summary = _fit(
-            lim.name, "limit", U_runs[mask], runs.Y[lim.name][mask],
-            prior_mean=prior, restarts=protocol.model.restarts,
-            warm=_warm(warm_start, lim.name), seed=_seed_of(children[3 + k]),
-        )
-        models.append(summary)
-        limit_models.append(model)
+        jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
+                         prior_mean=prior, warm=_warm(warm_start, lim.name),
+                         seed=_seed_of(children[3 + k]), k=k))
+
+    def run_job(job):
+        return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
+                    restarts=protocol.model.restarts, warm=job["warm"], seed=job["seed"])
+
+    if len(jobs) > 1 and FIT_WORKERS > 1:
+        with ThreadPoolExecutor(max_workers=FIT_WORKERS) as pool:
+            fitted = list(pool.map(run_job, jobs))
+    else:
+        fitted = [run_job(job) for job in jobs]
+    obj_model, summary = fitted[0]
+    models: list[ModelSummary] = [summary]
+    if obj_model is None:
+        raise ModelError(f"the objective model for {obj.name!r} could not be fitted: {summary.message}")
+    by_limit = {job["k"]: out for job, out in zip(jobs[1:], fitted[1:])}
+    limit_models = []
+    for k, lim in enumerate(protocol.limits):
+        if k in early:
+            models.append(early[k])
+            limit_models.append(None)
+        else:
+            model, summary = by_limit[k]
+            models.append(summary)
+            limit_models.append(model)
     for s in models:
         if s.status == "ok" and s.loo_coverage is not None and s.loo_coverage < 0.8 and s.n_runs >= 8:
             messages.append(
@@ -448,16 +467,24 @@ def plan_step(
                                             mean=lm_mu, sd=lm_sd))
         return U, mu, sd, lims
 
+    hard_cache: dict = {}
+
     def screen_of(X, U, lims):
-        inside = np.asarray(space.contains(X))
-        outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
-        forb, forb_detail = _forbidden_mask(protocol, X)
+        # the hard rules depend only on the points: computed once per pool
+        key = (id(X), X.shape[0])
+        if key not in hard_cache:
+            inside = np.asarray(space.contains(X))
+            outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
+            forb, forb_detail = _forbidden_mask(protocol, X)
+            hard_cache.clear()
+            hard_cache[key] = (X, inside, outside_detail, forb, forb_detail, step_distance(U, anchors))
+        _, inside, outside_detail, forb, forb_detail, step = hard_cache[key]
         return run_screen(
             inside=inside,
             outside_detail=outside_detail,
             forbidden=forb,
             forbidden_detail=forb_detail,
-            step=step_distance(U, anchors),
+            step=step,
             max_step=protocol.screen.max_step,
             step_basis=step_basis,
             limits=lims,
@@ -495,7 +522,7 @@ def plan_step(
     base_result, base_mu, base_sd = result, mu, sd
     values = all_values(mu, sd, inc_value, **rank_kw) if inc_value is not None else None
     chosen: list[int] = []
-    obj_f, lim_f = obj_model, list(limit_models)
+    obj_f = lim_f = None
     cur_result, cur_scores = result, scores
     fantasy_inc = inc_value
     too_close = np.zeros(X_pool.shape[0], dtype=bool)
@@ -518,24 +545,29 @@ def plan_step(
         u_new = U_pool[best : best + 1]
         # a batch never holds two runs closer than MIN_SEPARATION
         too_close |= step_distance(U_pool, u_new) < MIN_SEPARATION
+        if obj_f is None:  # posteriors over the pool, updated by rank one per pick
+            obj_f = obj_model.posterior_at(U_pool)
+            lim_f = [None if lm is None else lm.posterior_at(U_pool) for lm in limit_models]
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            f_mu, _ = obj_f.predict(u_new)
-            obj_f = obj_f.condition(u_new, f_mu)
+            f_mu = float(obj_f.mean_sd()[0][best])
+            obj_f.condition(best, f_mu)
             # kriging believer: the fantasised result also counts for the
             # incumbent, so the next pick must improve on it
             if fantasy_inc is not None:
-                v = float(f_mu[0])
-                fantasy_inc = max(fantasy_inc, v) if maximize else min(fantasy_inc, v)
-            new_lims = []
-            for lm in lim_f:
-                if lm is None:
-                    new_lims.append(None)
-                    continue
-                l_mu, _ = lm.predict(u_new)
-                new_lims.append(lm.condition(u_new, l_mu))
-            lim_f = new_lims
-            _, mu_f, sd_f, lims_f = predict_all(X_pool, obj_f, lim_f)
+                fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
+            for lp in lim_f:
+                if lp is not None:
+                    lp.condition(best, float(lp.mean_sd()[0][best]))
+            mu_f, sd_f = obj_f.mean_sd()
+            lims_f = []
+            for lim, lp, base in zip(protocol.limits, lim_f, lims):
+                if lp is None:
+                    lims_f.append(base)
+                else:
+                    m_, s_ = lp.mean_sd(include_noise=True)
+                    lims_f.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
+                                                  mean=m_, sd=s_))
         cur_result = screen_of(X_pool, U_pool, lims_f)
         cur_scores = scores_of(mu_f, sd_f, cur_result, fantasy_inc)
 

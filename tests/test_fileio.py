@@ -339,3 +339,11 @@ def test_csv_quotes_a_bare_carriage_return():
     # Found by the property test above: the csv module alone leaves "\r"
     # unquoted when rows end in "\n", and a reader then splits the row.
     assert write_csv_text([["x\ry", 1]], ["a", "b"]) == 'a,b\n"x\ry",1\n'
+
+
+def test_comment_pieces_after_separators_cannot_start_formulas():
+    from planner.fileio import write_csv_text
+
+    text = write_csv_text([[1]], ["a"], comment_lines=['title "x, =1+1; @SUM(A1)\t-2, +3, ok'])
+    first = text.splitlines()[0]
+    assert first == "# title 'x, '=1+1; '@SUM(A1)\t'-2, '+3, ok"

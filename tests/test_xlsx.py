@@ -293,9 +293,8 @@ def test_run_ids_that_look_like_formulas_are_kept_verbatim_as_data(tmp_path):
     assert table.run_ids[:4] == ("=R1", "+R2", "-R3", "@R4")
 
 
-@pytest.mark.xfail(strict=True, reason="planner/fileio.write_csv_text writes comment lines unquoted: a "
-                   "spreadsheet splits them at commas, and a cell after a comma may start with '='")
 def test_comment_lines_cannot_carry_a_formula_into_a_spreadsheet():
+    # a spreadsheet splits our "# ..." lines at commas; no piece may start a formula
     from planner.fileio import write_csv_text
 
     text = write_csv_text([[1.0]], ["a"], comment_lines=["Guardband plan - Blend A,=1+1"])

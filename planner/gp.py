@@ -859,8 +859,9 @@ class GaussianProcess:
 # Fitting
 
 
-def _bounds(n_factors: int, noise_floor: float) -> np.ndarray:
-    rows = [np.log(LENGTH_SCALE_BOUNDS)] * n_factors
+def _bounds(n_factors: int, noise_floor: float, length_scale_max: float | None = None) -> np.ndarray:
+    top = LENGTH_SCALE_BOUNDS[1] if length_scale_max is None else min(LENGTH_SCALE_BOUNDS[1], length_scale_max)
+    rows = [np.log([LENGTH_SCALE_BOUNDS[0], top])] * n_factors
     rows.append(np.log(SIGNAL_VARIANCE_BOUNDS))
     rows.append(np.log([noise_floor, NOISE_VARIANCE_MAX]))
     return np.array(rows)
@@ -914,14 +915,14 @@ def _search(X, z, starts, bounds, use_priors=True):
     return results
 
 
-def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True):
+def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, length_scale_max=None):
     """MAP (or maximum-likelihood) hyperparameters by L-BFGS-B from several starts.
 
     Returns ``(hyperparameters, notes, warn)``.
     """
     n, d = X.shape
     generator = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(0 if rng is None else rng)
-    bounds = _bounds(d, noise_floor)
+    bounds = _bounds(d, noise_floor, length_scale_max)
     starts = _starts(z, d, bounds, warm_start, n_restarts, generator)
     results = _search(X, z, starts, bounds, use_priors)
     finite = [r for r in results if math.isfinite(r.fun)]
@@ -939,7 +940,8 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True):
     at_upper = np.flatnonzero(best.x[:d] >= bounds[:d, 1] - 1e-8).tolist()
     if at_upper:
         notes.append(
-            f"length scale of factor(s) {at_upper} at the upper bound {LENGTH_SCALE_BOUNDS[1]:g} (no visible effect)"
+            f"length scale of factor(s) {at_upper} at the upper bound {math.exp(bounds[0, 1]):g}"
+            + (" (no visible effect)" if length_scale_max is None else " (capped)")
         )
     if best.x[d + 1] <= bounds[d + 1, 0] + 1e-8:
         notes.append(f"noise variance at its floor {noise_floor:g}")
@@ -959,6 +961,7 @@ def fit_gp(
     optimize: bool = True,
     hyperparameters: Hyperparameters | Mapping | None = None,
     use_priors: bool = True,
+    length_scale_max: float | None = None,
 ) -> GaussianProcess:
     """Fit a GP response model by maximum a posteriori hyperparameters.
 
@@ -987,6 +990,11 @@ def fit_gp(
         True: maximum a posteriori with the weak priors of this module.
         False: maximum likelihood within the same bounds (for comparisons,
         or many runs); with few runs it tends to be overconfident.
+    length_scale_max : float, optional
+        Upper search bound of every length scale (unit-cube units). A limit
+        model uses it so that its correlation with the runs fades within the
+        design range: far from the runs it returns to its prior mean (the
+        limit) instead of carrying a constant response everywhere.
 
     Returns
     -------
@@ -1043,8 +1051,10 @@ def fit_gp(
         origin = "the warm start" if warm_start is not None else "their prior centres"
         notes.insert(0, f"no search: hyperparameters from {origin}")
     else:
+        if length_scale_max is not None and not (length_scale_max > LENGTH_SCALE_BOUNDS[0]):
+            raise ModelError(f"length_scale_max must exceed {LENGTH_SCALE_BOUNDS[0]:g}; got {length_scale_max!r}")
         hp, search_notes, search_warn = _map_fit(
-            X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors)
+            X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors), length_scale_max
         )
         notes[:0] = search_notes
         warn = warn or search_warn

@@ -258,6 +258,16 @@ class ModelSettings(_Strict):
     """Gaussian-process fitting settings."""
 
     restarts: int = Field(default=4, ge=1, le=50)
+    limit_length_scale_max: float = Field(
+        default=0.4,
+        gt=0.01,
+        le=1000,
+        description=(
+            "largest length scale of a limit model, per sqrt(number of free factors) of the "
+            "unit-scaled design space (the unit of max_step), so that far from the runs the "
+            "model returns to the limit instead of extrapolating a flat response"
+        ),
+    )
 
 
 class StartRegion(_Strict):

@@ -249,7 +249,7 @@ def _loo_summary(model, y) -> tuple[float, float]:
     return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 
-def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed):
+def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None):
     try:
         model = fit_gp(
             U,
@@ -258,6 +258,7 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed):
             n_restarts=restarts,
             warm_start=warm,
             rng=seed,
+            length_scale_max=length_scale_max,
         )
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), "model-not-fitted", str(exc), prior_mean=prior_mean)
@@ -390,8 +391,17 @@ def plan_step(
                          seed=_seed_of(children[3 + k]), k=k))
 
     def run_job(job):
+        # a limit model's length scales are capped so that far from the runs
+        # it returns to its prior mean (the limit) rather than carry a flat
+        # response, e.g. a toxicity rate of 0 in every low-dose cohort, out
+        # to doses never tried
+        # (stated per sqrt(free factor), like max_step: typical distances in
+        # the unit cube grow with the square root of its dimension)
+        cap = (protocol.model.limit_length_scale_max * np.sqrt(max(int(scaler.free.sum()), 1))
+               if job["role"] == "limit" else None)
         return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
-                    restarts=protocol.model.restarts, warm=job["warm"], seed=job["seed"])
+                    restarts=protocol.model.restarts, warm=job["warm"], seed=job["seed"],
+                    length_scale_max=cap)
 
     if len(jobs) > 1 and FIT_WORKERS > 1:
         with ThreadPoolExecutor(max_workers=FIT_WORKERS) as pool:

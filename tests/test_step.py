@@ -151,3 +151,27 @@ def test_gramacy_campaign_reaches_published_optimum():
     assert best <= 0.5998 * 1.02
     assert best >= 0.5998 * 0.99  # cannot beat the known optimum by more than rounding
     assert history.share_broken_planned < 0.10
+
+
+def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose):
+    # every cohort so far (doses <= 10 and <= 2) had no dose-limiting
+    # toxicity; without the step rule, a model that carries that flat 0 out to
+    # 80 mg/kg would call the top dose safe. The capped limit length scale
+    # makes the model return to its prior mean (the limit) there instead.
+    p, runs = dose
+    data = p.model_dump(mode="python")
+    data["screen"]["max_step"] = None
+    data["screen"]["forbidden"] = []
+
+    def joint_at_top(cap):
+        data["model"]["limit_length_scale_max"] = cap
+        result = plan_step(parse_protocol(data), runs, seed=1, pool_size=POOL)
+        X = result.pool
+        top = np.flatnonzero((X[:, 0] == 80) & (X[:, 1] == 0))
+        assert top.size
+        return result.screen.joint[top[0]], result.screen.survives[top[0]]
+
+    joint, survives = joint_at_top(0.4)  # the default
+    assert joint < 0.9 and not survives
+    joint_uncapped, _ = joint_at_top(1000.0)  # what the cap prevents
+    assert joint_uncapped > joint

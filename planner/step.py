@@ -455,6 +455,11 @@ def plan_step(
         X_pool = np.vstack([X_pool, X_local])
         origin += ["local"] * X_local.shape[0]
     origin = np.array(origin, dtype=object)
+    # identical candidates (common when every factor is discrete) are kept
+    # once, in order of first appearance, so that each decision is listed once
+    _, first = np.unique(X_pool, axis=0, return_index=True)
+    keep = np.sort(first)
+    X_pool, origin = X_pool[keep], origin[keep]
 
     step_basis = "run that met every limit"
     anchors = U_runs[safe]

@@ -91,10 +91,10 @@ SIGNAL_VARIANCE_PRIOR = (0.0, 1.5)
 NOISE_VARIANCE_PRIOR = (math.log(1e-2), 2.0)
 #: Default lower bound of the noise variance (standardised units).
 NOISE_FLOOR = 1e-6
-#: Search bounds (not log) of each length scale.
-LENGTH_SCALE_BOUNDS = (1e-3, 1e3)
-#: Search bounds (not log) of the signal variance.
-SIGNAL_VARIANCE_BOUNDS = (1e-4, 1e4)
+#: Search bounds (not log) of each length scale (upper as scikit-learn's default).
+LENGTH_SCALE_BOUNDS = (1e-3, 1e5)
+#: Search bounds (not log) of the signal variance (upper as scikit-learn's default).
+SIGNAL_VARIANCE_BOUNDS = (1e-4, 1e5)
 #: Upper search bound (not log) of the noise variance.
 NOISE_VARIANCE_MAX = 10.0
 #: Iteration cap of one L-BFGS-B run.

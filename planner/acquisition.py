@@ -70,8 +70,8 @@ def _phi(z):
     return np.exp(-0.5 * z * z - _LOG_SQRT_2PI)
 
 
-def _improvement(mean, sd, incumbent, maximize):
-    """Checked, broadcast improvement ``u`` and ``sd``."""
+def _checked(mean, sd, incumbent=0.0):
+    """Checked float arrays ``mean``, ``sd``, ``incumbent``, broadcast to one shape."""
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
     inc = np.asarray(incumbent, dtype=float)
@@ -82,9 +82,14 @@ def _improvement(mean, sd, incumbent, maximize):
     if not np.all(np.isfinite(inc)):
         raise ValueError(f"incumbent must be finite; got {incumbent!r}")
     try:
-        mean, sd, inc = np.broadcast_arrays(mean, sd, inc)
+        return np.broadcast_arrays(mean, sd, inc)
     except ValueError:
         raise ValueError(f"mean {mean.shape}, sd {sd.shape} and incumbent {inc.shape} do not broadcast") from None
+
+
+def _improvement(mean, sd, incumbent, maximize):
+    """Improvement ``u`` over the incumbent, and ``sd`` (new arrays)."""
+    mean, sd, inc = _checked(mean, sd, incumbent)
     u = mean - inc if maximize else inc - mean
     return u, np.array(sd)
 
@@ -215,8 +220,8 @@ def confidence_bound(mean, sd, *, kappa: float = 2.0, maximize: bool = False) ->
     kappa = _finite(kappa, "kappa")
     if kappa < 0:
         raise ValueError(f"kappa must be >= 0; got {kappa!r}")
-    u, sd = _improvement(mean, sd, 0.0, True)  # u = mean: checks and broadcasts
-    return u + kappa * sd if maximize else u - kappa * sd
+    mean, sd, _ = _checked(mean, sd)
+    return mean + kappa * sd if maximize else mean - kappa * sd
 
 
 def posterior_mean(mean, *, maximize: bool = False) -> np.ndarray:

@@ -489,6 +489,9 @@ def dose_protocol_dict() -> dict:
             {"name": "tox_rate", "upper": 0.25, "probability": 0.95, "unit": "fraction of cohort",
              "source": "example: a target toxicity rate of 25% (Conaway & Wages)"},
         ],
+        # escalate cautiously: at most 0.1 (unit-scaled, per sqrt(factor)) from a
+        # dose combination that met the limit; with 0.2 the toxicity model,
+        # fitted to flat low-dose rates, promised safety it could not keep
         "screen": {"threshold": 0.95, "joint": "bound", "min_runs": 4, "max_step": 0.1},
         "start": {"rules": ["dose_a <= 10", "dose_b <= 1"], "note": "low doses cleared for a start"},
         "ranking": {"rule": "ei"},

@@ -622,24 +622,34 @@ class SimulationResult:
             ``best`` (NaN before a safe run), ``gap`` (inf before a safe run),
             ``broken`` (share of planned runs so far that broke a limit; NaN
             at k = 0), ``made`` (planned runs actually made by k, fewer than
-            k when a campaign stopped early).
+            k when a campaign stopped early), ``gap_true`` (the gap of the
+            *true* objective at the run the lab would pick, the best measured
+            among runs measured within every limit; equal to ``gap`` without
+            noise; inf before a safe run).
         """
         sign = -1.0 if self.protocol.maximize else 1.0
+        obj = self.protocol.objective.name
         B, S = self.budget, self.seeds
         best = np.full((S, B + 1), np.nan)
+        chosen_true = np.full((S, B + 1), np.nan)
         broken = np.full((S, B + 1), np.nan)
         made = np.zeros((S, B + 1), dtype=int)
         for s, h in enumerate(self.histories[strategy]):
             n_start = int((~h.planned).sum())
             n_planned = int(h.planned.sum())
+            chosen = _chosen_runs(self.protocol, h.Y) if obj in h.Y and obj in h.T else None
             for k in range(B + 1):
                 m = min(k, n_planned)
                 made[s, k] = m
-                best[s, k] = h.best_safe[n_start + m - 1] if n_start + m > 0 else np.nan
+                last = n_start + m - 1
+                best[s, k] = h.best_safe[last] if last >= 0 else np.nan
+                if chosen is not None and last >= 0 and chosen[last] >= 0:
+                    chosen_true[s, k] = h.T[obj][chosen[last]]
                 if m:
                     broken[s, k] = float(np.mean(h.broke_limit[n_start:n_start + m]))
         gap = np.where(np.isnan(best), np.inf, sign * (best - self.problem.optimum) + 0.0)  # no -0
-        return {"best": best, "gap": gap, "broken": broken, "made": made}
+        gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - self.problem.optimum) + 0.0)
+        return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true}
 
     def checkpoints(self) -> list[int]:
         """Planned-run counts shown in the table: 0, about a quarter, half, three quarters, all."""
@@ -655,6 +665,7 @@ class SimulationResult:
             tr = self.trajectories(st)
             for k in counts:
                 b, g, r = _quantiles(tr["best"][:, k]), _quantiles(tr["gap"][:, k]), _quantiles(tr["broken"][:, k])
+                gt = _quantiles(tr["gap_true"][:, k])
                 made = int(tr["made"][:, k].sum())
                 pooled = (float(np.nansum(tr["broken"][:, k] * tr["made"][:, k]) / made)
                           if made else float("nan"))
@@ -665,6 +676,7 @@ class SimulationResult:
                     "best_q25": b[0], "best_median": b[1], "best_q75": b[2],
                     "gap_q25": g[0], "gap_median": g[1], "gap_q75": g[2],
                     "broken_q25": r[0], "broken_median": r[1], "broken_q75": r[2],
+                    "gap_true_q25": gt[0], "gap_true_median": gt[1], "gap_true_q75": gt[2],
                     "broken_pooled": pooled,
                     "runs_made": made,
                     "no_safe_run": int(np.sum(np.isnan(tr["best"][:, k]))),
@@ -700,8 +712,8 @@ class SimulationResult:
 
     # -------------------------------------------------------------- output
     CSV_COLUMNS = ("strategy", "planned_runs", "seeds", "best_q25", "best_median", "best_q75",
-                   "gap_q25", "gap_median", "gap_q75", "broken_q25", "broken_median", "broken_q75",
-                   "broken_pooled", "runs_made", "no_safe_run")
+                   "gap_q25", "gap_median", "gap_q75", "gap_true_q25", "gap_true_median", "gap_true_q75",
+                   "broken_q25", "broken_median", "broken_q75", "broken_pooled", "runs_made", "no_safe_run")
 
     def description(self) -> list[str]:
         """Lines saying what was simulated (for comments and the terminal)."""
@@ -749,6 +761,12 @@ class SimulationResult:
                   _pct(r["broken_pooled"]),
                   f"{_pct(r['broken_median'])} [{_pct(r['broken_q25'])}, {_pct(r['broken_q75'])}]",
                   r["no_safe_run"], r["stalled"]] for r in final]
+        if self.noise_scale > 0:
+            # with noise the best measured value is flattered by luck; the true
+            # value at the run the lab would pick is the fair gap
+            head1.insert(3, "true gap at the chosen run")
+            for row, r in zip(rows1, final):
+                row.insert(3, band(r["gap_true_q25"], r["gap_true_median"], r["gap_true_q75"]))
         counts = self.checkpoints()
         by = {(r["strategy"], r["planned_runs"]): r for r in self.summary_rows(counts)}
         head2 = ["median gap after k planned runs"] + [f"k={k}" for k in counts]
@@ -783,6 +801,20 @@ class SimulationResult:
             "rows": [_finite(r) for r in self.summary_rows()],
             "cautions": list(self.cautions()),
         }
+
+
+def _chosen_runs(protocol: Protocol, Y: dict) -> np.ndarray:
+    """Index of the best measured run among those measured within every limit, per prefix (-1 before any)."""
+    y = np.asarray(Y[protocol.objective.name], dtype=float)
+    ok = ~_broke(protocol, Y) & np.isfinite(y)
+    sign = -1.0 if protocol.maximize else 1.0
+    out = np.full(y.shape[0], -1, dtype=int)
+    current = -1
+    for i in range(y.shape[0]):
+        if ok[i] and (current < 0 or sign * y[i] < sign * y[current]):
+            current = i
+        out[i] = current
+    return out
 
 
 def _finite(row: dict) -> dict:

@@ -264,6 +264,25 @@ def test_summary_medians_quartiles_and_shares():
     assert cal["promised_joint_mean"] == pytest.approx(0.9) and cal["observed_met_share"] == pytest.approx(0.5)
 
 
+def test_true_gap_equals_gap_without_noise(small):
+    for st in STRATEGIES:
+        tr = small.trajectories(st)
+        assert np.array_equal(tr["gap"], tr["gap_true"])
+
+
+def test_true_gap_is_taken_at_the_run_the_lab_would_pick():
+    res = simulate("tablet", None, budget=6, seeds=2, n_start=6, strategies=("random",), workers=1,
+                   noise_scale=3.0)
+    tr = res.trajectories("random")
+    opt = res.problem.optimum
+    for s, h in enumerate(res.histories["random"]):
+        ok = h.Y["degradant"] <= 0.2  # measured within the limit
+        j = np.flatnonzero(ok)[np.argmax(h.Y["dissolution"][ok])]
+        assert tr["gap_true"][s, -1] == pytest.approx(opt - h.T["dissolution"][j])
+        assert tr["gap"][s, -1] == pytest.approx(opt - h.Y["dissolution"][j])
+    assert "true gap at the chosen run" in res.table_text()
+
+
 def test_quantiles_agree_with_numpy_on_finite_values():
     v = np.random.default_rng(0).normal(size=17)
     assert np.allclose(_quantiles(v), np.quantile(v, [0.25, 0.5, 0.75]))

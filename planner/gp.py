@@ -41,7 +41,7 @@ runs, 8 factors, ``benchmarks/models.py``) the MAP fits sit 13 to 20 nats of
 log marginal likelihood below the maximum-likelihood ones, while with 8 and
 15 runs in 3 factors they raise the share of new measurements inside the
 95% predictive band from 0.72 and 0.85 to 0.85 and 0.91
-(``benchmarks/models.py --small-data``); from 30 runs on the two agree.
+(``benchmarks/models.py --small-data``); from 30 runs on the two are close.
 
 The Cholesky factor of ``K + sn2 I`` takes a diagonal jitter of
 ``settings.JITTER_START`` times the mean diagonal, multiplied by 10 up to

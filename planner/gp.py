@@ -54,6 +54,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import math
+import threading
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -136,11 +137,33 @@ def _controller():
     return ThreadpoolController()
 
 
+_blas_lock = threading.Lock()
+_blas_state = {"depth": 0, "limiter": None}
+
+
+@contextlib.contextmanager
 def _blas_limit():
-    """Context manager holding BLAS at ``BLAS_THREADS`` threads."""
+    """Hold BLAS at ``BLAS_THREADS`` threads; re-entrant and thread-safe.
+
+    The BLAS thread count is process-wide, so model work running in several
+    Python threads shares one limit: the first to enter sets it, the last to
+    leave restores the previous setting.
+    """
     if ThreadpoolController is None or BLAS_THREADS is None:
-        return contextlib.nullcontext()
-    return _controller().limit(limits=BLAS_THREADS, user_api="blas")
+        yield
+        return
+    with _blas_lock:
+        if _blas_state["depth"] == 0:
+            _blas_state["limiter"] = _controller().limit(limits=BLAS_THREADS, user_api="blas")
+        _blas_state["depth"] += 1
+    try:
+        yield
+    finally:
+        with _blas_lock:
+            _blas_state["depth"] -= 1
+            if _blas_state["depth"] == 0:
+                _blas_state["limiter"].restore_original_limits()
+                _blas_state["limiter"] = None
 
 
 def _limited_blas(method):

@@ -13,8 +13,9 @@ the start region, ``max_step`` and forbidden regions. The *settings*
 protocol (the user's, e.g. ``protocols/tablet_blend.toml``) supplies how
 the planner searches and screens: ``screen.threshold``, ``screen.joint``,
 ``ranking`` (rule, kappa, xi), ``batch.size``, ``batch.pool``,
-``batch.refine`` and ``model.restarts``. Without a settings protocol the
-problem's own values are used.
+``batch.refine`` and the ``model`` table (restarts, the limit models'
+length-scale cap). Without a settings protocol the problem's own values
+are used.
 
 Strategies (:data:`STRATEGIES`)
 -------------------------------
@@ -132,8 +133,8 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
     problem : Problem
     settings : Protocol or None
         Supplies screen.threshold, screen.joint, ranking, batch.size,
-        batch.pool, batch.refine and model.restarts; None keeps the
-        problem's own.
+        batch.pool, batch.refine and the model settings (restarts, the
+        limit models' length-scale cap); None keeps the problem's own.
 
     Returns
     -------
@@ -146,7 +147,7 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
         data["ranking"] = settings.ranking.model_dump(mode="python")
         for key in ("size", "pool", "refine"):
             data["batch"][key] = getattr(settings.batch, key)
-        data["model"]["restarts"] = settings.model.restarts
+        data["model"] = settings.model.model_dump(mode="python")
     return parse_protocol(data, source=f"problem {problem.name} with settings")
 
 

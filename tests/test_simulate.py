@@ -55,7 +55,7 @@ def test_settings_come_from_the_settings_protocol_and_the_world_from_the_problem
     assert combined.limits == problem.protocol.limits
     assert combined.screen.threshold == 0.9 and combined.ranking.rule == "pi"
     assert (combined.batch.size, combined.batch.pool, combined.batch.refine) == (3, 200, 0)
-    assert combined.model.restarts == 1
+    assert combined.model == FAST.model  # restarts and the limit models' length-scale cap
     assert combine_settings(problem, None) == problem.protocol
 
 

@@ -3,10 +3,6 @@
 # check, plan, verify and replay on the invented tablet-blend protocol.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-VENV="${GUARDBAND_VENV:-.venv}"
-if [ ! -x "$VENV/bin/python" ]; then
-  python3 -m venv "$VENV"
-fi
-"$VENV/bin/python" -m pip install --quiet --upgrade pip >/dev/null
+source scripts/_venv.sh
 "$VENV/bin/python" -m pip install --quiet -e .
 "$VENV/bin/guardband" demo --out "${1:-guardband-demo}"

@@ -2,11 +2,7 @@
 # Set up a virtual environment (if needed) and run the whole test suite.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-VENV="${GUARDBAND_VENV:-.venv}"
-if [ ! -x "$VENV/bin/python" ]; then
-  python3 -m venv "$VENV"
-fi
-"$VENV/bin/python" -m pip install --quiet --upgrade pip >/dev/null
+source scripts/_venv.sh
 "$VENV/bin/python" -m pip install --quiet -e ".[test]"
 set +e
 "$VENV/bin/python" -m pytest -q "$@"

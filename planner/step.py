@@ -477,9 +477,7 @@ def plan_step(
                 lims.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                             status=s.status, message=s.message))
             else:
-                lm_mu, lm_sd = lm.predict(U, include_noise=True)
-                lims.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
-                                            mean=lm_mu, sd=lm_sd))
+                lims.append(_limit_prediction(lim, *lm.predict(U, include_noise=True)))
         return U, mu, sd, lims
 
     hard_cache: dict = {}
@@ -535,7 +533,9 @@ def plan_step(
 
     # ---- greedy batch with fantasies
     base_result, base_mu, base_sd = result, mu, sd
-    values = all_values(mu, sd, inc_value, **rank_kw) if inc_value is not None else None
+    # all four values from the models fitted to real data (EI and PI are NaN,
+    # shown empty, when there is no incumbent yet)
+    values = all_values(mu, sd, inc_value, **rank_kw)
     chosen: list[int] = []
     obj_f = lim_f = None
     cur_result, cur_scores = result, scores
@@ -580,19 +580,13 @@ def plan_step(
                 if lp is None:
                     lims_f.append(base)
                 else:
-                    m_, s_ = lp.mean_sd(include_noise=True)
-                    lims_f.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
-                                                  mean=m_, sd=s_))
+                    lims_f.append(_limit_prediction(lim, *lp.mean_sd(include_noise=True)))
         cur_result = screen_of(X_pool, U_pool, lims_f)
         cur_scores = scores_of(mu_f, sd_f, cur_result, fantasy_inc)
 
     proposals = []
     for r, i in enumerate(chosen, start=1):
-        vals = (
-            {key: float(v[i]) for key, v in values.items()}
-            if values is not None
-            else {"ei": None, "pi": None, "bound": _bound(base_mu[i], base_sd[i], rank_kw), "mean": float(base_mu[i])}
-        )
+        vals = {key: _num(v[i]) for key, v in values.items()}
         proposals.append(
             Proposal(
                 rank=r,
@@ -632,9 +626,8 @@ def plan_step(
     )
 
 
-def _bound(mu, sd, kw) -> float:
-    k = kw["kappa"]
-    return float(mu + k * sd) if kw["maximize"] else float(mu - k * sd)
+def _limit_prediction(lim: Limit, mean, sd) -> LimitPrediction:
+    return LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd)
 
 
 def _warm(warm_start: dict, name: str):
@@ -663,7 +656,7 @@ def _local_candidates(space, X_safe, X_pool, n, rng) -> np.ndarray:
     b = X_pool[rng.integers(0, X_pool.shape[0], size=n)]
     t = rng.uniform(0.0, 0.3, size=(n, 1))
     X = a + t * (b - a)
-    for j, levels in getattr(space, "levels", {}).items():
+    for j in space.levels:
         X[:, j] = a[:, j]
     keep = np.asarray(space.contains(X))
     return X[keep]
@@ -679,7 +672,7 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
     Each refined point is screened again in full before it can be chosen.
     """
     free = scaler.free.copy()
-    for j in getattr(space, "levels", {}):
+    for j in space.levels:
         free[j] = False
     cont = np.flatnonzero(free)
     if cont.size == 0:

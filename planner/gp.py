@@ -35,13 +35,29 @@ hyperparameter; centres and widths below are ``(centre, sd)`` of the log):
 * signal variance: around 1 (the data's own spread), sd 1.5;
 * noise variance: around 1e-2, sd 2.0, floored at ``noise_floor`` (1e-6).
 
-``fit_gp(..., use_priors=False)`` drops the priors (maximum likelihood within
-the same bounds). The priors are a trade: on the benchmark workload W1 (300
-runs, 8 factors, ``benchmarks/models.py``) the MAP fits sit 13 to 20 nats of
-log marginal likelihood below the maximum-likelihood ones, while with 8 and
-15 runs in 3 factors they raise the share of new measurements inside the
-95% predictive band from 0.72 and 0.85 to 0.85 and 0.91
-(``benchmarks/models.py --small-data``); from 30 runs on the two are close.
+When the priors apply
+---------------------
+The priors are for small data. By default (``use_priors=None``) they are
+used while there are fewer than ``ML_RUNS_PER_HYPERPARAMETER`` (12) runs per
+hyperparameter, i.e. below ``12 (n_factors + 2)`` runs: 60 runs in 3
+factors, 120 in 8. From there on the fit is maximum likelihood within the
+same bounds, and the restarts stop early once two starts agree
+(``AGREEMENT_NATS``). ``use_priors=True`` or ``False`` forces either.
+
+The threshold comes from ``benchmarks/models.py --small-data``: the share
+of new noisy measurements inside the 95% predictive band, MAP against
+maximum likelihood (ML), mean over random smooth functions:
+
+* 3 factors: 8 runs 0.85 vs 0.72, 15 runs 0.91 vs 0.85, 30 runs 0.95 vs
+  0.93, 60 runs 0.96 vs 0.95, 100 runs 0.95 vs 0.95;
+* 8 factors: 30 runs 0.99 vs 0.88, 60 runs 0.97 vs 0.90, 100 runs 0.94 vs
+  0.95.
+
+Below the threshold ML is overconfident; above it ML is as well calibrated,
+with a smaller error, and the weak length-scale prior would cost log
+marginal likelihood for nothing (on W1, 300 runs in 8 factors, the MAP fits
+sat 13 to 20 nats below the ML ones, mostly from factors with no effect,
+whose ML length scale runs to the upper bound).
 
 The Cholesky factor of ``K + sn2 I`` takes a diagonal jitter of
 ``settings.JITTER_START`` times the mean diagonal, multiplied by 10 up to
@@ -54,9 +70,11 @@ from __future__ import annotations
 import contextlib
 import functools
 import math
+import os
 import threading
 import warnings
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -103,6 +121,18 @@ SIGNAL_VARIANCE_BOUNDS = (1e-4, 1e5)
 NOISE_VARIANCE_MAX = 10.0
 #: Iteration cap of one L-BFGS-B run.
 OPTIMIZER_MAXITER = 1000
+#: L-BFGS-B stops when an iteration improves the objective by less than this
+#: times max(|objective|, 1) (scipy's default is 2.2e-9). On W1 this cuts the
+#: evaluations by about a quarter with the same optimum to 0.01 nats.
+OPTIMIZER_FTOL = 1e-7
+#: With ``use_priors=None`` the priors are used while the runs number fewer
+#: than this many per hyperparameter (``n_factors + 2``); from then on the
+#: fit is maximum likelihood. See the module notes for the measurements.
+ML_RUNS_PER_HYPERPARAMETER = 12.0
+#: In the maximum-likelihood regime the restarts stop once the best value
+#: has been reached from two starts, to within this many nats (plus 1e-6
+#: relative): with many runs the likelihood has one dominant mode.
+AGREEMENT_NATS = 0.05
 #: A response whose sd is below this times its largest magnitude is constant.
 CONSTANT_RESPONSE_RTOL = 1e-12
 #: Negative predicted variances smaller than this (relative to the signal
@@ -119,6 +149,10 @@ PAIRWISE_CACHE_MAX = 2**23
 #: and one thread gives the same bits on any machine. ``None`` leaves the
 #: process's BLAS setting alone.
 BLAS_THREADS = 1
+#: Python threads that share the chunks of a large prediction. Each chunk is
+#: computed the same way on any thread (BLAS on one thread), so the result
+#: does not depend on this number.
+PREDICT_WORKERS = min(2, os.cpu_count() or 1)
 
 STATUS_OK = "ok"
 STATUS_WARNING = "warning"
@@ -365,35 +399,42 @@ def _inverse_from_cholesky(L: np.ndarray) -> np.ndarray:
 
 
 class _Pairwise:
-    """Squared differences ``(x_ik - x_jk)^2`` of the training inputs.
+    """Squared differences ``(x_ik - x_jk)^2`` of the training inputs, per pair i > j.
 
-    Cached as an (n*n, d) matrix when small enough, so that ``r^2`` and the
-    length-scale gradient are single matrix-vector products.
+    The kernel matrix is symmetric with a known diagonal, so the search works
+    on the n (n - 1) / 2 pairs below the diagonal (row-major order of the
+    lower triangle, ``flat`` holds their positions in an n x n array): half
+    the elementwise work of the full matrix. Cached as a (pairs, d) matrix
+    when small enough, so that ``r^2`` and the length-scale gradient are
+    single matrix-vector products.
     """
 
     def __init__(self, X: np.ndarray):
         self.X = X
         n, d = X.shape
         self.n = n
-        if n * n * d <= PAIRWISE_CACHE_MAX:
-            self.D = ((X[:, None, :] - X[None, :, :]) ** 2).reshape(n * n, d)
+        self.i, self.j = np.tril_indices(n, -1)
+        self.flat = self.i * n + self.j
+        if self.i.size * d <= PAIRWISE_CACHE_MAX:
+            self.D = (X[self.i] - X[self.j]) ** 2
         else:
             self.D = None
 
     def r2(self, inv_l2: np.ndarray) -> np.ndarray:
-        """Scaled squared distances, shape (n, n)."""
+        """Scaled squared distances of the pairs, shape (n (n - 1) / 2,)."""
         if self.D is not None:
-            return (self.D @ inv_l2).reshape(self.n, self.n)
-        return cdist(self.X * np.sqrt(inv_l2), self.X * np.sqrt(inv_l2), "sqeuclidean")
+            return self.D @ inv_l2
+        Xs = self.X * np.sqrt(inv_l2)
+        return cdist(Xs, Xs, "sqeuclidean").reshape(-1)[self.flat]
 
-    def weighted_sums(self, M: np.ndarray) -> np.ndarray:
-        """``sum_ij M_ij (x_ik - x_jk)^2`` for each factor k, shape (d,)."""
+    def weighted_sums(self, m: np.ndarray) -> np.ndarray:
+        """``sum_pairs m_p (x_ik - x_jk)^2`` for each factor k, shape (d,)."""
         if self.D is not None:
-            return M.reshape(-1) @ self.D
+            return m @ self.D
         out = np.empty(self.X.shape[1])
         for k in range(self.X.shape[1]):
-            diff = self.X[:, k, None] - self.X[None, :, k]
-            out[k] = np.einsum("ij,ij->", M, diff * diff)
+            diff = self.X[self.i, k] - self.X[self.j, k]
+            out[k] = m @ (diff * diff)
         return out
 
 
@@ -416,9 +457,10 @@ def _lml_and_gradient(pairs: _Pairwise, z: np.ndarray, theta: np.ndarray):
 
     Rasmussen & Williams (2006), eq. 2.30 and 5.9 (numbers from memory): with
     ``W = alpha alpha^T - K^-1``, ``d lml / d theta_j = 0.5 sum_ij W_ij dK_ij / d theta_j``,
-    taken as elementwise sums. For the Matérn 5/2 kernel
-    ``dK / d log l_k = 5/3 sf2 (1 + sqrt5 r) exp(-sqrt5 r) (x_ik - x_jk)^2 / l_k^2``.
-    Raises ``_NotPositiveDefinite``.
+    taken as elementwise sums; W and dK are symmetric, so a sum is twice the
+    sum over the pairs below the diagonal plus the diagonal. For the Matérn
+    5/2 kernel ``dK / d log l_k = 5/3 sf2 (1 + sqrt5 r) exp(-sqrt5 r) (x_ik - x_jk)^2 / l_k^2``
+    (zero on the diagonal). Raises ``_NotPositiveDefinite``.
     """
     n = z.size
     d = theta.size - 2
@@ -429,23 +471,26 @@ def _lml_and_gradient(pairs: _Pairwise, z: np.ndarray, theta: np.ndarray):
     sr = np.sqrt(pairs.r2(inv_l2))
     sr *= _SQRT5
     e = np.exp(-sr)
-    Kf = _matern_from_sr(sr, sf2, e)
-    Ky = Kf.copy()
-    Ky.flat[:: n + 1] += sn2
+    kc = _matern_from_sr(sr, sf2, e)  # the pairs below the diagonal
+    Ky = np.zeros((n, n))  # LAPACK reads the lower triangle only
+    Ky.flat[pairs.flat] = kc
+    Ky.flat[:: n + 1] = sf2 + sn2
     L, _ = _cholesky(Ky)
     alpha = linalg.cho_solve((L, True), z, check_finite=False)
-    diag_L = np.diag(L)
-    lml = float(-0.5 * z @ alpha - np.sum(np.log(diag_L)) - 0.5 * n * _LOG_2PI)
-    W = np.outer(alpha, alpha)
-    W -= _inverse_from_cholesky(L)
+    lml = float(-0.5 * z @ alpha - np.sum(np.log(np.diag(L))) - 0.5 * n * _LOG_2PI)
+    inv, info = linalg.lapack.dpotri(L, lower=1)  # lower triangle of K^-1
+    if info != 0:
+        raise _NotPositiveDefinite(f"dpotri info {info}")
+    w_pairs = alpha[pairs.i] * alpha[pairs.j]
+    w_pairs -= inv.reshape(-1)[pairs.flat]
+    w_diag_sum = float(alpha @ alpha - np.trace(inv))
     grad = np.empty(d + 2)
-    # dK / d log l_k = G * D_k / l_k^2 with G = 5/3 sf2 (1 + sqrt5 r) exp(-sqrt5 r)
-    G = sr + 1.0
-    G *= e
-    G *= W
-    grad[:d] = (0.5 * 5.0 / 3.0 * sf2) * pairs.weighted_sums(G) * inv_l2
-    grad[d] = 0.5 * np.einsum("ij,ij->", W, Kf)  # dK / d log sf2 = Kf
-    grad[d + 1] = 0.5 * sn2 * np.trace(W)  # dK / d log sn2 = sn2 I
+    g = sr + 1.0
+    g *= e
+    g *= w_pairs
+    grad[:d] = (5.0 / 3.0 * sf2) * pairs.weighted_sums(g) * inv_l2  # 0.5 * 2 (both triangles)
+    grad[d] = float(w_pairs @ kc) + 0.5 * sf2 * w_diag_sum  # dK / d log sf2 = K_f
+    grad[d + 1] = 0.5 * sn2 * w_diag_sum  # dK / d log sn2 = sn2 I
     return lml, grad
 
 
@@ -749,15 +794,45 @@ class GaussianProcess:
             raise ModelError(f"chunk_size must be a positive integer; got {chunk_size!r}")
         mean = np.empty(m)
         var = np.empty(m)
-        for start in range(0, m, chunk):
+        scale, X_scaled, L_inv = self._prediction_parts
+        sf2 = hp.signal_variance
+        alpha = sf2 * self._alpha
+
+        def one_chunk(start):
             stop = min(start + chunk, m)
-            Ks = self._k(Xs[start:stop], self.X)
-            mean[start:stop] = Ks @ self._alpha
-            # Rasmussen & Williams (2006), Alg. 2.1, lines 5-6: v = L \ k*, var = k** - v^T v
-            V = linalg.solve_triangular(self._L, Ks.T, lower=True, check_finite=False).T
-            var[start:stop] = hp.signal_variance - np.einsum("ij,ij->i", V, V)
+            # Matérn 5/2 without sf2; sqrt(5) / l is folded into the inputs
+            sr = cdist(Xs[start:stop] * scale, X_scaled, "euclidean")
+            e = np.exp(-sr)
+            K = sr * (1.0 / 3.0)
+            K += 1.0
+            K *= sr
+            K += 1.0
+            K *= e
+            mean[start:stop] = K @ alpha
+            # Rasmussen & Williams (2006), Alg. 2.1, lines 5-6: v = L \ k*, var = k** - v^T v;
+            # here v = (sf2 L^-1) k* / sf2 as one triangular product
+            V = linalg.blas.dtrmm(sf2, L_inv, K, side=1, lower=1, trans_a=1, overwrite_b=1)
+            var[start:stop] = sf2 - np.einsum("ij,ij->i", V, V)
+
+        starts = range(0, m, chunk)
+        if len(starts) > 1 and PREDICT_WORKERS > 1:
+            # each chunk is computed the same way on whichever thread: same bits
+            with ThreadPoolExecutor(max_workers=PREDICT_WORKERS) as pool:
+                list(pool.map(one_chunk, starts))
+        else:
+            for start in starts:
+                one_chunk(start)
         var = _clip_variance(var, hp.signal_variance) + noise
         return self.prior_mean + s * mean, s * np.sqrt(var)
+
+    @functools.cached_property
+    def _prediction_parts(self):
+        """``sqrt(5) / l``, the training inputs times it, and ``L^-1`` (lower)."""
+        scale = _SQRT5 / self.hyperparameters.length_scales
+        L_inv, info = linalg.lapack.dtrtri(self._L, lower=1)
+        if info != 0:
+            raise ModelError(f"the Cholesky factor could not be inverted (dtrtri info {info}); {_not_pd_advice(self.n_train)}")
+        return scale, self.X * scale, np.tril(L_inv)
 
     # -- leave-one-out --------------------------------------------------------
     @_limited_blas
@@ -910,8 +985,12 @@ def _starts(z, n_factors, bounds, warm_start, n_restarts, rng) -> list[np.ndarra
     return starts
 
 
-def _search(X, z, starts, bounds, use_priors=True):
-    """L-BFGS-B on the negative log posterior (or likelihood) from each start."""
+def _search(X, z, starts, bounds, use_priors=True, stop_when_agreed=False):
+    """L-BFGS-B on the negative log posterior (or likelihood) from each start.
+
+    With ``stop_when_agreed`` the starts after the second are skipped once
+    the best value so far has been reached from two starts (``AGREEMENT_NATS``).
+    """
     pairs = _Pairwise(X)
 
     def objective(theta):
@@ -935,22 +1014,33 @@ def _search(X, z, starts, bounds, use_priors=True):
             jac=True,
             method="L-BFGS-B",
             bounds=bounds,
-            options={"maxiter": OPTIMIZER_MAXITER},
+            options={"maxiter": OPTIMIZER_MAXITER, "ftol": OPTIMIZER_FTOL},
         )
         results.append(res)
+        if stop_when_agreed and _agreed(results):
+            break
     return results
+
+
+def _agreed(results) -> bool:
+    """True when the two best finite optima agree within ``AGREEMENT_NATS``."""
+    values = sorted(r.fun for r in results if math.isfinite(r.fun))
+    if len(values) < 2:
+        return False
+    return values[1] - values[0] <= AGREEMENT_NATS + 1e-6 * abs(values[0])
 
 
 def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, length_scale_max=None):
     """MAP (or maximum-likelihood) hyperparameters by L-BFGS-B from several starts.
 
+    In the maximum-likelihood regime the restarts stop once two starts agree.
     Returns ``(hyperparameters, notes, warn)``.
     """
     n, d = X.shape
     generator = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(0 if rng is None else rng)
     bounds = _bounds(d, noise_floor, length_scale_max)
     starts = _starts(z, d, bounds, warm_start, n_restarts, generator)
-    results = _search(X, z, starts, bounds, use_priors)
+    results = _search(X, z, starts, bounds, use_priors, stop_when_agreed=not use_priors)
     finite = [r for r in results if math.isfinite(r.fun)]
     if not finite:
         raise ModelError("the hyperparameter search failed from every start: " + _not_pd_advice(n))
@@ -958,7 +1048,8 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, le
     converged = sum(bool(r.success) for r in results)
     what = "MAP search" if use_priors else "maximum-likelihood search (no priors)"
     target = "log posterior" if use_priors else "log likelihood"
-    notes = [f"{what} from {len(starts)} start(s), {converged} converged; best {target} {-best.fun:.6g}"]
+    ran = f"{len(results)} of {len(starts)} start(s) (two agreed)" if len(results) < len(starts) else f"{len(starts)} start(s)"
+    notes = [f"{what} from {ran}, {converged} converged; best {target} {-best.fun:.6g}"]
     warn = False
     if not best.success:
         warn = True
@@ -986,8 +1077,9 @@ def fit_gp(
     noise_floor: float = NOISE_FLOOR,
     optimize: bool = True,
     hyperparameters: Hyperparameters | Mapping | None = None,
-    use_priors: bool = True,
+    use_priors: bool | None = None,
     length_scale_max: float | None = None,
+    ml_runs_per_hyperparameter: float = ML_RUNS_PER_HYPERPARAMETER,
 ) -> GaussianProcess:
     """Fit a GP response model by maximum a posteriori hyperparameters.
 
@@ -1012,15 +1104,19 @@ def fit_gp(
         If False, no search: use ``warm_start`` or the prior centres.
     hyperparameters : Hyperparameters or dict, optional
         Fixed hyperparameters; when given no search is made.
-    use_priors : bool
+    use_priors : bool, optional
         True: maximum a posteriori with the weak priors of this module.
-        False: maximum likelihood within the same bounds (for comparisons,
-        or many runs); with few runs it tends to be overconfident.
+        False: maximum likelihood within the same bounds; with few runs it
+        tends to be overconfident. None (default): the priors while there
+        are fewer than ``ml_runs_per_hyperparameter * (n_factors + 2)`` runs.
     length_scale_max : float, optional
         Upper search bound of every length scale (unit-cube units). A limit
         model uses it so that its correlation with the runs fades within the
         design range: far from the runs it returns to its prior mean (the
         limit) instead of carrying a constant response everywhere.
+    ml_runs_per_hyperparameter : float
+        Runs per hyperparameter from which ``use_priors=None`` means
+        maximum likelihood (default ``ML_RUNS_PER_HYPERPARAMETER``).
 
     Returns
     -------
@@ -1079,6 +1175,15 @@ def fit_gp(
     else:
         if length_scale_max is not None and not (length_scale_max > LENGTH_SCALE_BOUNDS[0]):
             raise ModelError(f"length_scale_max must exceed {LENGTH_SCALE_BOUNDS[0]:g}; got {length_scale_max!r}")
+        if use_priors is None:
+            if not (ml_runs_per_hyperparameter >= 0):
+                raise ModelError(f"ml_runs_per_hyperparameter must be >= 0; got {ml_runs_per_hyperparameter!r}")
+            use_priors = n < ml_runs_per_hyperparameter * (d + 2)
+            notes.append(
+                f"{n} runs for {d + 2} hyperparameters: "
+                + ("weak priors (small data)" if use_priors else
+                   f"maximum likelihood (at least {ml_runs_per_hyperparameter:g} runs per hyperparameter)")
+            )
         hp, search_notes, search_warn = _map_fit(
             X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors), length_scale_max
         )

@@ -258,6 +258,16 @@ class ModelSettings(_Strict):
     """Gaussian-process fitting settings."""
 
     restarts: int = Field(default=4, ge=1, le=50)
+    ml_runs_per_hyperparameter: float = Field(
+        default=12.0,
+        ge=0,
+        le=1e6,
+        description=(
+            "weak priors on the hyperparameters while a response has fewer than this many "
+            "measured runs per hyperparameter (number of free factors + 2); maximum likelihood "
+            "from then on"
+        ),
+    )
     limit_length_scale_max: float = Field(
         default=0.4,
         gt=0.01,

@@ -249,7 +249,8 @@ def _loo_summary(model, y) -> tuple[float, float]:
     return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 
-def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None):
+def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
+         ml_runs_per_hyperparameter=12.0):
     try:
         model = fit_gp(
             U,
@@ -259,6 +260,7 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
             warm_start=warm,
             rng=seed,
             length_scale_max=length_scale_max,
+            ml_runs_per_hyperparameter=ml_runs_per_hyperparameter,
         )
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), "model-not-fitted", str(exc), prior_mean=prior_mean)
@@ -401,7 +403,8 @@ def plan_step(
                if job["role"] == "limit" else None)
         return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
                     restarts=protocol.model.restarts, warm=job["warm"], seed=job["seed"],
-                    length_scale_max=cap)
+                    length_scale_max=cap,
+                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
 
     if len(jobs) > 1 and FIT_WORKERS > 1:
         with ThreadPoolExecutor(max_workers=FIT_WORKERS) as pool:

@@ -15,8 +15,10 @@ FIXED_RANGE_TOL = 1e-9
 JITTER_START = 1e-10
 #: Largest jitter tried before a factorisation is declared failed.
 JITTER_MAX = 1e-4
-#: Rows of candidates predicted at once (bounds memory for large pools).
-PREDICT_CHUNK = 4096
+#: Kernel entries (candidates x runs) computed at once when predicting: bounds
+#: memory for large pools, and small enough (2 MB) to stay in cache, which
+#: measured about twice as fast as 10 MB chunks (W1, 300 runs).
+PREDICT_CHUNK_ENTRIES = 2**18
 #: Hit-and-run steps discarded before the first kept sample.
 HIT_AND_RUN_BURN_IN = 200
 #: Hit-and-run steps between kept samples per chain.

@@ -69,7 +69,6 @@ import contextlib
 import functools
 import math
 import multiprocessing
-import os
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -79,6 +78,7 @@ import numpy as np
 from .campaign import CampaignHistory, best_so_far, run_campaign, start_runs
 from .designs import maximin
 from .fileio import write_csv_text
+from .parallel import default_workers
 from .problems import PROBLEMS, Problem, get_problem, slsqp_in_space
 from .protocol import RANKING_RULES, Protocol, load_protocol, parse_protocol
 from .step import within_limit
@@ -554,11 +554,11 @@ def _worker_init() -> None:
     global _WORKER_LIMIT
     if threadpool_limits is not None:
         _WORKER_LIMIT = threadpool_limits(1)
+    # the campaigns already run side by side: each plans in one process, one thread
+    from . import gp, step
 
-
-def default_workers() -> int:
-    """min(2, number of CPUs)."""
-    return max(1, min(2, os.cpu_count() or 1))
+    step.FIT_WORKERS = 1
+    gp.PREDICT_WORKERS = 1
 
 
 # ------------------------------------------------------------ results

@@ -29,9 +29,7 @@ The flow (see DESIGN.md):
 
 from __future__ import annotations
 
-import os
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -41,6 +39,7 @@ from . import __version__
 from .acquisition import all_values, log_expected_improvement, score as rule_score
 from .errors import ModelError, ProtocolError
 from .gp import Hyperparameters, fit_gp
+from .parallel import default_workers, map_jobs
 from .protocol import Limit, Protocol
 from .runs import RunsTable
 from .settings import FEASIBILITY_TOL, NEAR_MISS_COUNT
@@ -64,8 +63,11 @@ Z95 = 1.959963984540054
 LOCAL_SHARE = 0.25
 #: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
 MIN_SEPARATION = 0.01
-#: Threads that fit the response models side by side.
-FIT_WORKERS = min(2, os.cpu_count() or 1)
+#: Worker processes that fit the response models side by side (1: in turn).
+FIT_WORKERS = default_workers()
+#: Fits run on worker processes only when some response has this many runs
+#: (measured break-even of the process start-up: about 100 to 200 runs).
+PARALLEL_FIT_MIN_RUNS = 150
 #: Forward-difference step (unit-scaled) for the refinement's gradients.
 FD_STEP = 1e-6
 #: Local refinement aims this far inside each probability requirement.
@@ -249,6 +251,14 @@ def _loo_summary(model, y) -> tuple[float, float]:
     return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 
+def _fit_job(job: dict):
+    """One model fit, as :func:`_fit` with the job's fields (module level: runs in a worker)."""
+    return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
+                restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
+                length_scale_max=job["length_scale_max"],
+                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"])
+
+
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
          ml_runs_per_hyperparameter=12.0):
     try:
@@ -373,9 +383,9 @@ def plan_step(
             f"{MIN_OBJECTIVE_RUNS} are needed to plan. Make a starting design with "
             "`guardband start` and measure it first"
         )
-    # The fits are independent: they run on FIT_WORKERS threads (the heavy
-    # LAPACK/BLAS parts release the GIL; BLAS itself stays on one thread, so
-    # each fit gives the same bits whichever thread runs it).
+    # The fits are independent: they run on FIT_WORKERS processes
+    # (planner.parallel; BLAS stays on one thread, so each fit gives the same
+    # bits however it runs).
     jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
                  prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]))]
     early: dict[int, ModelSummary] = {}
@@ -392,25 +402,19 @@ def plan_step(
                          prior_mean=prior, warm=_warm(warm_start, lim.name),
                          seed=_seed_of(children[3 + k]), k=k))
 
-    def run_job(job):
-        # a limit model's length scales are capped so that far from the runs
-        # it returns to its prior mean (the limit) rather than carry a flat
-        # response, e.g. a toxicity rate of 0 in every low-dose cohort, out
-        # to doses never tried
-        # (stated per sqrt(free factor), like max_step: typical distances in
-        # the unit cube grow with the square root of its dimension)
-        cap = (protocol.model.limit_length_scale_max * np.sqrt(max(int(scaler.free.sum()), 1))
-               if job["role"] == "limit" else None)
-        return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
-                    restarts=protocol.model.restarts, warm=job["warm"], seed=job["seed"],
-                    length_scale_max=cap,
-                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
-
-    if len(jobs) > 1 and FIT_WORKERS > 1:
-        with ThreadPoolExecutor(max_workers=FIT_WORKERS) as pool:
-            fitted = list(pool.map(run_job, jobs))
-    else:
-        fitted = [run_job(job) for job in jobs]
+    # a limit model's length scales are capped so that far from the runs it
+    # returns to its prior mean (the limit) rather than carry a flat response,
+    # e.g. a toxicity rate of 0 in every low-dose cohort, out to doses never
+    # tried (stated per sqrt(free factor), like max_step: typical distances in
+    # the unit cube grow with the square root of its dimension)
+    cap = protocol.model.limit_length_scale_max * np.sqrt(max(int(scaler.free.sum()), 1))
+    for job in jobs:
+        job.update(restarts=protocol.model.restarts,
+                   length_scale_max=cap if job["role"] == "limit" else None,
+                   ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
+    # starting worker processes costs about 0.1 s, more than small fits take
+    big = max(len(job["y"]) for job in jobs) >= PARALLEL_FIT_MIN_RUNS
+    fitted = map_jobs(_fit_job, jobs, FIT_WORKERS if big else 1)
     obj_model, summary = fitted[0]
     models: list[ModelSummary] = [summary]
     if obj_model is None:

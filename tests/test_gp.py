@@ -486,3 +486,83 @@ def test_fits_in_several_threads_restore_the_blas_setting_and_match_sequential()
         if gp.BLAS_THREADS is not None:
             assert all(n == gp.BLAS_THREADS for _, n in _blas_threads())
     assert _blas_threads() == before
+
+
+def test_default_uses_priors_below_twelve_runs_per_hyperparameter_and_ml_above():
+    # the rule of planner.gp (measured by benchmarks/models.py --small-data): 3 factors,
+    # 5 hyperparameters, so MAP below 60 runs and maximum likelihood from 60
+    rng = np.random.default_rng(5)
+    for n, expected in ((59, "MAP search"), (60, "maximum-likelihood search")):
+        Xn = rng.random((n, 3))
+        yn = _smooth(Xn) + 0.02 * rng.standard_normal(n)
+        model = fit_gp(Xn, yn, rng=0)
+        assert model.message.startswith(expected), model.message
+        forced = fit_gp(Xn, yn, rng=0, use_priors=expected == "MAP search")
+        np.testing.assert_array_equal(forced.hyperparameters.theta, model.hyperparameters.theta)
+    # the threshold is a setting: 0 means maximum likelihood at any size
+    small = fit_gp(X, Y, rng=0, ml_runs_per_hyperparameter=0)
+    assert small.message.startswith("maximum-likelihood search")
+    with pytest.raises(ModelError, match="ml_runs_per_hyperparameter"):
+        fit_gp(X, Y, ml_runs_per_hyperparameter=-1)
+
+
+def test_ml_restarts_stop_once_two_starts_agree_and_keep_the_best(monkeypatch):
+    rng = np.random.default_rng(8)
+    Xn = rng.random((80, 2))
+    yn = np.sin(4 * Xn[:, 0]) + Xn[:, 1] + 0.01 * rng.standard_normal(80)
+    seen = []
+    search = gp._search
+
+    def recording(*args, **kwargs):
+        results = search(*args, **kwargs)
+        seen.append(([r.fun for r in results], kwargs["stop_when_agreed"]))
+        return results
+
+    monkeypatch.setattr(gp, "_search", recording)
+    model = fit_gp(Xn, yn, rng=0, n_restarts=4)  # 80 runs >= 12 * 4: maximum likelihood
+    values, stopped_early = seen[-1]
+    assert stopped_early is True
+    assert len(values) < 5 and "(two agreed)" in model.message
+    # the two best agree within the tolerance, and the model holds the best
+    best = sorted(values)
+    assert best[1] - best[0] <= gp.AGREEMENT_NATS + 1e-6 * abs(best[0])
+    full = fit_gp(Xn, yn, rng=0, n_restarts=4, use_priors=True)  # MAP: every start runs
+    assert len(seen[-1][0]) == 5 and "(two agreed)" not in full.message
+    assert -model.log_marginal_likelihood_standardised == pytest.approx(best[0], abs=1e-6)
+
+
+def test_agreement_rule():
+    class R:
+        def __init__(self, fun):
+            self.fun = fun
+
+    assert not gp._agreed([R(10.0)])
+    assert gp._agreed([R(10.0), R(10.0 + gp.AGREEMENT_NATS / 2)])
+    assert not gp._agreed([R(10.0), R(11.0)])
+    # two agreeing values that are not the best do not count
+    assert not gp._agreed([R(10.0), R(12.0), R(12.0)])
+    assert not gp._agreed([R(math.inf), R(math.inf)])
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_prediction_is_the_same_on_any_number_of_threads_and_chunks(monkeypatch, workers):
+    rng = np.random.default_rng(4)
+    Xn = rng.random((40, 3))
+    model = fit_gp(Xn, _smooth(Xn), rng=0)
+    pts = rng.random((3000, 3))
+    monkeypatch.setattr(gp, "PREDICT_WORKERS", 1)
+    ref = {chunk: model.predict(pts, include_noise=True, chunk_size=chunk) for chunk in (None, 17, 3000)}
+    monkeypatch.setattr(gp, "PREDICT_WORKERS", workers)
+    for chunk in (None, 17, 3000):
+        got = model.predict(pts, include_noise=True, chunk_size=chunk)
+        # the same chunks give the same bits on any number of threads ...
+        np.testing.assert_array_equal(got[0], ref[chunk][0])
+        np.testing.assert_array_equal(got[1], ref[chunk][1])
+        # ... and other chunk sizes agree to round-off (BLAS blocking differs at the edges)
+        np.testing.assert_allclose(got[0], ref[3000][0], rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(got[1], ref[3000][1], rtol=1e-10)
+    ref = ref[3000]
+    # and the same as the joint-covariance path (R&W Alg. 2.1 with a triangular solve)
+    mean_c, cov = model.predict(pts[:200], return_cov=True, include_noise=True)
+    np.testing.assert_allclose(ref[0][:200], mean_c, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(ref[1][:200], np.sqrt(np.diag(cov)), rtol=1e-9)

@@ -236,6 +236,13 @@ class Screen(_Strict):
         description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
     )
     forbidden: tuple[Forbidden, ...] = ()
+    widen_from_loo: bool = Field(
+        default=True,
+        description=(
+            "widen a limit model's predictive sd when its own leave-one-out check says it is "
+            "overconfident (never narrowed)"
+        ),
+    )
 
 
 class Ranking(_Strict):

@@ -38,7 +38,7 @@ from scipy.optimize import minimize
 from . import __version__
 from .acquisition import all_values, log_expected_improvement, score as rule_score
 from .errors import ModelError, ProtocolError
-from .gp import Hyperparameters, fit_gp
+from .gp import GaussianProcess, Hyperparameters, fit_gp
 from .parallel import default_workers, map_jobs
 from .protocol import Limit, Protocol
 from .runs import RunsTable
@@ -68,6 +68,9 @@ FIT_WORKERS = default_workers()
 #: Fits run on worker processes only when some response has this many runs
 #: (measured break-even of the process start-up: about 100 to 200 runs).
 PARALLEL_FIT_MIN_RUNS = 150
+#: A limit model is checked by leave-one-out (and widened if overconfident)
+#: from this many runs.
+LOO_WIDEN_MIN_RUNS = 5
 #: Forward-difference step (unit-scaled) for the refinement's gradients.
 FD_STEP = 1e-6
 #: Local refinement aims this far inside each probability requirement.
@@ -88,6 +91,7 @@ class ModelSummary:
     prior_mean: float | None = None
     loo_coverage: float | None = None  # share of measured values inside their LOO 95% interval
     loo_rmse: float | None = None
+    sd_factor: float | None = None  # limit models: predictive sd widened by this (leave-one-out check)
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -256,11 +260,11 @@ def _fit_job(job: dict):
     return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
                 restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
                 length_scale_max=job["length_scale_max"],
-                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"])
+                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"])
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
-         ml_runs_per_hyperparameter=12.0):
+         ml_runs_per_hyperparameter=12.0, widen=False):
     try:
         model = fit_gp(
             U,
@@ -274,6 +278,9 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
         )
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), "model-not-fitted", str(exc), prior_mean=prior_mean)
+    sd_factor = None
+    if widen and len(y) >= LOO_WIDEN_MIN_RUNS:
+        model, sd_factor = _widen_from_loo(model)
     cov, rmse = _loo_summary(model, y) if len(y) >= 3 else (None, None)
     summary = ModelSummary(
         response=response,
@@ -286,8 +293,40 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
         prior_mean=prior_mean,
         loo_coverage=cov,
         loo_rmse=rmse,
+        sd_factor=sd_factor,
     )
     return model, summary
+
+
+def _widen_from_loo(model):
+    """Widen an overconfident model by its own leave-one-out check.
+
+    The standardised leave-one-out errors ``u_i = (y_i - mu_-i) / sd_-i``
+    have mean square 1 under a calibrated model. When their mean square
+    ``c^2`` exceeds 1 the signal and noise variances are both multiplied by
+    ``c^2``: the posterior mean is unchanged and every predictive sd grows
+    by ``c`` (so the leave-one-out mean square becomes 1). This is the
+    cross-validation estimate of the variance parameter of Bachoc (2013,
+    Computational Statistics & Data Analysis 66, 55-69; from memory), which
+    is more robust than maximum likelihood when the kernel is wrong. It is
+    applied only upward: a model is never made more confident than its fit.
+    Returns ``(model, c)``.
+    """
+    loo = model.loo()
+    u2 = loo.residual**2 / np.maximum(loo.variance, 1e-300)
+    c2 = float(np.mean(u2))
+    if not np.isfinite(c2) or c2 <= 1.0:
+        return model, 1.0
+    hp = model.hyperparameters
+    widened = Hyperparameters(hp.length_scales, hp.signal_variance * c2, hp.noise_variance * c2)
+    out = fit_gp(model.X, model.y, prior_mean=model.prior_mean, hyperparameters=widened)
+    out = GaussianProcess(
+        out.X, out.y, widened, prior_mean=out.prior_mean, scale=out.scale, L=out._L, w=out._w,
+        alpha=out._alpha, jitter=out.jitter, status=model.status,
+        message=(f"{model.message}; predictive sd widened by {np.sqrt(c2):.3g} (mean square of the "
+                 f"standardised leave-one-out errors {c2:.3g} > 1)"),
+    )
+    return out, float(np.sqrt(c2))
 
 
 class _Scaler:
@@ -411,7 +450,8 @@ def plan_step(
     for job in jobs:
         job.update(restarts=protocol.model.restarts,
                    length_scale_max=cap if job["role"] == "limit" else None,
-                   ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
+                   ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter,
+                   widen=job["role"] == "limit" and protocol.screen.widen_from_loo)
     # starting worker processes costs about 0.1 s, more than small fits take
     big = max(len(job["y"]) for job in jobs) >= PARALLEL_FIT_MIN_RUNS
     fitted = map_jobs(_fit_job, jobs, FIT_WORKERS if big else 1)

@@ -175,3 +175,46 @@ def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose):
     assert joint < 0.9 and not survives
     joint_uncapped, _ = joint_at_top(1000.0)  # what the cap prevents
     assert joint_uncapped > joint
+
+
+def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
+    # Bachoc (2013): the cross-validation variance estimate makes the mean square of the
+    # standardised leave-one-out errors exactly 1; the posterior mean does not change
+    from planner.gp import Hyperparameters, fit_gp
+    from planner.step import _widen_from_loo
+
+    rng = np.random.default_rng(2)
+    U = rng.random((25, 2))
+    y = np.sin(6 * U[:, 0]) + U[:, 1]
+    overconfident = fit_gp(U, y, prior_mean=1.0, hyperparameters=Hyperparameters([0.3, 0.3], 0.01, 1e-6))
+    loo = overconfident.loo()
+    c_expected = float(np.sqrt(np.mean(loo.residual**2 / loo.variance)))
+    assert c_expected > 1.5
+    widened, c = _widen_from_loo(overconfident)
+    assert c == pytest.approx(c_expected, rel=1e-12)
+    after = widened.loo()
+    assert np.mean(after.residual**2 / after.variance) == pytest.approx(1.0, rel=1e-9)
+    pts = rng.random((50, 2))
+    m0, s0 = overconfident.predict(pts, include_noise=True)
+    m1, s1 = widened.predict(pts, include_noise=True)
+    np.testing.assert_allclose(m1, m0, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(s1, c * s0, rtol=1e-9)
+    assert "widened by" in widened.message
+    # a model that is not overconfident is left alone (never narrowed)
+    wide = fit_gp(U, y, prior_mean=1.0, hyperparameters=Hyperparameters([0.3, 0.3], 100.0, 1.0))
+    same, c1 = _widen_from_loo(wide)
+    assert c1 == 1.0 and same is wide
+
+
+def test_plan_records_the_widening_of_limit_models_only(tablet):
+    protocol, runs = tablet
+    plan = plan_step(protocol, runs, seed=1)
+    for m in plan.models:
+        if m.role == "objective":
+            assert m.sd_factor is None
+        elif m.status == "ok":
+            assert m.sd_factor is not None and m.sd_factor >= 1.0
+    off = parse_protocol({**protocol.model_dump(mode="python"),
+                          "screen": {**protocol.screen.model_dump(mode="python"), "widen_from_loo": False}})
+    plan_off = plan_step(off, runs, seed=1)
+    assert all(m.sd_factor is None for m in plan_off.models)

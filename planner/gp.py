@@ -710,6 +710,8 @@ class GaussianProcess:
         )
         self.log_marginal_likelihood = self.log_marginal_likelihood_standardised - n * math.log(self.scale)
         self.log_prior = _log_prior(hyperparameters.theta)[0]
+        #: whether the hyperparameter search used the priors (None: no search was made)
+        self.used_priors = None
 
     @property
     def n_train(self) -> int:
@@ -1038,7 +1040,8 @@ def _agreed(results) -> bool:
     return values[1] - values[0] <= AGREEMENT_NATS + 1e-6 * abs(values[0])
 
 
-def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, length_scale_max=None):
+def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, length_scale_max=None,
+             fixed_noise=None):
     """MAP (or maximum-likelihood) hyperparameters by L-BFGS-B from several starts.
 
     In the maximum-likelihood regime the restarts stop once two starts agree.
@@ -1047,6 +1050,8 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, le
     n, d = X.shape
     generator = rng if isinstance(rng, np.random.Generator) else np.random.default_rng(0 if rng is None else rng)
     bounds = _bounds(d, noise_floor, length_scale_max)
+    if fixed_noise is not None:
+        bounds[d + 1] = math.log(fixed_noise)
     starts = _starts(z, d, bounds, warm_start, n_restarts, generator)
     results = _search(X, z, starts, bounds, use_priors, stop_when_agreed=not use_priors)
     finite = [r for r in results if math.isfinite(r.fun)]
@@ -1068,7 +1073,7 @@ def _map_fit(X, z, warm_start, n_restarts, rng, noise_floor, use_priors=True, le
             f"length scale of factor(s) {at_upper} at the upper bound {math.exp(bounds[0, 1]):g}"
             + (" (no visible effect)" if length_scale_max is None else " (capped)")
         )
-    if best.x[d + 1] <= bounds[d + 1, 0] + 1e-8:
+    if fixed_noise is None and best.x[d + 1] <= bounds[d + 1, 0] + 1e-8:
         notes.append(f"noise variance at its floor {noise_floor:g}")
     return Hyperparameters.from_theta(best.x), notes, warn
 
@@ -1088,6 +1093,7 @@ def fit_gp(
     use_priors: bool | None = None,
     length_scale_max: float | None = None,
     ml_runs_per_hyperparameter: float = ML_RUNS_PER_HYPERPARAMETER,
+    noise_sd: float | None = None,
 ) -> GaussianProcess:
     """Fit a GP response model by maximum a posteriori hyperparameters.
 
@@ -1125,6 +1131,10 @@ def fit_gp(
     ml_runs_per_hyperparameter : float
         Runs per hyperparameter from which ``use_priors=None`` means
         maximum likelihood (default ``ML_RUNS_PER_HYPERPARAMETER``).
+    noise_sd : float, optional
+        Known measurement sd in response units: the noise variance is fixed
+        at ``(noise_sd / scale)^2`` (at least ``noise_floor``) instead of
+        being searched.
 
     Returns
     -------
@@ -1158,6 +1168,7 @@ def fit_gp(
 
     notes: list[str] = []
     warn = False
+    searched_with_priors = None  # no search: not known
     scale = float(np.std(y))
     if scale <= CONSTANT_RESPONSE_RTOL * float(np.max(np.abs(y))):
         scale = 1.0
@@ -1192,8 +1203,16 @@ def fit_gp(
                 + ("weak priors (small data)" if use_priors else
                    f"maximum likelihood (at least {ml_runs_per_hyperparameter:g} runs per hyperparameter)")
             )
+        searched_with_priors = bool(use_priors)
+        fixed_noise = None
+        if noise_sd is not None:
+            if not (math.isfinite(noise_sd) and noise_sd >= 0):
+                raise ModelError(f"noise_sd must be a finite number >= 0; got {noise_sd!r}")
+            fixed_noise = min(max((noise_sd / scale) ** 2, noise_floor), NOISE_VARIANCE_MAX)
+            notes.append(f"noise variance fixed at {fixed_noise:.3g} (standardised) by the known measurement sd {noise_sd:g}")
         hp, search_notes, search_warn = _map_fit(
-            X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors), length_scale_max
+            X, z, warm_start, int(n_restarts), rng, noise_floor, bool(use_priors), length_scale_max,
+            fixed_noise,
         )
         notes[:0] = search_notes
         warn = warn or search_warn
@@ -1210,7 +1229,7 @@ def fit_gp(
     L = np.tril(L)
     w = linalg.solve_triangular(L, z, lower=True, check_finite=False)
     alpha = linalg.solve_triangular(L, w, lower=True, trans="T", check_finite=False)
-    return GaussianProcess(
+    model = GaussianProcess(
         X,
         y,
         hp,
@@ -1223,6 +1242,8 @@ def fit_gp(
         status=STATUS_WARNING if warn else STATUS_OK,
         message="; ".join(notes),
     )
+    model.used_priors = searched_with_priors
+    return model
 
 
 class PosteriorAt:

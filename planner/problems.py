@@ -554,10 +554,13 @@ def coating_protocol_dict() -> dict:
                   "version": "1", "author": "test", "kind": "formulation"},
         "factors": [{"name": n, "kind": "continuous", "lower": lo, "upper": hi, "unit": u}
                     for n, lo, hi, u in _COAT_BOUNDS],
-        "objective": {"name": "release_cv", "direction": "minimize", "unit": "%"},
+        # the measurement sds are the assays' known repeatability (the problem's noise below)
+        "objective": {"name": "release_cv", "direction": "minimize", "unit": "%", "measurement_sd": 0.05},
         "limits": [
-            {"name": "moisture", "lower": 2.2, "upper": 2.8, "probability": 0.95, "unit": "% w/w"},
-            {"name": "defects", "upper": 1.5, "probability": 0.95, "unit": "% of tablets"},
+            {"name": "moisture", "lower": 2.2, "upper": 2.8, "probability": 0.95, "unit": "% w/w",
+             "measurement_sd": 0.02},
+            {"name": "defects", "upper": 1.5, "probability": 0.95, "unit": "% of tablets",
+             "measurement_sd": 0.05},
         ],
         "screen": {"threshold": 0.95, "joint": "bound", "min_runs": 5},
         "ranking": {"rule": "ei"},

@@ -164,6 +164,14 @@ class Objective(_Strict):
     name: str
     direction: Literal["maximize", "minimize"]
     unit: str = ""
+    measurement_sd: float | None = Field(
+        default=None,
+        ge=0,
+        description=(
+            "known repeatability of the measurement (sd, in the response's unit), e.g. from "
+            "method validation; fixes the model's noise instead of estimating it"
+        ),
+    )
 
     @model_validator(mode="after")
     def _check(self):
@@ -181,6 +189,14 @@ class Limit(_Strict):
     probability: float = Field(gt=0, lt=1)
     min_runs: int | None = Field(default=None, ge=1)
     source: str = ""
+    measurement_sd: float | None = Field(
+        default=None,
+        ge=0,
+        description=(
+            "known repeatability of the measurement (sd, in the response's unit), e.g. from "
+            "method validation; fixes the model's noise instead of estimating it"
+        ),
+    )
 
     @model_validator(mode="after")
     def _check(self):
@@ -236,6 +252,13 @@ class Screen(_Strict):
         description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
     )
     forbidden: tuple[Forbidden, ...] = ()
+    short_model: bool = Field(
+        default=True,
+        description=(
+            "also screen with each limit model's shortest plausible length scales (within the "
+            "profile-likelihood 95% interval of one common multiplier) and take the lower probability"
+        ),
+    )
     widen_from_loo: bool = Field(
         default=True,
         description=(

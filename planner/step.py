@@ -39,6 +39,7 @@ from . import __version__
 from .acquisition import all_values, log_expected_improvement, score as rule_score
 from .errors import ModelError, ProtocolError
 from .gp import GaussianProcess, Hyperparameters, fit_gp
+from .limitmodel import PessimisticLimitModel
 from .parallel import default_workers, map_jobs
 from .protocol import Limit, Protocol
 from .runs import RunsTable
@@ -68,6 +69,9 @@ FIT_WORKERS = default_workers()
 #: Fits run on worker processes only when some response has this many runs
 #: (measured break-even of the process start-up: about 100 to 200 runs).
 PARALLEL_FIT_MIN_RUNS = 150
+#: When no pool candidate passes the screen, the local search for the
+#: highest joint figure starts from this many of the closest candidates.
+RESCUE_STARTS = 6
 #: A limit model is checked by leave-one-out (and widened if overconfident)
 #: from this many runs.
 LOO_WIDEN_MIN_RUNS = 5
@@ -92,6 +96,7 @@ class ModelSummary:
     loo_coverage: float | None = None  # share of measured values inside their LOO 95% interval
     loo_rmse: float | None = None
     sd_factor: float | None = None  # limit models: predictive sd widened by this (leave-one-out check)
+    short_factor: float | None = None  # limit models: length-scale multiplier of the short model
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -260,11 +265,12 @@ def _fit_job(job: dict):
     return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
                 restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
                 length_scale_max=job["length_scale_max"],
-                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"])
+                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
+                short=job["short"], noise_sd=job["noise_sd"])
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
-         ml_runs_per_hyperparameter=12.0, widen=False):
+         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None):
     try:
         model = fit_gp(
             U,
@@ -275,13 +281,20 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
             rng=seed,
             length_scale_max=length_scale_max,
             ml_runs_per_hyperparameter=ml_runs_per_hyperparameter,
+            noise_sd=noise_sd,
         )
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), "model-not-fitted", str(exc), prior_mean=prior_mean)
     sd_factor = None
+    used_priors = bool(model.used_priors)
     if widen and len(y) >= LOO_WIDEN_MIN_RUNS:
         model, sd_factor = _widen_from_loo(model)
     cov, rmse = _loo_summary(model, y) if len(y) >= 3 else (None, None)
+    short_factor = None
+    if short is not None:
+        model = PessimisticLimitModel.build(model, lower=short[0], upper=short[1],
+                                            with_prior=used_priors)
+        short_factor = model.factor
     summary = ModelSummary(
         response=response,
         role=role,
@@ -294,6 +307,7 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
         loo_coverage=cov,
         loo_rmse=rmse,
         sd_factor=sd_factor,
+        short_factor=short_factor,
     )
     return model, summary
 
@@ -451,7 +465,10 @@ def plan_step(
         job.update(restarts=protocol.model.restarts,
                    length_scale_max=cap if job["role"] == "limit" else None,
                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter,
-                   widen=job["role"] == "limit" and protocol.screen.widen_from_loo)
+                   widen=job["role"] == "limit" and protocol.screen.widen_from_loo,
+                   noise_sd=(protocol.limits[job["k"]] if job["role"] == "limit" else obj).measurement_sd,
+                   short=((protocol.limits[job["k"]].lower, protocol.limits[job["k"]].upper)
+                          if job["role"] == "limit" and protocol.screen.short_model else None))
     # starting worker processes costs about 0.1 s, more than small fits take
     big = max(len(job["y"]) for job in jobs) >= PARALLEL_FIT_MIN_RUNS
     fitted = map_jobs(_fit_job, jobs, FIT_WORKERS if big else 1)
@@ -564,11 +581,22 @@ def plan_step(
     result = screen_of(X_pool, U_pool, lims)
     scores = scores_of(mu, sd, result, inc_value)
 
-    # ---- local refinement of the best survivors
-    if protocol.batch.refine > 0 and np.any(result.survives):
+    # ---- local refinement of the best survivors; when none passed, a local
+    # search for the highest joint figure from the candidates that failed
+    # only on probability (the screen is not relaxed: every point found is
+    # screened again in full)
+    rescue = protocol.batch.refine > 0 and not np.any(result.survives)
+    if protocol.batch.refine > 0 and (np.any(result.survives) or rescue):
+        if rescue:
+            near = np.isin(result.reason, ("limit-probability", "joint-below-threshold"))
+            starts = np.flatnonzero(near)
+            starts = starts[np.lexsort((starts, -result.joint[starts]))][: RESCUE_STARTS]
+        else:
+            survivors = np.flatnonzero(result.survives)
+            starts = survivors[np.lexsort((survivors, -scores[survivors]))][: protocol.batch.refine]
         refined = _refine(
-            protocol, space, scaler, X_pool, scores, result, obj_model, limit_models,
-            inc_value, mode, rank_kw,
+            protocol, space, scaler, X_pool, starts, obj_model, limit_models,
+            inc_value, "feasibility-first" if rescue else mode, rank_kw, rescue=rescue,
         )
         if refined.shape[0]:
             Ur, mur, sdr, limsr = predict_all(refined, obj_model, limit_models)
@@ -577,6 +605,12 @@ def plan_step(
             U_pool, mu, sd, lims = predict_all(X_pool, obj_model, limit_models)
             result = screen_of(X_pool, U_pool, lims)
             scores = scores_of(mu, sd, result, inc_value)
+        if rescue:
+            found = int(np.sum(result.survives))
+            messages.append(
+                f"no pool candidate passed the screen; a local search for the highest joint figure "
+                f"from the {len(starts)} closest candidates found {found} that pass"
+            )
 
     # ---- greedy batch with fantasies
     base_result, base_mu, base_sd = result, mu, sd
@@ -709,9 +743,13 @@ def _local_candidates(space, X_safe, X_pool, n, rng) -> np.ndarray:
     return X[keep]
 
 
-def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_models,
-            inc_value, mode, rank_kw) -> np.ndarray:
-    """Refine the best survivors locally with SLSQP.
+def _refine(protocol, space, scaler, X_pool, top, obj_model, limit_models,
+            inc_value, mode, rank_kw, *, rescue: bool = False) -> np.ndarray:
+    """Refine the pool candidates ``top`` locally with SLSQP.
+
+    With ``rescue`` (no candidate passed the screen) the search maximises the
+    joint figure within the design space alone, and keeps any point that
+    raised it; the caller screens every point in full.
 
     Variables are the free continuous factors (discrete levels are kept),
     the design space's linear constraints are kept exactly, and the screen
@@ -724,8 +762,6 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
     cont = np.flatnonzero(free)
     if cont.size == 0:
         return np.zeros((0, X_pool.shape[1]))
-    survivors = np.flatnonzero(result.survives)
-    top = survivors[np.lexsort((survivors, -scores[survivors]))][: protocol.batch.refine]
     lo = space.lower[cont]
     span = np.where(space.upper[cont] - lo > 0, space.upper[cont] - lo, 1.0)
     limits = protocol.limits
@@ -797,7 +833,8 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
             b = space.b_eq - space.A_eq @ rest
             cons.append({"type": "eq", "fun": lambda u, A=A, b=b: A @ u - b, "jac": lambda u, A=A: A})
         fun, jac, cfun, cjac = make_problem(x0)
-        cons.append({"type": "ineq", "fun": cfun, "jac": cjac})
+        if not rescue:
+            cons.append({"type": "ineq", "fun": cfun, "jac": cjac})
         u0 = (x0[cont] - lo) / span
         try:
             with warnings.catch_warnings():
@@ -809,8 +846,8 @@ def _refine(protocol, space, scaler, X_pool, scores, result, obj_model, limit_mo
                 )
         except (ValueError, np.linalg.LinAlgError, ModelError):
             continue
-        if not res.success or res.fun >= fun(u0):
-            continue  # keep only refinements that converged and improved the score
+        if (not res.success and not rescue) or res.fun >= fun(u0):
+            continue  # keep only refinements that converged (rescue: any) and improved the score
         x = full(x0, np.clip(res.x, 0.0, 1.0))
         if np.all(np.isfinite(x)) and bool(np.asarray(space.contains(x[None, :]))[0]):
             out.append(x)

@@ -271,7 +271,7 @@ def main(argv=None) -> int:
     )
     print(
         f"python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
-        f"scikit-learn {sklearn.__version__}, {os.cpu_count()} CPUs; ours: {FIT_WORKERS} fit threads, "
+        f"scikit-learn {sklearn.__version__}, {os.cpu_count()} CPUs; ours: {FIT_WORKERS} fit processes, "
         f"{gp.PREDICT_WORKERS} prediction threads, BLAS {gp.BLAS_THREADS} thread"
     )
 

@@ -12,10 +12,11 @@ constraints, objective, limits with their probabilities and ``min_runs``,
 the start region, ``max_step`` and forbidden regions. The *settings*
 protocol (the user's, e.g. ``protocols/tablet_blend.toml``) supplies how
 the planner searches and screens: ``screen.threshold``, ``screen.joint``,
-``ranking`` (rule, kappa, xi), ``batch.size``, ``batch.pool``,
-``batch.refine`` and the ``model`` table (restarts, the limit models'
-length-scale cap). Without a settings protocol the problem's own values
-are used.
+``screen.short_model``, ``screen.widen_from_loo``, ``ranking`` (rule,
+kappa, xi), ``batch.size``, ``batch.pool``, ``batch.refine`` and the
+``model`` table (restarts, the priors rule, the limit models'
+length-scale cap). The measurement sds belong to the world (the problem's
+assays). Without a settings protocol the problem's own values are used.
 
 Strategies (:data:`STRATEGIES`)
 -------------------------------
@@ -132,9 +133,10 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
     ----------
     problem : Problem
     settings : Protocol or None
-        Supplies screen.threshold, screen.joint, ranking, batch.size,
-        batch.pool, batch.refine and the model settings (restarts, the
-        limit models' length-scale cap); None keeps the problem's own.
+        Supplies screen.threshold, screen.joint, screen.short_model,
+        screen.widen_from_loo, ranking, batch.size, batch.pool,
+        batch.refine and the model settings (restarts, the priors rule,
+        the limit models' length-scale cap); None keeps the problem's own.
 
     Returns
     -------
@@ -144,6 +146,8 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
     if settings is not None:
         data["screen"]["threshold"] = settings.screen.threshold
         data["screen"]["joint"] = settings.screen.joint
+        data["screen"]["short_model"] = settings.screen.short_model
+        data["screen"]["widen_from_loo"] = settings.screen.widen_from_loo
         data["ranking"] = settings.ranking.model_dump(mode="python")
         for key in ("size", "pool", "refine"):
             data["batch"][key] = getattr(settings.batch, key)

@@ -566,3 +566,28 @@ def test_prediction_is_the_same_on_any_number_of_threads_and_chunks(monkeypatch,
     mean_c, cov = model.predict(pts[:200], return_cov=True, include_noise=True)
     np.testing.assert_allclose(ref[0][:200], mean_c, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(ref[1][:200], np.sqrt(np.diag(cov)), rtol=1e-9)
+
+
+def test_known_measurement_sd_fixes_the_noise_variance():
+    model = fit_gp(X, Y, rng=0, noise_sd=0.3)
+    assert model.hyperparameters.noise_variance == pytest.approx((0.3 / model.scale) ** 2, rel=1e-12)
+    assert "known measurement sd 0.3" in model.message
+    # zero means the floor, never a singular model
+    exact = fit_gp(X, Y, rng=0, noise_sd=0.0)
+    assert exact.hyperparameters.noise_variance == pytest.approx(gp.NOISE_FLOOR, rel=1e-12)
+    with pytest.raises(ModelError, match="noise_sd"):
+        fit_gp(X, Y, noise_sd=float("nan"))
+
+
+def test_subset_search_reaches_the_full_search_optimum(monkeypatch):
+    # many runs: the starts run on a third of the runs, the best is refined on all;
+    # the optimum must match a search on all runs (and scikit-learn's, in benchmarks/models.py)
+    rng = np.random.default_rng(9)
+    Xn = rng.random((gp.SUBSET_FROM_RUNS + 10, 3))
+    yn = _smooth(Xn) + 0.05 * rng.standard_normal(Xn.shape[0])
+    fast = fit_gp(Xn, yn, rng=0)
+    assert "on a random 150 of the 260 runs" in fast.message
+    monkeypatch.setattr(gp, "SUBSET_FROM_RUNS", 10**9)
+    full = fit_gp(Xn, yn, rng=0)
+    assert "on a random" not in full.message
+    assert fast.log_marginal_likelihood >= full.log_marginal_likelihood - 1e-3 * abs(full.log_marginal_likelihood)

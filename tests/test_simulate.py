@@ -359,3 +359,16 @@ def test_cli_simulate_bad_protocol_exits_3(tmp_path):
     bad.write_text("[study]\ntitle = 1\n", encoding="utf-8")
     result = CliRunner().invoke(app, ["simulate", str(bad), "--problem", "gramacy", "--seeds", "1"])
     assert result.exit_code == 3 and "Error:" in result.output
+
+
+def test_settings_carry_the_screen_guards_but_not_the_world():
+    from planner.problems import get_problem
+    from planner.simulate import combine_settings
+
+    problem = get_problem("coating")
+    data = problem.protocol.model_dump(mode="python")
+    data["screen"].update(short_model=False, widen_from_loo=False)
+    data["limits"][0]["measurement_sd"] = 0.5  # the settings' own limits are not the world's
+    combined = combine_settings(problem, parse_protocol(data))
+    assert combined.screen.short_model is False and combined.screen.widen_from_loo is False
+    assert combined.limits[0].measurement_sd == problem.protocol.limits[0].measurement_sd == 0.02

@@ -218,3 +218,36 @@ def test_plan_records_the_widening_of_limit_models_only(tablet):
                           "screen": {**protocol.screen.model_dump(mode="python"), "widen_from_loo": False}})
     plan_off = plan_step(off, runs, seed=1)
     assert all(m.sd_factor is None for m in plan_off.models)
+
+
+def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch):
+    # one safe run in a narrow safe pocket; a small pool with no local candidates
+    # misses the pocket; the local search for the joint figure must find a point
+    # that passes the full screen (and say so), never relax the screen
+    import planner.step as step_mod
+    from planner.campaign import runs_table_from_arrays
+
+    monkeypatch.setattr(step_mod, "LOCAL_SHARE", 0.0)
+    data = {
+        "seed": 2,
+        "study": {"title": "rescue", "version": "1", "author": "tests"},
+        "factors": [{"name": "x1", "kind": "continuous", "lower": 0.0, "upper": 1.0},
+                    {"name": "x2", "kind": "continuous", "lower": 0.0, "upper": 1.0}],
+        "objective": {"name": "f", "direction": "minimize"},
+        "limits": [{"name": "c", "upper": 0.0, "probability": 0.95, "measurement_sd": 0.0}],
+        "screen": {"threshold": 0.95, "min_runs": 5},
+        "batch": {"size": 1, "pool": 50, "refine": 2},
+    }
+    protocol = parse_protocol(data)
+    rng = np.random.default_rng(0)
+    X = np.vstack([[0.5, 0.5], rng.random((9, 2))])
+    c = 40 * np.sum((X - 0.5) ** 2, axis=1) - 0.5  # safe only within r = 0.11 of the centre
+    runs = runs_table_from_arrays(protocol, X, {"f": X.sum(axis=1), "c": c})
+    plan = plan_step(protocol, runs, seed=4)
+    pool_part = plan.origin != "refined"
+    assert not np.any(plan.screen.survives[pool_part])  # the pool alone had nothing
+    assert any("local search for the highest joint figure" in m for m in plan.messages)
+    assert len(plan.proposals) == 1
+    p = plan.proposals[0]
+    assert p.origin == "refined" and p.joint >= 0.95
+    assert 40 * np.sum((p.x - 0.5) ** 2) - 0.5 < 0  # and it is truly inside the pocket

@@ -1145,6 +1145,8 @@ def _model_rows(result: PlanResult) -> tuple[list[dict], list[str]]:
             "response": m.response, "role": m.role, "n_runs": m.n_runs, "status": m.status,
             "coverage": "-" if cov is None else f"{100 * cov:.0f}%",
             "rmse": _fmt(m.loo_rmse), "message": m.message,
+            "widened": "-" if m.sd_factor is None else f"x{m.sd_factor:.3g}",
+            "short": "-" if m.short_factor is None else f"x{m.short_factor:.3g}",
         })
     return rows, model_warnings(result.models)
 

@@ -9,10 +9,17 @@ The flow (see DESIGN.md):
 2. one GP per response on the measured runs (factors scaled to the unit
    cube, fixed factors dropped); a limit model's prior mean sits at its
    limit; a limit with too few runs, or whose model cannot be fitted,
-   vouches for nothing (fail closed);
+   vouches for nothing (fail closed); a limit model that its own
+   leave-one-out check finds overconfident is widened
+   (``screen.widen_from_loo``), and it is paired with its shortest
+   plausible length scales, the screen taking the worse of the two
+   (``screen.short_model``, :mod:`planner.limitmodel`); the fits run on
+   worker processes when they are big (:mod:`planner.parallel`);
 3. a candidate pool from the hit-and-run sampler, plus candidates between
    the runs that met every limit and pool points (convex combinations stay
    inside the polytope), plus a local refinement of the best candidates;
+   when no candidate passes, a local search for the highest joint figure
+   from the closest ones (its points are screened like any other);
 4. the safety screen on the pool (``safety.screen``);
 5. the incumbent is the best measured objective among runs that met every
    limit; with none, the step ranks by the joint figure (feasibility first)

@@ -929,7 +929,7 @@ class GaussianProcess:
         y.setflags(write=False)
         k = self.n_fantasised + m
         message = f"{self._fit_message}; conditioned on {k} added observation(s), hyperparameters held"
-        return GaussianProcess(
+        out = GaussianProcess(
             X,
             y,
             hp,
@@ -944,6 +944,8 @@ class GaussianProcess:
             n_fantasised=k,
             fit_message=self._fit_message,
         )
+        out.used_priors = self.used_priors
+        return out
 
     def posterior_at(self, Xs) -> "PosteriorAt":
         """Posterior at a fixed set of points that fantasies update cheaply.

@@ -347,6 +347,7 @@ def _widen_from_loo(model):
         message=(f"{model.message}; predictive sd widened by {np.sqrt(c2):.3g} (mean square of the "
                  f"standardised leave-one-out errors {c2:.3g} > 1)"),
     )
+    out.used_priors = model.used_priors
     return out, float(np.sqrt(c2))
 
 

@@ -200,6 +200,10 @@ def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
     np.testing.assert_allclose(m1, m0, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(s1, c * s0, rtol=1e-9)
     assert "widened by" in widened.message
+    searched = fit_gp(U, y, prior_mean=1.0, rng=0)
+    assert searched.used_priors is True
+    assert _widen_from_loo(searched)[0].used_priors is True
+    assert searched.condition(pts[:2], [0.0, 0.1]).used_priors is True
     # a model that is not overconfident is left alone (never narrowed)
     wide = fit_gp(U, y, prior_mean=1.0, hyperparameters=Hyperparameters([0.3, 0.3], 100.0, 1.0))
     same, c1 = _widen_from_loo(wide)

@@ -317,7 +317,8 @@ class _SliceFamily:
         _solve(prob, what="the centre of the design space")
         if prob.status in _FEASIBLE:
             t_c = np.asarray(t2.value, dtype=float).reshape(k)
-            radius = min(radius, float(np.min((h - G @ t_c) / gnorm)))
+            with np.errstate(over="ignore"):  # a huge slack over a tiny norm is +inf: no bound
+                radius = min(radius, float(np.min((h - G @ t_c) / gnorm)))
         return t_c, radius
 
     def build(self, v: np.ndarray) -> _Slice | None:

@@ -9,6 +9,7 @@ Usage::
 
     python benchmarks/plan.py            # 300 runs and 1,000 runs
     python benchmarks/plan.py --runs 300 # one size only
+    python benchmarks/plan.py --runs 300 --no-guards  # without the short model and the widening
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ from planner.step import plan_step  # noqa: E402
 D = 8
 
 
-def w1_protocol(pool: int = 4000):
+def w1_protocol(pool: int = 4000, guards: bool = True):
     return parse_protocol({
         "seed": 1,
         "study": {"title": "W1 benchmark", "version": "1", "author": "bench"},
@@ -41,7 +42,7 @@ def w1_protocol(pool: int = 4000):
             {"name": "c2", "upper": 0.8, "probability": 0.95},
             {"name": "c3", "lower": -0.5, "upper": 1.5, "probability": 0.95},
         ],
-        "screen": {"threshold": 0.9, "min_runs": 5},
+        "screen": {"threshold": 0.9, "min_runs": 5, "short_model": guards, "widen_from_loo": guards},
         "ranking": {"rule": "ei"},
         "batch": {"size": 8, "pool": pool, "refine": 4},
         "model": {"restarts": 4},
@@ -67,8 +68,8 @@ def make_runs(protocol, n: int, seed: int = 0):
     return runs_table_from_arrays(protocol, X, Y)
 
 
-def time_step(n: int, repeats: int) -> dict:
-    protocol = w1_protocol()
+def time_step(n: int, repeats: int, guards: bool = True) -> dict:
+    protocol = w1_protocol(guards=guards)
     runs = make_runs(protocol, n)
     protocol.design_space().check()  # LPs solved once per protocol (cached), not per step
     times = []
@@ -86,11 +87,13 @@ def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--runs", type=int, nargs="*", default=[300, 1000])
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--no-guards", action="store_true",
+                    help="turn off screen.short_model and screen.widen_from_loo (to see what they cost)")
     args = ap.parse_args(argv)
     print("| runs | best of repeats (s) | median (s) | proposals | survivors / pool |")
     print("|---:|---:|---:|---:|---:|")
     for n in args.runs:
-        r = time_step(n, args.repeats if n <= 300 else 1)
+        r = time_step(n, args.repeats if n <= 300 else 1, guards=not args.no_guards)
         print(f"| {r['runs']} | {r['best_s']:.2f} | {r['median_s']:.2f} | {r['proposals']} | "
               f"{r['survived']} / {r['pool']} |", flush=True)
     print("\ntarget: W1 (300 runs, batch of 8) under 3 s on a 2-core machine")

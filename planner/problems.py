@@ -486,8 +486,12 @@ def dose_protocol_dict() -> dict:
         "constraints": [{"name": "combined exposure cap", "rule": "dose_a / 80 + dose_b / 8 <= 1.5"}],
         "objective": {"name": "response", "direction": "maximize", "unit": "score"},
         "limits": [
+            # judged on the true rate, as overdose control in dose escalation does
+            # (Babb, Rogatko & Zacks 1998, Statistics in Medicine 17:1103-1120; from
+            # memory): a cohort of 6 is too coarse a measurement to be 95% sure of
             {"name": "tox_rate", "upper": 0.25, "probability": 0.95, "unit": "fraction of cohort",
-             "source": "example: a target toxicity rate of 25% (Conaway & Wages)"},
+             "source": "example: a target toxicity rate of 25% (Conaway & Wages)",
+             "judged_on": "true-value"},
         ],
         # escalate cautiously: at most 0.1 (unit-scaled, per sqrt(factor)) from a
         # dose combination that met the limit; with 0.2 the toxicity model,

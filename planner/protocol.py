@@ -189,6 +189,14 @@ class Limit(_Strict):
     probability: float = Field(gt=0, lt=1)
     min_runs: int | None = Field(default=None, ge=1)
     source: str = ""
+    judged_on: Literal["measurement", "true-value"] = Field(
+        default="measurement",
+        description=(
+            "measurement: the probability that the next measured value meets the limit (model "
+            "and measurement noise); true-value: the probability that the response itself (the "
+            "noise-free mean) meets it, as overdose control in dose escalation does"
+        ),
+    )
     measurement_sd: float | None = Field(
         default=None,
         ge=0,

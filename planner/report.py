@@ -342,8 +342,10 @@ class _Geometry:
         model = self.result.fitted.get(name)
         if model is None or X.shape[0] == 0:
             return None, None
-        limit = name != self.protocol.objective.name
-        return model.predict(self.result.unit(X), include_noise=limit)
+        lim = next((m for m in self.protocol.limits if m.name == name), None)
+        # a limit as the screen judges it: the next measurement, or the true value
+        with_noise = lim is not None and lim.judged_on == "measurement"
+        return model.predict(self.result.unit(X), include_noise=with_noise)
 
     def joint(self, X: np.ndarray) -> np.ndarray:
         """The screen's joint figure at X (0 where a limit has no model: fail closed)."""

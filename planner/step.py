@@ -549,7 +549,7 @@ def plan_step(
                 lims.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                             status=s.status, message=s.message))
             else:
-                lims.append(_limit_prediction(lim, *lm.predict(U, include_noise=True)))
+                lims.append(_limit_prediction(lim, *lm.predict(U, include_noise=_with_noise(lim))))
         return U, mu, sd, lims
 
     hard_cache: dict = {}
@@ -669,7 +669,7 @@ def plan_step(
                 if lp is None:
                     lims_f.append(base)
                 else:
-                    lims_f.append(_limit_prediction(lim, *lp.mean_sd(include_noise=True)))
+                    lims_f.append(_limit_prediction(lim, *lp.mean_sd(include_noise=_with_noise(lim))))
         cur_result = screen_of(X_pool, U_pool, lims_f)
         cur_scores = scores_of(mu_f, sd_f, cur_result, fantasy_inc)
 
@@ -713,6 +713,11 @@ def plan_step(
         fitted={obj.name: obj_model, **{lim.name: lm for lim, lm in zip(protocol.limits, limit_models)}},
         space=space,
     )
+
+
+def _with_noise(lim: Limit) -> bool:
+    """Whether a limit is judged on the next measurement (noise included) or the true value."""
+    return lim.judged_on == "measurement"
 
 
 def _limit_prediction(lim: Limit, mean, sd) -> LimitPrediction:
@@ -785,7 +790,7 @@ def _refine(protocol, space, scaler, X_pool, top, obj_model, limit_models,
     def values_at(X):
         """Score (to maximise) and screen slack (>= 0 where it passes) at rows X."""
         U = scaler.unit(X)
-        P = [limit_probability(*lm.predict(U, include_noise=True), lower=lim.lower, upper=lim.upper)
+        P = [limit_probability(*lm.predict(U, include_noise=_with_noise(lim)), lower=lim.lower, upper=lim.upper)
              for lim, lm in zip(limits, limit_models)]
         P = np.column_stack(P) if P else np.ones((U.shape[0], 0))
         J = joint_figure(P, method=protocol.screen.joint)

@@ -255,3 +255,27 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     p = plan.proposals[0]
     assert p.origin == "refined" and p.joint >= 0.95
     assert 40 * np.sum((p.x - 0.5) ** 2) - 0.5 < 0  # and it is truly inside the pocket
+
+
+def test_a_limit_judged_on_the_true_value_leaves_the_noise_out(dose):
+    from safety.screen import limit_probability
+
+    p, runs = dose
+    lim = p.limits[0]
+    assert lim.judged_on == "true-value"
+    plan = plan_step(p, runs, seed=1, pool_size=POOL)
+    model = plan.fitted[lim.name]
+    U = plan.unit(plan.pool)
+    latent = limit_probability(*model.predict(U, include_noise=False), upper=lim.upper)
+    noisy = limit_probability(*model.predict(U, include_noise=True), upper=lim.upper)
+    np.testing.assert_allclose(plan.screen.P[:, 0], latent, rtol=1e-12, atol=1e-15)
+    # below the limit, the noise can only lower the probability, and here it does
+    below = latent > 0.5
+    assert np.all(noisy[below] <= latent[below] + 1e-12) and np.any(noisy[below] < latent[below] - 1e-6)
+    # the default judges the next measurement: noise included
+    data = p.model_dump(mode="python")
+    data["limits"][0]["judged_on"] = "measurement"
+    measured = plan_step(parse_protocol(data), runs, seed=1, pool_size=POOL)
+    Um = measured.unit(measured.pool)
+    expected = limit_probability(*measured.fitted[lim.name].predict(Um, include_noise=True), upper=lim.upper)
+    np.testing.assert_allclose(measured.screen.P[:, 0], expected, rtol=1e-12, atol=1e-15)

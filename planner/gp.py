@@ -947,6 +947,28 @@ class GaussianProcess:
         out.used_priors = self.used_priors
         return out
 
+    def with_variances_scaled(self, c2: float, note: str) -> GaussianProcess:
+        """The same model with signal and noise variance (and jitter) times ``c2``.
+
+        The posterior mean is unchanged and every predictive sd grows by
+        ``sqrt(c2)``; the factor is rescaled exactly (``L -> sqrt(c2) L``),
+        no new factorisation. ``note`` is added to the message.
+        """
+        c2 = float(c2)
+        if not (c2 > 0 and math.isfinite(c2)):
+            raise ModelError(f"a variance scale must be a positive number; got {c2!r}")
+        hp = self.hyperparameters
+        c = math.sqrt(c2)
+        out = GaussianProcess(
+            self.X, self.y,
+            Hyperparameters(hp.length_scales, hp.signal_variance * c2, hp.noise_variance * c2),
+            prior_mean=self.prior_mean, scale=self.scale, L=self._L * c, w=self._w / c,
+            alpha=self._alpha / c2, jitter=self.jitter * c2, status=self.status,
+            message=f"{self.message}; {note}", n_fantasised=self.n_fantasised,
+        )
+        out.used_priors = self.used_priors
+        return out
+
     def posterior_at(self, Xs) -> "PosteriorAt":
         """Posterior at a fixed set of points that fantasies update cheaply.
 

@@ -33,6 +33,7 @@ from scipy import stats
 
 from safety.screen import limit_probability
 
+from .errors import ModelError
 from .gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood
 
 __all__ = ["PessimisticLimitModel", "shortest_plausible_factor", "PLAUSIBLE_NATS", "F_MIN"]
@@ -49,7 +50,7 @@ def _log_target(model: GaussianProcess, theta: np.ndarray, with_prior: bool) -> 
     z = (model.y - model.prior_mean) / model.scale
     try:
         value, _ = log_marginal_likelihood(model.X, z, theta, include_prior=with_prior)
-    except Exception:  # a matrix that cannot be factorised is not plausible
+    except ModelError:  # a matrix that cannot be factorised is not plausible
         return -math.inf
     return float(value) if math.isfinite(value) else -math.inf
 

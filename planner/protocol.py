@@ -18,7 +18,7 @@ import math
 import tomllib
 from functools import cached_property
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
@@ -158,20 +158,23 @@ class Rule(_Strict):
         return parse_rule(self.rule)
 
 
+#: Known repeatability of a response's measurement (objective and limits alike).
+MeasurementSd = Annotated[float | None, Field(
+    ge=0,
+    description=(
+        "known repeatability of the measurement (sd, in the response's unit), e.g. from "
+        "method validation; fixes the model's noise instead of estimating it"
+    ),
+)]
+
+
 class Objective(_Strict):
     """The performance response to improve."""
 
     name: str
     direction: Literal["maximize", "minimize"]
     unit: str = ""
-    measurement_sd: float | None = Field(
-        default=None,
-        ge=0,
-        description=(
-            "known repeatability of the measurement (sd, in the response's unit), e.g. from "
-            "method validation; fixes the model's noise instead of estimating it"
-        ),
-    )
+    measurement_sd: MeasurementSd = None
 
     @model_validator(mode="after")
     def _check(self):
@@ -197,14 +200,7 @@ class Limit(_Strict):
             "noise-free mean) meets it, as overdose control in dose escalation does"
         ),
     )
-    measurement_sd: float | None = Field(
-        default=None,
-        ge=0,
-        description=(
-            "known repeatability of the measurement (sd, in the response's unit), e.g. from "
-            "method validation; fixes the model's noise instead of estimating it"
-        ),
-    )
+    measurement_sd: MeasurementSd = None
 
     @model_validator(mode="after")
     def _check(self):

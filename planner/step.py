@@ -45,7 +45,7 @@ from scipy.optimize import minimize
 from . import __version__
 from .acquisition import all_values, log_expected_improvement, score as rule_score
 from .errors import ModelError, ProtocolError
-from .gp import GaussianProcess, Hyperparameters, fit_gp
+from .gp import Hyperparameters, fit_gp
 from .limitmodel import PessimisticLimitModel
 from .parallel import default_workers, map_jobs
 from .protocol import Limit, Protocol
@@ -338,16 +338,9 @@ def _widen_from_loo(model):
     c2 = float(np.mean(u2))
     if not np.isfinite(c2) or c2 <= 1.0:
         return model, 1.0
-    hp = model.hyperparameters
-    widened = Hyperparameters(hp.length_scales, hp.signal_variance * c2, hp.noise_variance * c2)
-    out = fit_gp(model.X, model.y, prior_mean=model.prior_mean, hyperparameters=widened)
-    out = GaussianProcess(
-        out.X, out.y, widened, prior_mean=out.prior_mean, scale=out.scale, L=out._L, w=out._w,
-        alpha=out._alpha, jitter=out.jitter, status=model.status,
-        message=(f"{model.message}; predictive sd widened by {np.sqrt(c2):.3g} (mean square of the "
-                 f"standardised leave-one-out errors {c2:.3g} > 1)"),
-    )
-    out.used_priors = model.used_priors
+    out = model.with_variances_scaled(
+        c2, f"predictive sd widened by {np.sqrt(c2):.3g} (mean square of the standardised "
+            f"leave-one-out errors {c2:.3g} > 1)")
     return out, float(np.sqrt(c2))
 
 

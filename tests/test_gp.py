@@ -591,3 +591,17 @@ def test_subset_search_reaches_the_full_search_optimum(monkeypatch):
     full = fit_gp(Xn, yn, rng=0)
     assert "on a random" not in full.message
     assert fast.log_marginal_likelihood >= full.log_marginal_likelihood - 1e-3 * abs(full.log_marginal_likelihood)
+
+
+def test_scaling_the_variances_matches_a_refit_with_scaled_hyperparameters():
+    model = fit_gp(X, Y, hyperparameters=HP)
+    scaled = model.with_variances_scaled(2.5, "scaled for the test")
+    refit = fit_gp(X, Y, hyperparameters=Hyperparameters(HP.length_scales, 2.5 * HP.signal_variance,
+                                                         2.5 * HP.noise_variance))
+    for a, b in zip(scaled.predict(XS, include_noise=True), refit.predict(XS, include_noise=True)):
+        np.testing.assert_allclose(a, b, rtol=1e-9)
+    np.testing.assert_allclose(scaled.predict(XS)[1], np.sqrt(2.5) * model.predict(XS)[1], rtol=1e-9)
+    assert scaled.log_marginal_likelihood == pytest.approx(refit.log_marginal_likelihood, rel=1e-9)
+    assert scaled.message.endswith("scaled for the test")
+    with pytest.raises(ModelError, match="variance scale"):
+        model.with_variances_scaled(0.0, "no")

@@ -23,9 +23,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from planner.campaign import runs_table_from_arrays  # noqa: E402
-from planner.protocol import parse_protocol  # noqa: E402
-from planner.step import plan_step  # noqa: E402
+from guardband.planner.simulation.loop import runs_table_from_arrays  # noqa: E402
+from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402
+from guardband.planner.step.plan import plan_step  # noqa: E402
 
 D = 8
 

@@ -27,10 +27,10 @@ from typing import Optional
 
 import typer
 
-from . import __version__
-from .errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
-from .fileio import atomic_write_text, write_csv_text
-from .textable import render_table
+from guardband.planner import __version__
+from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
+from guardband.planner.app.fileio import atomic_write_text, write_csv_text
+from guardband.planner.app.textable import render_table
 
 app = typer.Typer(
     name="guardband",
@@ -88,7 +88,7 @@ def _guarded(func):
 
 
 def _json(obj) -> str:
-    from safety.ledger import to_jsonable
+    from guardband.safety.ledger import to_jsonable
 
     return json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False, allow_nan=False)
 
@@ -110,7 +110,7 @@ def check(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Check a protocol: validity, empty design space, real factor ranges, centre, fingerprint."""
-    from .workflow import check_protocol
+    from guardband.planner.app.workflow import check_protocol
 
     report = check_protocol(protocol)
     data = report.to_dict()
@@ -152,8 +152,8 @@ def start(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Make a starting design for a campaign with no runs yet, ready to fill in."""
-    from .protocol import load_protocol
-    from .workflow import cautions_of, start_design
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.planner.app.workflow import cautions_of, start_design
 
     p = load_protocol(protocol)
     seed_used = seed if seed is not None else (p.seed if p.seed is not None else 0)
@@ -200,7 +200,7 @@ def plan(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
-    from .workflow import cautions_of, plan_table, run_plan
+    from guardband.planner.app.workflow import cautions_of, plan_table, run_plan
 
     outcome = run_plan(protocol, runs, out, count=count, seed=seed, pool_size=pool,
                        delimiter=delimiter.value if delimiter else None,
@@ -234,7 +234,7 @@ def plan(
         _err(f"warning: {f}")
     _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
     if report:
-        from .report import report_plan
+        from guardband.planner.report.build import report_plan
 
         _err(f"wrote {report_plan(outcome).html}")
     if not result.proposals:
@@ -254,7 +254,7 @@ def verify(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Verify a decision log's hash chain and name the first bad record."""
-    from safety import ledger
+    from guardband.safety import ledger
 
     try:
         result = ledger.verify(log, expect_head=expect_head, expect_count=expect_count)
@@ -262,7 +262,7 @@ def verify(
         _err(f"Error: {exc}")
         raise typer.Exit(2)
     if summary and result.ok:
-        from .review import summarize_log
+        from guardband.planner.app.review import summarize_log
 
         typer.echo(summarize_log(log).render(format.value), nl=False)
     elif format is Format.json:
@@ -289,7 +289,7 @@ def replay(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Re-run a recorded planning step from its recorded inputs and compare the plans."""
-    from .workflow import replay_record
+    from guardband.planner.app.workflow import replay_record
 
     outcome = replay_record(log, record)
     if format is Format.json:
@@ -327,7 +327,7 @@ def report(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Write a self-contained HTML report (and PNG figures) for every planning step in a folder."""
-    from .report import report_folder
+    from guardband.planner.report.build import report_folder
 
     written = report_folder(folder, map_factors=_map_pair(map))
     if format is Format.json:
@@ -376,7 +376,7 @@ def simulate(
     """Simulate campaigns on a test problem: what the protocol's settings cost and risk."""
     import time
 
-    from .simulate import OptionError, simulate_from_options
+    from guardband.planner.simulation.runner import OptionError, simulate_from_options
 
     if protocol is None and not settings_from_problem:
         raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",
@@ -428,7 +428,7 @@ def demo(
     out: Path = typer.Option(Path("guardband-demo"), "--out", "-o", help="Folder for everything the demo writes."),
 ) -> None:
     """Run check, plan, verify and replay on the bundled tablet-blend protocol."""
-    from .demo import run_demo
+    from guardband.planner.app.demo import run_demo
 
     lines = run_demo(out, echo=typer.echo)
     for line in lines:

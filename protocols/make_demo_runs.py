@@ -15,9 +15,9 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
-from planner.designs import starting_design  # noqa: E402
-from planner.fileio import write_csv_text  # noqa: E402
-from planner.protocol import load_protocol  # noqa: E402
+from guardband.planner.space.designs import starting_design  # noqa: E402
+from guardband.planner.app.fileio import write_csv_text  # noqa: E402
+from guardband.planner.inputs.protocol import load_protocol  # noqa: E402
 
 
 def tablet_truth(x: dict) -> dict:

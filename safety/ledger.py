@@ -64,8 +64,8 @@ from typing import Any, Union
 import filelock
 import numpy as np
 
-from planner.errors import OutputError, VerificationError
-from planner.fileio import atomic_write_bytes
+from guardband.planner.errors import OutputError, VerificationError
+from guardband.planner.app.fileio import atomic_write_bytes
 
 __all__ = [
     "GENESIS_HASH",

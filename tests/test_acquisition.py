@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import integrate, stats
 
-from planner.acquisition import (
+from guardband.planner.step.acquisition import (
     RULES,
     all_values,
     confidence_bound,
@@ -23,7 +23,7 @@ from planner.acquisition import (
     probability_of_improvement,
     score,
 )
-from planner.protocol import RANKING_RULES
+from guardband.planner.inputs.protocol import RANKING_RULES
 
 MUS = [-3.0, 0.0, 120.0]
 SIGMAS = [1e-12, 0.01, 1.0, 30.0]

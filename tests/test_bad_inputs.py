@@ -19,7 +19,7 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from planner.cli import app
+from guardband.planner.cli import app
 
 HERE = Path(__file__).resolve().parent / "bad_inputs"
 ROOT = HERE.parents[1]
@@ -136,7 +136,7 @@ def fresh_processes(tmp_path_factory):
         if case.get("via") == "subprocess":
             argv, out, log = _argv(case, tmp_path_factory.mktemp(f"case{k}"))
             before = log.read_bytes() if log else None
-            proc = subprocess.Popen([sys.executable, "-m", "planner.cli", *argv], cwd=ROOT, env=_env(),
+            proc = subprocess.Popen([sys.executable, "-m", "guardband.planner.cli", *argv], cwd=ROOT, env=_env(),
                                     stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
             started[k] = (proc, out, log, before)
     results = {}

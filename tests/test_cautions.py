@@ -7,9 +7,9 @@ import re
 
 import pytest
 
-from planner.fileio import write_csv_text
-from safety import cautions
-from safety.cautions import DOSE, GENERAL, STUDY_KINDS, as_json, as_text, cautions_for
+from guardband.planner.app.fileio import write_csv_text
+from guardband.safety import cautions
+from guardband.safety.cautions import DOSE, GENERAL, STUDY_KINDS, as_json, as_text, cautions_for
 
 ALL = GENERAL + DOSE
 

@@ -9,8 +9,8 @@ import shutil
 import pytest
 from typer.testing import CliRunner
 
-from planner.cli import app
-from planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY
+from guardband.planner.cli import app
+from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY
 
 from conftest import PROTOCOLS
 
@@ -79,8 +79,8 @@ def test_start_writes_fillable_design(tmp_path, protocol):
     assert rows[0][0] == "run_id" and len(rows) == 8
     assert out.read_text().startswith("# Guardband starting design")
     # the written file reads back as a runs table with every run pending
-    from planner.protocol import load_protocol
-    from planner.runs import read_runs
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.planner.inputs.runs import read_runs
 
     p = load_protocol(protocol)
     table = read_runs(out, p)

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import pdist
 
-from planner.designs import (
+from guardband.planner.space.designs import (
     maximin,
     mixture_design,
     mixture_rows,
@@ -20,8 +20,8 @@ from planner.designs import (
     simplex_lattice,
     starting_design,
 )
-from planner.errors import ProtocolError
-from planner.space import DesignSpace
+from guardband.planner.errors import ProtocolError
+from guardband.planner.space.polytope import DesignSpace
 
 
 def blend_space(upper_c: float = 0.3) -> DesignSpace:

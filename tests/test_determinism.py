@@ -19,8 +19,8 @@ from pathlib import Path
 
 from typer.testing import CliRunner
 
-from planner.cli import app
-from safety import ledger
+from guardband.planner.cli import app
+from guardband.safety import ledger
 
 ROOT = Path(__file__).resolve().parents[1]
 HERE = Path(__file__).resolve().parent / "bad_inputs"
@@ -45,7 +45,7 @@ def test_same_seed_in_two_processes_gives_identical_bytes(tmp_path):
         out = tmp_path / f"campaign-{k}"
         # refine stays on (the protocol's 4): the refinement is where BLAS threads showed
         procs.append((out, subprocess.Popen(
-            [sys.executable, "-m", "planner.cli", "plan", str(TABLET), str(TABLET_RUNS), "--out", str(out),
+            [sys.executable, "-m", "guardband.planner.cli", "plan", str(TABLET), str(TABLET_RUNS), "--out", str(out),
              "--seed", "42", "--pool", "150", "--count", "2"],
             cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)))
     for out, proc in procs:
@@ -65,7 +65,7 @@ def test_in_process_plan_matches_a_fresh_process(tmp_path):
     # caches inside one process (design space, LP results) must not change a plan
     args = [str(TABLET), str(TABLET_RUNS), "--seed", "7", "--pool", "100", "--count", "2"]
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    proc = subprocess.Popen([sys.executable, "-m", "planner.cli", "plan", *args, "--out", str(tmp_path / "fresh")],
+    proc = subprocess.Popen([sys.executable, "-m", "guardband.planner.cli", "plan", *args, "--out", str(tmp_path / "fresh")],
                             cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     for k in range(2):
         res = runner.invoke(app, ["plan", *args, "--out", str(tmp_path / f"in-{k}")])

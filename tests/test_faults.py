@@ -65,7 +65,7 @@ def _csv_problem(path: Path) -> str | None:
 
 def check_campaign(folder: Path, previous_log: bytes) -> tuple[list[str], dict]:
     """Problems found in a campaign folder, and what it holds."""
-    from safety import ledger
+    from guardband.safety import ledger
 
     problems: list[str] = []
     log = folder / "decisions.jsonl"
@@ -114,7 +114,7 @@ def _child(argv: list[str]) -> None:  # pragma: no cover - runs in a forked proc
     os.dup2(devnull, 2)
     code = 1
     try:
-        from planner.cli import main
+        from guardband.planner.cli import main
 
         sys.argv = ["guardband", *argv]
         main()
@@ -153,7 +153,7 @@ def _wait_for_change(pid: int, path: Path, before: int) -> tuple[bool, int] | No
 
 
 def drive(folder: Path, trials: int, seed: int) -> dict:  # pragma: no cover - runs in the driver
-    from planner.workflow import run_plan
+    from guardband.planner.app.workflow import run_plan
 
     rng = random.Random(seed)
     run_plan(PROTOCOL, RUNS, folder, seed=1)  # a campaign with history; warms the imports
@@ -233,7 +233,7 @@ def test_plan_killed_at_random_moments_leaves_whole_files_and_a_valid_log(tmp_pa
     assert out["appended"] >= 1 and out["not_appended"] >= 1
     assert out["left_unrecorded_files"] + out["left_temp_files"] >= 1, out
     # and the real command line agrees about the log
-    res = subprocess.run([sys.executable, "-m", "planner.cli", "verify", str(folder / "decisions.jsonl"),
+    res = subprocess.run([sys.executable, "-m", "guardband.planner.cli", "verify", str(folder / "decisions.jsonl"),
                           "--expect-count", str(report["records"])],
                          cwd=ROOT, env=_env(), capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr
@@ -241,10 +241,10 @@ def test_plan_killed_at_random_moments_leaves_whole_files_and_a_valid_log(tmp_pa
 
 
 def test_two_plans_at_once_on_one_campaign_leave_a_valid_chain(tmp_path):
-    from safety import ledger
+    from guardband.safety import ledger
 
     folder = tmp_path / "campaign"
-    procs = [subprocess.Popen([sys.executable, "-m", "planner.cli", "plan", str(PROTOCOL), str(RUNS),
+    procs = [subprocess.Popen([sys.executable, "-m", "guardband.planner.cli", "plan", str(PROTOCOL), str(RUNS),
                                "--out", str(folder), "--seed", str(seed)],
                               cwd=ROOT, env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
              for seed in (101, 202)]
@@ -259,7 +259,7 @@ def test_two_plans_at_once_on_one_campaign_leave_a_valid_chain(tmp_path):
     assert records[1]["prev"] == records[0]["hash"]
     assert sorted(r["body"]["seed"] for r in records) == [101, 202]
     assert state["unrecorded"] == 0 and state["temps"] == 0
-    res = subprocess.run([sys.executable, "-m", "planner.cli", "verify", str(folder / "decisions.jsonl"),
+    res = subprocess.run([sys.executable, "-m", "guardband.planner.cli", "verify", str(folder / "decisions.jsonl"),
                           "--expect-count", "2"], cwd=ROOT, env=_env(), capture_output=True, text=True, timeout=120)
     assert res.returncode == 0 and "ok: 2 records" in res.stdout, res.stderr
 

@@ -14,9 +14,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from planner import fileio
-from planner.errors import EXIT_IO, OutputError
-from planner.fileio import (
+from guardband.planner.app import fileio
+from guardband.planner.errors import EXIT_IO, OutputError
+from guardband.planner.app.fileio import (
     CSV_FORMULA_PREFIXES,
     atomic_write_bytes,
     atomic_write_many,
@@ -342,7 +342,7 @@ def test_csv_quotes_a_bare_carriage_return():
 
 
 def test_comment_pieces_after_separators_cannot_start_formulas():
-    from planner.fileio import write_csv_text
+    from guardband.planner.app.fileio import write_csv_text
 
     text = write_csv_text([[1]], ["a"], comment_lines=['title "x, =1+1; @SUM(A1)\t-2, +3, ok'])
     first = text.splitlines()[0]

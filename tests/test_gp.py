@@ -14,9 +14,9 @@ from scipy import linalg, optimize, stats
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
-from planner import gp
-from planner.errors import ModelError
-from planner.gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood, matern52
+from guardband.planner.models import gp
+from guardband.planner.errors import ModelError
+from guardband.planner.models.gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood, matern52
 
 # Tiny module-level data: 14 runs in 3 factors, one input duplicated (rows 0 and 13).
 _RNG = np.random.default_rng(12345)

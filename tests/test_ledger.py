@@ -17,10 +17,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from planner import fileio
-from planner.errors import EXIT_VERIFY, OutputError, VerificationError
-from safety import ledger
-from safety.ledger import (
+from guardband.planner.app import fileio
+from guardband.planner.errors import EXIT_VERIFY, OutputError, VerificationError
+from guardband.safety import ledger
+from guardband.safety.ledger import (
     GENESIS_HASH,
     append_record,
     canonical_json,

@@ -8,11 +8,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from planner.gp import fit_gp, log_marginal_likelihood
-from planner.limitmodel import F_MIN, PLAUSIBLE_NATS, PessimisticLimitModel, shortest_plausible_factor
-from planner.protocol import parse_protocol
-from planner.step import plan_step
-from safety.screen import limit_probability
+from guardband.planner.models.gp import fit_gp, log_marginal_likelihood
+from guardband.planner.models.limitmodel import F_MIN, PLAUSIBLE_NATS, PessimisticLimitModel, shortest_plausible_factor
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.step.plan import plan_step
+from guardband.safety.screen import limit_probability
 
 RNG = np.random.default_rng(21)
 U = RNG.random((14, 2))
@@ -89,7 +89,7 @@ def test_short_model_never_admits_what_the_fitted_model_excludes():
         "screen": {"threshold": 0.95, "min_runs": 5},
         "batch": {"size": 1, "pool": 1500, "refine": 0},
     }
-    from planner.campaign import runs_table_from_arrays
+    from guardband.planner.simulation.loop import runs_table_from_arrays
 
     on = parse_protocol(data)
     off = parse_protocol({**data, "screen": {**data["screen"], "short_model": False}})

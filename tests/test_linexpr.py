@@ -5,7 +5,7 @@ import re
 import numpy as np
 import pytest
 
-from planner.linexpr import RuleSyntaxError, parse_rule
+from guardband.planner.inputs.rules import RuleSyntaxError, parse_rule
 
 NAMES = ("a", "b", "c", "my factor")
 

@@ -5,10 +5,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from planner import parallel, step
-from planner.campaign import runs_table_from_arrays
-from planner.protocol import parse_protocol
-from planner.step import plan_step
+from guardband.planner.models import parallel
+from guardband.planner.step import plan as step
+from guardband.planner.simulation.loop import runs_table_from_arrays
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.step.plan import plan_step
 
 
 def _square(x):

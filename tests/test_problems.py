@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize
 
-from planner.problems import (
+from guardband.planner.simulation.problems import (
     DOSE_COHORT,
     PROBLEMS,
     get_problem,

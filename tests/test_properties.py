@@ -18,11 +18,11 @@ import pytest
 from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 
-from planner.errors import GuardbandError, RunsDataError
-from planner.protocol import parse_protocol
-from planner.runs import parse_runs_text, read_runs_bytes
-from planner.step import plan_step
-from planner.workflow import exclusion_table
+from guardband.planner.errors import GuardbandError, RunsDataError
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.inputs.runs import parse_runs_text, read_runs_bytes
+from guardband.planner.step.plan import plan_step
+from guardband.planner.app.workflow import exclusion_table
 
 FAST = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 PLANS = settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow,

@@ -6,8 +6,8 @@ import tomllib
 
 import pytest
 
-from planner.errors import ProtocolError
-from planner.protocol import load_protocol, parse_protocol
+from guardband.planner.errors import ProtocolError
+from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 
 BASE = {
     "study": {"title": "t", "version": "1", "author": "me"},

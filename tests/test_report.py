@@ -16,13 +16,13 @@ import pytest
 from PIL import Image
 from typer.testing import CliRunner
 
-from planner.cli import app
-from planner.report import map_data, model_warnings, slice_data
-from planner.step import ModelSummary
-from planner.workflow import LOG_NAME, rerun_record
-from safety import ledger
-from safety.cautions import DOSE, cautions_for
-from safety.screen import REASONS, limit_probability
+from guardband.planner.cli import app
+from guardband.planner.report.build import map_data, model_warnings, slice_data
+from guardband.planner.step.plan import ModelSummary
+from guardband.planner.app.workflow import LOG_NAME, rerun_record
+from guardband.safety import ledger
+from guardband.safety.cautions import DOSE, cautions_for
+from guardband.safety.screen import REASONS, limit_probability
 
 from conftest import PROTOCOLS
 
@@ -210,7 +210,7 @@ def test_report_says_when_the_rerun_differs_or_the_step_was_superseded(dose_camp
     shutil.copytree(dose_campaign, folder)
     log = folder / LOG_NAME
     ledger.append_record(log, "correction", {"note": "test"}, supersedes=0, reason="R04 was entered twice")
-    import planner.workflow as workflow
+    import guardband.planner.app.workflow as workflow
 
     real = workflow.plan_step
 

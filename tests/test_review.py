@@ -11,11 +11,11 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from planner.cli import app
-from planner.review import summarize_log
-from planner.workflow import LOG_NAME, run_plan
-from safety import ledger
-from safety.screen import REASONS
+from guardband.planner.cli import app
+from guardband.planner.app.review import summarize_log
+from guardband.planner.app.workflow import LOG_NAME, run_plan
+from guardband.safety import ledger
+from guardband.safety.screen import REASONS
 
 from conftest import PROTOCOLS
 

@@ -5,9 +5,9 @@ import re
 import numpy as np
 import pytest
 
-from planner.errors import RunsDataError
-from planner.protocol import parse_protocol
-from planner.runs import parse_runs_text
+from guardband.planner.errors import RunsDataError
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.inputs.runs import parse_runs_text
 
 PROTOCOL = parse_protocol({
     "study": {"title": "t", "version": "1", "author": "me"},

@@ -5,7 +5,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
-from safety.screen import (
+from guardband.safety.screen import (
     REASONS,
     LimitPrediction,
     joint_figure,

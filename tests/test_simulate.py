@@ -12,11 +12,11 @@ from sklearn.linear_model import LinearRegression
 from sklearn.preprocessing import PolynomialFeatures
 from typer.testing import CliRunner
 
-from planner.campaign import CampaignHistory, run_campaign
-from planner.cli import app
-from planner.problems import PROBLEMS, gramacy_protocol_dict
-from planner.protocol import parse_protocol
-from planner.simulate import (
+from guardband.planner.simulation.loop import CampaignHistory, run_campaign
+from guardband.planner.cli import app
+from guardband.planner.simulation.problems import PROBLEMS, gramacy_protocol_dict
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.simulation.runner import (
     PLANNER_STRATEGIES,
     SCREEN_OFF,
     STRATEGIES,
@@ -362,8 +362,8 @@ def test_cli_simulate_bad_protocol_exits_3(tmp_path):
 
 
 def test_settings_carry_the_screen_guards_but_not_the_world():
-    from planner.problems import get_problem
-    from planner.simulate import combine_settings
+    from guardband.planner.simulation.problems import get_problem
+    from guardband.planner.simulation.runner import combine_settings
 
     problem = get_problem("coating")
     data = problem.protocol.model_dump(mode="python")

@@ -12,8 +12,8 @@ from hypothesis import strategies as st
 from scipy import optimize, stats
 from scipy.linalg import null_space
 
-from planner.errors import ProtocolError
-from planner.space import DesignSpace
+from guardband.planner.errors import ProtocolError
+from guardband.planner.space.polytope import DesignSpace
 
 TOL = 1e-9  # the feasibility promise of the sampler and the projection
 

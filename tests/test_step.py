@@ -3,12 +3,12 @@
 import numpy as np
 import pytest
 
-from planner.campaign import run_campaign, runs_table_from_arrays
-from planner.errors import ModelError
-from planner.problems import GRAMACY, gramacy_protocol_dict
-from planner.protocol import load_protocol, parse_protocol
-from planner.runs import read_runs
-from planner.step import plan_step, safe_runs_mask
+from guardband.planner.simulation.loop import run_campaign, runs_table_from_arrays
+from guardband.planner.errors import ModelError
+from guardband.planner.simulation.problems import GRAMACY, gramacy_protocol_dict
+from guardband.planner.inputs.protocol import load_protocol, parse_protocol
+from guardband.planner.inputs.runs import read_runs
+from guardband.planner.step.plan import plan_step, safe_runs_mask
 
 from conftest import PROTOCOLS
 
@@ -180,8 +180,8 @@ def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose):
 def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
     # Bachoc (2013): the cross-validation variance estimate makes the mean square of the
     # standardised leave-one-out errors exactly 1; the posterior mean does not change
-    from planner.gp import Hyperparameters, fit_gp
-    from planner.step import _widen_from_loo
+    from guardband.planner.models.gp import Hyperparameters, fit_gp
+    from guardband.planner.step.plan import _widen_from_loo
 
     rng = np.random.default_rng(2)
     U = rng.random((25, 2))
@@ -228,8 +228,8 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     # one safe run in a narrow safe pocket; a small pool with no local candidates
     # misses the pocket; the local search for the joint figure must find a point
     # that passes the full screen (and say so), never relax the screen
-    import planner.step as step_mod
-    from planner.campaign import runs_table_from_arrays
+    import guardband.planner.step.plan as step_mod
+    from guardband.planner.simulation.loop import runs_table_from_arrays
 
     monkeypatch.setattr(step_mod, "LOCAL_SHARE", 0.0)
     data = {
@@ -258,7 +258,7 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
 
 
 def test_a_limit_judged_on_the_true_value_leaves_the_noise_out(dose):
-    from safety.screen import limit_probability
+    from guardband.safety.screen import limit_probability
 
     p, runs = dose
     lim = p.limits[0]

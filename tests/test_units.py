@@ -7,11 +7,11 @@ import re
 import numpy as np
 import pytest
 
-from planner.errors import RunsDataError
-from planner.protocol import parse_protocol
-from planner.runs import parse_runs_text
-from planner.step import safe_runs_mask
-from planner.units import UnitError, conversion, read_unit
+from guardband.planner.errors import RunsDataError
+from guardband.planner.inputs.protocol import parse_protocol
+from guardband.planner.inputs.runs import parse_runs_text
+from guardband.planner.step.plan import safe_runs_mask
+from guardband.planner.inputs.units import UnitError, conversion, read_unit
 
 pytest.importorskip("pint")
 

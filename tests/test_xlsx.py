@@ -16,12 +16,12 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from planner.cli import app
-from planner.errors import RunsDataError
-from planner.fileio import CSV_FORMULA_PREFIXES
-from planner.protocol import load_protocol
-from planner.runs import read_runs, read_runs_bytes
-from safety import ledger
+from guardband.planner.cli import app
+from guardband.planner.errors import RunsDataError
+from guardband.planner.app.fileio import CSV_FORMULA_PREFIXES
+from guardband.planner.inputs.protocol import load_protocol
+from guardband.planner.inputs.runs import read_runs, read_runs_bytes
+from guardband.safety import ledger
 
 openpyxl = pytest.importorskip("openpyxl")
 
@@ -295,7 +295,7 @@ def test_run_ids_that_look_like_formulas_are_kept_verbatim_as_data(tmp_path):
 
 def test_comment_lines_cannot_carry_a_formula_into_a_spreadsheet():
     # a spreadsheet splits our "# ..." lines at commas; no piece may start a formula
-    from planner.fileio import write_csv_text
+    from guardband.planner.app.fileio import write_csv_text
 
     text = write_csv_text([[1.0]], ["a"], comment_lines=["Guardband plan - Blend A,=1+1"])
     # what a spreadsheet sees: every line split at the delimiter

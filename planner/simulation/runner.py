@@ -76,14 +76,14 @@ from pathlib import Path
 
 import numpy as np
 
-from .campaign import CampaignHistory, best_so_far, run_campaign, start_runs
-from .designs import maximin
-from .fileio import write_csv_text
-from .parallel import default_workers
-from .problems import PROBLEMS, Problem, get_problem, slsqp_in_space
-from .protocol import RANKING_RULES, Protocol, load_protocol, parse_protocol
-from .step import within_limit
-from .textable import render_table
+from guardband.planner.simulation.loop import CampaignHistory, best_so_far, run_campaign, start_runs
+from guardband.planner.space.designs import maximin
+from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.models.parallel import default_workers
+from guardband.planner.simulation.problems import PROBLEMS, Problem, get_problem, slsqp_in_space
+from guardband.planner.inputs.protocol import RANKING_RULES, Protocol, load_protocol, parse_protocol
+from guardband.planner.step.plan import within_limit
+from guardband.planner.app.textable import render_table
 
 try:  # installed with scikit-learn
     from threadpoolctl import threadpool_limits
@@ -296,7 +296,7 @@ def _quadratic_basis(space, names):
 
 
 def _mixture_totals(space):
-    from .designs import mixture_rows
+    from guardband.planner.space.designs import mixture_rows
 
     return mixture_rows(space)
 
@@ -559,7 +559,8 @@ def _worker_init() -> None:
     if threadpool_limits is not None:
         _WORKER_LIMIT = threadpool_limits(1)
     # the campaigns already run side by side: each plans in one process, one thread
-    from . import gp, step
+    from guardband.planner.models import gp
+    from guardband.planner.step import plan as step
 
     step.FIT_WORKERS = 1
     gp.PREDICT_WORKERS = 1
@@ -742,7 +743,7 @@ class SimulationResult:
         ]
 
     def cautions(self) -> tuple[str, ...]:
-        from safety.cautions import cautions_for
+        from guardband.safety.cautions import cautions_for
 
         return (SIMULATION_CAUTION,) + cautions_for(self.protocol.study.kind)
 

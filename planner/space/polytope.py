@@ -41,8 +41,8 @@ try:  # installed with scikit-learn; small matrix products are faster on one thr
 except ImportError:  # pragma: no cover
     threadpool_limits = None
 
-from planner.errors import ProtocolError
-from planner.settings import (
+from guardband.planner.errors import ProtocolError
+from guardband.planner.settings import (
     FEASIBILITY_TOL,
     FIXED_RANGE_TOL,
     HIT_AND_RUN_BURN_IN,

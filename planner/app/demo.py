@@ -2,18 +2,19 @@
 
 Everything goes into one folder: copies of the demo protocol and runs, the
 plan and exclusion tables, the decision log and a short summary text.
-The demo data is invented (see ``protocols/make_demo_runs.py``).
+The demo data is invented (see ``protocols/make_demo_runs.py``; shipped as package data).
 """
 
 from __future__ import annotations
 
 import shutil
+from importlib import resources
 from pathlib import Path
 from typing import Callable
 
-from .errors import GuardbandError, OutputError
-from .fileio import atomic_write_text
-from .textable import render_table
+from guardband.planner.errors import GuardbandError, OutputError
+from guardband.planner.app.fileio import atomic_write_text
+from guardband.planner.app.textable import render_table
 
 __all__ = ["DEMO_PROTOCOL", "DEMO_RUNS", "examples_dir", "run_demo"]
 
@@ -22,22 +23,21 @@ DEMO_RUNS = "tablet_blend_runs.csv"
 
 
 def examples_dir() -> Path:
-    """The folder that holds the example protocols (``protocols/`` of the source tree)."""
-    here = Path(__file__).resolve().parent
-    for candidate in (here.parent / "protocols", here / "examples"):
-        if (candidate / DEMO_PROTOCOL).exists():
-            return candidate
+    """The folder that holds the example protocols (package data ``guardband.protocols``)."""
+    candidate = Path(str(resources.files("guardband.protocols")))
+    if (candidate / DEMO_PROTOCOL).exists():
+        return candidate
     raise OutputError(
-        "the example protocols were not found next to the package; run the demo from a "
-        "source checkout (see the README)"
+        f"the example protocols were not found in {candidate}; reinstall Guardband "
+        "(the wheel ships them as package data)"
     )
 
 
 def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -> list[str]:
     """Run the demo into ``out``; return the summary lines (also written to SUMMARY.txt)."""
-    from safety import ledger
+    from guardband.safety import ledger
 
-    from .workflow import LOG_NAME, cautions_of, check_protocol, plan_table, replay_record, run_plan
+    from guardband.planner.app.workflow import LOG_NAME, cautions_of, check_protocol, plan_table, replay_record, run_plan
 
     out = Path(out)
     src = examples_dir()

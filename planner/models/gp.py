@@ -82,8 +82,8 @@ import numpy as np
 from scipy import linalg, optimize
 from scipy.spatial.distance import cdist
 
-from . import settings
-from .errors import ModelError
+from guardband.planner import settings
+from guardband.planner.errors import ModelError
 
 try:  # a dependency of scikit-learn, so normally present
     from threadpoolctl import ThreadpoolController

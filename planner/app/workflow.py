@@ -27,15 +27,15 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .errors import OutputError, ProtocolError, RunsDataError, VerificationError
-from .fileio import atomic_write_bytes, write_csv_text
-from .protocol import Protocol, load_protocol
-from .runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
-from .step import PlanResult, plan_step
+from guardband.planner import __version__
+from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, VerificationError
+from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
+from guardband.planner.inputs.protocol import Protocol, load_protocol
+from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
+from guardband.planner.step.plan import PlanResult, plan_step
 
-from safety import cautions as _cautions
-from safety import ledger
+from guardband.safety import cautions as _cautions
+from guardband.safety import ledger
 
 __all__ = [
     "LOG_NAME",
@@ -154,7 +154,7 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
     header, rows, notes
         ``header`` is run_id, the factors, the (empty) responses and notes.
     """
-    from .designs import starting_design
+    from guardband.planner.space.designs import starting_design
 
     if n < 1:
         raise ProtocolError("--runs must be at least 1")

@@ -31,10 +31,10 @@ import math
 import numpy as np
 from scipy import stats
 
-from safety.screen import limit_probability
+from guardband.safety.screen import limit_probability
 
-from .errors import ModelError
-from .gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood
+from guardband.planner.errors import ModelError
+from guardband.planner.models.gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood
 
 __all__ = ["PessimisticLimitModel", "shortest_plausible_factor", "PLAUSIBLE_NATS", "F_MIN"]
 

@@ -39,17 +39,17 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Rectangle
 from matplotlib.ticker import MaxNLocator
 
-from . import __version__
-from .errors import ProtocolError, VerificationError
-from .fileio import atomic_write_bytes, atomic_write_text
-from .runs import RunsTable, read_runs
-from .settings import FEASIBILITY_TOL
-from .step import Z95, PlanResult, safe_runs_mask
-from .textable import format_cell
+from guardband.planner import __version__
+from guardband.planner.errors import ProtocolError, VerificationError
+from guardband.planner.app.fileio import atomic_write_bytes, atomic_write_text
+from guardband.planner.inputs.runs import RunsTable, read_runs
+from guardband.planner.settings import FEASIBILITY_TOL
+from guardband.planner.step.plan import Z95, PlanResult, safe_runs_mask
+from guardband.planner.app.textable import format_cell
 
-from safety import cautions as _cautions
-from safety import ledger
-from safety.screen import REASONS, joint_figure, limit_probability
+from guardband.safety import cautions as _cautions
+from guardband.safety import ledger
+from guardband.safety.screen import REASONS, joint_figure, limit_probability
 
 __all__ = [
     "OKABE_ITO",
@@ -1403,7 +1403,7 @@ def write_report(report: Report, folder: str | Path, *, record_index: int | None
     try:
         fig_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        from .errors import OutputError
+        from guardband.planner.errors import OutputError
 
         raise OutputError(f"could not create {fig_dir}: {exc.strerror or exc}") from exc
     paths = []
@@ -1417,7 +1417,7 @@ def write_report(report: Report, folder: str | Path, *, record_index: int | None
 
 
 def _table_sha(result: PlanResult, body: dict) -> tuple[str, str]:
-    from .workflow import _render
+    from guardband.planner.app.workflow import _render
 
     plan_bytes, _, label = _render(result, body.get("count_requested"))
     return hashlib.sha256(plan_bytes).hexdigest(), label
@@ -1456,7 +1456,7 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         The log is missing, fails verification, holds no plan record, or an
         input copy is missing or altered.
     """
-    from .workflow import LOG_NAME, rerun_record
+    from guardband.planner.app.workflow import LOG_NAME, rerun_record
 
     folder = Path(folder)
     log = folder / LOG_NAME
@@ -1469,7 +1469,7 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
     if not plans:
         raise VerificationError(f"{log}: the log holds no plan record, so there is nothing to report")
     if map_factors is not None:  # refuse a bad --map before the (slow) re-runs
-        from .protocol import load_protocol
+        from guardband.planner.inputs.protocol import load_protocol
 
         for rec in plans:
             pf = rec["body"]["protocol_file"]

@@ -19,11 +19,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .designs import starting_design
-from .errors import ModelError
-from .protocol import Protocol
-from .runs import RunsTable
-from .step import plan_step, within_limit
+from guardband.planner.space.designs import starting_design
+from guardband.planner.errors import ModelError
+from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.step.plan import plan_step, within_limit
 
 __all__ = ["CampaignHistory", "runs_table_from_arrays", "run_campaign", "best_so_far", "start_runs"]
 

@@ -15,8 +15,8 @@ from fractions import Fraction
 
 import numpy as np
 
-from planner.errors import ProtocolError
-from planner.space import DesignSpace, _jsonable
+from guardband.planner.errors import ProtocolError
+from guardband.planner.space.polytope import DesignSpace, _jsonable
 
 __all__ = [
     "simplex_lattice",

@@ -59,7 +59,7 @@ from typing import Callable
 import numpy as np
 from scipy.optimize import minimize
 
-from .protocol import Protocol, parse_protocol
+from guardband.planner.inputs.protocol import Protocol, parse_protocol
 
 __all__ = [
     "Problem",

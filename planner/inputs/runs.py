@@ -46,9 +46,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import RunsDataError
-from .protocol import Protocol
-from .units import UnitError, conversion
+from guardband.planner.errors import RunsDataError
+from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.inputs.units import UnitError, conversion
 
 __all__ = [
     "RunsTable",

@@ -23,8 +23,8 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from .errors import ProtocolError
-from .linexpr import LinearRule, RuleSyntaxError, parse_rule
+from guardband.planner.errors import ProtocolError
+from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 
 __all__ = [
     "Protocol",
@@ -445,7 +445,7 @@ class Protocol(_Strict):
         return space
 
     def _build_design_space(self):
-        from .space import DesignSpace
+        from guardband.planner.space.polytope import DesignSpace
 
         names = self.factor_names
         d = len(names)

@@ -22,7 +22,7 @@ from typing import Union
 
 import numpy as np
 
-from planner.errors import OutputError
+from guardband.planner.errors import OutputError
 
 __all__ = [
     "CSV_FORMULA_PREFIXES",

@@ -18,13 +18,13 @@ import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .errors import GuardbandError
-from .fileio import write_csv_text
-from .protocol import load_protocol
-from .textable import render_table
+from guardband.planner.errors import GuardbandError
+from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.inputs.protocol import load_protocol
+from guardband.planner.app.textable import render_table
 
-from safety import ledger
-from safety.screen import REASONS
+from guardband.safety import ledger
+from guardband.safety.screen import REASONS
 
 __all__ = ["StepSummary", "CorrectionSummary", "ReviewSummary", "summarize_log"]
 

@@ -42,17 +42,17 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import minimize
 
-from . import __version__
-from .acquisition import all_values, log_expected_improvement, score as rule_score
-from .errors import ModelError, ProtocolError
-from .gp import Hyperparameters, fit_gp
-from .limitmodel import PessimisticLimitModel
-from .parallel import default_workers, map_jobs
-from .protocol import Limit, Protocol
-from .runs import RunsTable
-from .settings import FEASIBILITY_TOL, NEAR_MISS_COUNT
+from guardband.planner import __version__
+from guardband.planner.step.acquisition import all_values, log_expected_improvement, score as rule_score
+from guardband.planner.errors import ModelError, ProtocolError
+from guardband.planner.models.gp import Hyperparameters, fit_gp
+from guardband.planner.models.limitmodel import PessimisticLimitModel
+from guardband.planner.models.parallel import default_workers, map_jobs
+from guardband.planner.inputs.protocol import Limit, Protocol
+from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.settings import FEASIBILITY_TOL, NEAR_MISS_COUNT
 
-from safety.screen import (
+from guardband.safety.screen import (
     LimitPrediction,
     ScreenResult,
     joint_figure,

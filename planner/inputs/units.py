@@ -38,7 +38,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import RunsDataError
+from guardband.planner.errors import RunsDataError
 
 __all__ = ["UnitReading", "Conversion", "UnitError", "read_unit", "conversion", "SIGNIFICANT_DIGITS"]
 

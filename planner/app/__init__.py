@@ -1,0 +1,1 @@
+"""What each command does with files: check, start, plan, replay, review, demo."""

@@ -1,0 +1,1 @@
+"""Inputs: the protocol file, the rule parser, units in column headers, the runs table."""

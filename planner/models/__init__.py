@@ -1,0 +1,1 @@
+"""Models: exact GP regression, its hyperparameter search, limit-model guards, worker processes."""

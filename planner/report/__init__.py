@@ -1,0 +1,1 @@
+"""The HTML report: its data (slices, maps, model checks), figures and page."""

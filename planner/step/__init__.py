@@ -1,0 +1,1 @@
+"""One planning step: models, candidate pool, the safety screen, ranking, the batch."""

@@ -78,7 +78,7 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 from guardband.planner import gp  # noqa: E402
 from guardband.planner.models.gp import Hyperparameters, fit_gp  # noqa: E402
 from guardband.planner.models.parallel import map_jobs  # noqa: E402
-from guardband.planner.step.plan import FIT_WORKERS  # noqa: E402
+from guardband.planner.step.fitting import FIT_WORKERS  # noqa: E402
 
 N_FACTORS = 8
 SKLEARN_MODES = ("configured", "serial", "threads", "processes")

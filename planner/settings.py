@@ -25,3 +25,10 @@ HIT_AND_RUN_BURN_IN = 200
 HIT_AND_RUN_THIN = 5
 #: Number of near misses kept in a decision-log record, at least.
 NEAR_MISS_COUNT = 20
+#: Normal quantile of a two-sided 95% interval.
+Z95 = 1.959963984540054
+#: A model whose leave-one-out 95% intervals hold less than this share of
+#: its measured values, with at least COVERAGE_MIN_RUNS runs, is reported as
+#: looking overconfident (the plan's messages and the report's model checks).
+COVERAGE_WARNING = 0.80
+COVERAGE_MIN_RUNS = 8

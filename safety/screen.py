@@ -29,18 +29,33 @@ does not fit models and does not import the command line.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.special import ndtr
 
+from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules
+
+#: Absolute slack when testing ``A x <= b`` for a forbidden region (the same
+#: feasibility tolerance as the design space's).
+REGION_TOL = 1e-9
+
 __all__ = [
     "REASONS",
     "LimitPrediction",
+    "HardRules",
     "ScreenResult",
     "limit_probability",
+    "limit_predictions",
+    "probabilities_at",
+    "joint_at",
+    "figures_at",
     "joint_figure",
+    "forbidden_mask",
+    "hard_rules",
     "run_screen",
+    "screen_points",
     "step_distance",
 ]
 
@@ -121,6 +136,147 @@ def joint_figure(P, *, method: str = "bound") -> np.ndarray:
     if method == "independent":
         return np.prod(P, axis=1)
     raise ValueError(f"unknown joint method {method!r}; use 'bound' or 'independent'")
+
+
+def _mean_sd(model, U, with_noise: bool):
+    """(mean, sd) from a fitted model at U, or from a posterior over fixed points (U None)."""
+    if U is None:
+        return model.mean_sd(include_noise=with_noise)
+    return model.predict(U, include_noise=with_noise)
+
+
+def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailable=None) -> list[LimitPrediction]:
+    """What each limit's model says at the points, as the screen judges it.
+
+    Parameters
+    ----------
+    limits : sequence of LimitRule
+    models : sequence (one per limit) of model or None
+        A fitted model (``predict(U, include_noise=...)``; the limit-model
+        guards, the short model and the leave-one-out widening, are already
+        part of it) or, with ``U`` None, a posterior over fixed points
+        (``mean_sd(include_noise=...)``). None: the limit cannot vouch.
+    U : array of shape (n, k), optional
+        Points in the models' unit-scaled coordinates.
+    unavailable : sequence of (status, message), optional
+        Why each limit without a model cannot vouch ("too-few-runs" or
+        "model-not-fitted"); default "model-not-fitted".
+
+    Returns
+    -------
+    list of LimitPrediction
+        The predictive distribution of the next measurement (latent plus
+        noise) or of the true value, as each limit is judged.
+    """
+    out = []
+    for k, (lim, model) in enumerate(zip(limits, models)):
+        if model is None:
+            status, message = (unavailable[k] if unavailable is not None
+                               else ("model-not-fitted", "no model"))
+            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
+                                       status=status, message=message))
+        else:
+            mean, sd = _mean_sd(model, U, lim.with_noise)
+            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd))
+    return out
+
+
+def probabilities_at(predictions: Sequence[LimitPrediction], n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per-limit probabilities and whether every limit could vouch.
+
+    Returns
+    -------
+    P : array of shape (n, n_limits)
+        NaN in the column of a limit that cannot vouch.
+    vouch : bool array of shape (n,)
+        False everywhere when some limit cannot vouch (fail closed).
+    """
+    P = np.full((n, len(predictions)), np.nan)
+    vouch = np.ones(n, dtype=bool)
+    for j, lim in enumerate(predictions):
+        if lim.status == "ok":
+            P[:, j] = limit_probability(lim.mean, lim.sd, lower=lim.lower, upper=lim.upper)
+        else:
+            vouch[:] = False
+    return P, vouch
+
+
+def figures_at(predictions: Sequence[LimitPrediction], n: int, *,
+               method: str = "bound") -> tuple[np.ndarray, np.ndarray]:
+    """Per-limit probabilities (NaN where a limit cannot vouch) and the joint figure
+    (0 where a limit cannot vouch: fail closed) at n points."""
+    P, vouch = probabilities_at(predictions, n)
+    return P, np.where(vouch, joint_figure(np.nan_to_num(P, nan=0.0), method=method), 0.0)
+
+
+def joint_at(predictions: Sequence[LimitPrediction], n: int, *, method: str = "bound") -> np.ndarray:
+    """The joint figure at n points; 0 where a limit cannot vouch (fail closed)."""
+    return figures_at(predictions, n, method=method)[1]
+
+
+def forbidden_mask(regions: Sequence[ForbiddenRegion], X) -> tuple[np.ndarray, list[str]]:
+    """Which points lie in a forbidden region, and which region (the first that holds them)."""
+    X = np.asarray(X, dtype=float)
+    n = X.shape[0]
+    mask = np.zeros(n, dtype=bool)
+    detail = [""] * n
+    for region in regions:
+        inside = np.all(X @ region.A.T <= region.b + REGION_TOL, axis=1)
+        for i in np.flatnonzero(inside & ~mask):
+            detail[i] = region.describe()
+        mask |= inside
+    return mask, detail
+
+
+@dataclass(frozen=True)
+class HardRules:
+    """The rules that need no model, at a set of points (see :func:`hard_rules`)."""
+
+    inside: np.ndarray
+    outside_detail: list[str]
+    forbidden: np.ndarray
+    forbidden_detail: list[str]
+    step: np.ndarray
+    step_basis: str
+
+
+def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str) -> HardRules:
+    """Outside the design space, inside a forbidden region, and the step from the anchors.
+
+    Parameters
+    ----------
+    rules : ScreenRules
+    space : design space
+        ``contains(X)`` and ``describe_violation(x)``.
+    X : array of shape (n, n_factors)
+        Points in protocol units.
+    U : array of shape (n, k)
+        The same points in unit-scaled coordinates of the free factors.
+    anchors : array of shape (m, k)
+        The runs the step is measured from (unit-scaled).
+    step_basis : str
+        What the anchors are, for the messages.
+    """
+    inside = np.asarray(space.contains(X))
+    outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
+    forb, forb_detail = forbidden_mask(rules.forbidden, X)
+    return HardRules(inside, outside_detail, forb, forb_detail, step_distance(U, anchors), step_basis)
+
+
+def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[LimitPrediction]) -> ScreenResult:
+    """The whole screen at points whose hard rules are known (see :func:`run_screen`)."""
+    return run_screen(
+        inside=hard.inside,
+        outside_detail=hard.outside_detail,
+        forbidden=hard.forbidden,
+        forbidden_detail=hard.forbidden_detail,
+        step=hard.step,
+        max_step=rules.max_step,
+        step_basis=hard.step_basis,
+        limits=list(predictions),
+        threshold=rules.threshold,
+        joint=rules.joint,
+    )
 
 
 def step_distance(U, U_safe) -> np.ndarray:
@@ -233,18 +389,9 @@ def run_screen(
     """
     inside = np.asarray(inside, dtype=bool)
     n = inside.shape[0]
-    m = len(limits)
-    P = np.full((n, m), np.nan)
-    messages = []
-    vouch = np.ones(n, dtype=bool)
-    for j, lim in enumerate(limits):
-        if lim.status == "ok":
-            P[:, j] = limit_probability(lim.mean, lim.sd, lower=lim.lower, upper=lim.upper)
-        else:
-            vouch[:] = False
-            messages.append(f"limit {lim.name!r} cannot vouch for any candidate: {lim.message}")
-    J = joint_figure(np.nan_to_num(P, nan=0.0), method=joint)
-    J = np.where(vouch, J, 0.0)
+    P, J = figures_at(limits, n, method=joint)
+    messages = [f"limit {lim.name!r} cannot vouch for any candidate: {lim.message}"
+                for lim in limits if lim.status != "ok"]
     if step is None:
         step = np.full(n, np.nan)
     reason = np.full(n, "", dtype=object)

@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
-if str(ROOT) not in sys.path:  # allow running the tests without installing
-    sys.path.insert(0, str(ROOT))
 
 PROTOCOLS = ROOT / "protocols"
 

@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 
 from guardband.planner.models import parallel
-from guardband.planner.step import plan as step
+from guardband.planner.step import fitting
 from guardband.planner.simulation.loop import runs_table_from_arrays
 from guardband.planner.inputs.protocol import parse_protocol
-from guardband.planner.step.plan import plan_step
+from guardband.planner.step import plan_step
 
 
 def _square(x):
@@ -53,10 +53,10 @@ def _w1_like(n: int):
 
 def test_plan_step_fits_on_processes_give_the_same_plan(monkeypatch):
     protocol, runs = _w1_like(40)
-    monkeypatch.setattr(step, "PARALLEL_FIT_MIN_RUNS", 10**9)  # in turn
+    monkeypatch.setattr(fitting, "PARALLEL_FIT_MIN_RUNS", 10**9)  # in turn
     serial = plan_step(protocol, runs, seed=5)
-    monkeypatch.setattr(step, "PARALLEL_FIT_MIN_RUNS", 1)  # on processes
-    monkeypatch.setattr(step, "FIT_WORKERS", 2)
+    monkeypatch.setattr(fitting, "PARALLEL_FIT_MIN_RUNS", 1)  # on processes
+    monkeypatch.setattr(fitting, "FIT_WORKERS", 2)
     forked = plan_step(protocol, runs, seed=5)
     assert [m.hyperparameters for m in serial.models] == [m.hyperparameters for m in forked.models]
     np.testing.assert_array_equal(np.array([p.x for p in serial.proposals]), np.array([p.x for p in forked.proposals]))

@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 from guardband.planner.errors import GuardbandError, RunsDataError
 from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.inputs.runs import parse_runs_text, read_runs_bytes
-from guardband.planner.step.plan import plan_step
+from guardband.planner.step import plan_step
 from guardband.planner.app.workflow import exclusion_table
 
 FAST = settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -18,7 +18,7 @@ from typer.testing import CliRunner
 
 from guardband.planner.cli import app
 from guardband.planner.report.build import map_data, model_warnings, slice_data
-from guardband.planner.step.plan import ModelSummary
+from guardband.planner.step import ModelSummary
 from guardband.planner.app.workflow import LOG_NAME, rerun_record
 from guardband.safety import ledger
 from guardband.safety.cautions import DOSE, cautions_for

@@ -8,7 +8,7 @@ from guardband.planner.errors import ModelError
 from guardband.planner.simulation.problems import GRAMACY, gramacy_protocol_dict
 from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.inputs.runs import read_runs
-from guardband.planner.step.plan import plan_step, safe_runs_mask
+from guardband.planner.step import plan_step, safe_runs_mask
 
 from conftest import PROTOCOLS
 
@@ -181,7 +181,7 @@ def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
     # Bachoc (2013): the cross-validation variance estimate makes the mean square of the
     # standardised leave-one-out errors exactly 1; the posterior mean does not change
     from guardband.planner.models.gp import Hyperparameters, fit_gp
-    from guardband.planner.step.plan import _widen_from_loo
+    from guardband.planner.models.checks import widen_from_loo as _widen_from_loo
 
     rng = np.random.default_rng(2)
     U = rng.random((25, 2))
@@ -228,7 +228,7 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     # one safe run in a narrow safe pocket; a small pool with no local candidates
     # misses the pocket; the local search for the joint figure must find a point
     # that passes the full screen (and say so), never relax the screen
-    import guardband.planner.step.plan as step_mod
+    import guardband.planner.step.pool as step_mod
     from guardband.planner.simulation.loop import runs_table_from_arrays
 
     monkeypatch.setattr(step_mod, "LOCAL_SHARE", 0.0)

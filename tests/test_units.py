@@ -10,7 +10,7 @@ import pytest
 from guardband.planner.errors import RunsDataError
 from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.inputs.runs import parse_runs_text
-from guardband.planner.step.plan import safe_runs_mask
+from guardband.planner.step import safe_runs_mask
 from guardband.planner.inputs.units import UnitError, conversion, read_unit
 
 pytest.importorskip("pint")

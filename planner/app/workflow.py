@@ -32,7 +32,7 @@ from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, 
 from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
-from guardband.planner.step.plan import PlanResult, plan_step
+from guardband.planner.step import PlanResult, plan_step
 
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
@@ -342,7 +342,8 @@ def _read_input(path: Path, error, what: str) -> bytes:
 _RUNS_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".xlsm")
 
 
-def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
+def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
+    """The plan table and exclusion table bytes of a step, and its step label."""
     body_id = _short(ledger.canonical_json({"p": result.proposal_dicts(), "s": result.seed,
                                             "f": result.protocol.fingerprint, "r": result.runs_sha256}))
     step_label = f"P{body_id[:6]}"
@@ -363,7 +364,7 @@ def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, 
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
                 count, pool_size, protocol_path, runs_path, *, read_options=None) -> PlanOutcome:
-    plan_bytes, excl_bytes, step_label = _render(result, count)
+    plan_bytes, excl_bytes, step_label = render_tables(result, count)
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
         (out_dir / "inputs").mkdir(exist_ok=True)
@@ -411,6 +412,7 @@ class ReplayOutcome:
     differences: tuple[str, ...]
     recorded_sha256: str
     replayed_sha256: str
+    step_label: str = ""
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -470,19 +472,23 @@ def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
     VerificationError
         As :func:`rerun_record`.
     """
-    result, rec = rerun_record(log_path, index)
+    return compare_with_record(*rerun_record(log_path, index))
+
+
+def compare_with_record(result: PlanResult, rec: dict) -> ReplayOutcome:
+    """Compare a re-run step's tables (and fingerprint, tool version) with its plan record."""
     body = rec["body"]
     differences = []
     if result.protocol.fingerprint != body["protocol_fingerprint"]:
         differences.append("the protocol fingerprint differs")
     if body.get("tool_version") != __version__:
         differences.append(f"recorded with tool version {body.get('tool_version')}, replayed with {__version__}")
-    plan_bytes, excl_bytes, _ = _render(result, body.get("count_requested"))
+    plan_bytes, excl_bytes, label = render_tables(result, body.get("count_requested"))
     replayed = hashlib.sha256(plan_bytes).hexdigest()
     recorded = body["plan_table"]["sha256"]
     if replayed != recorded:
         differences.append("the regenerated plan table differs from the recorded one")
     if hashlib.sha256(excl_bytes).hexdigest() != body["exclusion_table"]["sha256"]:
         differences.append("the regenerated exclusion table differs from the recorded one")
-    return ReplayOutcome(index=index, identical=not differences, differences=tuple(differences),
-                         recorded_sha256=recorded, replayed_sha256=replayed)
+    return ReplayOutcome(index=rec["index"], identical=not differences, differences=tuple(differences),
+                         recorded_sha256=recorded, replayed_sha256=replayed, step_label=label)

@@ -43,13 +43,15 @@ from guardband.planner import __version__
 from guardband.planner.errors import ProtocolError, VerificationError
 from guardband.planner.app.fileio import atomic_write_bytes, atomic_write_text
 from guardband.planner.inputs.runs import RunsTable, read_runs
-from guardband.planner.settings import FEASIBILITY_TOL
-from guardband.planner.step.plan import Z95, PlanResult, safe_runs_mask
+from guardband.planner.models.checks import looks_overconfident
+from guardband.planner.settings import COVERAGE_MIN_RUNS, COVERAGE_WARNING, FEASIBILITY_TOL, Z95
+from guardband.planner.step import PlanResult, safe_runs_mask
 from guardband.planner.app.textable import format_cell
 
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
-from guardband.safety.screen import REASONS, joint_figure, limit_probability
+from guardband.safety.limits import ScreenRules
+from guardband.safety.screen import REASONS, forbidden_mask
 
 __all__ = [
     "OKABE_ITO",
@@ -85,10 +87,6 @@ OKABE_ITO = {
 #: Sequential map for the joint figure and the objective: cividis reads the
 #: same in grey and for colour-blind readers (monotone lightness).
 MAP_CMAP = "cividis"
-#: A model whose leave-one-out coverage is below this, with at least
-#: COVERAGE_MIN_RUNS runs, gets a plain-words warning.
-COVERAGE_WARNING = 0.80
-COVERAGE_MIN_RUNS = 8
 #: Points along a slice of a continuous factor, and per axis of the map.
 SLICE_POINTS = 61
 #: Columns of a slice figure before it wraps to a new block of rows.
@@ -250,6 +248,7 @@ class _Geometry:
         self.component = np.array([f.kind == "component" for f in p.factors])
         self.total = float(p.mixture.total) if p.mixture is not None else None
         self.free_idx = np.flatnonzero(self.free)
+        self.rules = ScreenRules.from_protocol(p)
 
     def feasible_levels(self, j: int) -> np.ndarray:
         lv = self.levels[j]
@@ -331,36 +330,23 @@ class _Geometry:
         return lo, hi
 
     def forbidden(self, X: np.ndarray) -> np.ndarray:
-        mask = np.zeros(X.shape[0], dtype=bool)
-        for region in self.protocol.screen.forbidden:
-            A, b, _ = self.protocol.rule_rows(region.parsed)
-            mask |= np.all(X @ A.T <= b + FEASIBILITY_TOL, axis=1)
-        return mask
+        return forbidden_mask(self.rules.forbidden, X)[0]
 
     def predict(self, name: str, X: np.ndarray):
-        """(mean, sd) of one response at X, or (None, None) when it has no model."""
+        """(mean, sd) of one response at X, or (None, None) when it has no model.
+
+        A limit is predicted as the screen judges it: the next measurement,
+        or the true value.
+        """
         model = self.result.fitted.get(name)
         if model is None or X.shape[0] == 0:
             return None, None
-        lim = next((m for m in self.protocol.limits if m.name == name), None)
-        # a limit as the screen judges it: the next measurement, or the true value
-        with_noise = lim is not None and lim.judged_on == "measurement"
-        return model.predict(self.result.unit(X), include_noise=with_noise)
+        rule = next((r for r in self.rules.limits if r.name == name), None)
+        return model.predict(self.result.unit(X), include_noise=rule is not None and rule.with_noise)
 
     def joint(self, X: np.ndarray) -> np.ndarray:
         """The screen's joint figure at X (0 where a limit has no model: fail closed)."""
-        p = self.protocol
-        if not p.limits:
-            return np.ones(X.shape[0])
-        P = np.zeros((X.shape[0], len(p.limits)))
-        vouch = np.ones(X.shape[0], dtype=bool)
-        for k, lim in enumerate(p.limits):
-            m, s = self.predict(lim.name, X)
-            if m is None:
-                vouch[:] = False
-                continue
-            P[:, k] = limit_probability(m, s, lower=lim.lower, upper=lim.upper)
-        return np.where(vouch, joint_figure(P, method=p.screen.joint), 0.0)
+        return self.result.limit_figures(X)[1]
 
 
 def slice_data(result: PlanResult, x0, factor: int | str, *, n: int = SLICE_POINTS) -> SliceData:
@@ -1173,7 +1159,7 @@ def model_warnings(models) -> list[str]:
         if m.status != "ok":
             warnings.append(f"The {m.role} {m.response!r} has no usable model ({m.status}: {m.message}); "
                             "it vouches for nothing, so the screen excludes every candidate it would judge.")
-        elif cov is not None and cov < COVERAGE_WARNING and m.n_runs >= COVERAGE_MIN_RUNS:
+        elif looks_overconfident(cov, m.n_runs):
             warnings.append(f"The model of {m.response!r} looks miscalibrated: only {100 * cov:.0f}% of its "
                             f"{m.n_runs} measured values lie inside their leave-one-out 95% interval "
                             "(about 95% would be expected). Its intervals are too narrow and the "
@@ -1416,13 +1402,6 @@ def write_report(report: Report, folder: str | Path, *, record_index: int | None
     return ReportFiles(report.step_label, record_index, html_path, tuple(paths), report.problems)
 
 
-def _table_sha(result: PlanResult, body: dict) -> tuple[str, str]:
-    from guardband.planner.app.workflow import _render
-
-    plan_bytes, _, label = _render(result, body.get("count_requested"))
-    return hashlib.sha256(plan_bytes).hexdigest(), label
-
-
 def _supersession(records: list[dict]) -> dict[int, str]:
     """Record index -> a sentence naming the later record that supersedes it."""
     out = {}
@@ -1456,7 +1435,7 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         The log is missing, fails verification, holds no plan record, or an
         input copy is missing or altered.
     """
-    from guardband.planner.app.workflow import LOG_NAME, rerun_record
+    from guardband.planner.app.workflow import LOG_NAME, compare_with_record, rerun_record
 
     folder = Path(folder)
     log = folder / LOG_NAME
@@ -1487,9 +1466,10 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         result, rec = rerun_record(log, rec["index"])
         body = rec["body"]
         problems = []
-        sha, label = _table_sha(result, body)
-        step_label = body.get("step_label", label)
-        if sha != body["plan_table"]["sha256"]:
+        replay = compare_with_record(result, rec)
+        sha = replay.replayed_sha256
+        step_label = body.get("step_label", replay.step_label)
+        if sha != replay.recorded_sha256:
             problems.append(
                 f"Re-running record {rec['index']} from its recorded inputs gave a different plan table "
                 f"(sha256 {sha[:12]}... instead of the recorded {body['plan_table']['sha256'][:12]}...). "

@@ -23,7 +23,8 @@ from guardband.planner.space.designs import starting_design
 from guardband.planner.errors import ModelError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
-from guardband.planner.step.plan import plan_step, within_limit
+from guardband.planner.step import plan_step
+from guardband.safety.limits import met_every_limit
 
 __all__ = ["CampaignHistory", "runs_table_from_arrays", "run_campaign", "best_so_far", "start_runs"]
 
@@ -82,14 +83,6 @@ def runs_table_from_arrays(protocol: Protocol, X: np.ndarray, Y: dict) -> RunsTa
     )
 
 
-def _broke(protocol: Protocol, truth: dict) -> np.ndarray:
-    n = len(np.asarray(truth[protocol.objective.name]))
-    ok = np.ones(n, dtype=bool)
-    for lim in protocol.limits:
-        ok &= within_limit(np.asarray(truth[lim.name], float), lim)
-    return ~ok
-
-
 def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
     """Running best objective among runs whose values in ``Y`` meet every limit.
 
@@ -104,7 +97,7 @@ def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
         NaN until the first run that meets every limit.
     """
     y = np.asarray(Y[protocol.objective.name], dtype=float)
-    ok = ~_broke(protocol, Y) & np.isfinite(y)
+    ok = met_every_limit(protocol, Y) & np.isfinite(y)
     sign = -1.0 if protocol.maximize else 1.0
     best = np.full(y.shape[0], np.nan)
     current = np.nan
@@ -216,7 +209,7 @@ def run_campaign(
         planned += [True] * Xn.shape[0]
         promised += [p.joint for p in result.proposals]
     return CampaignHistory(
-        X=X, Y=Y, planned=np.array(planned), broke_limit=_broke(protocol, T),
+        X=X, Y=Y, planned=np.array(planned), broke_limit=~met_every_limit(protocol, T),
         best_safe=best_so_far(protocol, Y), promised=np.array(promised, dtype=float),
         stalled=stalled, T=T, modes=tuple(modes), message=message,
     )

@@ -82,7 +82,7 @@ from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.models.parallel import default_workers
 from guardband.planner.simulation.problems import PROBLEMS, Problem, get_problem, slsqp_in_space
 from guardband.planner.inputs.protocol import RANKING_RULES, Protocol, load_protocol, parse_protocol
-from guardband.planner.step.plan import within_limit
+from guardband.safety.limits import met_every_limit
 from guardband.planner.app.textable import render_table
 
 try:  # installed with scikit-learn
@@ -406,19 +406,11 @@ def classical_point(models: dict, protocol: Protocol, *, rng, pool_size: int = C
 
 
 # ------------------------------------------------------ the strategies
-def _broke(protocol: Protocol, truth: dict) -> np.ndarray:
-    n = len(truth[protocol.objective.name])
-    ok = np.ones(n, dtype=bool)
-    for lim in protocol.limits:
-        ok &= within_limit(np.asarray(truth[lim.name], float), lim)
-    return ~ok
-
-
 def _history(protocol, X, T, Y, n_start, *, promised=None, stalled=False, modes=(), message=""):
     n = X.shape[0]
     planned = np.arange(n) >= n_start
     return CampaignHistory(
-        X=X, Y=Y, planned=planned, broke_limit=_broke(protocol, T),
+        X=X, Y=Y, planned=planned, broke_limit=~met_every_limit(protocol, T),
         best_safe=best_so_far(protocol, Y),
         promised=np.full(n, np.nan) if promised is None else promised,
         stalled=stalled, T=T, modes=tuple(modes), message=message,
@@ -560,7 +552,7 @@ def _worker_init() -> None:
         _WORKER_LIMIT = threadpool_limits(1)
     # the campaigns already run side by side: each plans in one process, one thread
     from guardband.planner.models import gp
-    from guardband.planner.step import plan as step
+    from guardband.planner.step import fitting as step
 
     step.FIT_WORKERS = 1
     gp.PREDICT_WORKERS = 1
@@ -812,7 +804,7 @@ class SimulationResult:
 def _chosen_runs(protocol: Protocol, Y: dict) -> np.ndarray:
     """Index of the best measured run among those measured within every limit, per prefix (-1 before any)."""
     y = np.asarray(Y[protocol.objective.name], dtype=float)
-    ok = ~_broke(protocol, Y) & np.isfinite(y)
+    ok = met_every_limit(protocol, Y) & np.isfinite(y)
     sign = -1.0 if protocol.maximize else 1.0
     out = np.full(y.shape[0], -1, dtype=int)
     current = -1

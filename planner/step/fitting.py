@@ -1,0 +1,177 @@
+"""The step's models: one GP per response, fitted side by side, each with its checks.
+
+The objective model needs MIN_OBJECTIVE_RUNS measured runs. A limit model's
+prior mean sits at its limit; a limit with fewer runs than the protocol
+requires, or whose model cannot be fitted, vouches for nothing (fail
+closed). A limit model's length scales are capped, it is widened when its
+own leave-one-out check finds it overconfident and it is paired with its
+shortest plausible length scales (:mod:`guardband.planner.models.limitmodel`).
+The fits run on worker processes when they are big.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from guardband.planner.errors import ModelError
+from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.models.checks import loo_summary, looks_overconfident, widen_from_loo
+from guardband.planner.models.gp import Hyperparameters, fit_gp
+from guardband.planner.models.limitmodel import PessimisticLimitModel
+from guardband.planner.models.parallel import default_workers, map_jobs
+from guardband.planner.step.result import ModelStatus, ModelSummary
+from guardband.safety.limits import ScreenRules
+
+__all__ = ["FittedModels", "fit_models", "MIN_OBJECTIVE_RUNS"]
+
+#: The objective model needs at least this many measured runs.
+MIN_OBJECTIVE_RUNS = 3
+#: Worker processes that fit the response models side by side (1: in turn).
+FIT_WORKERS = default_workers()
+#: Fits run on worker processes only when some response has this many runs
+#: (measured break-even of the process start-up: about 100 to 200 runs).
+PARALLEL_FIT_MIN_RUNS = 150
+#: A limit model is checked by leave-one-out (and widened if overconfident)
+#: from this many runs.
+LOO_WIDEN_MIN_RUNS = 5
+
+
+@dataclass(frozen=True)
+class FittedModels:
+    """The objective model, one model (or None: cannot vouch) per limit, and their summaries."""
+
+    objective: object
+    limits: list
+    summaries: list[ModelSummary]
+
+    def unavailable(self) -> list[tuple[str, str]]:
+        """(status, message) of each limit, for the screen's fail-closed messages."""
+        return [(s.status, s.message) for s in self.summaries[1:]]
+
+    def warnings(self) -> list[str]:
+        """The plan's model-check messages (the coverage rule)."""
+        return [f"model check: only {100 * s.loo_coverage:.0f}% of the measured {s.response!r} values "
+                "lie inside their leave-one-out 95% interval; the model may be overconfident"
+                for s in self.summaries if s.status == ModelStatus.OK and looks_overconfident(s.loo_coverage, s.n_runs)]
+
+
+def _fit_job(job: dict):
+    """One model fit, as :func:`_fit` with the job's fields (module level: runs in a worker)."""
+    return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
+                restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
+                length_scale_max=job["length_scale_max"],
+                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
+                short=job["short"], noise_sd=job["noise_sd"])
+
+
+def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
+         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None):
+    try:
+        model = fit_gp(U, y, prior_mean=prior_mean, n_restarts=restarts, warm_start=warm, rng=seed,
+                       length_scale_max=length_scale_max,
+                       ml_runs_per_hyperparameter=ml_runs_per_hyperparameter, noise_sd=noise_sd)
+    except ModelError as exc:
+        return None, ModelSummary(response, role, int(len(y)), ModelStatus.NOT_FITTED, str(exc),
+                                  prior_mean=prior_mean)
+    sd_factor = None
+    used_priors = bool(model.used_priors)
+    if widen and len(y) >= LOO_WIDEN_MIN_RUNS:
+        model, sd_factor = widen_from_loo(model)
+    cov, rmse = loo_summary(model, y) if len(y) >= 3 else (None, None)
+    short_factor = None
+    if short is not None:
+        model = PessimisticLimitModel.build(model, lower=short[0], upper=short[1], with_prior=used_priors)
+        short_factor = model.factor
+    summary = ModelSummary(
+        response=response, role=role, n_runs=int(len(y)), status=ModelStatus.OK,
+        message=getattr(model, "message", ""), hyperparameters=model.hyperparameters.to_dict(),
+        log_marginal_likelihood=float(model.log_marginal_likelihood), prior_mean=prior_mean,
+        loo_coverage=cov, loo_rmse=rmse, sd_factor=sd_factor, short_factor=short_factor,
+    )
+    return model, summary
+
+
+def _warm(warm_start: dict, name: str):
+    h = warm_start.get(name)
+    if h is None:
+        return None
+    try:
+        return Hyperparameters.from_dict(h)
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def _seed_of(seq: np.random.SeedSequence) -> int:
+    return int(seq.generate_state(1)[0])
+
+
+def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, warm_start, children,
+          n_free: int) -> tuple[list[dict], dict[int, ModelSummary]]:
+    """One fit job per response that has enough runs; a summary for each limit that has not."""
+    obj = protocol.objective
+    m_obj = used & runs.measured(obj.name)
+    n_obj = int(m_obj.sum())
+    if n_obj < MIN_OBJECTIVE_RUNS:
+        raise ModelError(
+            f"the objective {obj.name!r} has {n_obj} measured run(s); at least "
+            f"{MIN_OBJECTIVE_RUNS} are needed to plan. Make a starting design with "
+            "`guardband start` and measure it first"
+        )
+    jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
+                 prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
+                 noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None)]
+    early: dict[int, ModelSummary] = {}
+    # a limit model's length scales are capped so that far from the runs it
+    # returns to its prior mean (the limit) rather than carry a flat response,
+    # e.g. a toxicity rate of 0 in every low-dose cohort, out to doses never
+    # tried (stated per sqrt(free factor), like max_step: typical distances in
+    # the unit cube grow with the square root of its dimension)
+    cap = protocol.model.limit_length_scale_max * np.sqrt(max(n_free, 1))
+    for k, (lim, rule) in enumerate(zip(protocol.limits, rules.limits)):
+        mask = used & runs.measured(lim.name)
+        n_lim, need = int(mask.sum()), protocol.min_runs_for(lim)
+        if n_lim < need:
+            msg = f"{n_lim} measured run(s), the protocol requires at least {need}"
+            early[k] = ModelSummary(lim.name, "limit", n_lim, ModelStatus.TOO_FEW_RUNS, msg,
+                                    prior_mean=rule.prior_mean)
+            continue
+        jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
+                         prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
+                         seed=_seed_of(children[3 + k]), k=k, noise_sd=lim.measurement_sd,
+                         length_scale_max=cap, widen=protocol.screen.widen_from_loo,
+                         short=(lim.lower, lim.upper) if protocol.screen.short_model else None))
+    for job in jobs:
+        job.update(restarts=protocol.model.restarts,
+                   ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
+    return jobs, early
+
+
+def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, *, warm_start: dict,
+               children, n_free: int) -> FittedModels:
+    """Fit every response's model (independent fits, on FIT_WORKERS processes when big).
+
+    BLAS stays on one thread, so each fit gives the same bits however it runs.
+
+    Raises
+    ------
+    ModelError
+        When the objective has too few runs or its model cannot be fitted.
+    """
+    jobs, early = _jobs(protocol, rules, runs, U_runs, used, warm_start, children, n_free)
+    # starting worker processes costs about 0.1 s, more than small fits take
+    big = max(len(job["y"]) for job in jobs) >= PARALLEL_FIT_MIN_RUNS
+    fitted = map_jobs(_fit_job, jobs, FIT_WORKERS if big else 1)
+    obj_model, summary = fitted[0]
+    if obj_model is None:
+        raise ModelError(f"the objective model for {protocol.objective.name!r} could not be fitted: "
+                         f"{summary.message}")
+    summaries, limit_models = [summary], []
+    by_limit = {job["k"]: out for job, out in zip(jobs[1:], fitted[1:])}
+    for k in range(len(protocol.limits)):
+        model, summary = (None, early[k]) if k in early else by_limit[k]
+        summaries.append(summary)
+        limit_models.append(model)
+    return FittedModels(obj_model, limit_models, summaries)

@@ -1,0 +1,137 @@
+"""The screen's rules as small objects, built once from the protocol, and which runs met every limit.
+
+Everything the screen needs to know about a protocol lives here as plain
+numbers: each limit's bounds, the probability it must hold with and whether
+it is judged on the next measurement or on the true value; each forbidden
+region's rows ``A x <= b``; the threshold, the joint method and the largest
+step. The planner, the report, the review and the simulator all build one
+:class:`ScreenRules` and call the functions of :mod:`guardband.safety`, so
+they cannot disagree.
+
+The builder reads a protocol object by its attributes; this package does not
+import the planner.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "limit_rules", "within_limit", "meets_limits",
+           "met_every_limit"]
+
+#: Judged on the next measurement (noise included) or on the true value.
+MEASUREMENT = "measurement"
+TRUE_VALUE = "true-value"
+
+
+@dataclass(frozen=True)
+class LimitRule:
+    """One limit: ``lower <= response <= upper`` with at least ``probability``."""
+
+    name: str
+    lower: float | None
+    upper: float | None
+    probability: float
+    judged_on: str = MEASUREMENT
+
+    @property
+    def with_noise(self) -> bool:
+        """Whether the limit is judged on the next measurement (noise included)."""
+        return self.judged_on == MEASUREMENT
+
+    @property
+    def prior_mean(self) -> float:
+        """Where a limit model's prior mean sits: at the limit.
+
+        Away from the runs such a model gives a probability of about 1/2 at
+        best and never claims safety. For a two-sided limit the upper edge is
+        used (the same 1/2 ceiling holds).
+        """
+        return float(self.upper if self.upper is not None else self.lower)
+
+
+@dataclass(frozen=True)
+class ForbiddenRegion:
+    """A region the protocol forbids: the points with ``A x <= b`` (every rule at once)."""
+
+    name: str
+    rules: tuple[str, ...]
+    A: np.ndarray
+    b: np.ndarray
+
+    def describe(self) -> str:
+        return f"inside the forbidden region {self.name!r} ({'; '.join(self.rules)})"
+
+
+@dataclass(frozen=True)
+class ScreenRules:
+    """Every rule of the screen, from one protocol."""
+
+    limits: tuple[LimitRule, ...]
+    forbidden: tuple[ForbiddenRegion, ...]
+    threshold: float
+    joint: str
+    max_step: float | None
+
+    @classmethod
+    def from_protocol(cls, protocol) -> ScreenRules:
+        """Build the rules of ``protocol`` (a validated protocol object)."""
+        limits = limit_rules(protocol)
+        regions = []
+        for region in protocol.screen.forbidden:
+            A, b, _ = protocol.rule_rows(region.parsed)
+            regions.append(ForbiddenRegion(region.name, tuple(region.rules), A, b))
+        s = protocol.screen
+        return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step)
+
+
+def limit_rules(protocol) -> tuple[LimitRule, ...]:
+    """The limits of ``protocol`` as :class:`LimitRule` objects."""
+    return tuple(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on)
+                 for lim in protocol.limits)
+
+
+def within_limit(y, limit: LimitRule) -> np.ndarray:
+    """Whether values meet one limit (NaN counts as not met)."""
+    y = np.asarray(y, dtype=float)
+    ok = np.isfinite(y)
+    if limit.upper is not None:
+        ok &= y <= limit.upper
+    if limit.lower is not None:
+        ok &= y >= limit.lower
+    return ok
+
+
+def meets_limits(limits, Y, n: int, *, margin: float = 0.0) -> np.ndarray:
+    """Which runs met every limit.
+
+    Parameters
+    ----------
+    limits : sequence of LimitRule
+    Y : mapping of response name to array of shape (n,)
+        Measured or true values; a missing (NaN) value counts as not met.
+    n : int
+        Number of runs (needed when there is no limit).
+    margin : float
+        Required distance inside each limit, in the response's units.
+
+    Returns
+    -------
+    bool ndarray of shape (n,)
+    """
+    ok = np.ones(n, dtype=bool)
+    for lim in limits:
+        y = np.asarray(Y[lim.name], dtype=float)
+        if margin:
+            lim = LimitRule(lim.name, None if lim.lower is None else lim.lower + margin,
+                            None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on)
+        ok &= within_limit(y, lim)
+    return ok
+
+
+def met_every_limit(protocol, Y, *, margin: float = 0.0) -> np.ndarray:
+    """Which runs met every limit of ``protocol`` (see :func:`meets_limits`); ``Y`` holds the objective too."""
+    n = len(np.asarray(Y[protocol.objective.name]))
+    return meets_limits(limit_rules(protocol), Y, n, margin=margin)

@@ -224,6 +224,8 @@ def plan(
         typer.echo("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
         for m in result.messages:
             typer.echo(f"note: {m}")
+        if outcome.calibration is not None:
+            typer.echo(outcome.calibration.sentence())
         if rows:
             typer.echo(render_table(header, rows))
         typer.echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
@@ -232,6 +234,8 @@ def plan(
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
     for f in result.flags:
         _err(f"warning: {f}")
+    if outcome.calibration is not None and outcome.calibration.contradicts:
+        _err("warning: " + outcome.calibration.sentence())
     _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
     if report:
         from guardband.planner.report.build import report_plan

@@ -6,6 +6,9 @@ plan table, the exclusion table and the canonical JSON of the decision-log
 record body (which holds neither a time nor a path of this machine). A
 change of behaviour that is meant (a new screen rule, say) updates them in
 the same commit and says why.
+
+Changes so far: the record body gained ``calibration_earned`` (the
+campaign's own planned runs against their promise); tables unchanged.
 """
 
 from __future__ import annotations
@@ -27,12 +30,12 @@ GOLDEN = {
     "tablet_blend": (
         "ec2639c8781dc4df2b581fc37244987edb4c1105d5b3d9621cc93c259b0659bd",
         "870d384a7a4450f7ef5c79520dd75213f6d08a173d1f10d75592b72711065e9c",
-        "0715555eeda1685b09d7bb7b0c4512a8da79af097f08aae0314022cdff3197de",
+        "f6ec8a1968780b70efefbedb9eeb4872f212608fda0be885ff0598957e4eb9e2",
     ),
     "dose_combination": (
         "c8f5f8c818b11b60fd74546b83f8bda318095061ba63f66600c65ae9e9da6a7e",
         "1e804bda84b354d5b60a0f870c8ca91df61ec47fb0285c851f592613da6aca26",
-        "c087db1e4b5be1b025521ddc4fb0c6facaa66d5f142aeba81f67aff6a680deb3",
+        "24656ba9390bd03ad133d98e92cfef7e978f1753924144ae4fb3ab7749583c96",
     ),
 }
 

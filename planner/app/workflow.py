@@ -33,6 +33,8 @@ from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
 from guardband.planner.step import PlanResult, plan_step
+from guardband.planner.app.history import campaign_calibration
+from guardband.safety.calibration import EarnedCalibration
 
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
@@ -249,6 +251,7 @@ class PlanOutcome:
     files: dict[str, Path] = field(default_factory=dict)
     head: str = ""
     count: int = 0
+    calibration: EarnedCalibration | None = None
 
 
 def _warm_start_from_log(log_path: Path, fingerprint: str) -> dict:
@@ -309,11 +312,12 @@ def run_plan(
     if log_path.exists():
         ledger.verify_or_raise(log_path)
     warm = _warm_start_from_log(log_path, protocol.fingerprint)
+    calibration = campaign_calibration(log_path, protocol, runs)
     with _one_blas_thread():
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                        seed, seed_drawn, count, pool_size, protocol_path, runs_path,
-                       read_options=read_options)
+                       read_options=read_options, calibration=calibration)
 
 
 def _one_blas_thread():
@@ -363,7 +367,8 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
 
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
-                count, pool_size, protocol_path, runs_path, *, read_options=None) -> PlanOutcome:
+                count, pool_size, protocol_path, runs_path, *, read_options=None,
+                calibration: EarnedCalibration | None = None) -> PlanOutcome:
     plan_bytes, excl_bytes, step_label = render_tables(result, count)
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
@@ -396,10 +401,12 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                             "sha256": hashlib.sha256(excl_bytes).hexdigest()},
         "cautions": list(cautions_of(protocol)),
     })
+    if calibration is not None:
+        body["calibration_earned"] = calibration.to_dict()
     record = ledger.append_record(log_path, "plan", body)
     head, n = ledger.head_and_count(log_path)
     return PlanOutcome(result=result, seed=int(seed), seed_drawn=seed_drawn, record=record,
-                       log_path=log_path, files=files, head=head, count=n)
+                       log_path=log_path, files=files, head=head, count=n, calibration=calibration)
 
 
 # ----------------------------------------------------------------- replay

@@ -36,6 +36,7 @@ from guardband.planner.step.plan import PlanResult, plan_step
 
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
+from guardband.safety.canonical import canonical_json
 
 __all__ = [
     "LOG_NAME",
@@ -343,8 +344,8 @@ _RUNS_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".xlsm")
 
 
 def _render(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
-    body_id = _short(ledger.canonical_json({"p": result.proposal_dicts(), "s": result.seed,
-                                            "f": result.protocol.fingerprint, "r": result.runs_sha256}))
+    body_id = _short(canonical_json({"p": result.proposal_dicts(), "s": result.seed,
+                                     "f": result.protocol.fingerprint, "r": result.runs_sha256}))
     step_label = f"P{body_id[:6]}"
     header, rows = plan_table(result, step_label=step_label)
     extra = [f"mode: {result.mode}; ranking rule: "

@@ -10,7 +10,7 @@ from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.inputs.runs import read_runs
 from guardband.planner.step.plan import plan_step, safe_runs_mask
 
-from conftest import PROTOCOLS
+from conftest import PROTOCOLS, unit_square_protocol
 
 POOL = 600
 
@@ -111,16 +111,11 @@ def test_feasibility_first_when_no_run_meets_limits(tablet):
 def test_feasibility_first_ranks_by_the_joint_figure():
     # every run breaks the limit (imp = 1 - x1 > 0.45 for x1 <= 0.5), but the
     # trend puts candidates with x1 beyond 0.55 inside it with some confidence
-    protocol = parse_protocol({
-        "study": {"title": "no run meets the limit yet", "version": "1", "author": "test"},
-        "factors": [{"name": "x1", "kind": "continuous", "lower": 0.0, "upper": 1.0},
-                    {"name": "x2", "kind": "continuous", "lower": 0.0, "upper": 1.0}],
-        "objective": {"name": "y", "direction": "maximize"},
-        "limits": [{"name": "imp", "upper": 0.45, "probability": 0.6}],
-        "screen": {"threshold": 0.6, "min_runs": 5},
-        "batch": {"size": 3, "pool": POOL, "refine": 0},
-        "model": {"restarts": 2},
-    })
+    protocol = parse_protocol(unit_square_protocol(
+        {"name": "imp", "upper": 0.45, "probability": 0.6}, title="no run meets the limit yet",
+        screen={"threshold": 0.6, "min_runs": 5}, batch={"size": 3, "pool": POOL, "refine": 0},
+        model={"restarts": 2},
+    ))
     rng = np.random.default_rng(0)
     X = np.column_stack([rng.uniform(0.0, 0.5, 12), rng.uniform(0.0, 1.0, 12)])
     Y = {"y": np.sin(3.0 * X[:, 1]) + X[:, 0], "imp": 1.0 - X[:, 0] + 0.01 * rng.normal(size=12)}

@@ -88,7 +88,7 @@ def _guarded(func):
 
 
 def _json(obj) -> str:
-    from guardband.safety.ledger import to_jsonable
+    from guardband.safety.canonical import to_jsonable
 
     return json.dumps(to_jsonable(obj), indent=2, ensure_ascii=False, allow_nan=False)
 

@@ -1,6 +1,7 @@
 """The decision log: an append-only, hash-chained JSON Lines file.
 
-Each line is one record, written in canonical JSON (:func:`canonical_json`)::
+Each line is one record, written in canonical JSON (RFC 8785, see
+:mod:`guardband.safety.canonical`)::
 
     {"body":{...},"hash":"<64 hex>","index":3,"kind":"plan",
      "prev":"<64 hex>","time":"2026-01-02T03:04:05.000000Z"}
@@ -28,23 +29,6 @@ the old file or the new one.
 Records are never changed. A mistake is put right by appending a record of
 kind ``"correction"`` whose body names the superseded record
 (``"supersedes"``) and says why (``"reason"``); see :func:`effective_records`.
-
-Canonical form
---------------
-:func:`canonical_json` follows RFC 8785 (JSON Canonicalization Scheme):
-object keys sorted by their UTF-16 code units, no whitespace, UTF-8 text
-with only the escapes JSON requires, and numbers written the way
-ECMAScript writes a double (``1e+21``, ``0.000001``, ``100`` for ``100.0``,
-``0`` for ``-0.0``). Two deliberate differences: integers are written
-exactly however large they are (RFC 8785 reads every number as a double,
-so an integer beyond 2**53 would be rounded there), and NaN and infinity
-are refused rather than silently written as ``null``.
-
-One consequence of the ECMAScript number form: a float with an integral
-value is written without a decimal point (``2.0`` -> ``2``,
-``1e16`` -> ``10000000000000000``), so :func:`json.loads` reads it back as
-an ``int``. ``float()`` of that int is the same double again, and the
-canonical text (hence every hash) is unchanged by the round trip.
 """
 
 from __future__ import annotations
@@ -57,23 +41,19 @@ import os
 import re
 from collections.abc import Mapping
 from datetime import datetime, timezone
-from decimal import Decimal
-from json.encoder import encode_basestring as _json_string  # C; keeps non-ASCII as is
 from typing import Any, Union
 
 import filelock
-import numpy as np
 
 from guardband.planner.errors import OutputError, VerificationError
 from guardband.planner.app.fileio import atomic_write_bytes
+from guardband.safety.canonical import canonical_json, canonical_string, to_jsonable, write_canonical
 
 __all__ = [
     "GENESIS_HASH",
     "CORRECTION",
     "LOCK_TIMEOUT",
     "VerifyResult",
-    "to_jsonable",
-    "canonical_json",
     "record_hash",
     "append_record",
     "read_records",
@@ -95,206 +75,6 @@ LOCK_TIMEOUT = 10.0
 _RECORD_KEYS = frozenset({"index", "kind", "time", "prev", "body", "hash"})
 _KIND_PATTERN = re.compile(r"[a-z][a-z0-9_]*\Z")
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
-_IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
-
-
-# ---------------------------------------------------------------------------
-# Canonical JSON
-# ---------------------------------------------------------------------------
-
-
-def _child(path: str, key: str) -> str:
-    return f"{path}.{key}" if _IDENTIFIER.match(key) else f"{path}[{key!r}]"
-
-
-def to_jsonable(obj: Any, *, path: str = "$") -> Any:
-    """Convert a value to plain JSON types, refusing what JSON cannot hold.
-
-    Parameters
-    ----------
-    obj : object
-        ``None``, bool, int, float, str, mappings with str keys, lists,
-        tuples, numpy scalars and arrays, dataclass instances, or objects
-        with a ``to_dict()`` method, nested in any way.
-    path : str, default "$"
-        Where ``obj`` sits, used in error messages (``$.body.runs[2]``).
-
-    Returns
-    -------
-    object
-        A new structure of ``dict``, ``list``, ``str``, ``int``, ``float``,
-        ``bool`` and ``None``; the input is not changed.
-
-    Raises
-    ------
-    ValueError
-        A NaN or infinite number, or text that is not valid Unicode (a lone
-        surrogate). The message names the path.
-    TypeError
-        A key that is not text, or a value of a type JSON cannot hold.
-    """
-    if obj is None or isinstance(obj, bool):
-        return obj
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, str):
-        try:
-            obj.encode("utf-8")
-        except UnicodeEncodeError as exc:
-            raise ValueError(
-                f"{path} holds text that is not valid Unicode ({exc.reason} at "
-                f"position {exc.start}); it cannot be written as UTF-8"
-            ) from None
-        return str(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        value = float(obj)
-        if not math.isfinite(value):
-            raise ValueError(
-                f"{path} is {value!r}: JSON has no NaN or infinity; "
-                "record a missing value as None"
-            )
-        return value
-    if isinstance(obj, Mapping):
-        out: dict[str, Any] = {}
-        for key, value in obj.items():
-            if not isinstance(key, str):
-                raise TypeError(
-                    f"{path} has a key {key!r} of type {type(key).__name__}: "
-                    "JSON object keys must be text"
-                )
-            out[str(key)] = to_jsonable(value, path=_child(path, key))
-        return out
-    if isinstance(obj, np.ndarray):
-        return to_jsonable(obj.tolist(), path=path)
-    if isinstance(obj, (list, tuple)):
-        return [to_jsonable(value, path=f"{path}[{i}]") for i, value in enumerate(obj)]
-    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        fields = {f.name: getattr(obj, f.name) for f in dataclasses.fields(obj)}
-        return to_jsonable(fields, path=path)
-    to_dict = getattr(obj, "to_dict", None)
-    if callable(to_dict):
-        return to_jsonable(to_dict(), path=path)
-    raise TypeError(
-        f"{path} is of type {type(obj).__name__}, which cannot be written to JSON; "
-        "convert it to text, a number, a list or a dict first"
-    )
-
-
-def _format_number_general(value: float) -> str:
-    """Write a finite double as ECMAScript's Number::toString does.
-
-    ``repr`` gives the shortest digit string that reads back as the same
-    double (the digits ECMAScript also requires); only the layout differs.
-    ECMA-262, 7.1.12.1 (Number::toString), as used by RFC 8785, 3.2.2.3.
-    """
-    if value == 0.0:
-        return "0"  # also -0.0
-    if value < 0.0:
-        return "-" + _format_number_general(-value)
-    _, digit_tuple, exponent = Decimal(repr(value)).as_tuple()
-    digits = "".join(map(str, digit_tuple)).rstrip("0")
-    exponent += len(digit_tuple) - len(digits)
-    k = len(digits)  # value = digits * 10**(n - k)
-    n = exponent + k
-    if k <= n <= 21:
-        return digits + "0" * (n - k)
-    if 0 < n <= 21:
-        return digits[:n] + "." + digits[n:]
-    if -6 < n <= 0:
-        return "0." + "0" * (-n) + digits
-    mantissa = digits if k == 1 else digits[0] + "." + digits[1:]
-    e = n - 1
-    return f"{mantissa}e{'+' if e >= 0 else '-'}{abs(e)}"
-
-
-def _format_number(value: float) -> str:
-    """ECMAScript text of a finite double, with a fast path for common values."""
-    text = repr(value)
-    if "e" not in text:
-        # repr is in fixed notation for 1e-4 <= |value| < 1e16, where
-        # ECMAScript also uses fixed notation with the same digits; it only
-        # drops the ".0" of an integral value.
-        if text.endswith(".0"):
-            text = text[:-2]
-        return "0" if text == "-0" else text
-    return _format_number_general(value)
-
-
-def _sorted_keys(obj: dict[str, Any]) -> list[str]:
-    keys = list(obj)
-    if all(key.isascii() for key in keys):
-        return sorted(keys)  # code-point order is UTF-16 order here
-    # Big-endian UTF-16 bytes compare in the same order as UTF-16 code units.
-    return sorted(keys, key=lambda key: key.encode("utf-16-be", "surrogatepass"))
-
-
-def _write_canonical(value: Any, parts: list[str]) -> None:
-    """Append the canonical text of plain JSON data (exact types) to ``parts``."""
-    kind = type(value)
-    if kind is str:
-        # The escapes match ECMAScript's JSON.stringify for valid text:
-        # \" \\ \b \f \n \r \t, other controls as \u00xx, nothing else.
-        parts.append(_json_string(value))
-    elif kind is float:
-        parts.append(_format_number(value))
-    elif kind is int:
-        parts.append(int.__repr__(value))
-    elif kind is dict:
-        parts.append("{")
-        first = True
-        for key in _sorted_keys(value):
-            if not first:
-                parts.append(",")
-            first = False
-            parts.append(_json_string(key))
-            parts.append(":")
-            _write_canonical(value[key], parts)
-        parts.append("}")
-    elif kind is list:
-        parts.append("[")
-        first = True
-        for item in value:
-            if not first:
-                parts.append(",")
-            first = False
-            _write_canonical(item, parts)
-        parts.append("]")
-    elif value is None:
-        parts.append("null")
-    elif value is True:
-        parts.append("true")
-    elif value is False:
-        parts.append("false")
-    else:  # pragma: no cover - to_jsonable and json.loads give nothing else
-        raise TypeError(f"unexpected {kind.__name__} in canonical JSON")
-
-
-def canonical_json(obj: Any) -> bytes:
-    """Canonical JSON bytes of ``obj`` (RFC 8785 style, see the module notes).
-
-    Parameters
-    ----------
-    obj : object
-        Anything :func:`to_jsonable` accepts.
-
-    Returns
-    -------
-    bytes
-        UTF-8 JSON text: keys sorted, separators ``,`` and ``:``, no
-        whitespace, numbers in ECMAScript form.
-
-    Raises
-    ------
-    ValueError
-        NaN or infinity somewhere in ``obj``; the message gives its path.
-    TypeError
-        A value JSON cannot hold.
-    """
-    parts: list[str] = []
-    _write_canonical(to_jsonable(obj), parts)
-    return "".join(parts).encode("utf-8")
 
 
 def _sha256(data: bytes) -> str:
@@ -502,14 +282,14 @@ def _record_texts(record: dict[str, Any]) -> tuple[bytes, bytes]:
     already plain JSON, skip :func:`to_jsonable`.
     """
     parts = ['{"body":']
-    _write_canonical(record["body"], parts)
+    write_canonical(record["body"], parts)
     head = "".join(parts)
     rest = (
-        f',"index":{int.__repr__(record["index"])},"kind":{_json_string(record["kind"])}'
-        f',"prev":{_json_string(record["prev"])},"time":{_json_string(record["time"])}}}'
+        f',"index":{int.__repr__(record["index"])},"kind":{canonical_string(record["kind"])}'
+        f',"prev":{canonical_string(record["prev"])},"time":{canonical_string(record["time"])}}}'
     )
     unhashed = (head + rest).encode("utf-8")
-    full = (head + ',"hash":' + _json_string(record["hash"]) + rest).encode("utf-8")
+    full = (head + ',"hash":' + canonical_string(record["hash"]) + rest).encode("utf-8")
     return unhashed, full
 
 

@@ -19,3 +19,19 @@ def tablet_path() -> Path:
 @pytest.fixture
 def dose_path() -> Path:
     return PROTOCOLS / "dose_combination.toml"
+
+
+def unit_square_protocol(limit: dict, *, title: str = "unit square", **sections) -> dict:
+    """Protocol data: factors x1, x2 on [0, 1], objective y (maximised), one limit.
+
+    ``sections`` add or replace top-level sections (``screen``, ``batch``,
+    ``objective``, ``seed``, ...).
+    """
+    return {
+        "study": {"title": title, "version": "1", "author": "tests"},
+        "factors": [{"name": "x1", "kind": "continuous", "lower": 0.0, "upper": 1.0},
+                    {"name": "x2", "kind": "continuous", "lower": 0.0, "upper": 1.0}],
+        "objective": {"name": "y", "direction": "maximize"},
+        "limits": [limit],
+        **sections,
+    }

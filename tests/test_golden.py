@@ -21,7 +21,7 @@ import pytest
 from typer.testing import CliRunner
 
 from guardband.planner.cli import app
-from guardband.safety.ledger import canonical_json
+from guardband.safety.canonical import canonical_json
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -14,6 +14,8 @@ from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.step import plan_step
 from guardband.safety.screen import limit_probability
 
+from conftest import unit_square_protocol
+
 RNG = np.random.default_rng(21)
 U = RNG.random((14, 2))
 Y = 1.5 - U[:, 0] - 2 * U[:, 1] - 0.5 * np.sin(2 * np.pi * (U[:, 0] ** 2 - 2 * U[:, 1]))  # Gramacy c1
@@ -79,16 +81,11 @@ def test_pair_posterior_conditions_both_models():
 
 
 def test_short_model_never_admits_what_the_fitted_model_excludes():
-    data = {
-        "seed": 1,
-        "study": {"title": "short model", "version": "1", "author": "tests"},
-        "factors": [{"name": "x1", "kind": "continuous", "lower": 0.0, "upper": 1.0},
-                    {"name": "x2", "kind": "continuous", "lower": 0.0, "upper": 1.0}],
-        "objective": {"name": "f", "direction": "minimize"},
-        "limits": [{"name": "c1", "upper": 0.0, "probability": 0.95}],
-        "screen": {"threshold": 0.95, "min_runs": 5},
-        "batch": {"size": 1, "pool": 1500, "refine": 0},
-    }
+    data = unit_square_protocol(
+        {"name": "c1", "upper": 0.0, "probability": 0.95}, title="short model", seed=1,
+        objective={"name": "f", "direction": "minimize"},
+        screen={"threshold": 0.95, "min_runs": 5}, batch={"size": 1, "pool": 1500, "refine": 0},
+    )
     from guardband.planner.simulation.loop import runs_table_from_arrays
 
     on = parse_protocol(data)

@@ -1,4 +1,5 @@
-"""The wheel installs one import name, ``guardband``, and its demo runs from it.
+"""The wheel installs one import name, ``guardband``, and its demo runs from it;
+``guardband.safety`` lists its modules and imports none of them.
 
 The wheel is built from this checkout and installed with ``--no-deps`` into
 a fresh virtual environment that sees the test environment's third-party
@@ -40,9 +41,9 @@ def test_wheel_has_one_top_level_import_name(wheel):
         names = zf.namelist()
     tops = {n.split("/")[0] for n in names}
     assert {t for t in tops if not t.endswith(".dist-info")} == {"guardband"}
-    # the example protocols and the report templates are package data
+    # the example protocols and the report templates (package data), and a module
     for needed in ("guardband/protocols/tablet_blend.toml", "guardband/protocols/tablet_blend_runs.csv",
-                   "guardband/protocols/dose_combination.toml",
+                   "guardband/protocols/dose_combination.toml", "guardband/safety/canonical.py",
                    "guardband/planner/report/templates/report.html.j2"):
         assert needed in names
     top_level = next(n for n in names if n.endswith(".dist-info/top_level.txt"))
@@ -68,3 +69,13 @@ def test_demo_runs_from_the_wheel_in_a_fresh_environment(wheel, tmp_path):
     assert "identical" in res.stdout + res.stderr
     assert (tmp_path / "demo" / "decisions.jsonl").exists()
     assert any((tmp_path / "demo").glob("plan-*.csv"))
+
+
+def test_safety_package_lists_its_modules_and_imports_none_of_them():
+    # a fresh interpreter, so that no other test has imported numpy first
+    code = ("import importlib, sys, guardband.safety as s; "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('numpy', 'scipy', 'filelock') "
+            "or m.startswith('guardband.safety.'))); "
+            "print(all(importlib.import_module('guardband.safety.' + n) for n in s.__all__))")
+    out = _run([sys.executable, "-c", code]).stdout.split("\n")
+    assert out[:2] == ["[]", "True"]

@@ -2,6 +2,11 @@
 
 * No input gives anything but a result or a :class:`GuardbandError`: not
   a protocol, not a runs file (as text or as bytes), not a planning step.
+* A refused runs file's message names the file and where the problem is
+  (a row, a column, a byte, or the file as a whole).
+* Cases that cannot be planned are rejected with ``assume``, and each
+  planning property counts the plans it checked: a run that checked no
+  plan, or no proposal, fails.
 * Every proposal lies inside the design space (``DesignSpace.contains``)
   and passes the screen.
 * Every candidate is either a survivor or an exclusion, exactly once.
@@ -13,9 +18,12 @@ seconds, not minutes.
 
 from __future__ import annotations
 
+import codecs
+import hashlib
+import re
+
 import numpy as np
-import pytest
-from hypothesis import HealthCheck, assume, event, given, settings
+from hypothesis import HealthCheck, assume, event, example, given, settings
 from hypothesis import strategies as st
 
 from guardband.planner.errors import GuardbandError, RunsDataError
@@ -202,7 +210,11 @@ def test_random_runs_text_gives_a_table_or_a_runs_error(header, rows, sep, decim
         event("refused")
         return
     event("accepted")
-    # a table that was accepted is complete and finite where it must be
+    _assert_table_holds(table)
+
+
+def _assert_table_holds(table) -> None:
+    """A table that was accepted is complete and finite where it must be."""
     assert table.X.shape == (table.n_runs, 3)
     assert np.all(np.isfinite(table.X))
     assert len(set(table.run_ids)) == table.n_runs and all(table.run_ids)
@@ -210,16 +222,56 @@ def test_random_runs_text_gives_a_table_or_a_runs_error(header, rows, sep, decim
         assert not np.any(np.isinf(v))
 
 
+#: What a runs error points at: a row, a column, a byte, a sheet, or the file
+#: as a whole (not text, not a workbook, empty).
+PLACE = re.compile(r"\brow \d+|\bcolumn |\bbyte \d+|\bsheet\b|\bthe file is\b|\bworkbook\b|\bspreadsheet\b")
+
+
+def _assert_names_its_place(message: str, raw: bytes, source: str) -> None:
+    """The message starts with the file's name and each problem in it says where it is."""
+    assert message.startswith(f"{source}: "), message
+    head, *items = message.split("\n  - ")
+    for problem in items or [head]:
+        assert PLACE.search(problem), message
+    if not raw.startswith(b"PK"):  # text: rows are counted by line breaks
+        n_lines = raw.count(b"\n") + raw.count(b"\r") + 1
+        assert all(1 <= int(m) <= n_lines for m in re.findall(r"\brow (\d+)", message)), message
+    assert all(0 <= int(m) < len(raw) for m in re.findall(r"\bbyte (\d+)", message)), message
+
+
+GOOD_TEXT = "\n".join(",".join(r) for r in GOOD_RUNS) + "\n"
+GOOD_BYTES = [GOOD_TEXT.encode("utf-8"), codecs.BOM_UTF8 + GOOD_TEXT.encode("utf-8"),
+              GOOD_TEXT.encode("utf-16"), GOOD_TEXT.replace("\n", "\r\n").encode("utf-8")]
+
+
+@st.composite
+def edited_runs_bytes(draw) -> bytes:
+    """A good runs file (UTF-8, with a BOM, UTF-16, CRLF) with up to three byte ranges replaced."""
+    raw = bytearray(draw(st.sampled_from(GOOD_BYTES)))
+    for _ in range(draw(st.integers(0, 3))):
+        i = draw(st.integers(0, len(raw)))
+        j = draw(st.integers(i, min(len(raw), i + 4)))
+        raw[i:j] = draw(st.binary(max_size=4))
+    return bytes(raw)
+
+
 @FAST
 @given(st.one_of(st.binary(max_size=300),
                  st.binary(max_size=200).map(lambda b: b"PK\x03\x04" + b),
-                 st.binary(max_size=200).map(lambda b: b"\xff\xfe" + b)),
+                 st.binary(max_size=200).map(lambda b: b"\xff\xfe" + b),
+                 edited_runs_bytes()),
        st.sampled_from(["runs.csv", "runs.xlsx", "runs"]))
-def test_random_bytes_give_a_runs_error(raw, name):
+def test_random_bytes_give_a_table_or_a_runs_error_that_says_where(raw, name):
+    # any other exception type fails the test
     try:
-        read_runs_bytes(raw, PROTOCOL, source=name, suffix=name[4:])
-    except RunsDataError:
-        pass
+        table = read_runs_bytes(raw, PROTOCOL, source=name, suffix=name[4:])
+    except RunsDataError as exc:
+        event("refused")
+        _assert_names_its_place(str(exc), raw, name)
+        return
+    event("accepted")
+    _assert_table_holds(table)
+    assert table.sha256 == hashlib.sha256(raw).hexdigest()  # the digest of exactly these bytes
 
 
 # ------------------------------------------------------------------ planning steps
@@ -281,63 +333,96 @@ def _runs_text(protocol, n_runs: int, seed: int) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _plan(protocol, runs, seed):
-    try:
-        return plan_step(protocol, runs, seed=seed)
-    except GuardbandError:
-        return None
+def _plan_or_reject(data: dict, n_runs: int, seed: int):
+    """Protocol, runs and plan of a case; a case that cannot be planned is rejected.
 
-
-@PLANS
-@given(plannable())
-def test_random_plans_meet_every_hard_constraint_and_account_for_every_candidate(case):
-    data, n_runs, seed = case
+    An empty design space, runs that cannot be made for it, or a step that
+    refuses raises a :class:`GuardbandError` (any other exception fails the
+    test); ``assume`` then tells Hypothesis to draw another case instead of
+    counting this one as checked.
+    """
     try:
         protocol = parse_protocol(data)
         runs = parse_runs_text(_runs_text(protocol, n_runs, seed), protocol)
-    except GuardbandError:
-        return
-    result = _plan(protocol, runs, seed)
-    event(f"planned {result is not None}, proposals {bool(result and result.proposals)}")
-    if result is None:
-        return
-    space = protocol.design_space()
-    if result.proposals:
-        X = np.array([p.x for p in result.proposals])
+        return protocol, plan_step(protocol, runs, seed=seed)
+    except GuardbandError as exc:
+        event(f"not plannable: {type(exc).__name__}")
+        assume(False)
+
+
+#: A case that is plannable by design and has proposals and survivors to check
+#: (components and a process factor, one limit that most of the space meets).
+PLANNABLE = ({
+    "study": {"title": "known plannable", "version": "1", "author": "test"},
+    "mixture": {"total": 1.0},
+    "factors": [{"name": "c0", "kind": "component", "lower": 0.1, "upper": 0.8},
+                {"name": "c1", "kind": "component", "lower": 0.2, "upper": 0.9},
+                {"name": "x0", "kind": "continuous", "lower": -5.0, "upper": 45.0}],
+    "objective": {"name": "y", "direction": "maximize"},
+    "limits": [{"name": "l0", "upper": 0.6, "probability": 0.6}],
+    "screen": {"threshold": 0.5, "min_runs": 3, "max_step": None},
+    "batch": {"size": 2, "pool": 100, "refine": 0},
+    "model": {"restarts": 1},
+}, 8, 0)
+
+
+def test_random_plans_meet_every_hard_constraint_and_account_for_every_candidate():
+    seen = {"plans": 0, "proposals": 0}
+
+    @PLANS
+    @example(PLANNABLE)
+    @given(plannable())
+    def check(case):
+        protocol, result = _plan_or_reject(*case)
+        seen["plans"] += 1
+        seen["proposals"] += len(result.proposals)
+        event(f"proposals {bool(result.proposals)}")
+        space = protocol.design_space()
+        X = np.array([p.x for p in result.proposals]).reshape(len(result.proposals), len(protocol.factors))
         assert np.all(space.contains(X))
-    for p in result.proposals:
-        assert p.joint >= protocol.screen.threshold
-        for lim in protocol.limits:
-            assert p.p[lim.name] >= lim.probability
-    s = result.screen
-    # candidates = survivors + exclusions, each exactly once
-    assert s.n == result.pool.shape[0]
-    assert sum(s.counts().values()) == s.n
-    header, rows = exclusion_table(result)
-    status = [r[header.index("status")] for r in rows]
-    assert len(rows) == s.n
-    assert status.count("survived") == int(s.survives.sum())
-    assert status.count("excluded") == s.n - int(s.survives.sum())
-    assert all((r == "") == bool(v) for r, v in zip(s.reason, s.survives))
-    assert np.all(s.joint[s.survives] >= protocol.screen.threshold)
+        for p in result.proposals:
+            assert p.joint >= protocol.screen.threshold
+            for lim in protocol.limits:
+                assert p.p[lim.name] >= lim.probability
+        s = result.screen
+        # candidates = survivors + exclusions, each exactly once
+        assert s.n == result.pool.shape[0]
+        assert sum(s.counts().values()) == s.n
+        header, rows = exclusion_table(result)
+        status = [r[header.index("status")] for r in rows]
+        assert len(rows) == s.n
+        assert status.count("survived") == int(s.survives.sum())
+        assert status.count("excluded") == s.n - int(s.survives.sum())
+        assert all((r == "") == bool(v) for r, v in zip(s.reason, s.survives))
+        assert np.all(s.joint[s.survives] >= protocol.screen.threshold)
+
+    check()
+    # the checks above ran on real plans (rejected cases do not count towards
+    # max_examples), and on proposals, not only on empty batches
+    assert seen["plans"] >= PLANS.max_examples
+    assert seen["proposals"] > 0
 
 
-@PLANS
-@given(plannable(), st.floats(0.0, 1.0))
-def test_raising_the_threshold_never_admits_a_candidate(case, share):
-    data, n_runs, seed = case
-    threshold = data["screen"]["threshold"]
-    higher = threshold + share * (0.99 - threshold)
-    try:
-        low = parse_protocol(data)
-        high = parse_protocol({**data, "screen": {**data["screen"], "threshold": higher}})
-        runs = parse_runs_text(_runs_text(low, n_runs, seed), low)
-    except GuardbandError:
-        return
-    a, b = _plan(low, runs, seed), _plan(high, runs, seed)
-    assume(a is not None and b is not None)
-    # the same seed draws the same pool (refinement is off), so candidates correspond
-    np.testing.assert_array_equal(a.pool, b.pool)
-    assert not np.any(b.screen.survives & ~a.screen.survives)
-    event(f"survivors {int(a.screen.survives.sum()) > 0}, fewer at the higher threshold "
-          f"{int(b.screen.survives.sum()) < int(a.screen.survives.sum())}")
+def test_raising_the_threshold_never_admits_a_candidate():
+    seen = {"pairs": 0, "survivors": 0}
+
+    @PLANS
+    @example(PLANNABLE, 0.5)
+    @given(plannable(), st.floats(0.0, 1.0))
+    def check(case, share):
+        data, n_runs, seed = case
+        threshold = data["screen"]["threshold"]
+        higher = {**data, "screen": {**data["screen"], "threshold": threshold + share * (0.99 - threshold)}}
+        _, a = _plan_or_reject(data, n_runs, seed)
+        _, b = _plan_or_reject(higher, n_runs, seed)
+        seen["pairs"] += 1
+        seen["survivors"] += int(a.screen.survives.sum())
+        # the same seed draws the same pool (refinement is off), so candidates correspond
+        np.testing.assert_array_equal(a.pool, b.pool)
+        assert not np.any(b.screen.survives & ~a.screen.survives)
+        event(f"survivors {int(a.screen.survives.sum()) > 0}, fewer at the higher threshold "
+              f"{int(b.screen.survives.sum()) < int(a.screen.survives.sum())}")
+
+    check()
+    assert seen["pairs"] >= PLANS.max_examples
+    assert seen["survivors"] > 0  # some candidate could have been wrongly kept

@@ -53,13 +53,78 @@ def test_joint_bound_and_product():
     assert np.all(joint_figure(P) <= joint_figure(P, method="independent") + 1e-15)
 
 
-@given(st.lists(st.floats(0, 1), min_size=1, max_size=6))
-def test_bound_is_a_valid_lower_bound_for_any_dependence(ps):
-    # Frechet lower bound: P(all) >= 1 - sum(1 - p_i) for any joint law, and
-    # it is attained; it never exceeds min(p_i).
-    P = np.array([ps])
-    b = joint_figure(P)[0]
-    assert 0.0 <= b <= min(ps) + 1e-12
+# The default joint figure is the Frechet lower bound P(all met) >= 1 - sum(1 - p_i)
+# (Boole's inequality on the events "limit i broken"; Frechet 1935, Fundamenta
+# Mathematicae 25, 379-387, from memory). The checks below build joint laws of
+# the limits with numpy and compare the figure with their true P(all met).
+probabilities = st.lists(st.floats(0, 1), min_size=1, max_size=6)
+
+
+def _worst_case_law(p):
+    """P(all met) and the marginals when the events "limit i broken" are most disjoint.
+
+    U ~ Uniform[0, 1); limit i is broken when U falls in an arc of length
+    1 - p_i on the unit circle, the arcs laid end to end. While the lengths
+    add up to at most 1 the arcs are pairwise disjoint, so P(all met) is
+    1 - sum(1 - p_i) exactly; beyond that they cover the circle and it is 0.
+    Enumerated over the pieces between the arcs' ends, so the result is exact
+    up to rounding.
+    """
+    q = 1.0 - np.asarray(p, dtype=float)
+    start = np.concatenate([[0.0], np.cumsum(q)[:-1]])
+    cuts = np.unique(np.concatenate([[0.0, 1.0], np.mod(start, 1.0), np.mod(start + q, 1.0)]))
+    length = np.diff(cuts)
+    mid = cuts[:-1] + length / 2
+    broken = np.mod(mid[:, None] - start[None, :], 1.0) < q[None, :]  # (pieces, limits)
+    return float(length[~broken.any(axis=1)].sum()), length @ ~broken
+
+
+def _independent_law(p):
+    """P(all met) and the marginals of independent limits, over all 2**n outcomes."""
+    p = np.asarray(p, dtype=float)
+    met = np.array(np.meshgrid(*[[False, True]] * p.size, indexing="ij")).reshape(p.size, -1).T
+    weight = np.prod(np.where(met, p, 1.0 - p), axis=1)
+    return float(weight[met.all(axis=1)].sum()), weight @ met
+
+
+@given(probabilities)
+def test_bound_is_reached_when_the_limits_break_on_disjoint_events(ps):
+    all_met, marginals = _worst_case_law(ps)
+    np.testing.assert_allclose(marginals, ps, atol=1e-12)  # the law has the given p_i
+    np.testing.assert_allclose(all_met, max(0.0, 1.0 - sum(1.0 - p for p in ps)), atol=1e-12)
+    # the default figure is this law's true P(all met): no smaller figure is valid for every law
+    np.testing.assert_allclose(joint_figure(np.array([ps]))[0], all_met, atol=1e-12)
+
+
+@given(probabilities)
+def test_bound_is_below_the_truth_for_independent_limits(ps):
+    all_met, marginals = _independent_law(ps)
+    np.testing.assert_allclose(marginals, ps, atol=1e-12)
+    np.testing.assert_allclose(all_met, np.prod(ps), rtol=1e-12, atol=1e-300)
+    figure = joint_figure(np.array([ps]))[0]
+    assert figure <= all_met + 1e-12
+    if len(ps) == 2 and ps[0] + ps[1] >= 1.0:
+        # two limits: (1 - q1)(1 - q2) - (1 - q1 - q2) = q1 q2 exactly
+        q1, q2 = 1.0 - ps[0], 1.0 - ps[1]
+        np.testing.assert_allclose(all_met - figure, q1 * q2, atol=1e-12)
+
+
+def test_bound_is_strictly_below_the_truth_for_independent_limits():
+    # 1 - 0.1 - 0.05 - 0.01 = 0.84 < 0.9 * 0.95 * 0.99 = 0.84645
+    all_met, _ = _independent_law([0.9, 0.95, 0.99])
+    assert joint_figure(np.array([[0.9, 0.95, 0.99]]))[0] == pytest.approx(0.84, abs=1e-12)
+    assert all_met == pytest.approx(0.84645, abs=1e-12)
+
+
+@settings(max_examples=200)
+@given(st.integers(1, 5), st.integers(0, 2**32 - 1))
+def test_bound_holds_for_any_joint_law(n, seed):
+    # a random law over the 2**n outcomes (met / broken for each limit)
+    rng = np.random.default_rng(seed)
+    met = np.array(np.meshgrid(*[[False, True]] * n, indexing="ij")).reshape(n, -1).T
+    weight = rng.dirichlet(np.full(met.shape[0], 0.3))
+    figure = joint_figure((weight @ met)[None, :])[0]
+    assert figure <= weight[met.all(axis=1)].sum() + 1e-12
 
 
 def _lim(name, mean, sd, upper=1.0, probability=0.9, status="ok", message=""):

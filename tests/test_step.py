@@ -10,7 +10,7 @@ from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.inputs.runs import read_runs
 from guardband.planner.step import plan_step, safe_runs_mask
 
-from conftest import PROTOCOLS
+from conftest import PROTOCOLS, unit_square_protocol
 
 POOL = 600
 
@@ -106,11 +106,33 @@ def test_feasibility_first_when_no_run_meets_limits(tablet):
     assert result.mode == "feasibility-first"
     assert result.incumbent is None
     assert any("feasibility first" in m for m in result.messages)
-    # ranked by the joint figure: proposals come in decreasing joint order
-    # (the first pick is the pool's best joint figure among survivors)
-    if result.proposals:
-        best = result.screen.joint[result.screen.survives].max()
-        assert result.proposals[0].joint == pytest.approx(best)
+
+
+def test_feasibility_first_ranks_by_the_joint_figure():
+    # every run breaks the limit (imp = 1 - x1 > 0.45 for x1 <= 0.5), but the
+    # trend puts candidates with x1 beyond 0.55 inside it with some confidence
+    protocol = parse_protocol(unit_square_protocol(
+        {"name": "imp", "upper": 0.45, "probability": 0.6}, title="no run meets the limit yet",
+        screen={"threshold": 0.6, "min_runs": 5}, batch={"size": 3, "pool": POOL, "refine": 0},
+        model={"restarts": 2},
+    ))
+    rng = np.random.default_rng(0)
+    X = np.column_stack([rng.uniform(0.0, 0.5, 12), rng.uniform(0.0, 1.0, 12)])
+    Y = {"y": np.sin(3.0 * X[:, 1]) + X[:, 0], "imp": 1.0 - X[:, 0] + 0.01 * rng.normal(size=12)}
+    runs = runs_table_from_arrays(protocol, X, Y)
+    assert not safe_runs_mask(protocol, runs).any()
+    result = plan_step(protocol, runs, seed=2)
+    assert result.mode == "feasibility-first"
+    assert len(result.proposals) == 3, result.messages
+    s = result.screen
+    # ranked by the joint figure, not by the objective: every candidate's
+    # score is its joint figure, the first pick is the best survivor's, and
+    # later picks (chosen after fantasised results) are no better than it
+    np.testing.assert_array_equal(result.scores, s.joint)
+    joints = [q.joint for q in result.proposals]
+    assert [q.score for q in result.proposals] == joints
+    assert joints[0] == s.joint[s.survives].max()
+    assert all(j <= joints[0] for j in joints[1:])
 
 
 def test_incumbent_is_best_safe_measured(tablet):

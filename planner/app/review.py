@@ -24,6 +24,7 @@ from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.app.textable import render_table
 
 from guardband.safety import ledger
+from guardband.safety.canonical import to_jsonable
 from guardband.safety.screen import REASONS
 
 __all__ = ["StepSummary", "CorrectionSummary", "ReviewSummary", "summarize_log"]
@@ -105,7 +106,7 @@ class ReviewSummary:
     def render(self, fmt: str) -> str:
         """The summary as ``"table"``, ``"csv"`` or ``"json"`` text (ends with a newline)."""
         if fmt == "json":
-            return json.dumps(ledger.to_jsonable(self.to_dict()), indent=2, ensure_ascii=False,
+            return json.dumps(to_jsonable(self.to_dict()), indent=2, ensure_ascii=False,
                               allow_nan=False) + "\n"
         if fmt == "csv":
             return self.csv_text()

@@ -38,6 +38,7 @@ from guardband.safety.calibration import EarnedCalibration
 
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
+from guardband.safety.canonical import canonical_json
 
 __all__ = [
     "LOG_NAME",
@@ -348,8 +349,8 @@ _RUNS_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".xlsm")
 
 def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
     """The plan table and exclusion table bytes of a step, and its step label."""
-    body_id = _short(ledger.canonical_json({"p": result.proposal_dicts(), "s": result.seed,
-                                            "f": result.protocol.fingerprint, "r": result.runs_sha256}))
+    body_id = _short(canonical_json({"p": result.proposal_dicts(), "s": result.seed,
+                                     "f": result.protocol.fingerprint, "r": result.runs_sha256}))
     step_label = f"P{body_id[:6]}"
     header, rows = plan_table(result, step_label=step_label)
     extra = [f"mode: {result.mode}; ranking rule: "

@@ -33,7 +33,7 @@ from scipy import stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from guardband.planner.space.polytope import DesignSpace  # noqa: E402
+from guardband.planner.space import DesignSpace  # noqa: E402
 
 LOWER = np.array([0.30, 0.20, 0.10, 0.08, 0.06, 0.05, 0.04, 0.03, 0.02, 0.02])
 

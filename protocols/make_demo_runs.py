@@ -15,7 +15,7 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
-from guardband.planner.space.designs import starting_design  # noqa: E402
+from guardband.planner.space import starting_design  # noqa: E402
 from guardband.planner.app.fileio import write_csv_text  # noqa: E402
 from guardband.planner.inputs.protocol import load_protocol  # noqa: E402
 

@@ -10,7 +10,8 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import pdist
 
-from guardband.planner.space.designs import (
+from guardband.planner.space import (
+    DesignSpace,
     maximin,
     mixture_design,
     mixture_rows,
@@ -21,7 +22,6 @@ from guardband.planner.space.designs import (
     starting_design,
 )
 from guardband.planner.errors import ProtocolError
-from guardband.planner.space.polytope import DesignSpace
 
 
 def blend_space(upper_c: float = 0.3) -> DesignSpace:

@@ -13,7 +13,7 @@ from scipy import optimize, stats
 from scipy.linalg import null_space
 
 from guardband.planner.errors import ProtocolError
-from guardband.planner.space.polytope import DesignSpace
+from guardband.planner.space import DesignSpace
 
 TOL = 1e-9  # the feasibility promise of the sampler and the projection
 

@@ -157,7 +157,7 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
     header, rows, notes
         ``header`` is run_id, the factors, the (empty) responses and notes.
     """
-    from guardband.planner.space.designs import starting_design
+    from guardband.planner.space import starting_design
 
     if n < 1:
         raise ProtocolError("--runs must be at least 1")

@@ -445,7 +445,7 @@ class Protocol(_Strict):
         return space
 
     def _build_design_space(self):
-        from guardband.planner.space.polytope import DesignSpace
+        from guardband.planner.space import DesignSpace
 
         names = self.factor_names
         d = len(names)

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from guardband.planner.space.designs import starting_design
+from guardband.planner.space import starting_design
 from guardband.planner.errors import ModelError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable

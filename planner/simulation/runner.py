@@ -77,7 +77,7 @@ from pathlib import Path
 import numpy as np
 
 from guardband.planner.simulation.loop import CampaignHistory, best_so_far, run_campaign, start_runs
-from guardband.planner.space.designs import maximin
+from guardband.planner.space import maximin
 from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.models.parallel import default_workers
 from guardband.planner.simulation.problems import PROBLEMS, Problem, get_problem, slsqp_in_space
@@ -296,7 +296,7 @@ def _quadratic_basis(space, names):
 
 
 def _mixture_totals(space):
-    from guardband.planner.space.designs import mixture_rows
+    from guardband.planner.space import mixture_rows
 
     return mixture_rows(space)
 

@@ -16,7 +16,8 @@ from fractions import Fraction
 import numpy as np
 
 from guardband.planner.errors import ProtocolError
-from guardband.planner.space.polytope import DesignSpace, _jsonable
+from guardband.planner.space.arrays import nan_to_none
+from guardband.planner.space.polytope import DesignSpace
 
 __all__ = [
     "simplex_lattice",
@@ -25,6 +26,7 @@ __all__ = [
     "real_to_pseudo",
     "mixture_rows",
     "MixtureDesign",
+    "MixtureKind",
     "mixture_design",
     "maximin",
     "starting_design",
@@ -35,6 +37,13 @@ __all__ = [
 #: factors lie outside the mixture (otherwise those factors would all sit at
 #: their centre for every centroid point, which explores nothing).
 MAX_OTHER_FREE_FACTORS = 2
+
+
+class MixtureKind:
+    """The classical mixture designs :func:`mixture_design` makes (plain strings)."""
+
+    CENTROID = "centroid"
+    LATTICE = "lattice"
 
 
 def _check_count(value, what: str) -> int:
@@ -194,7 +203,7 @@ class MixtureDesign:
 
     def to_dict(self) -> dict:
         """Plain JSON-able dictionary."""
-        return {"X": _jsonable(self.X), "labels": list(self.labels),
+        return {"X": nan_to_none(self.X), "labels": list(self.labels),
                 "n_candidates": self.n_candidates, "n_dropped": self.n_dropped,
                 "message": self.message}
 
@@ -213,7 +222,7 @@ def _lattice_label(row: np.ndarray, names: list[str], m: int) -> str:
     return "lattice " + ", ".join(parts)
 
 
-def mixture_design(space: DesignSpace, component_indices, *, kind: str = "centroid",
+def mixture_design(space: DesignSpace, component_indices, *, kind: str = MixtureKind.CENTROID,
                    m: int = 2, total: float | None = None) -> MixtureDesign:
     """A simplex-centroid or simplex-lattice design in lower-bound pseudo-components.
 
@@ -256,15 +265,15 @@ def mixture_design(space: DesignSpace, component_indices, *, kind: str = "centro
             raise ProtocolError(f"no equality row makes {names} sum to a total; "
                                 "give the mixture total")
         total = found[0]
-    if kind == "centroid":
+    if kind == MixtureKind.CENTROID:
         P = simplex_centroid(comp.size)
-    elif kind == "lattice":
+    elif kind == MixtureKind.LATTICE:
         P = simplex_lattice(comp.size, m)
     else:
         raise ValueError(f"kind must be 'centroid' or 'lattice', got {kind!r}")
     names = [space.names[i] for i in comp]
-    labels = [_centroid_label(p, names) if kind == "centroid" else _lattice_label(p, names, m)
-              for p in P]
+    labels = [_centroid_label(p, names) if kind == MixtureKind.CENTROID
+              else _lattice_label(p, names, m) for p in P]
     lower = chk.ranges[comp, 0]
     X = np.repeat(space.project(chk.centre)[None, :], P.shape[0], axis=0)
     X[:, comp] = pseudo_to_real(P, lower, total)
@@ -415,7 +424,7 @@ def starting_design(space: DesignSpace, n: int, *, rng, mixture_indices=None,
     if mixture is not None:
         others = np.setdiff1d(np.flatnonzero(inner.free), mixture)
         if others.size <= MAX_OTHER_FREE_FACTORS:
-            design = mixture_design(inner, mixture, kind="centroid")
+            design = mixture_design(inner, mixture, kind=MixtureKind.CENTROID)
             k = design.X.shape[0]
             if 0 < k <= n:
                 if k == n:

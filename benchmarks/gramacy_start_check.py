@@ -21,7 +21,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import guardband.planner.simulation.loop as campaign  # noqa: E402
-from guardband.planner.simulation.problems import get_problem  # noqa: E402
+from guardband.planner.simulation import get_problem  # noqa: E402
 from guardband.safety.screen import limit_probability  # noqa: E402
 
 X_OPT = np.array([[0.1954, 0.4044]])

@@ -23,7 +23,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from guardband.planner.simulation.loop import runs_table_from_arrays  # noqa: E402
+from guardband.planner.simulation import runs_table_from_arrays  # noqa: E402
 from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402
 from guardband.planner.step import plan_step  # noqa: E402
 

@@ -40,9 +40,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text  # noqa: E402
-from guardband.planner.simulation.problems import get_problem  # noqa: E402
 from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402
-from guardband.planner.simulation.runner import PLANNER_STRATEGIES, STRATEGIES, simulate  # noqa: E402
+from guardband.planner.simulation import PLANNER_STRATEGIES, STRATEGIES, get_problem, simulate  # noqa: E402
 
 #: The targets' strategies (the cheaper set, for extra cases).
 CORE = ("protocol", "random", "classical", "screen-off")

@@ -380,7 +380,7 @@ def simulate(
     """Simulate campaigns on a test problem: what the protocol's settings cost and risk."""
     import time
 
-    from guardband.planner.simulation.runner import OptionError, simulate_from_options
+    from guardband.planner.app.simulate_options import OptionError, simulate_from_options
 
     if protocol is None and not settings_from_problem:
         raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",

@@ -86,7 +86,7 @@ def test_short_model_never_admits_what_the_fitted_model_excludes():
         objective={"name": "f", "direction": "minimize"},
         screen={"threshold": 0.95, "min_runs": 5}, batch={"size": 1, "pool": 1500, "refine": 0},
     )
-    from guardband.planner.simulation.loop import runs_table_from_arrays
+    from guardband.planner.simulation import runs_table_from_arrays
 
     on = parse_protocol(data)
     off = parse_protocol({**data, "screen": {**data["screen"], "short_model": False}})

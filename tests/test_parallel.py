@@ -7,7 +7,7 @@ import pytest
 
 from guardband.planner.models import parallel
 from guardband.planner.step import fitting
-from guardband.planner.simulation.loop import runs_table_from_arrays
+from guardband.planner.simulation import runs_table_from_arrays
 from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.step import plan_step
 

@@ -8,13 +8,9 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize
 
-from guardband.planner.simulation.problems import (
-    DOSE_COHORT,
-    PROBLEMS,
-    get_problem,
-    locate_optimum,
-    meets_limits,
-)
+from guardband.planner.simulation import PROBLEMS, get_problem, locate_optimum
+from guardband.planner.simulation.problems import DOSE_COHORT
+from guardband.safety.limits import met_every_limit
 
 NAMES = sorted(PROBLEMS)
 
@@ -39,7 +35,7 @@ def test_stated_optimum_is_feasible_and_attained(name):
     x = np.array(problem.optimum_x, dtype=float)[None, :]
     assert np.asarray(protocol.design_space().contains(x))[0]
     y = problem.evaluate(x)
-    assert meets_limits(protocol, y)[0]
+    assert met_every_limit(protocol, y)[0]
     assert y[protocol.objective.name][0] == pytest.approx(problem.optimum, rel=1e-12, abs=1e-12)
 
 
@@ -50,7 +46,7 @@ def test_no_dense_feasible_point_beats_the_stated_optimum(name):
     protocol = problem.protocol
     X = _dense_points(problem, 100_000, seed=12345)
     Y = problem.evaluate(X)
-    ok = meets_limits(protocol, Y)
+    ok = met_every_limit(protocol, Y)
     assert ok.sum() >= 1
     s = _sign(problem)
     best_sampled = np.min(s * Y[protocol.objective.name][ok])
@@ -64,7 +60,7 @@ def test_locate_optimum_recomputes_the_stated_value(name):
     found = locate_optimum(problem, n_samples=40_000, n_polish=8, seed=7)
     # SLSQP from a different, smaller sample lands on the same optimum
     assert found.value == pytest.approx(problem.optimum, rel=1e-6)
-    assert meets_limits(problem.protocol, problem.evaluate(found.x[None, :]))[0]
+    assert met_every_limit(problem.protocol, problem.evaluate(found.x[None, :]))[0]
 
 
 def test_get_problem_names_the_choices():
@@ -79,7 +75,7 @@ def test_gramacy_feasible_share_is_about_46_percent():
     # points has a standard error of 0.0008; "about 46%" is read as +-1%.
     problem = PROBLEMS["gramacy"]
     U = np.random.default_rng(2016).random((400_000, 2))
-    share = meets_limits(problem.protocol, problem.evaluate(U)).mean()
+    share = met_every_limit(problem.protocol, problem.evaluate(U)).mean()
     assert abs(share - 0.46) < 0.01
 
 
@@ -101,7 +97,7 @@ def test_gramacy_local_minimum_at_0_075_is_feasible():
     rng = np.random.default_rng(3)
     X = np.clip(np.array([0.0, 0.75]) + rng.uniform(-0.03, 0.03, size=(20_000, 2)), 0.0, 1.0)
     Y = problem.evaluate(X)
-    ok = meets_limits(problem.protocol, Y)
+    ok = met_every_limit(problem.protocol, Y)
     assert ok.sum() > 100
     assert np.min(Y["f"][ok]) >= 0.75 - 1e-9
 
@@ -130,7 +126,7 @@ def test_tablet_limit_crosses_the_best_region():
     X = protocol.design_space().sample(50_000, rng=np.random.default_rng(1))
     Y = problem.evaluate(X)
     best = int(np.argmax(Y["dissolution"]))
-    assert not meets_limits(protocol, {k: v[best:best + 1] for k, v in Y.items()})[0]
+    assert not met_every_limit(protocol, {k: v[best:best + 1] for k, v in Y.items()})[0]
     at_opt = problem.evaluate(np.array([problem.optimum_x]))
     assert at_opt["degradant"][0] == pytest.approx(0.2, abs=1e-6)
     assert np.allclose(np.sum(problem.optimum_x), 1.0)
@@ -140,7 +136,7 @@ def test_coating_feasible_region_is_narrow():
     problem = PROBLEMS["coating"]
     assert len(problem.protocol.factors) >= 6
     X = problem.protocol.design_space().sample(100_000, rng=np.random.default_rng(2))
-    share = meets_limits(problem.protocol, problem.evaluate(X)).mean()
+    share = met_every_limit(problem.protocol, problem.evaluate(X)).mean()
     assert 0.005 < share < 0.10
 
 
@@ -160,7 +156,7 @@ def test_dose_toxicity_is_logistic_and_the_start_region_is_safe():
     A, bvec, _ = protocol.start_rows()
     inside = np.all(grid @ A.T <= bvec + 1e-12, axis=1)
     assert inside.sum() >= 4
-    assert meets_limits(protocol, problem.evaluate(grid[inside])).all()
+    assert met_every_limit(protocol, problem.evaluate(grid[inside])).all()
     assert space.levels
 
 

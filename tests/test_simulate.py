@@ -12,24 +12,27 @@ from sklearn.linear_model import LinearRegression
 from sklearn.preprocessing import PolynomialFeatures
 from typer.testing import CliRunner
 
-from guardband.planner.simulation.loop import CampaignHistory, run_campaign
+from guardband.planner.app.simulate_options import parse_noise
 from guardband.planner.cli import app
-from guardband.planner.simulation.problems import PROBLEMS, gramacy_protocol_dict
 from guardband.planner.inputs.protocol import parse_protocol
-from guardband.planner.simulation.runner import (
+from guardband.planner.simulation import (
     PLANNER_STRATEGIES,
-    SCREEN_OFF,
+    PROBLEMS,
     STRATEGIES,
+    CampaignHistory,
     SimulationResult,
-    _quantiles,
     combine_settings,
-    fit_quadratic,
-    parse_noise,
+    get_problem,
+    run_campaign,
     run_classical,
     run_random,
     simulate,
     strategy_protocol,
 )
+from guardband.planner.simulation.problems import gramacy_protocol_dict
+from guardband.planner.simulation.quadratic import fit_quadratic
+from guardband.planner.simulation.results import _quantiles
+from guardband.planner.simulation.strategies import SCREEN_OFF
 
 #: Small and fast planner settings: pool 200, no refinement, one restart.
 FAST = parse_protocol({**gramacy_protocol_dict(batch=3, rule="pi", threshold=0.9),
@@ -362,9 +365,6 @@ def test_cli_simulate_bad_protocol_exits_3(tmp_path):
 
 
 def test_settings_carry_the_screen_guards_but_not_the_world():
-    from guardband.planner.simulation.problems import get_problem
-    from guardband.planner.simulation.runner import combine_settings
-
     problem = get_problem("coating")
     data = problem.protocol.model_dump(mode="python")
     data["screen"].update(short_model=False, widen_from_loo=False)

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from guardband.planner.simulation.loop import run_campaign, runs_table_from_arrays
+from guardband.planner.simulation import run_campaign, runs_table_from_arrays
 from guardband.planner.errors import ModelError
 from guardband.planner.simulation.problems import GRAMACY, gramacy_protocol_dict
 from guardband.planner.inputs.protocol import load_protocol, parse_protocol
@@ -251,7 +251,7 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     # misses the pocket; the local search for the joint figure must find a point
     # that passes the full screen (and say so), never relax the screen
     import guardband.planner.step.pool as step_mod
-    from guardband.planner.simulation.loop import runs_table_from_arrays
+    from guardband.planner.simulation import runs_table_from_arrays
 
     monkeypatch.setattr(step_mod, "LOCAL_SHARE", 0.0)
     data = {

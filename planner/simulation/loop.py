@@ -23,10 +23,12 @@ from guardband.planner.space import starting_design
 from guardband.planner.errors import ModelError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.simulation.problems import measured
 from guardband.planner.step import plan_step
 from guardband.safety.limits import met_every_limit
 
-__all__ = ["CampaignHistory", "runs_table_from_arrays", "run_campaign", "best_so_far", "start_runs"]
+__all__ = ["CampaignHistory", "campaign_history", "runs_table_from_arrays", "run_campaign", "best_so_far",
+           "best_safe_runs", "start_runs"]
 
 
 @dataclass(frozen=True)
@@ -83,8 +85,8 @@ def runs_table_from_arrays(protocol: Protocol, X: np.ndarray, Y: dict) -> RunsTa
     )
 
 
-def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
-    """Running best objective among runs whose values in ``Y`` meet every limit.
+def best_safe_runs(protocol: Protocol, Y: dict) -> np.ndarray:
+    """Index of the best run so far among runs whose values in ``Y`` meet every limit.
 
     Parameters
     ----------
@@ -93,25 +95,62 @@ def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
 
     Returns
     -------
-    ndarray of shape (n_runs,)
-        NaN until the first run that meets every limit.
+    int ndarray of shape (n_runs,)
+        For each prefix of the runs, the index of its best run (the first
+        of equal ones); -1 until the first run that meets every limit.
     """
     y = np.asarray(Y[protocol.objective.name], dtype=float)
     ok = met_every_limit(protocol, Y) & np.isfinite(y)
     sign = -1.0 if protocol.maximize else 1.0
-    best = np.full(y.shape[0], np.nan)
-    current = np.nan
+    out = np.full(y.shape[0], -1, dtype=int)
+    current = -1
     for i in range(y.shape[0]):
-        if ok[i] and (np.isnan(current) or sign * y[i] < sign * current):
-            current = y[i]
-        best[i] = current
-    return best
+        if ok[i] and (current < 0 or sign * y[i] < sign * y[current]):
+            current = i
+        out[i] = current
+    return out
+
+
+def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
+    """Running best objective among runs whose values in ``Y`` meet every limit.
+
+    The objective of the run :func:`best_safe_runs` names, per prefix:
+    an array of shape (n_runs,), NaN until the first run that meets every
+    limit.
+    """
+    y = np.asarray(Y[protocol.objective.name], dtype=float)
+    best = best_safe_runs(protocol, Y)
+    return np.where(best >= 0, y[best], np.nan)
+
+
+def campaign_history(protocol: Protocol, X: np.ndarray, T: dict, Y: dict, planned, *, promised=None,
+                     stalled: bool = False, modes=(), message: str = "") -> CampaignHistory:
+    """A :class:`CampaignHistory` from the runs made: which broke a limit, the running best.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    X : array (n_runs, n_factors)
+    T, Y : dict of response -> array (n_runs,)
+        True and measured responses.
+    planned : bool array (n_runs,)
+    promised : array (n_runs,), optional
+        The screen's joint figure per run (default NaN for every run).
+    stalled, modes, message
+        As in :class:`CampaignHistory`.
+    """
+    return CampaignHistory(
+        X=X, Y=Y, planned=np.asarray(planned, dtype=bool), broke_limit=~met_every_limit(protocol, T),
+        best_safe=best_so_far(protocol, Y),
+        promised=np.full(X.shape[0], np.nan) if promised is None else np.asarray(promised, dtype=float),
+        stalled=stalled, T=T, modes=tuple(modes), message=message,
+    )
 
 
 def start_runs(protocol: Protocol, n_start: int, *, rng) -> np.ndarray:
     """Starting runs of a campaign, shape (n_start, n_factors).
 
-    From :func:`planner.designs.starting_design`, inside the protocol's
+    From :func:`~guardband.planner.space.designs.starting_design`, inside the protocol's
     starting region when it declares one.
     """
     space = protocol.design_space()
@@ -123,10 +162,9 @@ def start_runs(protocol: Protocol, n_start: int, *, rng) -> np.ndarray:
 
 
 def _gaussian(noise: dict, protocol: Protocol):
+    """``measure(truth, rng)``: the protocol's responses plus Gaussian noise of sd ``noise[response]``."""
     def measure(truth, rng):
-        return {r: np.asarray(truth[r], float)
-                + (rng.normal(0.0, noise[r], len(truth[r])) if noise.get(r) else 0.0)
-                for r in protocol.response_names}
+        return measured({r: truth[r] for r in protocol.response_names}, rng, noise)
     return measure
 
 
@@ -161,7 +199,7 @@ def run_campaign(
         Use these starting runs instead of making a design (not modified).
     measure : callable, optional
         ``measure(truth, rng) -> dict`` of measured values, e.g.
-        :meth:`planner.problems.Problem.measure`; default Gaussian ``noise``.
+        :meth:`~guardband.planner.simulation.problems.Problem.measure`; default Gaussian ``noise``.
     pool_size : int, optional
         Candidate pool size of every step (default the protocol's).
 
@@ -208,8 +246,5 @@ def run_campaign(
         T = {r: np.concatenate([T[r], t[r]]) for r in protocol.response_names}
         planned += [True] * Xn.shape[0]
         promised += [p.joint for p in result.proposals]
-    return CampaignHistory(
-        X=X, Y=Y, planned=np.array(planned), broke_limit=~met_every_limit(protocol, T),
-        best_safe=best_so_far(protocol, Y), promised=np.array(promised, dtype=float),
-        stalled=stalled, T=T, modes=tuple(modes), message=message,
-    )
+    return campaign_history(protocol, X, T, Y, planned, promised=promised, stalled=stalled, modes=modes,
+                            message=message)

@@ -6,7 +6,7 @@ runs. The protocol supplies the factors, the design space, the objective,
 the limits (with their probabilities), the start region and the
 problem-specific screen rules (``max_step``, forbidden regions); the
 planner's own settings (threshold, ranking, batch) can be replaced by a
-user's protocol when simulating (see :mod:`planner.simulate`).
+user's protocol when simulating (see :mod:`guardband.planner.simulation.strategies`).
 
 Built-in problems
 -----------------
@@ -60,8 +60,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.inputs.protocol import Protocol, parse_protocol
-# one home for "met every limit": the screen's (kept here under its old name)
-from guardband.safety.limits import met_every_limit as meets_limits
+from guardband.safety.limits import met_every_limit
 
 __all__ = [
     "Problem",
@@ -69,10 +68,11 @@ __all__ = [
     "PROBLEMS",
     "get_problem",
     "locate_optimum",
-    "meets_limits",
     "gramacy_protocol_dict",
     "OPTIMUM_MARGIN",
     "slsqp_in_space",
+    "limit_slack",
+    "measured",
 ]
 
 #: Limits are kept this far inside (relative to the response's scale) when
@@ -151,17 +151,43 @@ class Problem:
         sds = dict(self.noise)
         if noise:
             sds.update(noise)
-        out = {}
-        for r, v in truth.items():
-            v = np.asarray(v, dtype=float)
-            if scale > 0 and r in self.cohort:
-                m = int(self.cohort[r])
-                out[r] = rng.binomial(m, np.clip(v, 0.0, 1.0)) / m
-            elif scale > 0 and sds.get(r, 0.0) > 0:
-                out[r] = v + rng.normal(0.0, scale * sds[r], size=v.shape)
-            else:
-                out[r] = v.copy()
-        return out
+        return measured(truth, rng, sds, scale=scale, cohort=self.cohort)
+
+
+def measured(truth: dict, rng: np.random.Generator, sds: dict, *, scale: float = 1.0,
+             cohort: dict | None = None) -> dict:
+    """Measured values: the truth plus Gaussian noise, or a rate counted out of a cohort.
+
+    Parameters
+    ----------
+    truth : dict of str to array of shape (n,)
+        True responses; measured in the order of the dict.
+    rng : numpy.random.Generator
+    sds : dict of str to float
+        Gaussian noise sd per response; a response without a positive sd
+        is measured without noise.
+    scale : float
+        Multiplies every sd; 0 turns all noise off (binomial rates too).
+    cohort : dict of str to int, optional
+        Responses measured as Binomial(cohort, true rate) / cohort.
+
+    Returns
+    -------
+    dict of str to array of shape (n,)
+        New arrays; ``truth`` is not modified.
+    """
+    cohort = cohort or {}
+    out = {}
+    for r, v in truth.items():
+        v = np.asarray(v, dtype=float)
+        if scale > 0 and r in cohort:
+            m = int(cohort[r])
+            out[r] = rng.binomial(m, np.clip(v, 0.0, 1.0)) / m
+        elif scale > 0 and sds.get(r, 0.0) > 0:
+            out[r] = v + rng.normal(0.0, scale * sds[r], size=v.shape)
+        else:
+            out[r] = v.copy()
+    return out
 
 
 # ----------------------------------------------------------------- optimum
@@ -253,6 +279,35 @@ def slsqp_in_space(space, x0, fun, ineq=None, *, maxiter: int = 200,
     return x
 
 
+def limit_slack(protocol: Protocol, values: dict, *, margin: dict | None = None) -> np.ndarray:
+    """How far one point is inside each bound of every limit: SLSQP's inequality constraints.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    values : dict of str to float
+        Each limited response's value at the point.
+    margin : dict of str to float, optional
+        Distance each limit must be kept inside, per response.
+
+    Returns
+    -------
+    ndarray of shape (n_bounds,)
+        ``upper - margin - value`` and ``value - lower - margin`` for every
+        bound, limit by limit; every entry is >= 0 when the point meets
+        every limit.
+    """
+    out = []
+    for lim in protocol.limits:
+        m = margin[lim.name] if margin else 0.0
+        v = values[lim.name]
+        if lim.upper is not None:
+            out.append(lim.upper - m - v)
+        if lim.lower is not None:
+            out.append(v - lim.lower - m)
+    return np.array(out)
+
+
 def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int = 20,
                    seed: int = 0) -> OptimumResult:
     """The best objective among points meeting every limit.
@@ -287,7 +342,7 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     if space.levels and len(space.levels) == space.n_factors:
         G = _discrete_grid(space)
         Y = problem.evaluate(G)
-        ok = meets_limits(protocol, Y)
+        ok = met_every_limit(protocol, Y)
         if not np.any(ok):
             raise ValueError(f"problem {problem.name!r}: no level combination meets every limit")
         idx = np.flatnonzero(ok)
@@ -299,7 +354,7 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     rng = np.random.default_rng(seed)
     X = space.sample(n_samples, rng=rng)
     Y = problem.evaluate(X)
-    ok = meets_limits(protocol, Y)
+    ok = met_every_limit(protocol, Y)
     if not np.any(ok):
         raise ValueError(f"problem {problem.name!r}: no sampled point meets every limit")
     scale = {lim.name: max(float(np.ptp(Y[lim.name])), 1e-12) for lim in protocol.limits}
@@ -312,24 +367,19 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     def f(x):
         return sign * float(problem.evaluate(x[None, :])[obj][0])
 
+    margin = {name: OPTIMUM_MARGIN * s for name, s in scale.items()}
+
     def g(x):  # every limit, OPTIMUM_MARGIN inside; >= 0 when met
         y = problem.evaluate(x[None, :])
-        out = []
-        for lim in protocol.limits:
-            m = OPTIMUM_MARGIN * scale[lim.name]
-            v = float(y[lim.name][0])
-            if lim.upper is not None:
-                out.append(lim.upper - m - v)
-            if lim.lower is not None:
-                out.append(v - lim.lower - m)
-        return np.array(out)
+        return limit_slack(protocol, {lim.name: float(y[lim.name][0]) for lim in protocol.limits},
+                           margin=margin)
 
     for i in starts:
         x = slsqp_in_space(space, X[i], f, g, maxiter=300, ftol=1e-12)
         if x is None:
             continue
         y = problem.evaluate(x[None, :])
-        if meets_limits(protocol, y)[0] and sign * float(y[obj][0]) < best_v:
+        if met_every_limit(protocol, y)[0] and sign * float(y[obj][0]) < best_v:
             best_x, best_v = x, sign * float(y[obj][0])
     return OptimumResult(float(sign * best_v), best_x, float(ok.mean()), int(n_samples),
                          f"dense hit-and-run sample of {n_samples} points, then SLSQP from "

@@ -1,0 +1,301 @@
+"""The summaries of a simulation: trajectories over planned runs, quantiles over seeds, tables.
+
+What is reported
+----------------
+For every strategy and every planned-run count k = 0..budget (runs after
+the first ``n_start``, the same for every strategy), over seeds: the best
+measured objective among runs whose measured responses met every limit
+(the lab's view), the gap to the known optimum (positive is worse; no safe
+run counts as an infinite gap) and the share of planned runs that broke a
+limit by the true responses; medians and quartiles. For the planner
+strategies, the mean joint figure promised by the screen against the
+observed share of planned runs that met every limit (calibration).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.app.textable import render_table
+from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.simulation.loop import best_safe_runs
+from guardband.planner.simulation.problems import Problem
+
+__all__ = ["SimulationResult", "QUARTILES", "SIMULATION_CAUTION"]
+
+#: Quantiles reported over seeds.
+QUARTILES = (0.25, 0.5, 0.75)
+SIMULATION_CAUTION = (
+    "Simulated against a test problem with known answers: a real study's responses, noise "
+    "and model fit differ, so these figures show tendencies, not guarantees."
+)
+
+
+def _quantiles(values, qs=QUARTILES) -> list[float]:
+    """Linear-interpolation quantiles that treat +inf as larger than everything; NaN dropped."""
+    v = np.sort(np.asarray(values, dtype=float)[~np.isnan(np.asarray(values, dtype=float))])
+    if v.size == 0:
+        return [float("nan")] * len(qs)
+    out = []
+    for q in qs:
+        h = (v.size - 1) * q
+        lo, hi = int(math.floor(h)), int(math.ceil(h))
+        if lo == hi or v[lo] == v[hi]:
+            out.append(float(v[lo]))
+        elif math.isinf(v[hi]):
+            out.append(float("inf"))
+        else:
+            out.append(float(v[lo] + (h - lo) * (v[hi] - v[lo])))
+    return out
+
+
+@dataclass(frozen=True)
+class SimulationResult:
+    """Every simulated campaign of one call to :func:`simulate`, and their summaries.
+
+    Attributes
+    ----------
+    problem : Problem
+    protocol : Protocol
+        The combined protocol (problem's world, settings' planner).
+    strategies : tuple of str
+    same_as : dict of str to str
+        Strategy -> the strategy whose campaigns it shares (equal protocols).
+    histories : dict of str to list of CampaignHistory
+        One per seed, for every strategy.
+    n_start, budget, seeds, base_seed : int
+    noise_scale : float
+    noise : dict
+    workers : int
+    """
+
+    problem: Problem
+    protocol: Protocol
+    strategies: tuple[str, ...]
+    same_as: dict
+    histories: dict
+    n_start: int
+    budget: int
+    seeds: int
+    base_seed: int
+    noise_scale: float
+    noise: dict
+    workers: int
+
+    # -------------------------------------------------------- trajectories
+    def trajectories(self, strategy: str) -> dict[str, np.ndarray]:
+        """Per seed and planned-run count k = 0..budget.
+
+        Returns
+        -------
+        dict with arrays of shape (seeds, budget + 1):
+            ``best`` (NaN before a safe run), ``gap`` (inf before a safe run),
+            ``broken`` (share of planned runs so far that broke a limit; NaN
+            at k = 0), ``made`` (planned runs actually made by k, fewer than
+            k when a campaign stopped early), ``gap_true`` (the gap of the
+            *true* objective at the run the lab would pick, the best measured
+            among runs measured within every limit; equal to ``gap`` without
+            noise; inf before a safe run).
+        """
+        sign = -1.0 if self.protocol.maximize else 1.0
+        obj = self.protocol.objective.name
+        B, S = self.budget, self.seeds
+        best = np.full((S, B + 1), np.nan)
+        chosen_true = np.full((S, B + 1), np.nan)
+        broken = np.full((S, B + 1), np.nan)
+        made = np.zeros((S, B + 1), dtype=int)
+        for s, h in enumerate(self.histories[strategy]):
+            n_start = int((~h.planned).sum())
+            n_planned = int(h.planned.sum())
+            chosen = best_safe_runs(self.protocol, h.Y) if obj in h.Y and obj in h.T else None
+            for k in range(B + 1):
+                m = min(k, n_planned)
+                made[s, k] = m
+                last = n_start + m - 1
+                best[s, k] = h.best_safe[last] if last >= 0 else np.nan
+                if chosen is not None and last >= 0 and chosen[last] >= 0:
+                    chosen_true[s, k] = h.T[obj][chosen[last]]
+                if m:
+                    broken[s, k] = float(np.mean(h.broke_limit[n_start:n_start + m]))
+        gap = np.where(np.isnan(best), np.inf, sign * (best - self.problem.optimum) + 0.0)  # no -0
+        gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - self.problem.optimum) + 0.0)
+        return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true}
+
+    def checkpoints(self) -> list[int]:
+        """Planned-run counts shown in the table: 0, about a quarter, half, three quarters, all."""
+        B = self.budget
+        return sorted({0, *(int(round(B * f)) for f in (0.25, 0.5, 0.75)), B})
+
+    # ------------------------------------------------------------ summaries
+    def summary_rows(self, counts=None) -> list[dict]:
+        """One row per strategy and planned-run count (every count by default)."""
+        counts = range(self.budget + 1) if counts is None else counts
+        rows = []
+        for st in self.strategies:
+            tr = self.trajectories(st)
+            for k in counts:
+                b, g, r = _quantiles(tr["best"][:, k]), _quantiles(tr["gap"][:, k]), _quantiles(tr["broken"][:, k])
+                gt = _quantiles(tr["gap_true"][:, k])
+                made = int(tr["made"][:, k].sum())
+                pooled = (float(np.nansum(tr["broken"][:, k] * tr["made"][:, k]) / made)
+                          if made else float("nan"))
+                rows.append({
+                    "strategy": st,
+                    "planned_runs": int(k),
+                    "seeds": self.seeds,
+                    "best_q25": b[0], "best_median": b[1], "best_q75": b[2],
+                    "gap_q25": g[0], "gap_median": g[1], "gap_q75": g[2],
+                    "broken_q25": r[0], "broken_median": r[1], "broken_q75": r[2],
+                    "gap_true_q25": gt[0], "gap_true_median": gt[1], "gap_true_q75": gt[2],
+                    "broken_pooled": pooled,
+                    "runs_made": made,
+                    "no_safe_run": int(np.sum(np.isnan(tr["best"][:, k]))),
+                })
+        return rows
+
+    def final_rows(self) -> list[dict]:
+        """One row per strategy at the full budget, with stalls and calibration."""
+        rows = []
+        for row, st in zip(self.summary_rows([self.budget]), self.strategies):
+            cal = self.calibration(st)
+            row = dict(row)
+            row["same_as"] = self.same_as.get(st, "")
+            row["stalled"] = int(sum(h.stalled for h in self.histories[st]))
+            row.update(cal)
+            rows.append(row)
+        return rows
+
+    def calibration(self, strategy: str) -> dict:
+        """Mean promised joint figure vs observed share meeting every limit (planned runs, all seeds)."""
+        promised, met = [], []
+        for h in self.histories[strategy]:
+            promised.append(h.promised[h.planned])
+            met.append(~h.broke_limit[h.planned])
+        p = np.concatenate(promised) if promised else np.zeros(0)
+        m = np.concatenate(met) if met else np.zeros(0, bool)
+        has = np.isfinite(p)
+        return {
+            "promised_joint_mean": float(np.mean(p[has])) if np.any(has) else float("nan"),
+            "observed_met_share": float(np.mean(m[has])) if np.any(has) else float("nan"),
+            "n_promised": int(np.sum(has)),
+        }
+
+    # -------------------------------------------------------------- output
+    CSV_COLUMNS = ("strategy", "planned_runs", "seeds", "best_q25", "best_median", "best_q75",
+                   "gap_q25", "gap_median", "gap_q75", "gap_true_q25", "gap_true_median", "gap_true_q75",
+                   "broken_q25", "broken_median", "broken_q75", "broken_pooled", "runs_made", "no_safe_run")
+
+    def description(self) -> list[str]:
+        """Lines saying what was simulated (for comments and the terminal)."""
+        p = self.protocol
+        noise = "off" if self.noise_scale == 0 else (
+            f"scale {self.noise_scale:g} of the problem's noise"
+            + (f", sd {self.noise}" if self.noise else "")
+            + (f"; {', '.join(self.problem.cohort)} measured out of a cohort of "
+               f"{', '.join(str(v) for v in self.problem.cohort.values())}" if self.problem.cohort else ""))
+        return [
+            f"problem {self.problem.name}: {self.problem.source}",
+            f"known optimum {self.problem.optimum:.10g} ({p.objective.direction}) "
+            f"at {tuple(round(float(v), 6) for v in self.problem.optimum_x)}",
+            f"{self.seeds} seeds (base seed {self.base_seed}); {self.n_start} starting runs + "
+            f"{self.budget} planned runs; measurement noise {noise}",
+            f"settings: threshold {p.screen.threshold:g} ({p.screen.joint}), rule {p.ranking.rule} "
+            f"(kappa {p.ranking.kappa:g}, xi {p.ranking.xi:g}), batch {p.batch.size}, "
+            f"pool {p.batch.pool}, refine {p.batch.refine}, restarts {p.model.restarts}; "
+            "limits: " + "; ".join(f"{lim.describe()} with probability >= {lim.probability:g}"
+                                   for lim in p.limits),
+        ]
+
+    def cautions(self) -> tuple[str, ...]:
+        from guardband.safety.cautions import cautions_for
+
+        return (SIMULATION_CAUTION,) + cautions_for(self.protocol.study.kind)
+
+    def csv_text(self) -> str:
+        """Every strategy at every planned-run count, as CSV with comment lines."""
+        rows = self.summary_rows()
+        return write_csv_text([[r[c] for c in self.CSV_COLUMNS] for r in rows], list(self.CSV_COLUMNS),
+                              comment_lines=self.description() + [f"CAUTION: {c}" for c in self.cautions()],
+                              float_format=".6g")
+
+    def table_text(self) -> str:
+        """Readable tables: the state at the full budget, the gap over run counts, calibration."""
+        def band(q25, med, q75):
+            return f"{_fmt(med)} [{_fmt(q25)}, {_fmt(q75)}]"
+
+        final = self.final_rows()
+        head1 = ["strategy", "best safe (median [IQR])", "gap to optimum", "broke a limit (pooled)",
+                 "per seed (median [IQR])", "no safe run", "stalled"]
+        rows1 = [[_label(r), band(r["best_q25"], r["best_median"], r["best_q75"]),
+                  band(r["gap_q25"], r["gap_median"], r["gap_q75"]),
+                  _pct(r["broken_pooled"]),
+                  f"{_pct(r['broken_median'])} [{_pct(r['broken_q25'])}, {_pct(r['broken_q75'])}]",
+                  r["no_safe_run"], r["stalled"]] for r in final]
+        if self.noise_scale > 0:
+            # with noise the best measured value is flattered by luck; the true
+            # value at the run the lab would pick is the fair gap
+            head1.insert(3, "true gap at the chosen run")
+            for row, r in zip(rows1, final):
+                row.insert(3, band(r["gap_true_q25"], r["gap_true_median"], r["gap_true_q75"]))
+        counts = self.checkpoints()
+        by = {(r["strategy"], r["planned_runs"]): r for r in self.summary_rows(counts)}
+        head2 = ["median gap after k planned runs"] + [f"k={k}" for k in counts]
+        rows2 = [[st] + [_fmt(by[(st, k)]["gap_median"]) for k in counts] for st in self.strategies]
+        head3 = ["strategy", "mean promised joint", "observed share meeting every limit", "runs"]
+        rows3 = [[_label(r), _fmt(r["promised_joint_mean"]), _fmt(r["observed_met_share"]), r["n_promised"]]
+                 for r in final if r["n_promised"]]
+        parts = ["\n".join(self.description()), "",
+                 f"after {self.budget} planned runs:", render_table(head1, rows1, max_width=60), "",
+                 render_table(head2, rows2)]
+        if rows3:
+            parts += ["", "calibration of the screen (planned runs, all seeds):", render_table(head3, rows3)]
+        return "\n".join(parts)
+
+    def to_dict(self) -> dict:
+        """JSON-able summary: description, final rows, every row, calibration, cautions."""
+        return {
+            "problem": self.problem.name,
+            "source": self.problem.source,
+            "optimum": self.problem.optimum,
+            "optimum_x": list(self.problem.optimum_x),
+            "maximize": self.protocol.maximize,
+            "n_start": self.n_start,
+            "budget": self.budget,
+            "seeds": self.seeds,
+            "base_seed": self.base_seed,
+            "noise_scale": self.noise_scale,
+            "noise": dict(self.noise),
+            "protocol_fingerprint": self.protocol.fingerprint,
+            "description": self.description(),
+            "final": [_finite(r) for r in self.final_rows()],
+            "rows": [_finite(r) for r in self.summary_rows()],
+            "cautions": list(self.cautions()),
+        }
+
+
+
+def _finite(row: dict) -> dict:
+    return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in row.items()}
+
+
+def _fmt(v) -> str:
+    if v is None or (isinstance(v, float) and math.isnan(v)):
+        return "-"
+    if isinstance(v, float) and math.isinf(v):
+        return "inf" if v > 0 else "-inf"
+    return f"{v:.4g}"
+
+
+def _pct(v) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "-"
+    return f"{100 * v:.1f}%"
+
+
+def _label(row: dict) -> str:
+    return row["strategy"] + (f" (= {row['same_as']})" if row.get("same_as") else "")
+

@@ -180,7 +180,7 @@ def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose):
 def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
     # Bachoc (2013): the cross-validation variance estimate makes the mean square of the
     # standardised leave-one-out errors exactly 1; the posterior mean does not change
-    from guardband.planner.models.gp import Hyperparameters, fit_gp
+    from guardband.planner.models import Hyperparameters, fit_gp
     from guardband.planner.step.plan import _widen_from_loo
 
     rng = np.random.default_rng(2)

@@ -27,7 +27,6 @@ import itertools
 import math
 import types
 import warnings
-from contextlib import nullcontext
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any, Mapping
@@ -36,12 +35,8 @@ import cvxpy as cp
 import numpy as np
 from scipy.linalg import null_space
 
-try:  # installed with scikit-learn; small matrix products are faster on one thread
-    from threadpoolctl import threadpool_limits
-except ImportError:  # pragma: no cover
-    threadpool_limits = None
-
 from guardband.planner.errors import ProtocolError
+from guardband.planner.models import blas_limit
 from guardband.planner.settings import (
     FEASIBILITY_TOL,
     FIXED_RANGE_TOL,
@@ -1074,8 +1069,7 @@ class DesignSpace:
             S = np.zeros((n, 0))
         else:
             chains = min(n, DEFAULT_N_CHAINS) if n_chains is None else max(1, min(int(n_chains), n))
-            limit = threadpool_limits(1, user_api="blas") if threadpool_limits else nullcontext()
-            with limit:
+            with blas_limit():  # small matrix products are faster on one thread
                 S = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
         X = self._finish(sl, sl.to_x(S), discrete)
         ok = self.contains(X)

@@ -45,9 +45,7 @@ from scipy.optimize import minimize
 from guardband.planner import __version__
 from guardband.planner.step.acquisition import all_values, log_expected_improvement, score as rule_score
 from guardband.planner.errors import ModelError, ProtocolError
-from guardband.planner.models.gp import Hyperparameters, fit_gp
-from guardband.planner.models.limitmodel import PessimisticLimitModel
-from guardband.planner.models.parallel import default_workers, map_jobs
+from guardband.planner.models import Hyperparameters, PessimisticLimitModel, default_workers, fit_gp, map_jobs
 from guardband.planner.inputs.protocol import Limit, Protocol
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.settings import FEASIBILITY_TOL, NEAR_MISS_COUNT

@@ -8,12 +8,13 @@ sd at every candidate.
 
 Ours runs in two configurations, both with BLAS held at one thread, the
 default choice of priors (at 300 runs in 8 factors: maximum likelihood, see
-``planner/gp.py``) and 1 + 4 starts with the early stop once two agree:
+``planner/models/hyperparameters.py``) and 1 + 4 starts with the early stop
+once two agree:
 
 * ``serial``: one model after another (prediction chunks on
   ``gp.PREDICT_WORKERS`` threads);
 * ``processes``: each model's fit and prediction as one job, on
-  ``FIT_WORKERS`` forked processes (``planner.parallel``, as the planner fits).
+  ``FIT_WORKERS`` forked processes (``planner.models.parallel``, as the planner fits).
 
 A third run forces the weak priors (MAP, the small-data setting) to show
 what they cost in log marginal likelihood at 300 runs.
@@ -75,9 +76,8 @@ from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
 from threadpoolctl import threadpool_limits  # noqa: E402
 
-from guardband.planner import gp  # noqa: E402
-from guardband.planner.models.gp import Hyperparameters, fit_gp  # noqa: E402
-from guardband.planner.models.parallel import map_jobs  # noqa: E402
+from guardband.planner.models import Hyperparameters, fit_gp, map_jobs  # noqa: E402
+from guardband.planner.models import blas, gp, hyperparameters  # noqa: E402  (their settings)
 from guardband.planner.step.fitting import FIT_WORKERS  # noqa: E402
 
 N_FACTORS = 8
@@ -156,7 +156,7 @@ def small_data_study(seed: int, repeats: int = 5) -> None:
                             )
                         )
             a, b = np.mean(stats[True], axis=0), np.mean(stats[False], axis=0)
-            default = "MAP" if n < gp.ML_RUNS_PER_HYPERPARAMETER * (d + 2) else "ML"
+            default = "MAP" if n < hyperparameters.ML_RUNS_PER_HYPERPARAMETER * (d + 2) else "ML"
             print(
                 f"{n:>5}  {a[0]:>9.3f}{b[0]:>9.3f}  {a[1]:>14.3f}{b[1]:>6.3f}  {a[2]:>9.2f}{b[2]:>7.2f}  {default}"
             )
@@ -272,7 +272,7 @@ def main(argv=None) -> int:
     print(
         f"python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
         f"scikit-learn {sklearn.__version__}, {os.cpu_count()} CPUs; ours: {FIT_WORKERS} fit processes, "
-        f"{gp.PREDICT_WORKERS} prediction threads, BLAS {gp.BLAS_THREADS} thread"
+        f"{gp.PREDICT_WORKERS} prediction threads, BLAS {blas.BLAS_THREADS} thread"
     )
 
     ours = {}

@@ -14,9 +14,9 @@ from scipy import linalg, optimize, stats
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
-from guardband.planner.models import gp
+from guardband.planner.models import blas, gp, hyperparameters, kernel
 from guardband.planner.errors import ModelError
-from guardband.planner.models.gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood, matern52
+from guardband.planner.models import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood, matern52
 
 # Tiny module-level data: 14 runs in 3 factors, one input duplicated (rows 0 and 13).
 _RNG = np.random.default_rng(12345)
@@ -34,7 +34,7 @@ def _rescaled(hp: Hyperparameters, scale_from: float, scale_to: float) -> Hyperp
 
 
 def _literal_matern52(A, B, ls, sf2):
-    """Matérn 5/2 written out pair by pair (independent of planner.gp.matern52)."""
+    """Matérn 5/2 written out pair by pair (independent of planner.models.kernel.matern52)."""
     K = np.empty((len(A), len(B)))
     for i, a in enumerate(A):
         for j, b in enumerate(B):
@@ -142,7 +142,7 @@ _THETAS += [np.concatenate([_RNG.uniform(-2.5, 1.5, 3), _RNG.uniform(-2, 2, 1), 
 @pytest.mark.parametrize("cached", [True, False], ids=["cached-pairs", "looped-pairs"])
 def test_gradient_matches_finite_differences(theta, include_prior, cached, monkeypatch):
     if not cached:
-        monkeypatch.setattr(gp, "PAIRWISE_CACHE_MAX", 0)
+        monkeypatch.setattr(kernel, "PAIRWISE_CACHE_MAX", 0)
     z = (Y - Y.mean()) / Y.std()
 
     def f(t):
@@ -159,7 +159,7 @@ def test_inverse_from_cholesky_equals_cho_solve_with_identity():
     K = matern52(X[:13], X[:13], HP.length_scales, HP.signal_variance) + 0.05 * np.eye(13)
     L = np.linalg.cholesky(K)
     ref = linalg.cho_solve((L, True), np.eye(13))
-    np.testing.assert_allclose(gp._inverse_from_cholesky(L), ref, rtol=1e-10, atol=1e-12 * np.abs(ref).max())
+    np.testing.assert_allclose(kernel.inverse_from_cholesky(L), ref, rtol=1e-10, atol=1e-12 * np.abs(ref).max())
 
 
 # ---------------------------------------------------------------------------
@@ -251,23 +251,23 @@ def test_predict_refuses_bad_points_and_huge_joint_covariance(monkeypatch):
 
 def test_negative_variance_is_clipped_with_a_warning_beyond_roundoff():
     with pytest.warns(RuntimeWarning, match="were set to zero"):
-        out = gp._clip_variance(np.array([0.5, -1e-3]), 1.0)
+        out = kernel.clip_variance(np.array([0.5, -1e-3]), 1.0)
     np.testing.assert_array_equal(out, [0.5, 0.0])
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        out = gp._clip_variance(np.array([0.5, -1e-14]), 1.0)  # round-off: silent
+        out = kernel.clip_variance(np.array([0.5, -1e-14]), 1.0)  # round-off: silent
     np.testing.assert_array_equal(out, [0.5, 0.0])
 
 
 def test_cholesky_jitter_escalates_then_fails():
     Q = np.linalg.qr(np.array([[1.0, 2.0], [3.0, 4.0]]))[0]
     slightly_indefinite = Q @ np.diag([1.0, -1e-7]) @ Q.T
-    L, jitter = gp._cholesky(slightly_indefinite)
+    L, jitter = kernel.cholesky_with_jitter(slightly_indefinite)
     mean_diag = np.mean(np.diag(slightly_indefinite))
     assert 1e-7 < jitter <= 1e-4 * mean_diag * (1 + 1e-12)
     np.testing.assert_allclose(np.tril(L) @ np.tril(L).T, slightly_indefinite + jitter * np.eye(2), rtol=1e-12, atol=1e-15)
-    with pytest.raises(gp._NotPositiveDefinite):
-        gp._cholesky(Q @ np.diag([1.0, -0.5]) @ Q.T)
+    with pytest.raises(kernel.NotPositiveDefinite):
+        kernel.cholesky_with_jitter(Q @ np.diag([1.0, -0.5]) @ Q.T)
 
 
 # ---------------------------------------------------------------------------
@@ -456,7 +456,7 @@ def test_maximum_likelihood_search_reaches_sklearn_optimum():
 
 def test_blas_thread_setting_does_not_change_results(monkeypatch):
     model = fit_gp(X, Y, rng=0)
-    monkeypatch.setattr(gp, "BLAS_THREADS", None)
+    monkeypatch.setattr(blas, "BLAS_THREADS", None)
     free = fit_gp(X, Y, rng=0)
     np.testing.assert_allclose(free.hyperparameters.theta, model.hyperparameters.theta, rtol=1e-6, atol=1e-6)
     for a, b in zip(free.predict(XS), model.predict(XS)):
@@ -482,14 +482,14 @@ def test_fits_in_several_threads_restore_the_blas_setting_and_match_sequential()
     for a, b in zip(threaded, sequential):
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
     assert _blas_threads() == before
-    with gp._blas_limit(), gp._blas_limit():  # nested use restores too
-        if gp.BLAS_THREADS is not None:
-            assert all(n == gp.BLAS_THREADS for _, n in _blas_threads())
+    with blas.blas_limit(), blas.blas_limit():  # nested use restores too
+        if blas.BLAS_THREADS is not None:
+            assert all(n == blas.BLAS_THREADS for _, n in _blas_threads())
     assert _blas_threads() == before
 
 
 def test_default_uses_priors_below_twelve_runs_per_hyperparameter_and_ml_above():
-    # the rule of planner.gp (measured by benchmarks/models.py --small-data): 3 factors,
+    # the rule of planner.models.hyperparameters (measured by benchmarks/models.py --small-data): 3 factors,
     # 5 hyperparameters, so MAP below 60 runs and maximum likelihood from 60
     rng = np.random.default_rng(5)
     for n, expected in ((59, "MAP search"), (60, "maximum-likelihood search")):
@@ -511,21 +511,21 @@ def test_ml_restarts_stop_once_two_starts_agree_and_keep_the_best(monkeypatch):
     Xn = rng.random((80, 2))
     yn = np.sin(4 * Xn[:, 0]) + Xn[:, 1] + 0.01 * rng.standard_normal(80)
     seen = []
-    search = gp._search
+    search = hyperparameters._search
 
     def recording(*args, **kwargs):
         results = search(*args, **kwargs)
         seen.append(([r.fun for r in results], kwargs["stop_when_agreed"]))
         return results
 
-    monkeypatch.setattr(gp, "_search", recording)
+    monkeypatch.setattr(hyperparameters, "_search", recording)
     model = fit_gp(Xn, yn, rng=0, n_restarts=4)  # 80 runs >= 12 * 4: maximum likelihood
     values, stopped_early = seen[-1]
     assert stopped_early is True
     assert len(values) < 5 and "(two agreed)" in model.message
     # the two best agree within the tolerance, and the model holds the best
     best = sorted(values)
-    assert best[1] - best[0] <= gp.AGREEMENT_NATS + 1e-6 * abs(best[0])
+    assert best[1] - best[0] <= hyperparameters.AGREEMENT_NATS + 1e-6 * abs(best[0])
     full = fit_gp(Xn, yn, rng=0, n_restarts=4, use_priors=True)  # MAP: every start runs
     assert len(seen[-1][0]) == 5 and "(two agreed)" not in full.message
     assert -model.log_marginal_likelihood_standardised == pytest.approx(best[0], abs=1e-6)
@@ -536,12 +536,12 @@ def test_agreement_rule():
         def __init__(self, fun):
             self.fun = fun
 
-    assert not gp._agreed([R(10.0)])
-    assert gp._agreed([R(10.0), R(10.0 + gp.AGREEMENT_NATS / 2)])
-    assert not gp._agreed([R(10.0), R(11.0)])
+    assert not hyperparameters._agreed([R(10.0)])
+    assert hyperparameters._agreed([R(10.0), R(10.0 + hyperparameters.AGREEMENT_NATS / 2)])
+    assert not hyperparameters._agreed([R(10.0), R(11.0)])
     # two agreeing values that are not the best do not count
-    assert not gp._agreed([R(10.0), R(12.0), R(12.0)])
-    assert not gp._agreed([R(math.inf), R(math.inf)])
+    assert not hyperparameters._agreed([R(10.0), R(12.0), R(12.0)])
+    assert not hyperparameters._agreed([R(math.inf), R(math.inf)])
 
 
 @pytest.mark.parametrize("workers", [1, 2])
@@ -574,7 +574,7 @@ def test_known_measurement_sd_fixes_the_noise_variance():
     assert "known measurement sd 0.3" in model.message
     # zero means the floor, never a singular model
     exact = fit_gp(X, Y, rng=0, noise_sd=0.0)
-    assert exact.hyperparameters.noise_variance == pytest.approx(gp.NOISE_FLOOR, rel=1e-12)
+    assert exact.hyperparameters.noise_variance == pytest.approx(hyperparameters.NOISE_FLOOR, rel=1e-12)
     with pytest.raises(ModelError, match="noise_sd"):
         fit_gp(X, Y, noise_sd=float("nan"))
 
@@ -583,11 +583,11 @@ def test_subset_search_reaches_the_full_search_optimum(monkeypatch):
     # many runs: the starts run on a third of the runs, the best is refined on all;
     # the optimum must match a search on all runs (and scikit-learn's, in benchmarks/models.py)
     rng = np.random.default_rng(9)
-    Xn = rng.random((gp.SUBSET_FROM_RUNS + 10, 3))
+    Xn = rng.random((hyperparameters.SUBSET_FROM_RUNS + 10, 3))
     yn = _smooth(Xn) + 0.05 * rng.standard_normal(Xn.shape[0])
     fast = fit_gp(Xn, yn, rng=0)
     assert "on a random 150 of the 260 runs" in fast.message
-    monkeypatch.setattr(gp, "SUBSET_FROM_RUNS", 10**9)
+    monkeypatch.setattr(hyperparameters, "SUBSET_FROM_RUNS", 10**9)
     full = fit_gp(Xn, yn, rng=0)
     assert "on a random" not in full.message
     assert fast.log_marginal_likelihood >= full.log_marginal_likelihood - 1e-3 * abs(full.log_marginal_likelihood)

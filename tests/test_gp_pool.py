@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from guardband.planner.models.gp import fit_gp
+from guardband.planner.models import fit_gp
 
 
 @pytest.mark.parametrize("prior_mean", [None, 1.5], ids=["data-mean", "at-limit"])

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from guardband.planner.models.gp import fit_gp, log_marginal_likelihood
-from guardband.planner.models.limitmodel import F_MIN, PLAUSIBLE_NATS, PessimisticLimitModel, shortest_plausible_factor
+from guardband.planner.models import PessimisticLimitModel, fit_gp, log_marginal_likelihood
+from guardband.planner.models.limitmodel import F_MIN, PLAUSIBLE_NATS, shortest_plausible_factor
 from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.step import plan_step
 from guardband.safety.screen import limit_probability

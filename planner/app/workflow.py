@@ -19,7 +19,6 @@ write identical files.
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import secrets
 from dataclasses import dataclass, field
@@ -32,6 +31,7 @@ from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, 
 from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
+from guardband.planner.models import blas_limit
 from guardband.planner.step import PlanResult, plan_step
 from guardband.planner.app.history import campaign_calibration
 from guardband.safety.calibration import EarnedCalibration
@@ -314,26 +314,11 @@ def run_plan(
         ledger.verify_or_raise(log_path)
     warm = _warm_start_from_log(log_path, protocol.fingerprint)
     calibration = campaign_calibration(log_path, protocol, runs)
-    with _one_blas_thread():
+    with blas_limit():
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                        seed, seed_drawn, count, pool_size, protocol_path, runs_path,
                        read_options=read_options, calibration=calibration)
-
-
-def _one_blas_thread():
-    """Hold BLAS at one thread for a planning step.
-
-    A plan must be the same bits on any machine; a BLAS routine run on a
-    different number of threads sums in a different order (measured: the
-    refined candidates of a plan differed in the 7th digit between one and
-    two threads), so every planning step, and its replay, runs on one.
-    """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
 
 
 def _read_input(path: Path, error, what: str) -> bytes:
@@ -466,7 +451,7 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
     protocol = load_protocol(copies["protocol_file"])
     runs: RunsTable = read_runs(copies["runs_file"], protocol,
                                 **(body["runs_file"].get("read_options") or {}))
-    with _one_blas_thread():
+    with blas_limit():
         result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
                            warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
     return result, rec

@@ -1,1 +1,32 @@
-"""Models: exact GP regression, its hyperparameter search, limit-model guards, worker processes."""
+"""Models: exact GP regression, its hyperparameter search, limit-model guards, worker processes.
+
+The modules, one idea each: :mod:`.gp` (the fitted model and
+:func:`fit_gp`), :mod:`.hyperparameters` (their type, priors and search),
+:mod:`.kernel` (Matérn 5/2 and the linear algebra), :mod:`.checks` (input
+arrays), :mod:`.limitmodel` (the short-length-scale guard), :mod:`.parallel`
+(jobs on worker processes) and :mod:`.blas` (BLAS held to one thread).
+Other packages import the names below from here.
+"""
+
+from guardband.planner.models.blas import blas_limit, hold_blas_limit, limited_blas
+from guardband.planner.models.gp import GaussianProcess, LeaveOneOut, PosteriorAt, fit_gp
+from guardband.planner.models.hyperparameters import Hyperparameters, log_marginal_likelihood
+from guardband.planner.models.kernel import matern52
+from guardband.planner.models.limitmodel import PessimisticLimitModel
+from guardband.planner.models.parallel import default_workers, map_jobs
+
+__all__ = [
+    "fit_gp",
+    "GaussianProcess",
+    "Hyperparameters",
+    "LeaveOneOut",
+    "PosteriorAt",
+    "log_marginal_likelihood",
+    "matern52",
+    "PessimisticLimitModel",
+    "map_jobs",
+    "default_workers",
+    "blas_limit",
+    "limited_blas",
+    "hold_blas_limit",
+]

@@ -20,7 +20,7 @@ whichever of the two models gives the lower probability of meeting the
 limit, so a candidate passes only if it would pass under both.
 
 :class:`PessimisticLimitModel` has the interface of
-:class:`planner.gp.GaussianProcess` that the planner and the report use;
+:class:`planner.models.gp.GaussianProcess` that the planner and the report use;
 everything but prediction comes from the fitted model.
 """
 
@@ -34,7 +34,8 @@ from scipy import stats
 from guardband.safety.screen import limit_probability
 
 from guardband.planner.errors import ModelError
-from guardband.planner.models.gp import GaussianProcess, Hyperparameters, fit_gp, log_marginal_likelihood
+from guardband.planner.models.gp import GaussianProcess, fit_gp
+from guardband.planner.models.hyperparameters import Hyperparameters, log_marginal_likelihood
 
 __all__ = ["PessimisticLimitModel", "shortest_plausible_factor", "PLAUSIBLE_NATS", "F_MIN"]
 
@@ -138,7 +139,7 @@ class PessimisticLimitModel:
 
 
 class _PessimisticPosterior:
-    """Both models' :class:`planner.gp.PosteriorAt`, conditioned together."""
+    """Both models' :class:`planner.models.gp.PosteriorAt`, conditioned together."""
 
     def __init__(self, pair: PessimisticLimitModel, a, b):
         self._pair, self._a, self._b = pair, a, b

@@ -19,7 +19,6 @@ same numbers.
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import multiprocessing
 from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -29,18 +28,13 @@ from pathlib import Path
 import numpy as np
 
 from guardband.planner.inputs.protocol import Protocol, load_protocol, parse_protocol
-from guardband.planner.models.parallel import default_workers
+from guardband.planner.models import blas_limit, default_workers, hold_blas_limit
 from guardband.planner.simulation.loop import CampaignHistory, run_campaign, start_runs
 from guardband.planner.simulation.peers import CLASSICAL_POOL, run_classical, run_random
 from guardband.planner.simulation.problems import Problem, get_problem
 from guardband.planner.simulation.results import SimulationResult
 from guardband.planner.simulation.strategies import (STRATEGIES, check_strategy, combine_settings,
                                                      strategy_protocol)
-
-try:  # installed with scikit-learn
-    from threadpoolctl import threadpool_limits
-except ImportError:  # pragma: no cover
-    threadpool_limits = None
 
 __all__ = ["simulate"]
 
@@ -86,25 +80,13 @@ def _run_task(task: _Task) -> CampaignHistory:
                         seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size)
 
 
-def _one_thread():
-    """One BLAS thread inside the block (as in the worker processes)."""
-    if threadpool_limits is None:  # pragma: no cover
-        return contextlib.nullcontext()
-    return threadpool_limits(1)
-
-
 def _run_one_thread(task: _Task) -> CampaignHistory:
-    with _one_thread():
+    with blas_limit():
         return _run_task(task)
 
 
-_WORKER_LIMIT = None
-
-
 def _worker_init() -> None:
-    global _WORKER_LIMIT
-    if threadpool_limits is not None:
-        _WORKER_LIMIT = threadpool_limits(1)
+    hold_blas_limit()
     # the campaigns already run side by side: each plans in one process, one thread
     from guardband.planner.models import gp
     from guardband.planner.step import fitting as step
@@ -210,7 +192,7 @@ def simulate(
         unique.setdefault(owner, data)
     starts = {}
     if any(owner != "classical" for owner in unique):
-        with _one_thread():
+        with blas_limit():
             # one starting design per seed, shared by every strategy but classical
             starts = {s: start_runs(protocol, n_start, rng=_seeds(int(seed), s)[0]) for s in range(seeds)}
     tasks = [_Task(owner, s, problem, data, base, n_start, budget, int(seed), float(noise_scale),

@@ -8,17 +8,12 @@ a feasible level combination and then walks in that combination's slice.
 
 from __future__ import annotations
 
-from contextlib import nullcontext
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-try:  # installed with scikit-learn; small matrix products are faster on one thread
-    from threadpoolctl import threadpool_limits
-except ImportError:  # pragma: no cover
-    threadpool_limits = None
-
 from guardband.planner.errors import ProtocolError
+from guardband.planner.models.blas import blas_limit
 from guardband.planner.settings import FEASIBILITY_TOL, HIT_AND_RUN_BURN_IN, HIT_AND_RUN_THIN
 from guardband.planner.space.slices import Slice, finish
 
@@ -107,8 +102,7 @@ def _walk(space: DesignSpace, sl: Slice, n: int, rng, burn_in: int, thin: int,
         S = np.zeros((n, 0))
     else:
         chains = min(n, DEFAULT_N_CHAINS) if n_chains is None else max(1, min(int(n_chains), n))
-        limit = threadpool_limits(1, user_api="blas") if threadpool_limits else nullcontext()
-        with limit:
+        with blas_limit():  # small matrix products are faster on one thread
             S = _hit_and_run(sl.G, sl.h, n, chains, burn_in, thin, rng)
     X = finish(space, sl, sl.to_x(S), discrete)
     ok = space.contains(X)

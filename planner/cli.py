@@ -234,7 +234,7 @@ def plan(
         _err(f"warning: {f}")
     _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
     if report:
-        from guardband.planner.report.build import report_plan
+        from guardband.planner.report import report_plan
 
         _err(f"wrote {report_plan(outcome).html}")
     if not result.proposals:
@@ -327,7 +327,7 @@ def report(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Write a self-contained HTML report (and PNG figures) for every planning step in a folder."""
-    from guardband.planner.report.build import report_folder
+    from guardband.planner.report import report_folder
 
     written = report_folder(folder, map_factors=_map_pair(map))
     if format is Format.json:

@@ -14,7 +14,7 @@ import pytest
 
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.inputs.runs import read_runs
-from guardband.planner.report.build import _Geometry
+from guardband.planner.report.data import _Geometry
 from guardband.planner.simulation.loop import best_so_far, runs_table_from_arrays
 from guardband.planner.simulation.problems import PROBLEMS, get_problem
 from guardband.planner.step import plan_step, safe_runs_mask

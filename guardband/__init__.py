@@ -31,7 +31,7 @@ _PUBLIC = {
     "run_plan": "guardband.planner.app.workflow",
     "replay_record": "guardband.planner.app.workflow",
     "summarize_log": "guardband.planner.app.review",
-    "report_folder": "guardband.planner.report.build",
+    "report_folder": "guardband.planner.report",
     "simulate": "guardband.planner.simulation.runner",
     "verify_log": ("guardband.safety.ledger", "verify"),
     "GuardbandError": "guardband.planner.errors",

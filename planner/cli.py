@@ -238,7 +238,7 @@ def plan(
         _err("warning: " + outcome.calibration.sentence())
     _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
     if report:
-        from guardband.planner.report.build import report_plan
+        from guardband.planner.report import report_plan
 
         _err(f"wrote {report_plan(outcome).html}")
     if not result.proposals:
@@ -331,7 +331,7 @@ def report(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Write a self-contained HTML report (and PNG figures) for every planning step in a folder."""
-    from guardband.planner.report.build import report_folder
+    from guardband.planner.report import report_folder
 
     written = report_folder(folder, map_factors=_map_pair(map))
     if format is Format.json:

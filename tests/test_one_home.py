@@ -14,7 +14,7 @@ import pytest
 
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.inputs.runs import read_runs
-from guardband.planner.report.build import _Geometry
+from guardband.planner.report.data import _Geometry
 from guardband.planner.simulation import PROBLEMS, best_so_far, get_problem, runs_table_from_arrays
 from guardband.planner.step import plan_step, safe_runs_mask
 from guardband.safety.limits import LimitRule, limit_rules, meets_limits, met_every_limit

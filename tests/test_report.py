@@ -17,7 +17,7 @@ from PIL import Image
 from typer.testing import CliRunner
 
 from guardband.planner.cli import app
-from guardband.planner.report.build import map_data, model_warnings, slice_data
+from guardband.planner.report import map_data, model_warnings, slice_data
 from guardband.planner.step import ModelSummary
 from guardband.planner.app.workflow import LOG_NAME, rerun_record
 from guardband.safety import ledger

@@ -32,3 +32,33 @@ Z95 = 1.959963984540054
 #: looking overconfident (the plan's messages and the report's model checks).
 COVERAGE_WARNING = 0.80
 COVERAGE_MIN_RUNS = 8
+
+# --------------------------------------------- generated problem family
+#: Problems in the generated family by default (planner.simulation.family).
+FAMILY_SIZE = 112
+#: Starting runs and planned runs suggested for a generated problem.
+FAMILY_N_START = 10
+FAMILY_BUDGET = 24
+#: Share of the design space that meets every limit: a generated problem
+#: outside this range is drawn again.
+FAMILY_FEASIBLE_SHARE = (0.10, 0.80)
+#: Share of the starting region that meets every limit, at least; a campaign
+#: starting in the whole space needs this share of the whole space.
+FAMILY_START_SHARE = 0.30
+#: A starting box around a well-inside point must have this share feasible.
+FAMILY_START_BOX_SHARE = 0.70
+#: Starting designs (FAMILY_N_START runs) must hold at least this many runs
+#: meeting every limit, on average.
+FAMILY_START_MIN_FEASIBLE = 2
+#: Measurement noise sd as a share of each response's range (1% to 99%
+#: quantiles over the design space); 0 is noise-free.
+FAMILY_NOISE_SHARES = (0.0, 0.02, 0.05)
+#: The limits must cost the objective at least this share of its range
+#: (best sampled point against best sampled point meeting every limit).
+FAMILY_BIND_MIN = 0.02
+#: At the optimum some limit must be this close to its bound (share of the
+#: response's range), so that the best feasible region touches a limit.
+FAMILY_ACTIVE_TOL = 1e-3
+#: Dense sample of locate_optimum for a generated problem, and its polished starts.
+FAMILY_OPTIMUM_SAMPLES = 20_000
+FAMILY_OPTIMUM_POLISH = 2

@@ -109,6 +109,10 @@ class Problem:
         Suggested planned runs after the start.
     optimum_method : str
         How the optimum was found.
+    tags : dict
+        Labels for grouping results (a generated problem's shape class,
+        dimension, domain, noise level, ...; see
+        :mod:`planner.simulation.family`); empty for the built-in problems.
     """
 
     name: str
@@ -122,6 +126,7 @@ class Problem:
     n_start: int = 10
     budget: int = 30
     optimum_method: str = ""
+    tags: dict = field(default_factory=dict)
 
     @property
     def protocol(self) -> Protocol:

@@ -36,7 +36,7 @@ from guardband.planner.simulation.results import SimulationResult
 from guardband.planner.simulation.strategies import (STRATEGIES, check_strategy, combine_settings,
                                                      strategy_protocol)
 
-__all__ = ["simulate"]
+__all__ = ["simulate", "run_in_workers"]
 
 
 # ----------------------------------------------------------- the tasks
@@ -80,9 +80,45 @@ def _run_task(task: _Task) -> CampaignHistory:
                         seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size)
 
 
-def _run_one_thread(task: _Task) -> CampaignHistory:
-    with blas_limit():
-        return _run_task(task)
+def run_in_workers(fn, jobs, *, workers: int, progress=None) -> list:
+    """``[fn(job) for job in jobs]`` on worker processes, each with one BLAS thread.
+
+    Parameters
+    ----------
+    fn : callable
+        A module-level function (jobs and results are pickled).
+    jobs : iterable
+    workers : int
+        Worker processes; 1 runs the jobs in this process, also with one
+        BLAS thread, so both give the same numbers.
+    progress : callable, optional
+        ``progress(done, total)`` after each finished job.
+
+    Returns
+    -------
+    list
+        The results in the order of the jobs.
+    """
+    jobs = list(jobs)
+    out: list = [None] * len(jobs)
+    if workers == 1:
+        with blas_limit():
+            for i, job in enumerate(jobs):
+                out[i] = fn(job)
+                if progress is not None:
+                    progress(i + 1, len(jobs))
+        return out
+    # fork where the platform has it: no main-module guard needed in
+    # scripts, and workers start at once; spawn elsewhere
+    methods = multiprocessing.get_all_start_methods()
+    ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
+    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_worker_init) as pool:
+        futures = {pool.submit(fn, job): i for i, job in enumerate(jobs)}
+        for done, fut in enumerate(as_completed(futures), start=1):
+            out[futures[fut]] = fut.result()
+            if progress is not None:
+                progress(done, len(jobs))
+    return out
 
 
 def _worker_init() -> None:
@@ -198,24 +234,8 @@ def simulate(
     tasks = [_Task(owner, s, problem, data, base, n_start, budget, int(seed), float(noise_scale),
                    noise, pool_size, None if owner == "classical" else starts[s])
              for owner, data in unique.items() for s in range(seeds)]
-    done: dict = {}
-    total = len(tasks)
-    if workers == 1:
-        for t in tasks:
-            done[(t.key, t.seed_index)] = _run_one_thread(t)
-            if progress is not None:
-                progress(len(done), total)
-    else:
-        # fork where the platform has it: no main-module guard needed in
-        # scripts, and workers start at once; spawn elsewhere
-        methods = multiprocessing.get_all_start_methods()
-        ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_worker_init) as pool:
-            futures = {pool.submit(_run_task, t): (t.key, t.seed_index) for t in tasks}
-            for fut in as_completed(futures):
-                done[futures[fut]] = fut.result()
-                if progress is not None:
-                    progress(len(done), total)
+    results = run_in_workers(_run_task, tasks, workers=workers, progress=progress)
+    done = {(t.key, t.seed_index): r for t, r in zip(tasks, results)}
     histories = {st: [done[(runs_as[st][0], s)] for s in range(seeds)] for st in strategies}
     return SimulationResult(
         problem=problem, protocol=protocol, strategies=strategies, same_as=same_as,

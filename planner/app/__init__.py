@@ -1,1 +1,13 @@
-"""What each command does with files: check, start, plan, replay, review, demo."""
+"""What each command does with files.
+
+:mod:`.workflow` (check a protocol, make a starting design, plan and record
+a step, replay a record), :mod:`.history` (the calibration a campaign has
+earned), :mod:`.review` (the reviewer's summary of a log), :mod:`.demo`,
+:mod:`.simulate_options` (the simulate command's options), :mod:`.fileio`
+(atomic writes, CSV) and :mod:`.textable` (terminal tables).
+
+Nothing is imported here: the command line imports only what the command
+it runs needs, so that ``guardband --help`` starts quickly.
+"""
+
+__all__ = ["workflow", "history", "review", "demo", "simulate_options", "fileio", "textable"]

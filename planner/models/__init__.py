@@ -2,9 +2,11 @@
 
 The modules, one idea each: :mod:`.gp` (the fitted model and
 :func:`fit_gp`), :mod:`.hyperparameters` (their type, priors and search),
-:mod:`.kernel` (Matérn 5/2 and the linear algebra), :mod:`.checks` (input
-arrays), :mod:`.limitmodel` (the short-length-scale guard), :mod:`.parallel`
-(jobs on worker processes) and :mod:`.blas` (BLAS held to one thread).
+:mod:`.kernel` (Matérn 5/2 and the linear algebra), :mod:`.arrays` (input
+arrays), :mod:`.checks` (leave-one-out coverage and widening),
+:mod:`.limitmodel` (the short-length-scale guard), :mod:`.guards` (the
+single-run check and the local one-sided widening), :mod:`.parallel` (jobs
+on worker processes) and :mod:`.blas` (BLAS held to one thread).
 Other packages import the names below from here.
 """
 

@@ -9,6 +9,9 @@ from __future__ import annotations
 FEASIBILITY_TOL = 1e-9
 #: Tolerance on a mixture total when reading measured runs (absolute, fraction units).
 MIXTURE_SUM_TOL = 2e-3
+#: Relative tolerance (times max(1, |upper bound|)) when a measured run's
+#: factor value is compared with its bounds and discrete levels.
+FACTOR_VALUE_RTOL = 1e-9
 #: A factor whose real range is narrower than this is treated as fixed.
 FIXED_RANGE_TOL = 1e-9
 #: Initial Cholesky jitter, relative to the mean diagonal of the kernel matrix.

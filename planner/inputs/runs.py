@@ -48,7 +48,12 @@ import numpy as np
 
 from guardband.planner.errors import RunsDataError
 from guardband.planner.inputs.protocol import Protocol
-from guardband.planner.inputs.units import UnitError, conversion
+from guardband.planner.inputs.runchecks import (
+    check_unit,
+    factor_value_flags,
+    mixture_total_problems,
+    to_protocol_units,
+)
 
 __all__ = [
     "RunsTable",
@@ -152,9 +157,25 @@ class _Grid:
     sheet: str | None = None  # a workbook sheet: cells are named "Sheet1!C5"
     delimiter: str | None = None
 
+    def ref(self, i: int, j: int) -> str:
+        """Cell (row ``i``, column ``j``) as a workbook names it, " (Sheet1!C5)"; "" in a text file."""
+        return f" ({self.sheet}!{_column_letter(j)}{self.row_numbers[i]})" if self.sheet else ""
+
+    def where(self, i: int, rid: str = "") -> str:
+        """Row ``i`` as messages name it: "row 5", or "row 5 (run R1)" with a run id."""
+        return f"row {self.row_numbers[i]}" + (f" (run {rid})" if rid else "")
+
+    def at(self, i: int, j: int, column: str, rid: str = "") -> str:
+        """A cell as messages name it: "row 5 (run R1), column x (Sheet1!B5)"."""
+        return f"{self.where(i, rid)}, column {column}{self.ref(i, j)}"
+
 
 def _blank(value: object) -> bool:
     return value is None or (isinstance(value, str) and not value.strip())
+
+
+def _blank_row(row: list[object]) -> bool:
+    return all(_blank(c) for c in row)
 
 
 def _column_letter(j: int) -> str:
@@ -451,8 +472,8 @@ def _text_of(value: object) -> str:
     return str(value)
 
 
-def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]], stated: str | None,
-                where) -> tuple[str | None, str | None]:
+def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
+                stated: str | None) -> tuple[str | None, str | None]:
     """The decimal mark of the text cells, and a problem when the file mixes them."""
     if stated is not None:
         return stated, None
@@ -475,8 +496,8 @@ def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]], stated: str | 
     if first_dot and first_comma:
         (i1, n1, s1), (i2, n2, s2) = first_dot, first_comma
         return None, (
-            f"the file mixes decimal points ({where(i1)}, column {n1}: {s1!r}) and decimal commas "
-            f"({where(i2)}, column {n2}: {s2!r}); write every number the same way, or state the "
+            f"the file mixes decimal points ({grid.where(i1)}, column {n1}: {s1!r}) and decimal commas "
+            f"({grid.where(i2)}, column {n2}: {s2!r}); write every number the same way, or state the "
             "decimal mark (--decimal . or --decimal ,)"
         )
     return ("," if first_comma else "."), None
@@ -572,199 +593,206 @@ def _suggest(name: str, known: list[str]) -> str:
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
+@dataclass
+class _Columns:
+    """The header row as checked.
+
+    Attributes
+    ----------
+    at : dict of str to int
+        The 0-based column of each known name the header holds once.
+    convert : dict of str to Conversion or None
+        Columns whose stated unit is not the protocol's: the conversion, or
+        None where the unit cannot be converted.
+    """
+
+    at: dict[str, int] = field(default_factory=dict)
+    convert: dict[str, object] = field(default_factory=dict)
+
+
+@dataclass
+class _Values:
+    """The data rows as read, one entry per row (numbers in the header's units until converted)."""
+
+    run_ids: list[str]
+    notes: list[str]
+    wheres: list[str]  # each row as messages name it: "row 5 (run R1)"
+    X: np.ndarray
+    Y: dict[str, np.ndarray]
+
+
 def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
                 decimal: str | None) -> RunsTable:
+    """Check cells as read against the protocol: header, cells, units, bounds and totals.
+
+    Raises
+    ------
+    RunsDataError
+        Listing every problem found; nothing is computed.
+    """
+    grid = _trimmed(grid, source)
+    problems: list[str] = []
+    flags: list[str] = []
+    columns = _check_header(grid, protocol, problems, flags)
+    numeric_cols = [(n, columns.at[n]) for n in (*protocol.factor_names, *protocol.response_names)
+                    if n in columns.at]
+    decimal, mixed = _decimal_of(grid, numeric_cols, decimal)
+    if mixed:
+        problems.append(mixed)
+    values = _read_rows(grid, protocol, columns, decimal, problems)
+    to_protocol_units(protocol, values.X, values.Y, columns.convert)
+    flags += factor_value_flags(protocol, values.X, values.wheres, columns.convert)
+    problems += mixture_total_problems(protocol, values.X, values.wheres, columns.convert)
+    if problems:
+        raise RunsDataError(_join(source, problems))
+    return RunsTable(
+        run_ids=tuple(values.run_ids),
+        X=values.X,
+        Y=values.Y,
+        notes=tuple(values.notes),
+        flags=tuple(flags),
+        sha256=sha256,
+        source=source,
+        factor_names=protocol.factor_names,
+    )
+
+
+def _trimmed(grid: _Grid, source: str) -> _Grid:
+    """The grid without blank trailing rows (spreadsheets leave them); it must start with a header."""
     rows, numbers = list(grid.rows), list(grid.row_numbers)
-    # blank trailing rows (spreadsheets leave them) are dropped
-    while rows and all(_blank(c) for c in rows[-1]):
+    while rows and _blank_row(rows[-1]):
         rows.pop()
         numbers.pop()
     if not rows:
         raise RunsDataError(f"{source}: the file is empty; it needs a header row")
-    header_number = numbers[0]
-    if all(_blank(c) for c in rows[0]):
+    if _blank_row(rows[0]):
         raise RunsDataError(
-            f"{source}: row {header_number} is blank; the header row (run_id, the factors, the "
+            f"{source}: row {numbers[0]} is blank; the header row (run_id, the factors, the "
             "responses) must come first"
         )
+    return _Grid(rows, numbers, grid.sheet, grid.delimiter)
 
-    def ref(i: int, j: int) -> str:
-        return f" ({grid.sheet}!{_column_letter(j)}{numbers[i]})" if grid.sheet else ""
 
-    factors = protocol.factors
-    factor_names = [f.name for f in factors]
-    responses = list(protocol.response_names)
-    unit_of = {f.name: f.unit for f in factors}
-    unit_of[protocol.objective.name] = protocol.objective.unit
-    unit_of.update({lim.name: lim.unit for lim in protocol.limits})
+# ------------------------------------------------------------ the header
+def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str]) -> _Columns:
+    """Find each known column, appending a problem for each unknown, repeated or missing one."""
+    factor_names, responses = list(protocol.factor_names), list(protocol.response_names)
     known_list = [RUN_ID, *factor_names, *responses, NOTES]
     known = set(known_list)
-
-    problems: list[str] = []
-    flags: list[str] = []
-    col: dict[str, int] = {}
-    convert: dict[str, object] = {}
+    columns = _Columns()
     twice: set[str] = set()
-    for j, cell in enumerate(rows[0]):
+    for j, cell in enumerate(grid.rows[0]):
         letter = _column_letter(j)
-        text = _text_of(cell)
-        # a name that itself ends in brackets ("x [1]") is taken whole
-        name, unit = (text, None) if text in known else _split_header(text)
+        name, unit = _header_name(cell, known)
         if not name:
-            if any(j < len(r) and not _blank(r[j]) for r in rows[1:]):
-                problems.append(f"column {letter}{ref(0, j)} has values but no header")
-            continue
-        if name not in known and name[:1] == "'" and name[1:2] in _FORMULA_PREFIXES and name[1:] in known:
-            name = name[1:]  # undo the spreadsheet-safe escape our own outputs carry
-        if name in col:
-            problems.append(f"column {letter}{ref(0, j)}: header {name!r} appears twice")
+            if any(j < len(r) and not _blank(r[j]) for r in grid.rows[1:]):
+                problems.append(f"column {letter}{grid.ref(0, j)} has values but no header")
+        elif name in columns.at:
+            problems.append(f"column {letter}{grid.ref(0, j)}: header {name!r} appears twice")
             twice.add(name)
-            continue
-        if name not in known:
+        elif name not in known:
             problems.append(
-                f"column {letter}{ref(0, j)}: unknown column {name!r}{_suggest(name, known_list)}; "
+                f"column {letter}{grid.ref(0, j)}: unknown column {name!r}{_suggest(name, known_list)}; "
                 f"expected {RUN_ID}, the factors ({', '.join(factor_names)}), the responses "
                 f"({', '.join(responses)}) or {NOTES}"
             )
-            continue
-        col[name] = j
-        if unit is None or not unit:
-            continue
-        if name in (RUN_ID, NOTES):
-            problems.append(f"column {letter} ({name}): a unit [{unit}] makes no sense here; remove it")
-            continue
-        if unit == unit_of[name]:
-            continue
-        try:
-            conv = conversion(unit, unit_of[name])
-        except UnitError as exc:
-            problems.append(
-                f"column {letter} ({name}): the header states unit [{unit}] but the protocol's "
-                f"unit is [{unit_of[name]}]; {exc}"
-            )
-            convert[name] = None
-            continue
-        if not conv.identity:
-            convert[name] = conv
-            flags.append(f"column {letter} ({name}): values converted {conv.describe()}")
+        else:
+            columns.at[name] = j
+            if unit and name in (RUN_ID, NOTES):
+                problems.append(f"column {letter} ({name}): a unit [{unit}] makes no sense here; remove it")
+            elif unit:
+                check_unit(columns.convert, f"column {letter} ({name})", name, unit, protocol,
+                           problems, flags)
     for name in known_list:
-        if name != NOTES and name not in col and name not in twice:
+        if name != NOTES and name not in columns.at and name not in twice:
             problems.append(f"missing column {name!r}")
+    return columns
 
-    data = list(range(1, len(rows)))
 
-    def where_of(i: int, rid: str = "") -> str:
-        return f"row {numbers[i]}" + (f" (run {rid})" if rid else "")
+def _header_name(cell: object, known: set[str]) -> tuple[str, str | None]:
+    """A header cell as (name, unit stated in brackets or None)."""
+    text = _text_of(cell)
+    # a name that itself ends in brackets ("x [1]") is taken whole
+    name, unit = (text, None) if text in known else _split_header(text)
+    if name not in known and name[:1] == "'" and name[1:2] in _FORMULA_PREFIXES and name[1:] in known:
+        name = name[1:]  # undo the spreadsheet-safe escape our own outputs carry
+    return name, unit
 
-    numeric_cols = [(n, col[n]) for n in factor_names + responses if n in col]
-    decimal, mixed = _decimal_of(_Grid(rows, numbers, grid.sheet, grid.delimiter), numeric_cols,
-                                 decimal, lambda i: where_of(i))
-    if mixed:
-        problems.append(mixed)
 
-    n = len(data)
-    d = len(factor_names)
-    X = np.full((n, d), np.nan)
-    Y = {r: np.full(n, np.nan) for r in responses}
-    ids: list[str] = []
-    notes: list[str] = []
-    wheres: list[str] = []
+# ------------------------------------------------------------ the rows
+def _read_rows(grid: _Grid, protocol: Protocol, columns: _Columns, decimal: str | None,
+               problems: list[str]) -> _Values:
+    """Read each data row's run id, notes and numbers, appending a problem for each bad cell.
+
+    Stops after the row that takes the problems past ``_MAX_PROBLEMS``.
+    """
+    n = len(grid.rows) - 1
+    values = _Values([], [], [], np.full((n, len(protocol.factors)), np.nan),
+                     {r: np.full(n, np.nan) for r in protocol.response_names})
     seen_ids: dict[str, int] = {}
-    width = len(rows[0])
-    for k, i in enumerate(data):
-        row = rows[i]
-        line = numbers[i]
-
-        def cell(name: str) -> object:
-            j = col[name]
-            return row[j] if j < len(row) else None
-
-        if all(_blank(c) for c in row):
+    width = len(grid.rows[0])
+    for k, row in enumerate(grid.rows[1:]):
+        i, line = k + 1, grid.row_numbers[k + 1]
+        if _blank_row(row):
             problems.append(f"row {line}: the row is blank; delete it")
-            ids.append("")
-            notes.append("")
-            wheres.append(f"row {line}")
+            values.run_ids.append("")
+            values.notes.append("")
+            values.wheres.append(grid.where(i))
             continue
         if len(row) > width and any(not _blank(c) for c in row[width:]):
             problems.append(f"row {line}: {len(row)} cells but the header has {width}")
-        rid = _text_of(cell(RUN_ID)) if RUN_ID in col else ""
-        where = where_of(i, rid)
-        wheres.append(where)
-        if RUN_ID in col:
-            if not rid:
-                problems.append(f"row {line}, column {RUN_ID}{ref(i, col[RUN_ID])}: the run id is empty")
-            elif rid in seen_ids:
-                problems.append(
-                    f"{where}, column {RUN_ID}{ref(i, col[RUN_ID])}: run id {rid!r} is also used in "
-                    f"row {seen_ids[rid]}"
-                )
-            else:
-                seen_ids[rid] = line
-        ids.append(rid)
-        notes.append(_text_of(cell(NOTES)) if NOTES in col else "")
-        for q, f in enumerate(factors):
-            if f.name not in col:
-                continue
-            v, problem = _number(cell(f.name), decimal)
-            at = f"{where}, column {f.name}{ref(i, col[f.name])}"
-            if problem is None and v is None:
-                problems.append(f"{at}: the factor value is empty")
-            elif problem:
-                problems.append(f"{at}: {problem}")
-            elif v is not None:
-                X[k, q] = v
-        for r in responses:
-            if r not in col:
-                continue
-            v, problem = _number(cell(r), decimal)
-            if problem:
-                extra = " (leave it empty if not measured)" if problem.endswith("is not a number") else ""
-                problems.append(f"{where}, column {r}{ref(i, col[r])}: {problem}{extra}")
-            elif v is not None:
-                Y[r][k] = v
+        rid = _run_id(grid, i, columns, seen_ids, problems)
+        values.run_ids.append(rid)
+        values.wheres.append(grid.where(i, rid))
+        values.notes.append(_text_of(_cell(row, columns.at[NOTES])) if NOTES in columns.at else "")
+        values.X[k] = _row_numbers(grid, i, rid, protocol.factor_names, columns, decimal, problems,
+                                   empty="the factor value is empty")
+        y = _row_numbers(grid, i, rid, protocol.response_names, columns, decimal, problems,
+                         hint=" (leave it empty if not measured)")
+        for r, v in zip(protocol.response_names, y):
+            values.Y[r][k] = v
         if len(problems) > _MAX_PROBLEMS:
             break
+    return values
 
-    # unit conversions, then the checks that need protocol units
-    for q, f in enumerate(factors):
-        conv = convert.get(f.name)
-        if conv is not None:
-            X[:, q] = conv.apply(X[:, q])
-    for r in responses:
-        conv = convert.get(r)
-        if conv is not None:
-            Y[r] = conv.apply(Y[r])
-    comp = [q for q, f in enumerate(factors) if f.kind == "component"]
-    unit_ok = all(convert.get(factors[q].name, True) is not None for q in comp)
-    for k, where in enumerate(wheres):
-        for q, f in enumerate(factors):
-            v = X[k, q]
-            if not np.isfinite(v) or convert.get(f.name, True) is None:
-                continue
-            tol = 1e-9 * max(1.0, abs(f.high))
-            if f.kind == "discrete":
-                if min(abs(v - lv) for lv in f.levels) > tol:
-                    flags.append(f"{where}, column {f.name}: {v:g} is not one of the levels "
-                                 f"{list(f.levels)} (kept)")
-            elif v < f.low - tol or v > f.high + tol:
-                flags.append(f"{where}, column {f.name}: {v:g} is outside the bounds "
-                             f"[{f.low:g}, {f.high:g}] (kept)")
-        if protocol.mixture is not None and unit_ok and comp and np.all(np.isfinite(X[k, comp])):
-            total = float(X[k, comp].sum())
-            if abs(total - protocol.mixture.total) > protocol.mixture.tolerance:
-                problems.append(
-                    f"{where}: the components add up to {total:.6g}, not {protocol.mixture.total:g} "
-                    f"(tolerance {protocol.mixture.tolerance:g})"
-                )
-    if problems:
-        raise RunsDataError(_join(source, problems))
-    return RunsTable(
-        run_ids=tuple(ids),
-        X=X,
-        Y=Y,
-        notes=tuple(notes),
-        flags=tuple(flags),
-        sha256=sha256,
-        source=source,
-        factor_names=tuple(factor_names),
-    )
+
+def _cell(row: list[object], j: int) -> object:
+    return row[j] if j < len(row) else None
+
+
+def _run_id(grid: _Grid, i: int, columns: _Columns, seen: dict[str, int], problems: list[str]) -> str:
+    """Row ``i``'s run id; an empty id, or one an earlier row used (``seen``), is a problem."""
+    if RUN_ID not in columns.at:
+        return ""
+    j = columns.at[RUN_ID]
+    rid = _text_of(_cell(grid.rows[i], j))
+    if not rid:
+        problems.append(f"{grid.at(i, j, RUN_ID)}: the run id is empty")
+    elif rid in seen:
+        problems.append(f"{grid.at(i, j, RUN_ID, rid)}: run id {rid!r} is also used in row {seen[rid]}")
+    else:
+        seen[rid] = grid.row_numbers[i]
+    return rid
+
+
+def _row_numbers(grid: _Grid, i: int, rid: str, names, columns: _Columns, decimal: str | None,
+                 problems: list[str], *, empty: str = "", hint: str = "") -> np.ndarray:
+    """Row ``i``'s numbers in the columns ``names``, NaN where empty or not a number.
+
+    A cell that is not a number is a problem (with ``hint`` added where it is
+    text); so is an empty cell when ``empty`` (that problem's text) is given.
+    """
+    out = np.full(len(names), np.nan)
+    for q, name in enumerate(names):
+        if name not in columns.at:
+            continue
+        j = columns.at[name]
+        v, problem = _number(_cell(grid.rows[i], j), decimal)
+        if problem is None and v is None and empty:
+            problems.append(f"{grid.at(i, j, name, rid)}: {empty}")
+        elif problem:
+            extra = hint if problem.endswith("is not a number") else ""
+            problems.append(f"{grid.at(i, j, name, rid)}: {problem}{extra}")
+        elif v is not None:
+            out[q] = v
+    return out

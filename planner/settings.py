@@ -65,3 +65,9 @@ FAMILY_ACTIVE_TOL = 1e-3
 #: Dense sample of locate_optimum for a generated problem, and its polished starts.
 FAMILY_OPTIMUM_SAMPLES = 20_000
 FAMILY_OPTIMUM_POLISH = 2
+#: Smallest signal variance of a limit model, in its standardised units (the
+#: runs' root-mean-square distance from the limit): a limit model may not
+#: claim that its response varies by less than its runs' distance from the
+#: limit. Runs that all read alike (a saturated response) say nothing about
+#: how far the response can move once it leaves them.
+LIMIT_SIGNAL_VARIANCE_MIN = 1.0

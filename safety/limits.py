@@ -74,6 +74,8 @@ class ScreenRules:
     threshold: float
     joint: str
     max_step: float | None
+    span_reach: float | None = None
+    span_floor: float = 0.0
 
     @classmethod
     def from_protocol(cls, protocol) -> ScreenRules:
@@ -84,7 +86,8 @@ class ScreenRules:
             A, b, _ = protocol.rule_rows(region.parsed)
             regions.append(ForbiddenRegion(region.name, tuple(region.rules), A, b))
         s = protocol.screen
-        return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step)
+        return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step,
+                   s.span_reach, float(s.span_floor))
 
 
 def limit_rules(protocol) -> tuple[LimitRule, ...]:

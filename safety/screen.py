@@ -11,6 +11,12 @@ can see how near each near miss came.
 3. ``step-too-large``: farther from the nearest run that met every limit
    than the protocol's ``max_step`` (unit-scaled distance over the free
    factors, divided by sqrt(number of free factors), so 1 is the diagonal).
+3b. ``beyond-tested-span``: outside the box that the runs that met every
+   limit span, each side pushed out by ``span_reach`` times that side's
+   width (and at least ``span_floor``, unit-scaled). A model that has only
+   seen a region reads alike everywhere in it; this rule keeps each step's
+   extrapolation in proportion to what has been tested, so the region grows
+   only as far as runs at its edge come back within the limits.
 4. ``too-few-runs`` / ``model-not-fitted`` (fail closed): a limit whose
    model cannot vouch for anything excludes every candidate.
 5. ``limit-probability``: P(limit i met) below that limit's probability.
@@ -64,6 +70,7 @@ REASONS = (
     "outside-design-space",
     "forbidden-region",
     "step-too-large",
+    "beyond-tested-span",
     "too-few-runs",
     "model-not-fitted",
     "limit-probability",
@@ -238,9 +245,34 @@ class HardRules:
     forbidden_detail: list[str]
     step: np.ndarray
     step_basis: str
+    beyond: np.ndarray | None = None
+    beyond_detail: list[str] | None = None
 
 
-def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str) -> HardRules:
+def tested_span(anchors, reach: float, floor: float) -> tuple[np.ndarray, np.ndarray]:
+    """The box the anchors span (unit-scaled), each side pushed out by ``reach`` x width (>= floor)."""
+    lo, hi = anchors.min(axis=0), anchors.max(axis=0)
+    pad = np.maximum(reach * (hi - lo), floor)
+    return lo - pad, hi + pad
+
+
+def _beyond_span(U, anchors, reach, floor, basis, columns=None):
+    n = U.shape[0]
+    cols = np.ones(U.shape[1], dtype=bool) if columns is None else np.asarray(columns, dtype=bool)
+    if reach is None or anchors.shape[0] == 0 or not np.any(cols):
+        return np.zeros(n, dtype=bool), [""] * n
+    lo, hi = tested_span(anchors, reach, floor)
+    lo, hi = np.where(cols, lo, -np.inf), np.where(cols, hi, np.inf)
+    out = np.any((U < lo - 1e-12) | (U > hi + 1e-12), axis=1)
+    detail = [""] * n
+    for i in np.flatnonzero(out):
+        j = int(np.argmax(np.maximum(lo - U[i], U[i] - hi)))
+        detail[i] = (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
+                     f"{basis}s [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+    return out, detail
+
+
+def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str, span_columns=None) -> HardRules:
     """Outside the design space, inside a forbidden region, and the step from the anchors.
 
     Parameters
@@ -256,11 +288,17 @@ def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str) -> 
         The runs the step is measured from (unit-scaled).
     step_basis : str
         What the anchors are, for the messages.
+    span_columns : bool array of shape (k,), optional
+        The columns of U the tested-span rule applies to (default all; a
+        factor with discrete levels steps level by level under ``max_step``).
     """
     inside = np.asarray(space.contains(X))
     outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
     forb, forb_detail = forbidden_mask(rules.forbidden, X)
-    return HardRules(inside, outside_detail, forb, forb_detail, step_distance(U, anchors), step_basis)
+    beyond, beyond_detail = _beyond_span(np.asarray(U, float), np.asarray(anchors, float), rules.span_reach,
+                                         rules.span_floor, step_basis, span_columns)
+    return HardRules(inside, outside_detail, forb, forb_detail, step_distance(U, anchors), step_basis,
+                     beyond, beyond_detail)
 
 
 def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[LimitPrediction]) -> ScreenResult:
@@ -273,6 +311,8 @@ def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[Lim
         step=hard.step,
         max_step=rules.max_step,
         step_basis=hard.step_basis,
+        beyond=hard.beyond,
+        beyond_detail=hard.beyond_detail,
         limits=list(predictions),
         threshold=rules.threshold,
         joint=rules.joint,
@@ -361,6 +401,8 @@ def run_screen(
     step: np.ndarray | None = None,
     max_step: float | None = None,
     step_basis: str = "run that met every limit",
+    beyond: np.ndarray | None = None,
+    beyond_detail: list[str] | None = None,
     limits: list[LimitPrediction],
     threshold: float,
     joint: str = "bound",
@@ -382,6 +424,9 @@ def run_screen(
         The protocol's largest step; None turns the rule off.
     step_basis : str
         What ``step`` was measured from, for the messages.
+    beyond : bool array (n,), optional
+        Whether each candidate lies beyond the tested span (see :func:`tested_span`).
+    beyond_detail : list of str, optional
     limits : list of LimitPrediction
     threshold : float
         The joint figure a candidate must reach.
@@ -414,6 +459,9 @@ def run_screen(
              lambda i: (f"step {step[i]:.3f} from the nearest {step_basis} exceeds max_step {max_step:g}"
                         if np.isfinite(step[i])
                         else f"no step can be measured: there is no {step_basis} yet"))
+    if beyond is not None:
+        mark(np.asarray(beyond, dtype=bool), "beyond-tested-span",
+             lambda i: beyond_detail[i] if beyond_detail else "beyond the span of the tested runs")
     for lim in limits:
         if lim.status != "ok":
             mark(np.ones(n, dtype=bool), lim.status,

@@ -73,7 +73,9 @@ def test_plan_output_reports_planned_runs_that_broke_a_limit(tmp_path):
     runs2 = tmp_path / "runs2.csv"
     runs2.write_text(measured)
     res = runner.invoke(app, ["plan", str(protocol), str(runs2), "--out", str(out), "--pool", "300"])
-    assert res.exit_code == 0, res.output
+    # after four breaks the screen may find nothing it can vouch for (exit 6): the
+    # step is still recorded, with the history that contradicts the promise
+    assert res.exit_code in (0, 6), res.output
     assert "4 of 4 measured planned runs broke a limit" in res.stdout
     assert "WARNING" in res.stdout and "warning: calibration so far" in res.stderr
     body = ledger.read_records(out / "decisions.jsonl")[1]["body"]

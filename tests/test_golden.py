@@ -8,7 +8,10 @@ change of behaviour that is meant (a new screen rule, say) updates them in
 the same commit and says why.
 
 Changes so far: the record body gained ``calibration_earned`` (the
-campaign's own planned runs against their promise); tables unchanged.
+campaign's own planned runs against their promise); then the screen's new
+guards (the single-run check, local one-sided widening, a limit model's
+scale and signal floor, the tested span, limits fantasised towards the
+limit in a batch) changed the plans of both examples, as they were meant to.
 """
 
 from __future__ import annotations
@@ -28,14 +31,14 @@ ROOT = Path(__file__).resolve().parents[1]
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "ec2639c8781dc4df2b581fc37244987edb4c1105d5b3d9621cc93c259b0659bd",
-        "870d384a7a4450f7ef5c79520dd75213f6d08a173d1f10d75592b72711065e9c",
-        "f6ec8a1968780b70efefbedb9eeb4872f212608fda0be885ff0598957e4eb9e2",
+        "2e8a2eba462d9add95998c351f42c4922601d6bb44bdb3637bfe96b316070ef1",
+        "307ebc31c901c5dc5c2d45df7bbf025600e8810533469ee5cb3bc221bc61f6f5",
+        "9f92e398f7074ebfb02b3a02d62008f3ab5ba079f167202b1146b98403d3c400",
     ),
     "dose_combination": (
-        "c8f5f8c818b11b60fd74546b83f8bda318095061ba63f66600c65ae9e9da6a7e",
-        "1e804bda84b354d5b60a0f870c8ca91df61ec47fb0285c851f592613da6aca26",
-        "24656ba9390bd03ad133d98e92cfef7e978f1753924144ae4fb3ab7749583c96",
+        "fcf83b7caf8965af4668b0195d4b658f75677733a4789fab59fdb6ae16aefd1d",
+        "7885efab293973fc10bac01f80357a87bf525063edd19a9e064ce6340ef9691f",
+        "fa0483b94401d5a75fc1948171dbebd6159a2746ef6b769bdedf2c27acfb2996",
     ),
 }
 

@@ -255,6 +255,21 @@ class Screen(_Strict):
         gt=0,
         description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
     )
+    span_reach: float | None = Field(
+        default=0.25,
+        ge=0,
+        description=(
+            "a candidate must lie inside the box the runs that met every limit span (free continuous "
+            "factors, unit-scaled), each side pushed out by this share of its width; none turns the "
+            "rule off (factors with discrete levels step under max_step)"
+        ),
+    )
+    span_floor: float = Field(
+        default=0.05,
+        ge=0,
+        le=1,
+        description="the least push of each side of that box (unit-scaled), so a tight cluster can grow",
+    )
     forbidden: tuple[Forbidden, ...] = ()
     short_model: bool = Field(
         default=True,
@@ -268,6 +283,20 @@ class Screen(_Strict):
         description=(
             "widen a limit model's predictive sd when its own leave-one-out check says it is "
             "overconfident (never narrowed)"
+        ),
+    )
+    widen_locally: bool = Field(
+        default=True,
+        description=(
+            "widen a limit model's predictive sd near the runs it predicted too hopefully "
+            "(its one-sided leave-one-out errors, weighted by closeness; never narrowed)"
+        ),
+    )
+    single_run_check: bool = Field(
+        default=True,
+        description=(
+            "judge each limit also with every run left out in turn and take the worst, so that "
+            "no candidate passes on the strength of a single run"
         ),
     )
 

@@ -15,7 +15,9 @@ Model
 Inputs ``X`` are already scaled to the unit cube, shape (n_runs, n_factors).
 Responses are standardised, ``z = (y - c) / s``: the centre ``c`` is the
 prior mean (the mean of ``y`` when none is given) and the scale ``s`` is the
-standard deviation of ``y`` (``ddof=0``), or 1 when ``y`` is constant. On
+standard deviation of ``y`` (``ddof=0``) when no prior mean is given, else the
+root-mean-square distance of ``y`` from the prior mean (so a limit model's
+unit is how far its runs lie from the limit), or 1 when that is 0. On
 ``z`` the model is a zero-mean GP with the Matérn 5/2 kernel ``k`` of
 :mod:`planner.models.kernel` (one length scale per factor, ARD; the jittered
 Cholesky factor is there too) and Gaussian noise::
@@ -555,7 +557,14 @@ def fit_gp(
     notes: list[str] = []
     warn = False
     searched_with_priors = None  # no search: not known
-    scale = float(np.std(y))
+    # With a stated prior mean (a limit model's sits at its limit), the unit
+    # of the process is the runs' root-mean-square distance from that mean:
+    # the maximum-likelihood marginal variance of a GP whose mean is known,
+    # with the correlation ignored. Never smaller than the sd of y, so runs
+    # that all lie far below a limit with little spread cannot make the model
+    # sure of the limit (their sd would make the limit look hundreds of units
+    # away); with no prior mean the scale is the sd of y.
+    scale = float(np.std(y)) if prior_mean is None else float(np.sqrt(np.mean((y - centre) ** 2)))
     if scale <= CONSTANT_RESPONSE_RTOL * float(np.max(np.abs(y))):
         scale = 1.0
         warn = True

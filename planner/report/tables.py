@@ -127,6 +127,7 @@ _REASON_TEXT = {
     "outside-design-space": "outside the design space (bounds, mixture total, ratio limits, levels)",
     "forbidden-region": "inside a region the protocol forbids",
     "step-too-large": "too far from the nearest run that met every limit",
+    "beyond-tested-span": "beyond the span of the runs that met every limit (span_reach)",
     "too-few-runs": "a limit has too few runs to vouch for anything (fail closed)",
     "model-not-fitted": "a limit's model could not be fitted (fail closed)",
     "limit-probability": "a limit's probability below its requirement",

@@ -21,7 +21,9 @@ from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.models.checks import loo_summary, looks_overconfident, widen_from_loo
 from guardband.planner.models.gp import Hyperparameters, fit_gp
 from guardband.planner.models.limitmodel import PessimisticLimitModel
+from guardband.planner.models.guards import GuardedLimitModel
 from guardband.planner.models.parallel import default_workers, map_jobs
+from guardband.planner.settings import LIMIT_SIGNAL_VARIANCE_MIN
 from guardband.planner.step.result import ModelStatus, ModelSummary
 from guardband.safety.limits import ScreenRules
 
@@ -64,11 +66,11 @@ def _fit_job(job: dict):
                 restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
                 length_scale_max=job["length_scale_max"],
                 ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
-                short=job["short"], noise_sd=job["noise_sd"])
+                short=job["short"], noise_sd=job["noise_sd"], local=job["local"])
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
-         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None):
+         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None, local=None):
     try:
         model = fit_gp(U, y, prior_mean=prior_mean, n_restarts=restarts, warm_start=warm, rng=seed,
                        length_scale_max=length_scale_max,
@@ -76,6 +78,8 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), ModelStatus.NOT_FITTED, str(exc),
                                   prior_mean=prior_mean)
+    if role == "limit":
+        model = _with_signal_floor(model, U, y, prior_mean)
     sd_factor = None
     used_priors = bool(model.used_priors)
     if widen and len(y) >= LOO_WIDEN_MIN_RUNS:
@@ -85,13 +89,37 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
     if short is not None:
         model = PessimisticLimitModel.build(model, lower=short[0], upper=short[1], with_prior=used_priors)
         short_factor = model.factor
+    local_factor = None
+    if local is not None and (local["local"] or local["deletion"]) and len(y) >= LOO_WIDEN_MIN_RUNS:
+        model = GuardedLimitModel(model, lower=local["lower"], upper=local["upper"],
+                                  deletion=local["deletion"], local=local["local"])
+        local_factor = model.summary_factors()
     summary = ModelSummary(
         response=response, role=role, n_runs=int(len(y)), status=ModelStatus.OK,
         message=getattr(model, "message", ""), hyperparameters=model.hyperparameters.to_dict(),
         log_marginal_likelihood=float(model.log_marginal_likelihood), prior_mean=prior_mean,
         loo_coverage=cov, loo_rmse=rmse, sd_factor=sd_factor, short_factor=short_factor,
+        local_factor=local_factor,
     )
     return model, summary
+
+
+def _with_signal_floor(model, U, y, prior_mean):
+    """The limit model with its signal variance raised to LIMIT_SIGNAL_VARIANCE_MIN, if below.
+
+    The length scales and noise of the search are kept; the model is refitted
+    with these hyperparameters held fixed (no search), and says so.
+    """
+    hp = model.hyperparameters
+    if hp.signal_variance >= LIMIT_SIGNAL_VARIANCE_MIN:
+        return model
+    floored = Hyperparameters(hp.length_scales, LIMIT_SIGNAL_VARIANCE_MIN, hp.noise_variance)
+    out = fit_gp(U, y, prior_mean=prior_mean, hyperparameters=floored)
+    out.used_priors = model.used_priors
+    out.message = (f"{model.message}; signal variance raised from {hp.signal_variance:.3g} to "
+                   f"{LIMIT_SIGNAL_VARIANCE_MIN:g} (a limit model may not claim the response varies "
+                   "less than its runs' distance from the limit)")
+    return out
 
 
 def _warm(warm_start: dict, name: str):
@@ -122,7 +150,7 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
         )
     jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
                  prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
-                 noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None)]
+                 noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None, local=None)]
     early: dict[int, ModelSummary] = {}
     # a limit model's length scales are capped so that far from the runs it
     # returns to its prior mean (the limit) rather than carry a flat response,
@@ -142,7 +170,9 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
                          prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
                          seed=_seed_of(children[3 + k]), k=k, noise_sd=lim.measurement_sd,
                          length_scale_max=cap, widen=protocol.screen.widen_from_loo,
-                         short=(lim.lower, lim.upper) if protocol.screen.short_model else None))
+                         short=(lim.lower, lim.upper) if protocol.screen.short_model else None,
+                         local=dict(lower=lim.lower, upper=lim.upper, local=protocol.screen.widen_locally,
+                                    deletion=protocol.screen.single_run_check)))
     for job in jobs:
         job.update(restarts=protocol.model.restarts,
                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)

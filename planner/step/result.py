@@ -61,6 +61,7 @@ class ModelSummary:
     loo_rmse: float | None = None
     sd_factor: float | None = None  # limit models: predictive sd widened by this (leave-one-out check)
     short_factor: float | None = None  # limit models: length-scale multiplier of the short model
+    local_factor: float | None = None  # limit models: largest local widening at the runs
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)

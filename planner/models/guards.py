@@ -1,0 +1,235 @@
+"""Guards on a limit model where the fit cannot vouch for itself.
+
+Two checks the fitted hyperparameters cannot make, applied at prediction
+time; both can only lower the probability that a limit is met.
+
+**No claim rests on a single run.** With few runs that met a limit, a
+stationary GP carries the value of one safe run a whole length scale
+away; without that run the claim would collapse. The screen therefore also
+asks what the model would say with each run left out, and takes the worst
+of these and the full model, point by point. Deleting run i has a closed
+form (block inverse of ``K = K_f + sn2 I``; the same algebra as the
+leave-one-out residuals, Rasmussen & Williams 2006, sec. 5.4.2):
+
+    mu_-i(x)  = mu(x)  - g_i(x) alpha_i / C_ii,
+    var_-i(x) = var(x) + g_i(x)^2 / C_ii,
+    C = K^-1,  alpha = C (y - m),  g(x) = C k(x),
+
+with the hyperparameters held fixed. It is an influence check in the sense
+of Cook (1977, Technometrics 19, 15-18; from memory): where many runs
+support a prediction, deleting one changes little and the guard costs
+nothing; where one run carries it, the candidate is excluded until another
+run confirms the region.
+
+**Optimistic errors nearby (local leave-one-out).** The global leave-one-out
+widening (:mod:`.checks`) uses all runs; a limit that rises sharply outside
+a curved region is predicted well at most runs and badly at the few near
+its edge. Here only the *optimistic* standardised leave-one-out errors count
+(for an upper limit, ``u_i = (y_i - mu_-i) / sd_-i > 0``: the run came out
+higher than the model expected without it), scaled so that
+``E[e_i] = 1`` under a calibrated Gaussian model (``e_i = 2 max(u_i, 0)^2``),
+and are averaged with kernel weights at the model's shortest plausible
+length scales and one unit of prior weight:
+
+    c2(x) = (1 + sum_i rho(x, x_i) e_i) / (1 + sum_i rho(x, x_i)),
+
+the sd being multiplied by ``sqrt(max(1, c2(x)))`` (a localised
+cross-validation variance, after Bachoc 2013 and localised conformal
+prediction, Guan 2023, Biometrika 110, 33-50; from memory).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import linalg
+
+from guardband.safety.screen import limit_probability
+
+__all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions"]
+
+
+def optimistic_errors(u: np.ndarray, lower, upper) -> np.ndarray:
+    """``e_i``: the squared standardised errors that made the model too hopeful, scaled to mean 1."""
+    u = np.asarray(u, dtype=float)
+    if lower is not None and upper is not None:
+        return u**2
+    side = u if upper is not None else -u
+    return 2.0 * np.maximum(side, 0.0) ** 2
+
+
+class _Deletion:
+    """The effect of deleting each run on a fitted GP's prediction (closed form).
+
+    ``near`` is the GP whose correlation ``rho`` measures how near a point
+    is to each run.
+    """
+
+    def __init__(self, gp, near=None):
+        self.near = near
+        if near is not None:
+            self.var0 = float(near.scale**2 * near.hyperparameters.signal_variance)
+        n = gp.X.shape[0]
+        noise = gp.scale**2 * gp.hyperparameters.noise_variance
+        K = gp.kernel(gp.X) + (noise + max(float(getattr(gp, "jitter", 0.0)), 0.0) * gp.scale**2) * np.eye(n)
+        factor = linalg.cho_factor(K, lower=True)
+        C = linalg.cho_solve(factor, np.eye(n))
+        self.diag = np.diag(C).copy()
+        self.alpha = linalg.cho_solve(factor, gp.y - gp.prior_mean)
+        self.C = C
+        self.gp = gp
+
+    def shifts(self, Xs) -> tuple[np.ndarray, np.ndarray]:
+        """(mean shift, variance increase) of deleting each run, each of shape (n_points, n_runs)."""
+        g = self.gp.kernel(Xs, self.gp.X) @ self.C
+        return g * (self.alpha / self.diag), g**2 / self.diag
+
+    def nearness(self, Xs) -> np.ndarray:
+        """rho(x, x_i)^2 at the short length scales, shape (n_points, n_runs)."""
+        return np.clip(self.near.kernel(Xs, self.gp.X) / self.var0, 0.0, 1.0) ** 2
+
+
+def deletion_predictions(gp, Xs) -> tuple[np.ndarray, np.ndarray]:
+    """Posterior mean and latent sd at Xs with each run left out, shape (n_points, n_runs) each."""
+    Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
+    mean, sd = gp.predict(Xs)
+    dmu, dvar = _Deletion(gp).shifts(Xs)
+    return mean[:, None] - dmu, np.sqrt(sd[:, None] ** 2 + dvar)
+
+
+class GuardedLimitModel:
+    """A limit model judged also with each run left out, and widened where it was too hopeful.
+
+    Parameters
+    ----------
+    model : fitted limit model
+        A :class:`~guardband.planner.models.gp.GaussianProcess` or a
+        :class:`~guardband.planner.models.limitmodel.PessimisticLimitModel`;
+        everything but prediction is its own.
+    lower, upper : float or None
+        The limit, which decides which prediction is the worst.
+    deletion, local : bool
+        Which guards apply.
+    """
+
+    def __init__(self, model, *, lower, upper, deletion: bool = True, local: bool = True):
+        self.model = model
+        self.lower, self.upper = lower, upper
+        base = getattr(model, "fitted", model)
+        self._base = base
+        self._deletion = _Deletion(base, getattr(model, "short", base)) if deletion else None
+        self._weights = getattr(model, "short", base) if local else None
+        if local:
+            loo = base.loo()
+            u = loo.residual / np.sqrt(np.maximum(loo.variance, 1e-300))
+            self._errors = optimistic_errors(u, lower, upper)
+            self._var0 = float(self._weights.scale**2 * self._weights.hyperparameters.signal_variance)
+
+    def __getattr__(self, name):  # everything but prediction is the wrapped model's
+        if name.startswith("_") or name in ("model", "lower", "upper"):
+            raise AttributeError(name)
+        return getattr(self.model, name)
+
+    def local_factor(self, Xs) -> np.ndarray:
+        """The local sd multiplier at points Xs (unit-scaled), shape (n,)."""
+        Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
+        if self._weights is None:
+            return np.ones(Xs.shape[0])
+        rho = self._weights.kernel(Xs, self._base.X) / self._var0
+        c2 = (1.0 + rho @ self._errors) / (1.0 + rho.sum(axis=1))
+        return np.sqrt(np.maximum(c2, 1.0))
+
+    def _guards(self, Xs):
+        Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
+        if self._deletion is None:
+            return None, self.local_factor(Xs)
+        return (*self._deletion.shifts(Xs), self._deletion.nearness(Xs)), self.local_factor(Xs)
+
+    def summary_factors(self) -> float:
+        """The largest local multiplier at the runs, for the model summary."""
+        return float(np.max(self.local_factor(self._base.X)))
+
+    def predict(self, Xs, *, include_noise: bool = False, **kwargs):
+        mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
+        noise_var = _noise_var(self.model.predict, Xs, sd_f, include_noise, kwargs)
+        return self._worst(mean, sd_f, noise_var, *self._guards(Xs))
+
+    def posterior_at(self, Xs) -> _GuardedPosterior:
+        return _GuardedPosterior(self, self.model.posterior_at(Xs), *self._guards(Xs))
+
+    def _worst(self, mean, sd_f, noise_var, shifts, factor):
+        """Per point, the (mean, sd) whose probability is the guarded one.
+
+        For each run i the probability without it, ``p_-i``, is blended with
+        the full model's ``p`` by how near the point is to run i:
+        ``rho_i^2 p + (1 - rho_i^2) p_-i`` (at the run itself the run measured
+        the answer; far from it the claim must stand without it), and the
+        lowest blend over i is kept. The sd is widened until the full model's
+        mean gives that probability (the mean is never moved).
+        """
+        sd = factor * np.sqrt(sd_f**2 + noise_var)
+        if shifts is None or shifts[0].shape[1] == 0:
+            return mean, sd
+        dmu, dvar, near = shifts
+        p_full = limit_probability(mean, sd, lower=self.lower, upper=self.upper)
+        sd_del = factor[:, None] * np.sqrt(sd_f[:, None] ** 2 + dvar + np.reshape(noise_var, (-1, 1)))
+        p_del = limit_probability(mean[:, None] - dmu, sd_del, lower=self.lower, upper=self.upper)
+        p_guard = np.minimum(p_full, np.min(near * p_full[:, None] + (1.0 - near) * p_del, axis=1))
+        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper)
+
+
+def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
+    """The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target (bisection on log sd').
+
+    Where the mean lies outside the limit, or the target is not below the
+    current probability, sd is returned as it is (the probability there is
+    already at most 1/2, or needs no change).
+    """
+    p = limit_probability(mean, sd, lower=lower, upper=upper)
+    inside = np.ones_like(mean, dtype=bool)
+    if upper is not None:
+        inside &= mean < upper
+    if lower is not None:
+        inside &= mean > lower
+    todo = inside & (target < p) & (sd > 0)
+    out = sd.copy()
+    if not np.any(todo):
+        return out
+    lo = np.log(sd[todo])
+    hi = lo + np.log(1e6)
+    m, tg = mean[todo], target[todo]
+    for _ in range(steps):
+        mid = 0.5 * (lo + hi)
+        too_high = limit_probability(m, np.exp(mid), lower=lower, upper=upper) > tg
+        lo = np.where(too_high, mid, lo)
+        hi = np.where(too_high, hi, mid)
+    out[todo] = np.exp(hi)
+    return out
+
+
+def _noise_var(predict, Xs, sd_f, include_noise: bool, kwargs) -> np.ndarray | float:
+    if not include_noise:
+        return 0.0
+    _, sd_m = predict(Xs, include_noise=True, **kwargs)
+    return np.maximum(sd_m**2 - sd_f**2, 0.0)
+
+
+class _GuardedPosterior:
+    """A posterior over fixed points with the guards of the real-data model applied."""
+
+    def __init__(self, owner: GuardedLimitModel, posterior, shifts, factor):
+        self._owner, self._posterior, self._shifts, self._factor = owner, posterior, shifts, factor
+
+    @property
+    def n_points(self) -> int:
+        return self._posterior.n_points
+
+    def mean_sd(self, *, include_noise: bool = False):
+        mean, sd_f = self._posterior.mean_sd(include_noise=False)
+        noise_var = 0.0
+        if include_noise:
+            _, sd_m = self._posterior.mean_sd(include_noise=True)
+            noise_var = np.maximum(sd_m**2 - sd_f**2, 0.0)
+        return self._owner._worst(mean, sd_f, noise_var, self._shifts, self._factor)
+
+    def condition(self, j: int, y_j: float) -> None:
+        self._posterior.condition(j, y_j)

@@ -1,0 +1,194 @@
+"""The limit-model guards: no claim rests on a single run; local one-sided widening.
+
+Reference values are derived, not looked up: the deletion formulas are
+checked against a refit without the run (same hyperparameters), the
+one-sided error scaling against the half-normal second moment
+(E[max(U, 0)^2] = 1/2 for a standard normal U), and the sd widening
+against the probability it must reach.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from guardband.planner.models import Hyperparameters, fit_gp
+from guardband.planner.models.guards import (
+    GuardedLimitModel,
+    _widen_to,
+    deletion_predictions,
+    optimistic_errors,
+)
+from guardband.planner.step.batch import _pessimistic_value
+from guardband.safety.limits import LimitRule
+from guardband.safety.screen import limit_probability
+
+HP = Hyperparameters(np.array([0.3, 0.4]), 1.0, 1e-3)
+
+
+def _data(n=12, seed=0):
+    rng = np.random.default_rng(seed)
+    X = rng.random((n, 2))
+    y = np.sin(3 * X[:, 0]) + 0.5 * X[:, 1]
+    return X, y
+
+
+def test_deleting_a_run_matches_a_refit_without_it():
+    X, y = _data()
+    gp = fit_gp(X, y, prior_mean=0.5, hyperparameters=HP)
+    Xs = np.random.default_rng(1).random((7, 2))
+    means, sds = deletion_predictions(gp, Xs)
+    noise = gp.scale**2 * (HP.noise_variance + gp.jitter)
+    for i in range(X.shape[0]):
+        keep = np.arange(X.shape[0]) != i
+        # the textbook prediction without run i (Rasmussen & Williams 2006, Alg. 2.1), same kernel
+        K = gp.kernel(X[keep]) + noise * np.eye(keep.sum())
+        ks = gp.kernel(Xs, X[keep])
+        m = 0.5 + ks @ np.linalg.solve(K, y[keep] - 0.5)
+        v = np.diag(gp.kernel(Xs)) - np.einsum("ij,ji->i", ks, np.linalg.solve(K, ks.T))
+        np.testing.assert_allclose(means[:, i], m, rtol=1e-6, atol=1e-8)
+        np.testing.assert_allclose(sds[:, i], np.sqrt(v), rtol=1e-5, atol=1e-8)
+
+
+def test_optimistic_errors_have_mean_one_under_a_calibrated_model():
+    u = np.random.default_rng(2).standard_normal(400_000)
+    # 2 E[max(U,0)^2] = 1 (half-normal second moment)
+    assert optimistic_errors(u, None, 1.0).mean() == pytest.approx(1.0, abs=0.01)
+    assert optimistic_errors(u, 0.0, None).mean() == pytest.approx(1.0, abs=0.01)
+    assert optimistic_errors(u, 0.0, 1.0).mean() == pytest.approx(1.0, abs=0.01)
+    # only the hopeful side counts: for an upper limit, runs that came out higher
+    assert optimistic_errors(np.array([-3.0, 2.0]), None, 1.0).tolist() == [0.0, 8.0]
+
+
+@pytest.mark.parametrize("lower,upper", [(None, 0.2), (-0.5, None), (-0.8, 0.6)], ids=["upper", "lower", "two-sided"])
+def test_widening_reaches_the_target_probability_and_never_narrows(lower, upper):
+    rng = np.random.default_rng(3)
+    mean = rng.uniform(-0.3, 0.1, 50)
+    sd = rng.uniform(0.01, 0.3, 50)
+    p = limit_probability(mean, sd, lower=lower, upper=upper)
+    target = p * rng.uniform(0.5, 1.0, 50)
+    out = _widen_to(mean, sd, target, lower, upper)
+    assert np.all(out >= sd)
+    p_new = limit_probability(mean, out, lower=lower, upper=upper)
+    inside = np.ones(50, bool)
+    if upper is not None:
+        inside &= mean < upper
+    if lower is not None:
+        inside &= mean > lower
+    reachable = inside & (target > limit_probability(mean, sd * 1e6, lower=lower, upper=upper))
+    np.testing.assert_allclose(p_new[reachable], np.minimum(target, p)[reachable], atol=1e-6)
+
+
+def _one_safe_run():
+    """Nine runs far above an upper limit of 0.5 and one run well below it."""
+    rng = np.random.default_rng(4)
+    X = np.vstack([[0.5, 0.5], rng.random((9, 2)) * 0.3 + np.array([[0.0, 0.0]])])
+    X[1:, 0] += np.where(np.arange(9) % 2 == 0, 0.0, 0.7)
+    y = np.r_[0.0, np.ones(9)]
+    gp = fit_gp(X, y, prior_mean=0.5, hyperparameters=Hyperparameters(np.array([0.6, 0.6]), 1.0, 1e-4))
+    return X, y, gp
+
+
+def test_a_claim_that_rests_on_one_run_is_not_trusted_away_from_it():
+    X, _, gp = _one_safe_run()
+    guarded = GuardedLimitModel(gp, lower=None, upper=0.5, deletion=True, local=False)
+    near = X[0] + np.array([[0.0, 0.0]])
+    farther = X[0] + np.array([[0.0, 0.15]])
+    p = lambda m, pts: limit_probability(*m.predict(pts), upper=0.5)[0]
+    # at the run itself the run measured the answer: no penalty
+    assert p(guarded, near) == pytest.approx(p(gp, near), abs=1e-9)
+    # a short way off, the unguarded model vouches at 0.95 on the strength of
+    # that one run; without it the claim collapses, and the guard says so
+    assert p(gp, farther) > 0.95
+    assert p(guarded, farther) < 0.95 <= p(gp, farther)
+
+
+def test_guards_never_raise_a_probability():
+    X, y = _data(15, seed=5)
+    gp = fit_gp(X, y, prior_mean=0.8, hyperparameters=HP)
+    guarded = GuardedLimitModel(gp, lower=None, upper=0.8, deletion=True, local=True)
+    Xs = np.random.default_rng(6).random((300, 2))
+    for noise in (False, True):
+        p0 = limit_probability(*gp.predict(Xs, include_noise=noise), upper=0.8)
+        p1 = limit_probability(*guarded.predict(Xs, include_noise=noise), upper=0.8)
+        assert np.all(p1 <= p0 + 1e-12)
+        np.testing.assert_allclose(guarded.predict(Xs)[0], gp.predict(Xs)[0])  # the mean never moves
+    # the posterior over fixed points (batch fantasies) gives the same figures
+    post = guarded.posterior_at(Xs)
+    np.testing.assert_allclose(post.mean_sd()[1], guarded.predict(Xs)[1], rtol=1e-9)
+
+
+def test_local_widening_grows_near_runs_that_came_out_worse_than_expected():
+    X, y = _data(14, seed=7)
+    y = y.copy()
+    y[3] += 2.0  # a run far above what its neighbours suggest: an optimistic error for an upper limit
+    gp = fit_gp(X, y, prior_mean=1.5, hyperparameters=HP)
+    upper = GuardedLimitModel(gp, lower=None, upper=1.5, deletion=False, local=True)
+    lower = GuardedLimitModel(gp, lower=1.5, upper=None, deletion=False, local=True)
+    f_up = upper.local_factor(X[3:4])[0]
+    assert f_up > 1.5
+    assert lower.local_factor(X[3:4])[0] < f_up  # for a lower limit that error was pessimistic
+    assert np.all(upper.local_factor(np.random.default_rng(8).random((50, 2))) >= 1.0)
+
+
+@pytest.mark.parametrize("rule,expected_sign", [
+    (LimitRule("a", None, 1.0, 0.95), +1), (LimitRule("b", 0.0, None, 0.9), -1)])
+def test_a_limits_fantasy_lies_towards_the_limit(rule, expected_sign):
+    class Post:
+        def mean_sd(self, include_noise=False):
+            return np.array([0.5, 0.4]), np.array([0.1, 0.2])
+    v = _pessimistic_value(rule, Post(), 1)
+    z = stats.norm.ppf(rule.probability)
+    assert v == pytest.approx(0.4 + expected_sign * z * 0.2)
+
+
+def test_tested_span_is_the_runs_box_pushed_out_by_its_reach():
+    from guardband.safety.screen import tested_span
+    anchors = np.array([[0.2, 0.5], [0.4, 0.5], [0.3, 0.6]])
+    lo, hi = tested_span(anchors, 0.25, 0.05)
+    # x: width 0.2, pushed by 0.05 each side; y: width 0.1, pushed by the floor 0.05
+    np.testing.assert_allclose(lo, [0.15, 0.45])
+    np.testing.assert_allclose(hi, [0.45, 0.65])
+
+
+def test_the_screen_excludes_candidates_beyond_the_tested_span_and_says_why():
+    from guardband.safety.limits import ScreenRules
+    from guardband.safety.screen import hard_rules, screen_points
+
+    class Space:
+        def contains(self, X):
+            return np.ones(len(X), dtype=bool)
+
+        def describe_violation(self, x):
+            return ""
+
+    rules = ScreenRules((), (), 0.9, "bound", None, 0.25, 0.05)
+    anchors = np.array([[0.2, 0.5], [0.4, 0.5], [0.3, 0.6]])
+    U = np.array([[0.3, 0.55], [0.44, 0.5], [0.5, 0.5], [0.3, 0.7]])
+    hard = hard_rules(rules, Space(), U, U, anchors, step_basis="run that met every limit")
+    res = screen_points(rules, hard, [])
+    assert res.survives.tolist() == [True, True, False, False]
+    assert set(res.reason[2:]) == {"beyond-tested-span"}
+    assert "outside the span" in res.detail[2]
+    off = ScreenRules((), (), 0.9, "bound", None, None, 0.05)  # span_reach None turns the rule off
+    assert screen_points(off, hard_rules(off, Space(), U, U, anchors, step_basis="run"), []).survives.all()
+
+
+def test_a_limit_model_of_runs_far_below_the_limit_does_not_claim_certainty():
+    # ten runs that read almost alike, far below an upper limit of 1.0: the
+    # sd of y (0.001) would make the limit look hundreds of units away; the
+    # model's unit is the runs' distance from the limit instead
+    from guardband.planner.step.fitting import _fit
+    rng = np.random.default_rng(9)
+    U = 0.3 + 0.2 * rng.random((10, 2))
+    y = 0.1 + 0.001 * rng.standard_normal(10)
+    model, summary = _fit("imp", "limit", U, y, prior_mean=1.0, restarts=2, warm=None, seed=1,
+                          length_scale_max=0.4 * np.sqrt(2))
+    assert model.scale == pytest.approx(np.sqrt(np.mean((y - 1.0) ** 2)))
+    assert model.hyperparameters.signal_variance >= 1.0
+    far = np.array([[0.95, 0.95]])
+    p_far = limit_probability(*model.predict(far), upper=1.0)[0]
+    assert p_far < 0.95  # away from the runs the model cannot vouch at 0.95
+    p_at = limit_probability(*model.predict(U[:1]), upper=1.0)[0]
+    assert p_at > 0.99  # at a run it still can

@@ -192,3 +192,19 @@ def test_a_limit_model_of_runs_far_below_the_limit_does_not_claim_certainty():
     assert p_far < 0.95  # away from the runs the model cannot vouch at 0.95
     p_at = limit_probability(*model.predict(U[:1]), upper=1.0)[0]
     assert p_at > 0.99  # at a run it still can
+
+
+def test_a_new_measurement_adds_the_models_own_noise_variance_everywhere():
+    # the pair behind a guarded model may take the fitted model for the latent
+    # sd and the short one with noise at the same point; the measurement's sd
+    # must still be the latent sd plus the one noise variance both share
+    from guardband.planner.models import PessimisticLimitModel
+    X, y = _data(12, seed=11)
+    gp = fit_gp(X, y, prior_mean=1.2, hyperparameters=Hyperparameters(np.array([0.3, 0.4]), 1.0, 0.05))
+    pair = PessimisticLimitModel.build(gp, lower=None, upper=1.2, with_prior=True)
+    guarded = GuardedLimitModel(pair, lower=None, upper=1.2, deletion=False, local=False)
+    Xs = np.random.default_rng(12).random((200, 2))
+    _, sd_f = guarded.predict(Xs)
+    _, sd_m = guarded.predict(Xs, include_noise=True)
+    noise = gp.scale**2 * gp.hyperparameters.noise_variance
+    np.testing.assert_allclose(sd_m**2 - sd_f**2, noise, rtol=1e-9)

@@ -116,6 +116,9 @@ class GuardedLimitModel:
         self.lower, self.upper = lower, upper
         base = getattr(model, "fitted", model)
         self._base = base
+        # the noise variance of a new measurement, in response units (the
+        # short model shares it): added, not predicted a second time
+        self._noise_var = float(base.scale**2 * base.hyperparameters.noise_variance)
         self._deletion = _Deletion(base, getattr(model, "short", base)) if deletion else None
         self._weights = getattr(model, "short", base) if local else None
         if local:
@@ -150,7 +153,7 @@ class GuardedLimitModel:
 
     def predict(self, Xs, *, include_noise: bool = False, **kwargs):
         mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
-        noise_var = _noise_var(self.model.predict, Xs, sd_f, include_noise, kwargs)
+        noise_var = self._noise_var if include_noise else 0.0
         return self._worst(mean, sd_f, noise_var, *self._guards(Xs))
 
     def posterior_at(self, Xs) -> _GuardedPosterior:
@@ -206,13 +209,6 @@ def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
     return out
 
 
-def _noise_var(predict, Xs, sd_f, include_noise: bool, kwargs) -> np.ndarray | float:
-    if not include_noise:
-        return 0.0
-    _, sd_m = predict(Xs, include_noise=True, **kwargs)
-    return np.maximum(sd_m**2 - sd_f**2, 0.0)
-
-
 class _GuardedPosterior:
     """A posterior over fixed points with the guards of the real-data model applied."""
 
@@ -225,10 +221,7 @@ class _GuardedPosterior:
 
     def mean_sd(self, *, include_noise: bool = False):
         mean, sd_f = self._posterior.mean_sd(include_noise=False)
-        noise_var = 0.0
-        if include_noise:
-            _, sd_m = self._posterior.mean_sd(include_noise=True)
-            noise_var = np.maximum(sd_m**2 - sd_f**2, 0.0)
+        noise_var = self._owner._noise_var if include_noise else 0.0
         return self._owner._worst(mean, sd_f, noise_var, self._shifts, self._factor)
 
     def condition(self, j: int, y_j: float) -> None:

@@ -45,7 +45,7 @@ from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
-from guardband.safety.limits import ScreenRules, meets_limits
+from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
 
 __all__ = ["plan_step", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
@@ -56,8 +56,7 @@ RESCUE_STARTS = 6
 
 def safe_runs_mask(protocol: Protocol, runs: RunsTable) -> np.ndarray:
     """Runs whose every limited response was measured and met its limit."""
-    rules = ScreenRules.from_protocol(protocol)
-    return ~runs.pending & meets_limits(rules.limits, runs.Y, len(runs.pending))
+    return ~runs.pending & meets_limits(limit_rules(protocol), runs.Y, len(runs.pending))
 
 
 def _incumbent(protocol: Protocol, runs: RunsTable, safe) -> tuple[dict | None, str, list[str]]:

@@ -58,6 +58,12 @@ class EarnedCalibration:
                 "tail_probability": round(self.tail_probability, 6),
                 "contradicts_promise": self.contradicts, "broke_run_ids": list(self.broke_run_ids)}
 
+    @classmethod
+    def from_dict(cls, d: dict) -> EarnedCalibration:
+        """The inverse of :meth:`to_dict` (as recorded in a plan record's ``calibration_earned``)."""
+        return cls(int(d["n_measured"]), int(d["n_broke"]), float(d["expected_broke"]),
+                   float(d["tail_probability"]), tuple(str(r) for r in d.get("broke_run_ids", ())))
+
     def sentence(self) -> str:
         if self.n_measured == 0:
             return "calibration so far: no planned run of this campaign has been measured yet"

@@ -21,6 +21,11 @@ can see how near each near miss came.
    model cannot vouch for anything excludes every candidate.
 5. ``limit-probability``: P(limit i met) below that limit's probability.
 6. ``joint-below-threshold``: the joint figure below the screen threshold.
+7. ``rests-on-one-run``: 5 and 6 hold with every run counted, but not
+   with one run left out (the single-run check of
+   :mod:`guardband.planner.models.guards`); the detail names that run.
+   Rules 5 and 6 are judged with every run counted, so this reason marks
+   exactly the candidates the check alone excluded.
 
 Per-limit probabilities use the predictive distribution of a new
 *measurement* (latent variance plus noise variance), because the limit
@@ -36,7 +41,7 @@ does not fit models and does not import the command line.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy.special import ndtr
@@ -75,6 +80,7 @@ REASONS = (
     "model-not-fitted",
     "limit-probability",
     "joint-below-threshold",
+    "rests-on-one-run",
 )
 
 
@@ -95,6 +101,10 @@ class LimitPrediction:
     mean: np.ndarray | None = None
     sd: np.ndarray | None = None
     message: str = ""
+    #: the sd with every run counted (before the single-run check), and the
+    #: run id the check leaned on at each point ("" where it changed nothing)
+    sd_all: np.ndarray | None = None
+    leaning: np.ndarray | None = None
 
 
 def limit_probability(mean, sd, *, lower=None, upper=None) -> np.ndarray:
@@ -146,10 +156,15 @@ def joint_figure(P, *, method: str = "bound") -> np.ndarray:
 
 
 def _mean_sd(model, U, with_noise: bool):
-    """(mean, sd) from a fitted model at U, or from a posterior over fixed points (U None)."""
+    """(mean, sd, sd_all, leaning) from a fitted model at U, or from a posterior over
+    fixed points (U None); the last two are None unless the model has the single-run check."""
     if U is None:
-        return model.mean_sd(include_noise=with_noise)
-    return model.predict(U, include_noise=with_noise)
+        if hasattr(model, "mean_sd_parts"):
+            return model.mean_sd_parts(include_noise=with_noise)
+        return (*model.mean_sd(include_noise=with_noise), None, None)
+    if hasattr(model, "predict_parts"):
+        return model.predict_parts(U, include_noise=with_noise)
+    return (*model.predict(U, include_noise=with_noise), None, None)
 
 
 def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailable=None) -> list[LimitPrediction]:
@@ -183,8 +198,9 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                        status=status, message=message))
         else:
-            mean, sd = _mean_sd(model, U, lim.with_noise)
-            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd))
+            mean, sd, sd_all, leaning = _mean_sd(model, U, lim.with_noise)
+            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
+                                       sd_all=sd_all, leaning=leaning))
     return out
 
 
@@ -392,6 +408,22 @@ class ScreenResult:
         return out
 
 
+def _with_every_run(limits: Sequence[LimitPrediction]) -> list[LimitPrediction]:
+    """The predictions with every run counted (the sd before the single-run check)."""
+    return [replace(lim, sd=lim.sd_all) if lim.status == "ok" and lim.sd_all is not None else lim
+            for lim in limits]
+
+
+def _one_run_detail(i, limits, P, P_all, J, threshold) -> str:
+    """Why candidate i fails only without one run: the limit, both figures and the run."""
+    worst = max(range(len(limits)), key=lambda j: (P_all[i, j] - P[i, j]) if limits[j].status == "ok" else -1.0)
+    lim = limits[worst]
+    run = lim.leaning[i] if lim.leaning is not None and lim.leaning[i] else "one run"
+    return (f"limit {lim.name!r}: probability {P_all[i, worst]:.3f} with every run, {P[i, worst]:.3f} "
+            f"without run {run} (joint {J[i]:.3f}, threshold {threshold:g}); no claim may rest on a "
+            "single run: another run near this one would settle it")
+
+
 def run_screen(
     *,
     inside: np.ndarray,
@@ -466,14 +498,18 @@ def run_screen(
         if lim.status != "ok":
             mark(np.ones(n, dtype=bool), lim.status,
                  lambda i, lim=lim: f"limit {lim.name!r}: {lim.message}")
+    # with every run counted first: a candidate that fails only because one
+    # run carries its claim gets its own reason, naming that run
+    P_all, J_all = figures_at(_with_every_run(limits), n, method=joint)
     for j, lim in enumerate(limits):
         if lim.status == "ok":
-            low = P[:, j] < lim.probability
-            mark(low, "limit-probability",
+            mark(P_all[:, j] < lim.probability, "limit-probability",
                  lambda i, j=j, lim=lim: (f"limit {lim.name!r}: probability {_fmt_p(P[i, j], lim.probability)} "
                                           f"is below the required {lim.probability:g}"))
-    mark(J < threshold, "joint-below-threshold",
+    mark(J_all < threshold, "joint-below-threshold",
          lambda i: f"joint figure ({joint}) {_fmt_p(J[i], threshold)} is below the threshold {threshold:g}")
+    one_run = (J < threshold) | np.any(P < np.array([lim.probability for lim in limits]), axis=1)
+    mark(one_run, "rests-on-one-run", lambda i: _one_run_detail(i, limits, P, P_all, J, threshold))
     survives = reason == ""
     return ScreenResult(
         survives=survives,

@@ -4,5 +4,5 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 source scripts/_venv.sh
-"$VENV/bin/python" -m pip install --quiet -e .
+"$VENV/bin/python" -m pip install --quiet -c constraints.txt -e .
 "$VENV/bin/guardband" demo --out "${1:-guardband-demo}"

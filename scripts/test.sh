@@ -3,7 +3,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 source scripts/_venv.sh
-"$VENV/bin/python" -m pip install --quiet -e ".[test]"
+"$VENV/bin/python" -m pip install --quiet -c constraints.txt -e ".[test]"
 set +e
 "$VENV/bin/python" -m pytest -q "$@"
 rc=$?

@@ -81,3 +81,13 @@ def test_plan_output_reports_planned_runs_that_broke_a_limit(tmp_path):
     body = ledger.read_records(out / "decisions.jsonl")[1]["body"]
     assert body["calibration_earned"]["n_broke"] == 4 and body["calibration_earned"]["contradicts_promise"]
     assert json.dumps(body["calibration_earned"])  # JSON-able as recorded
+    # the report of that step says the same, at the top where a reviewer looks first
+    res = runner.invoke(app, ["report", str(out)])
+    assert res.exit_code == 0, res.output
+    label = body["step_label"]
+    html = (out / f"report-{label}.html").read_text(encoding="utf-8")
+    assert 'id="earned"' in html and "4 of 4 measured planned runs broke a limit" in html
+    top = html[html.index('id="problems"'):html.index('id="fingerprints')]
+    assert "WARNING" in top and "too optimistic" in top
+    first = (out / f"report-{ledger.read_records(out / 'decisions.jsonl')[0]['body']['step_label']}.html")
+    assert "no planned run of this campaign has been measured yet" in first.read_text(encoding="utf-8")

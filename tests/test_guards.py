@@ -104,6 +104,38 @@ def test_a_claim_that_rests_on_one_run_is_not_trusted_away_from_it():
     assert p(guarded, farther) < 0.95 <= p(gp, farther)
 
 
+def test_the_screen_names_the_run_a_claim_rests_on():
+    """A candidate that passes with every run counted but not with one run left
+    out is excluded with its own reason, naming that run; one that fails either
+    way keeps the ordinary reason."""
+    from guardband.safety.limits import ScreenRules
+    from guardband.safety.screen import hard_rules, limit_predictions, screen_points
+
+    class Space:
+        def contains(self, X):
+            return np.ones(len(X), dtype=bool)
+
+        def describe_violation(self, x):
+            return ""
+
+    X, _, gp = _one_safe_run()
+    labels = [f"R{i:02d}" for i in range(len(X))]
+    guarded = GuardedLimitModel(gp, lower=None, upper=0.5, deletion=True, local=False, labels=labels)
+    rule = LimitRule("impurity", None, 0.5, 0.95, "true-value")
+    rules = ScreenRules((rule,), (), 0.95, "bound", None, None, 0.05)
+    U = np.vstack([X[0], X[0] + [0.0, 0.15], X[1]])
+    hard = hard_rules(rules, Space(), U, U, X[:1], step_basis="run that met every limit")
+    res = screen_points(rules, hard, limit_predictions(rules.limits, [guarded], U))
+    p_all = limit_probability(*gp.predict(U), upper=0.5)
+    assert p_all[1] > 0.95 and res.P[1, 0] < 0.95  # the guard alone decides at the second point
+    assert res.survives.tolist() == [True, False, False]
+    assert res.reason[1] == "rests-on-one-run"
+    assert "without run R00" in res.detail[1] and f"{p_all[1]:.3f} with every run" in res.detail[1]
+    assert res.reason[2] == "limit-probability"  # above the limit whatever is left out
+    unguarded = screen_points(rules, hard, limit_predictions(rules.limits, [gp], U))
+    assert unguarded.survives[1] and "rests-on-one-run" not in set(unguarded.reason)
+
+
 def test_guards_never_raise_a_probability():
     X, y = _data(15, seed=5)
     gp = fit_gp(X, y, prior_mean=0.8, hyperparameters=HP)

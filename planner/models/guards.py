@@ -109,11 +109,14 @@ class GuardedLimitModel:
         The limit, which decides which prediction is the worst.
     deletion, local : bool
         Which guards apply.
+    labels : sequence of str, optional
+        The run ids of the model's rows, to name the run a claim rests on.
     """
 
-    def __init__(self, model, *, lower, upper, deletion: bool = True, local: bool = True):
+    def __init__(self, model, *, lower, upper, deletion: bool = True, local: bool = True, labels=None):
         self.model = model
         self.lower, self.upper = lower, upper
+        self.labels = tuple(str(v) for v in labels) if labels is not None else None
         base = getattr(model, "fitted", model)
         self._base = base
         # the noise variance of a new measurement, in response units (the
@@ -128,7 +131,7 @@ class GuardedLimitModel:
             self._var0 = float(self._weights.scale**2 * self._weights.hyperparameters.signal_variance)
 
     def __getattr__(self, name):  # everything but prediction is the wrapped model's
-        if name.startswith("_") or name in ("model", "lower", "upper"):
+        if name.startswith("_") or name in ("model", "lower", "upper", "labels"):
             raise AttributeError(name)
         return getattr(self.model, name)
 
@@ -152,6 +155,10 @@ class GuardedLimitModel:
         return float(np.max(self.local_factor(self._base.X)))
 
     def predict(self, Xs, *, include_noise: bool = False, **kwargs):
+        return self.predict_parts(Xs, include_noise=include_noise, **kwargs)[:2]
+
+    def predict_parts(self, Xs, *, include_noise: bool = False, **kwargs):
+        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`."""
         mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
         noise_var = self._noise_var if include_noise else 0.0
         return self._worst(mean, sd_f, noise_var, *self._guards(Xs))
@@ -160,7 +167,7 @@ class GuardedLimitModel:
         return _GuardedPosterior(self, self.model.posterior_at(Xs), *self._guards(Xs))
 
     def _worst(self, mean, sd_f, noise_var, shifts, factor):
-        """Per point, the (mean, sd) whose probability is the guarded one.
+        """Per point, the (mean, sd) whose probability is the guarded one, and why.
 
         For each run i the probability without it, ``p_-i``, is blended with
         the full model's ``p`` by how near the point is to run i:
@@ -168,16 +175,27 @@ class GuardedLimitModel:
         the answer; far from it the claim must stand without it), and the
         lowest blend over i is kept. The sd is widened until the full model's
         mean gives that probability (the mean is never moved).
+
+        Returns ``(mean, sd, sd_all, leaning)``: ``sd_all`` is the sd with
+        every run counted (the local widening only), ``leaning`` the run id
+        (or row number) whose deletion lowered the figure, "" where none did.
         """
         sd = factor * np.sqrt(sd_f**2 + noise_var)
+        leaning = np.full(mean.shape[0], "", dtype=object)
         if shifts is None or shifts[0].shape[1] == 0:
-            return mean, sd
+            return mean, sd, sd, leaning
         dmu, dvar, near = shifts
         p_full = limit_probability(mean, sd, lower=self.lower, upper=self.upper)
         sd_del = factor[:, None] * np.sqrt(sd_f[:, None] ** 2 + dvar + np.reshape(noise_var, (-1, 1)))
         p_del = limit_probability(mean[:, None] - dmu, sd_del, lower=self.lower, upper=self.upper)
-        p_guard = np.minimum(p_full, np.min(near * p_full[:, None] + (1.0 - near) * p_del, axis=1))
-        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper)
+        blend = near * p_full[:, None] + (1.0 - near) * p_del
+        worst = np.argmin(blend, axis=1)
+        p_worst = blend[np.arange(blend.shape[0]), worst]
+        lowered = p_worst < p_full
+        names = self.labels if self.labels is not None else tuple(f"row {i + 1}" for i in range(blend.shape[1]))
+        leaning[lowered] = [names[i] for i in worst[lowered]]
+        p_guard = np.minimum(p_full, p_worst)
+        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper), sd, leaning
 
 
 def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
@@ -220,6 +238,10 @@ class _GuardedPosterior:
         return self._posterior.n_points
 
     def mean_sd(self, *, include_noise: bool = False):
+        return self.mean_sd_parts(include_noise=include_noise)[:2]
+
+    def mean_sd_parts(self, *, include_noise: bool = False):
+        """As :meth:`GuardedLimitModel.predict_parts`, at the posterior's points."""
         mean, sd_f = self._posterior.mean_sd(include_noise=False)
         noise_var = self._owner._noise_var if include_noise else 0.0
         return self._owner._worst(mean, sd_f, noise_var, self._shifts, self._factor)

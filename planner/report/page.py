@@ -25,6 +25,7 @@ from guardband.planner.errors import OutputError
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.step import PlanResult, safe_runs_mask
 from guardband.safety import cautions as _cautions
+from guardband.safety.calibration import EarnedCalibration
 
 from guardband.planner.report.data import _Geometry, check_map_factors, default_map_factors
 from guardband.planner.report.figures import history_figure, loo_figure, map_figure, slice_figure
@@ -152,6 +153,9 @@ def build_report(
     with mpl.rc_context(REPORT_RC):
         figures = _draw_figures(geo, runs, safe, step_label, map_factors)
     body = (record or {}).get("body", {})
+    earned = _earned_sentence(body)
+    if earned is not None and earned[1]:
+        problems = [*problems, earned[0]]
     models, warnings = model_rows(result)
     fixed = [f"{f.name} = {fmt(float(geo.ranges[j, 0]))}" for j, f in enumerate(p.factors) if not geo.free[j]]
     free_names = [f.name for j, f in enumerate(p.factors) if geo.free[j]]
@@ -174,6 +178,7 @@ def build_report(
                       "none: no run so far meets every limit"),
         "n_runs_used": result.n_runs_used,
         "n_pending": result.n_pending,
+        "earned": earned[0] if earned is not None else None,
         "messages": list(result.messages),
         "flags": list(result.flags),
         "factor_names": list(p.factor_names),
@@ -203,6 +208,17 @@ def build_report(
     }
     html = _environment().get_template("report.html.j2").render(**context)
     return Report(step_label=step_label, html=html, figures=figures.all(), problems=tuple(problems))
+
+
+def _earned_sentence(body: dict) -> tuple[str, bool] | None:
+    """The calibration the campaign had earned when the step was recorded, in words, and
+    whether it contradicts the promise; None for a step without a record of it."""
+    d = body.get("calibration_earned")
+    if not d:
+        return None
+    earned = EarnedCalibration.from_dict(d)
+    text = earned.sentence()
+    return text[0].upper() + text[1:], earned.contradicts
 
 
 def _draw_figures(geo: _Geometry, runs: RunsTable, safe: np.ndarray, step_label: str,

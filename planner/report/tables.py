@@ -66,6 +66,10 @@ def near_miss_rows(result: PlanResult, shown: Sequence[str]) -> list[dict]:
             what = "joint figure"
             value, required = prob(d["joint"], p.screen.threshold), f"≥ {p.screen.threshold:g}"
             gap = f"-{fmt(p.screen.threshold - d['joint'], 3)}"
+        elif reason == "rests-on-one-run":
+            what = "one run carries the claim"
+            value, required = prob(d["joint"], p.screen.threshold), f"≥ {p.screen.threshold:g}"
+            gap = f"-{fmt(p.screen.threshold - d['joint'], 3)}"
         elif reason == "step-too-large" and d["step"] is not None and p.screen.max_step is not None:
             what = "step"
             value, required = fmt(d["step"]), f"≤ {p.screen.max_step:g}"
@@ -132,6 +136,7 @@ _REASON_TEXT = {
     "model-not-fitted": "a limit's model could not be fitted (fail closed)",
     "limit-probability": "a limit's probability below its requirement",
     "joint-below-threshold": "joint figure below the screen threshold",
+    "rests-on-one-run": "would pass only if a single run is trusted: with that run left out it fails",
 }
 
 

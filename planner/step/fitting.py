@@ -92,7 +92,8 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
     local_factor = None
     if local is not None and (local["local"] or local["deletion"]) and len(y) >= LOO_WIDEN_MIN_RUNS:
         model = GuardedLimitModel(model, lower=local["lower"], upper=local["upper"],
-                                  deletion=local["deletion"], local=local["local"])
+                                  deletion=local["deletion"], local=local["local"],
+                                  labels=local.get("labels"))
         local_factor = model.summary_factors()
     summary = ModelSummary(
         response=response, role=role, n_runs=int(len(y)), status=ModelStatus.OK,
@@ -172,7 +173,8 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
                          length_scale_max=cap, widen=protocol.screen.widen_from_loo,
                          short=(lim.lower, lim.upper) if protocol.screen.short_model else None,
                          local=dict(lower=lim.lower, upper=lim.upper, local=protocol.screen.widen_locally,
-                                    deletion=protocol.screen.single_run_check)))
+                                    deletion=protocol.screen.single_run_check,
+                                    labels=tuple(np.asarray(runs.run_ids, dtype=object)[mask]))))
     for job in jobs:
         job.update(restarts=protocol.model.restarts,
                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)

@@ -97,7 +97,7 @@ def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
         return pool, origin, []
     result = pool.result
     if rescue:
-        near = np.flatnonzero(np.isin(result.reason, ("limit-probability", "joint-below-threshold")))
+        near = np.flatnonzero(np.isin(result.reason, ("limit-probability", "joint-below-threshold", "rests-on-one-run")))
         starts = near[np.lexsort((near, -result.joint[near]))][:RESCUE_STARTS]
     else:
         survivors = np.flatnonzero(result.survives)

@@ -132,7 +132,11 @@ def check(
                 f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
         typer.echo(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
                    f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
+        for line in data["guidance"]:
+            typer.echo(f"rule: {line}")
         typer.echo(_cautions_block(data["cautions"]))
+    for line in data["threshold_warnings"]:
+        _err(f"warning: {line}")
     if report.empty:
         _err("Error: the design space is empty. Conflicting constraints:")
         for c in report.conflicts:
@@ -228,6 +232,7 @@ def plan(
             typer.echo(outcome.calibration.sentence())
         if rows:
             typer.echo(render_table(header, rows))
+        _echo_attitudes(result)
         typer.echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
         typer.echo(_cautions_block(cautions))
     if outcome.seed_drawn:
@@ -244,6 +249,24 @@ def plan(
     if not result.proposals:
         _err("Error: no candidate passed the safety screen; see the exclusion table for why")
         raise typer.Exit(EXIT_NO_SAFE)
+
+
+def _echo_attitudes(result) -> None:
+    """What each rule would propose and what the threshold costs (the plan's table output)."""
+    from guardband.planner.app.attitude_text import (COMPARISON_HEADER, PRICE_HEADER, comparison_rows,
+                                                     guidance_lines, price_rows, price_sentence)
+
+    if result.rule_picks:
+        typer.echo("what each ranking rule would propose first (figures for the next measured result):")
+        typer.echo(render_table(COMPARISON_HEADER, comparison_rows(result)))
+        for line in guidance_lines(result):
+            typer.echo(f"rule: {line}")
+    if result.threshold_price:
+        typer.echo("the price of the threshold (best predicted objective among candidates that pass):")
+        typer.echo(render_table(PRICE_HEADER, price_rows(result)))
+        sentence = price_sentence(result)
+        if sentence:
+            typer.echo(f"threshold: {sentence}")
 
 
 # ------------------------------------------------------------------ verify

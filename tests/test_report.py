@@ -405,6 +405,26 @@ def test_report_loads_in_headless_chromium(tablet_campaign, tmp_path):
     assert np.any((top > 200) & (top < 250))
 
 
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed; scripts/install_chromium.sh installs it")
+def test_the_rules_and_the_price_render_in_headless_chromium(tablet_campaign, tmp_path):
+    label = _only_plan(tablet_campaign)["body"]["step_label"]
+    page = tablet_campaign / f"report-{label}.html"
+    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run",
+           f"--user-data-dir={tmp_path / 'profile-dom'}", "--dump-dom", page.resolve().as_uri()]
+    dom = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    html = dom.stdout
+    risk = html[html.index('id="risk"'):html.index('id="slices"')]
+    # the four predictive distributions and the price curve, drawn (inline SVG) in the browser's DOM
+    for fig in ("fig-rules", "fig-price"):
+        assert f'id="{fig}"' in risk
+        part = risk[risk.index(f'id="{fig}"'):]
+        assert "<svg" in part[:part.index("</figure>")]
+    for rule in ("mean", "ei", "pi", "bound"):
+        assert f"<td>{rule}</td>" in risk
+    assert "the price of the threshold" in risk.lower()
+
+
 # ------------------------------------------------------------ model checks
 @pytest.mark.parametrize(
     "coverage, n_runs, status, expected",

@@ -267,6 +267,24 @@ def test_summary_medians_quartiles_and_shares():
     assert cal["promised_joint_mean"] == pytest.approx(0.9) and cal["observed_met_share"] == pytest.approx(0.5)
 
 
+def test_the_downside_counts_planned_runs_worse_than_their_steps_incumbent():
+    problem = PROBLEMS["gramacy"]  # minimise: worse is larger
+    obj = problem.protocol.objective.name
+    h = CampaignHistory(
+        X=np.zeros((6, 2)), Y={obj: np.array([1.0, 0.9, 0.95, 0.7, 1.3, 0.8])},
+        planned=np.arange(6) >= 2, broke_limit=np.zeros(6, bool), best_safe=np.full(6, np.nan),
+        promised=np.where(np.arange(6) >= 2, 0.9, np.nan), stalled=False,
+        incumbent=np.array([np.nan, np.nan, 0.9, 0.9, 0.7, np.nan]))  # the last: no incumbent yet
+    res = SimulationResult(problem, problem.protocol, ("random",), {}, {"random": [h]}, 2, 4, 1, 0,
+                           0.0, {}, 1)
+    d = res.downside("random")
+    # by hand: 0.95 vs 0.9 (worse by 0.05), 0.7 vs 0.9 (better), 1.3 vs 0.7 (worse by 0.6)
+    assert d["n_with_incumbent"] == 3
+    assert d["worse_share"] == pytest.approx(2 / 3)
+    assert d["mean_shortfall"] == pytest.approx((0.05 + 0.6) / 3)
+    assert "planned runs worse than the incumbent" in res.table_text()
+
+
 def test_true_gap_equals_gap_without_noise(small):
     for st in STRATEGIES:
         tr = small.trajectories(st)

@@ -34,6 +34,7 @@ from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_run
 from guardband.planner.models import blas_limit
 from guardband.planner.step import PlanResult, plan_step
 from guardband.planner.app.history import campaign_calibration
+from guardband.planner.step.attitudes import rule_guidance, threshold_binding
 from guardband.safety.calibration import EarnedCalibration
 
 from guardband.safety import cautions as _cautions
@@ -109,9 +110,19 @@ class CheckReport:
             "centre_radius": self.radius,
             "limits": [lim.describe() for lim in p.limits],
             "message": self.message,
+            "guidance": self.guidance(),
+            "threshold_warnings": self.threshold_warnings(),
             "tool_version": __version__,
             "cautions": list(cautions_of(p)),
         }
+
+    def guidance(self) -> list[str]:
+        """The ranking rule's attitude to risk in plain words (and what suits a dose study)."""
+        return rule_guidance(self.protocol)
+
+    def threshold_warnings(self) -> list[str]:
+        """A screen threshold that cannot bind, or per-limit requirements it makes redundant."""
+        return threshold_binding(self.protocol)
 
 
 def check_protocol(path: str | Path) -> CheckReport:

@@ -28,6 +28,8 @@ from guardband.safety import cautions as _cautions
 from guardband.safety.calibration import EarnedCalibration
 
 from guardband.planner.report.data import _Geometry, check_map_factors, default_map_factors
+from guardband.planner.app.attitude_text import COMPARISON_HEADER, comparison_rows, guidance_lines, price_sentence
+from guardband.planner.report.attitude_figures import price_figure, rules_figure
 from guardband.planner.report.figures import history_figure, loo_figure, map_figure, slice_figure
 from guardband.planner.report.style import REPORT_RC, ReportFigure
 from guardband.planner.report.tables import (
@@ -90,10 +92,13 @@ class _Figures:
     loo: ReportFigure | None = None
     loo_rows: list[dict] = field(default_factory=list)
     history: ReportFigure | None = None
+    rules: ReportFigure | None = None
+    price: ReportFigure | None = None
     notes: list[str] = field(default_factory=list)
 
     def all(self) -> tuple[ReportFigure, ...]:
-        return tuple(f for f in (*self.slices, self.map, self.loo, self.history) if f is not None)
+        return tuple(f for f in (self.rules, self.price, *self.slices, self.map, self.loo, self.history)
+                     if f is not None)
 
 
 def _environment() -> Environment:
@@ -195,6 +200,13 @@ def build_report(
         "loo_figure": figures.loo,
         "loo_rows": figures.loo_rows,
         "history_figure": figures.history,
+        "rules_figure": figures.rules,
+        "price_figure": figures.price,
+        "guidance": guidance_lines(result) if result.rule_picks else [],
+        "rule_header": COMPARISON_HEADER,
+        "rule_rows": [{"cells": cells, "x": [fmt(e["x"][n]) if e.get("x") else "-" for n in p.factor_names]}
+                      for cells, e in zip(comparison_rows(result), result.rule_picks)],
+        "price_sentence": price_sentence(result) if result.threshold_price else "",
         "notes": figures.notes,
         "counts": count_rows(result),
         "n_candidates": int(result.pool.shape[0]),
@@ -246,6 +258,8 @@ def _draw_figures(geo: _Geometry, runs: RunsTable, safe: np.ndarray, step_label:
         figures.notes.append("No map: fewer than two factors can move in this design space.")
     figures.loo, figures.loo_rows = loo_figure(geo, salt)
     figures.history = history_figure(geo, runs, safe, result, list(runs.run_ids), salt)
+    figures.rules = rules_figure(result, salt)
+    figures.price = price_figure(result, salt)
     return figures
 
 

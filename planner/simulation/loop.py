@@ -44,6 +44,8 @@ class CampaignHistory:
     best_safe : array (n_runs,)  best measured objective among runs whose
         measured responses met every limit, so far (NaN before any)
     promised : array (n_runs,)  joint figure the screen promised for planned runs (NaN for starts)
+    incumbent : array (n_runs,)  the step's incumbent when each planned run was proposed (NaN for
+        starts and while no run met every limit)
     stalled : bool  True when a step proposed nothing before the budget was spent
     T : dict of response -> array (n_runs,)  true responses
     modes : tuple of str  the mode of each planning step ("improve", "feasibility-first")
@@ -60,6 +62,7 @@ class CampaignHistory:
     T: dict = field(default_factory=dict)
     modes: tuple = ()
     message: str = ""
+    incumbent: np.ndarray | None = None
 
     @property
     def share_broken_planned(self) -> float:
@@ -124,7 +127,7 @@ def best_so_far(protocol: Protocol, Y: dict) -> np.ndarray:
 
 
 def campaign_history(protocol: Protocol, X: np.ndarray, T: dict, Y: dict, planned, *, promised=None,
-                     stalled: bool = False, modes=(), message: str = "") -> CampaignHistory:
+                     stalled: bool = False, modes=(), message: str = "", incumbent=None) -> CampaignHistory:
     """A :class:`CampaignHistory` from the runs made: which broke a limit, the running best.
 
     Parameters
@@ -144,6 +147,7 @@ def campaign_history(protocol: Protocol, X: np.ndarray, T: dict, Y: dict, planne
         best_safe=best_so_far(protocol, Y),
         promised=np.full(X.shape[0], np.nan) if promised is None else np.asarray(promised, dtype=float),
         stalled=stalled, T=T, modes=tuple(modes), message=message,
+        incumbent=np.full(X.shape[0], np.nan) if incumbent is None else np.asarray(incumbent, dtype=float),
     )
 
 
@@ -221,6 +225,7 @@ def run_campaign(
     T, Y = lab(X)
     planned = [False] * X.shape[0]
     promised = [np.nan] * X.shape[0]
+    incumbents = [np.nan] * X.shape[0]
     stalled, message, modes = False, "", []
     warm: dict = {}
     step = 0
@@ -229,7 +234,7 @@ def run_campaign(
         k = min(protocol.batch.size, budget - sum(planned))
         try:
             result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k,
-                               warm_start=warm, pool_size=pool_size)
+                               warm_start=warm, pool_size=pool_size, explain=False)
         except ModelError as exc:
             stalled, message = True, f"step {step + 1}: {exc}"
             break
@@ -246,5 +251,6 @@ def run_campaign(
         T = {r: np.concatenate([T[r], t[r]]) for r in protocol.response_names}
         planned += [True] * Xn.shape[0]
         promised += [p.joint for p in result.proposals]
+        incumbents += [result.incumbent["value"] if result.incumbent else np.nan] * len(result.proposals)
     return campaign_history(protocol, X, T, Y, planned, promised=promised, stalled=stalled, modes=modes,
-                            message=message)
+                            message=message, incumbent=incumbents)

@@ -162,6 +162,7 @@ class SimulationResult:
         rows = []
         for row, st in zip(self.summary_rows([self.budget]), self.strategies):
             cal = self.calibration(st)
+            cal.update(self.downside(st))
             row = dict(row)
             row["same_as"] = self.same_as.get(st, "")
             row["stalled"] = int(sum(h.stalled for h in self.histories[st]))
@@ -183,6 +184,24 @@ class SimulationResult:
             "observed_met_share": float(np.mean(m[has])) if np.any(has) else float("nan"),
             "n_promised": int(np.sum(has)),
         }
+
+    def downside(self, strategy: str) -> dict:
+        """How the rule's attitude shows in outcomes: over planned runs made while there was an
+        incumbent (all seeds), the share whose measured objective came out worse than the
+        incumbent of their step, and the mean shortfall below it (0 for a run that was not worse)."""
+        sign = 1.0 if self.protocol.maximize else -1.0
+        obj = self.protocol.objective.name
+        short = []
+        for h in self.histories[strategy]:
+            if obj not in h.Y:
+                continue
+            inc = h.incumbent if h.incumbent is not None else np.full(h.planned.shape, np.nan)
+            has = h.planned & np.isfinite(inc) & np.isfinite(h.Y[obj])
+            short.append(np.maximum(sign * (inc[has] - h.Y[obj][has]), 0.0))
+        s = np.concatenate(short) if short else np.zeros(0)
+        return {"worse_share": float(np.mean(s > 0)) if s.size else float("nan"),
+                "mean_shortfall": float(np.mean(s)) if s.size else float("nan"),
+                "n_with_incumbent": int(s.size)}
 
     # -------------------------------------------------------------- output
     CSV_COLUMNS = ("strategy", "planned_runs", "seeds", "best_q25", "best_median", "best_q75",
@@ -253,6 +272,12 @@ class SimulationResult:
                  render_table(head2, rows2)]
         if rows3:
             parts += ["", "calibration of the screen (planned runs, all seeds):", render_table(head3, rows3)]
+        head4 = ["strategy", "planned runs worse than the incumbent", "mean shortfall", "runs"]
+        rows4 = [[_label(r), _pct(r["worse_share"]), _fmt(r["mean_shortfall"]), r["n_with_incumbent"]]
+                 for r in final if r["n_with_incumbent"]]
+        if rows4:
+            parts += ["", "the downside of each strategy (planned runs made while there was an incumbent; "
+                          "measured objective against the incumbent of their step):", render_table(head4, rows4)]
         return "\n".join(parts)
 
     def to_dict(self) -> dict:

@@ -39,6 +39,7 @@ from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.settings import Z95
 from guardband.planner.step.acquisition import all_values, score as rule_score
+from guardband.planner.step.attitudes import rule_picks, threshold_price
 from guardband.planner.step.batch import Pool, greedy_batch
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
@@ -142,6 +143,7 @@ def plan_step(
     count: int | None = None,
     warm_start: dict | None = None,
     pool_size: int | None = None,
+    explain: bool = True,
 ) -> PlanResult:
     """Run one planning step.
 
@@ -160,6 +162,9 @@ def plan_step(
         Hyperparameters by response name (from the last plan) tried first.
     pool_size : int, optional
         Overrides the protocol's pool size.
+    explain : bool
+        Also find what each ranking rule would propose and what each
+        threshold costs (:mod:`.attitudes`); the simulator turns it off.
 
     Returns
     -------
@@ -199,6 +204,8 @@ def plan_step(
     pool, origin, more = _refine_phase(ctx, pool, origin, mode, scores_of, inc_value, rank_kw)
     messages += more
 
+    picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []
+    price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
     chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize)
     messages += more
     # all four values from the models fitted to real data (EI and PI are NaN,
@@ -212,5 +219,5 @@ def plan_step(
         n_runs_used=int(used.sum()), n_pending=int(runs.pending.sum()), flags=runs.flags,
         fitted={protocol.objective.name: models.objective,
                 **{lim.name: lm for lim, lm in zip(protocol.limits, models.limits)}},
-        space=space,
+        space=space, rule_picks=picks, threshold_price=price,
     )

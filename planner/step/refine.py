@@ -30,19 +30,18 @@ FD_STEP = 1e-6
 REFINE_MARGIN = 1e-3
 
 
-def _values_at(ctx: StepContext, X, mode: str, inc_value, rank_kw):
+def _values_at(ctx: StepContext, X, mode: str, inc_value, rank_kw, rule: str):
     """Score (to maximise) and screen slack (>= 0 where it passes) at rows X."""
-    protocol = ctx.protocol
     U = ctx.scaler.unit(X)
     P, J = figures_at(ctx.limit_predictions(U), U.shape[0], method=ctx.rules.joint)
     if mode == Mode.FEASIBILITY_FIRST:
         score = J
     else:
         mu, sd = ctx.models.objective.predict(U)
-        if protocol.ranking.rule == "ei":
+        if rule == "ei":
             score = log_expected_improvement(mu, sd, inc_value, maximize=rank_kw["maximize"])
         else:
-            score = rule_score(protocol.ranking.rule, mu, sd, inc_value, **rank_kw)
+            score = rule_score(rule, mu, sd, inc_value, **rank_kw)
     # aim a little inside the screen (REFINE_MARGIN) so that the refined
     # point still passes it after rounding
     req = np.array([lim.probability for lim in ctx.rules.limits]) + REFINE_MARGIN
@@ -88,8 +87,11 @@ def _linear_constraints(space, x0, cont, lo, span) -> list[dict]:
     return cons
 
 
-def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, rescue: bool = False) -> np.ndarray:
-    """Refine the pool candidates ``top`` locally; returns the refined points (protocol units)."""
+def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, rescue: bool = False,
+           rule: str | None = None) -> np.ndarray:
+    """Refine the pool candidates ``top`` locally for ``rule`` (default the protocol's);
+    returns the refined points (protocol units)."""
+    rule = ctx.protocol.ranking.rule if rule is None else rule
     space = ctx.space
     free = ctx.scaler.free.copy()
     for j in space.levels:
@@ -99,7 +101,7 @@ def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, resc
         return np.zeros((0, X_pool.shape[1]))
     lo = space.lower[cont]
     span = np.where(space.upper[cont] - lo > 0, space.upper[cont] - lo, 1.0)
-    values_at = lambda X: _values_at(ctx, X, mode, inc_value, rank_kw)
+    values_at = lambda X: _values_at(ctx, X, mode, inc_value, rank_kw, rule)
     out = []
     for i in top:
         x0 = X_pool[i].copy()

@@ -106,6 +106,10 @@ class PlanResult:
     n_pending: int
     flags: tuple[str, ...] = field(default=())
     version: str = __version__
+    #: What each ranking rule would propose, and what each threshold costs
+    #: (:mod:`.attitudes`); empty when the step was asked not to explain.
+    rule_picks: list = field(default_factory=list)
+    threshold_price: list = field(default_factory=list)
     #: Fitted models by response name (None where a limit could not vouch), and
     #: the design space; for reports and diagnostics, not part of the record.
     fitted: dict = field(default_factory=dict, repr=False, compare=False)
@@ -197,6 +201,8 @@ class PlanResult:
             "warm_start": self.warm_start,
             "proposals": self.proposal_dicts(),
             "near_misses": self.near_misses(),
+            "rule_picks": list(self.rule_picks),
+            "threshold_price": list(self.threshold_price),
             "messages": list(self.messages),
             "flags": list(self.flags),
         }

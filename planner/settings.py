@@ -71,3 +71,8 @@ FAMILY_OPTIMUM_POLISH = 2
 #: limit. Runs that all read alike (a saturated response) say nothing about
 #: how far the response can move once it leaves them.
 LIMIT_SIGNAL_VARIANCE_MIN = 1.0
+
+# --------------------------------------------- campaign folders
+#: Largest input copy (protocol or runs file) a replay or a summary reads
+#: from a campaign folder; a larger file is refused, not read.
+CAMPAIGN_FILE_MAX_BYTES = 64 * 2**20

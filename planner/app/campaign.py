@@ -273,7 +273,7 @@ def _leftovers(folder: Path, log_name: str) -> list[Path]:
             name = path.name
             if not (name.startswith(".") and name.endswith(".tmp")):
                 continue
-            inner = name[1:]
+            inner = name.lstrip(".")
             if base != folder or inner.startswith((*_STEP_PREFIXES, log_name)):
                 out.append(path)
     return out

@@ -110,7 +110,7 @@ class _Geometry:
 
     def feasible_levels(self, j: int) -> np.ndarray:
         lv = self.levels[j]
-        tol = FEASIBILITY_TOL * max(1.0, float(np.max(np.abs(lv))))
+        tol = FEASIBILITY_TOL * float(self.space.factor_scale[j])
         lo, hi = self.ranges[j]
         return lv[(lv >= lo - tol) & (lv <= hi + tol)]
 

@@ -19,6 +19,7 @@ are shared with those modules, not with callers.
 
 from __future__ import annotations
 
+import dataclasses
 import types
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -147,6 +148,62 @@ class DesignSpace:
         if len(units) != d:
             raise ValueError(f"units needs {d} entries, got {len(units)}")
         setattr_(self, "units", units)
+        # Normalise every rule row to its own scale, measured in factor-scaled
+        # units, before any tolerance applies: a rule and its multiples are
+        # the same rule (1e-13 * x1 <= 1e-14 is x1 <= 0.1).
+        for a_name, b_name in (("A_eq", "b_eq"), ("A_ub", "b_ub")):
+            A, b = self.normalise_rows(getattr(self, a_name), getattr(self, b_name))
+            setattr_(self, a_name, read_only(A))
+            setattr_(self, b_name, read_only(b))
+
+    # ------------------------------------------------------------- scale-free
+    @cached_property
+    def _scale(self) -> np.ndarray:
+        """Each factor's magnitude: the largest absolute bound or level (1 for a factor fixed at 0).
+
+        Every tolerance of this package applies to the space divided by
+        these (:attr:`_unit`), so a study written in mol/L behaves as the
+        same study written in nmol/L.
+        """
+        s = np.maximum(np.abs(self.lower), np.abs(self.upper))
+        for j, lv in self.levels.items():
+            s[j] = max(s[j], float(np.max(np.abs(lv))))
+        return read_only(np.where(s > 0, s, 1.0))
+
+    @property
+    def factor_scale(self) -> np.ndarray:
+        """Each factor's magnitude (largest absolute bound or level; 1 for a factor fixed at 0)."""
+        return self._scale
+
+    def normalise_rows(self, A, b) -> tuple[np.ndarray, np.ndarray]:
+        """Rows ``A x <= b`` (or ``==``) divided by their largest coefficient in factor-scaled units.
+
+        The one home of the rule: the design space's own rows and the
+        screen's forbidden regions are normalised by it, so that a fixed
+        tolerance on ``A x - b`` means the same at any scale. A row of
+        zeros is left as it is.
+        """
+        A = np.atleast_2d(np.asarray(A, dtype=float))
+        b = np.atleast_1d(np.asarray(b, dtype=float))
+        norm = np.max(np.abs(A * self._scale), axis=1, initial=0.0)
+        norm = np.where(norm > 0, norm, 1.0)
+        return A / norm[:, None], b / norm
+
+    @cached_property
+    def _unit(self) -> "DesignSpace":
+        """The same space with each factor divided by its :attr:`_scale` (itself when all are 1)."""
+        s = self._scale
+        if np.all(s == 1.0):
+            return self
+        return DesignSpace(
+            self.names, self.lower / s, self.upper / s, self.A_eq * s, self.b_eq,
+            self.A_ub * s, self.b_ub, self.eq_labels, self.ub_labels,
+            {j: lv / s[j] for j, lv in self.levels.items()}, self.units,
+        )
+
+    def _fixed(self, ranges: np.ndarray) -> np.ndarray:
+        """Factors whose real range is narrower than FIXED_RANGE_TOL of their magnitude."""
+        return (ranges[:, 1] - ranges[:, 0]) < FIXED_RANGE_TOL * self._scale
 
     # ------------------------------------------------------------------ basics
     @property
@@ -254,13 +311,17 @@ class DesignSpace:
         ----------
         X : array of shape (n, n_factors) or (n_factors,)
         tol : float
-            Absolute tolerance, multiplied for each rule by max(1, its magnitude).
+            Tolerance in factor-scaled units (each factor divided by its
+            magnitude, each rule by its own), multiplied for each rule by
+            max(1, its magnitude there).
 
         Returns
         -------
         ndarray of bool, shape (n,)
         """
         X = self._as_points(X)
+        if self._unit is not self:
+            return self._unit.contains(X / self._scale, tol=tol)
         s = tol * self._tol_scale
         d, n_l, m_eq = self.n_factors, len(self.levels), self.A_eq.shape[0]
         ok = np.all(X >= self.lower - s[:d], axis=1)
@@ -283,8 +344,9 @@ class DesignSpace:
         x = self._as_points(x)
         if x.shape[0] != 1:
             raise ValueError("describe_violation takes a single point")
-        v = self.violations(x)[0]
-        bad = np.flatnonzero(v > tol * self._tol_scale)
+        unit = self._unit
+        v = unit.violations(x / self._scale)[0]
+        bad = np.flatnonzero(v > tol * unit._tol_scale)
         if bad.size == 0:
             return ""
         g = self.groups[bad[0]]
@@ -314,8 +376,7 @@ class DesignSpace:
     @property
     def free(self) -> np.ndarray:
         """Boolean mask of shape (n_factors,): factors whose real range is not ~0."""
-        r = self._require_nonempty().ranges
-        return (r[:, 1] - r[:, 0]) >= FIXED_RANGE_TOL
+        return ~self._fixed(self._require_nonempty().ranges)
 
     def to_unit(self, X) -> np.ndarray:
         """Scale points to [0, 1] per factor by the real ranges; fixed factors map to 0.5.
@@ -363,7 +424,11 @@ class DesignSpace:
 
     @cached_property
     def _check(self) -> SpaceCheck:
-        return feasibility.space_check(self)
+        if self._unit is self:
+            return feasibility.space_check(self)
+        found, s = self._unit.check(), self._scale
+        return dataclasses.replace(found, ranges=read_only(found.ranges * s[:, None]),
+                                   centre=read_only(found.centre * s))
 
     @cached_property
     def _geometry(self) -> tuple[np.ndarray, Slice | None]:
@@ -382,6 +447,9 @@ class DesignSpace:
         Every row passes :meth:`contains`; the same seed gives the same points.
         Parameters and method: :func:`~guardband.planner.space.sampler.sample`.
         """
+        if self._unit is not self:
+            return self._unit.sample(n, rng=rng, method=method, burn_in=burn_in, thin=thin,
+                                     n_chains=n_chains) * self._scale
         return sampler.sample(self, n, rng=rng, method=method, burn_in=burn_in,
                               thin=thin, n_chains=n_chains)
 
@@ -391,4 +459,6 @@ class DesignSpace:
         ``x`` itself (a copy) when it is already inside; see
         :func:`~guardband.planner.space.projection.project`.
         """
+        if self._unit is not self:
+            return self._unit.project(np.asarray(x, dtype=float) / self._scale) * self._scale
         return projection.project(self, x)

@@ -8,10 +8,10 @@ messages go to stderr. Exit codes (see :mod:`planner.errors`):
 2     usage error (unknown option, missing argument)
 3     bad protocol, or its design space is empty
 4     bad runs data
-5     a decision log failed verification, or a replay differed
+5     a decision log or a file it names failed verification, or a replay differed
 6     no candidate passed the safety screen
 7     a model could not be fitted or cannot be trusted
-8     an output could not be written
+8     an output could not be written, or its path is refused
 ====  ==========================================================
 """
 

@@ -291,7 +291,17 @@ def test_a_step_interrupted_after_its_record_is_put_in_place_by_the_next_writer(
 
 
 # ---------------------------------------------------------- real SIGKILLs
-def _child(folder: str, seed: int, kill_at: int, after: bool) -> None:  # pragma: no cover - forked
+def _trial_inputs(folder: Path, trial: int) -> tuple[Path, Path]:
+    """Inputs of one trial, outside the campaign: new bytes each time, so all four files are new."""
+    protocol = folder.parent / f"protocol-{trial}.toml"
+    protocol.write_text(PROTOCOL.read_text().replace('title = "Corpus blend (invented)"',
+                                                     f'title = "Corpus blend (invented), trial {trial}"'))
+    runs = folder.parent / f"runs-{trial}.csv"
+    runs.write_text(RUNS.read_text().replace(",invented", f",invented (trial {trial})", 1))
+    return protocol, runs
+
+
+def _child(folder: str, seed: int, kill_at: int, after: bool, inputs) -> None:  # pragma: no cover - forked
     """Plan, killing this process with SIGKILL at the ``kill_at``-th rename of the write."""
     devnull = os.open(os.devnull, os.O_WRONLY)
     os.dup2(devnull, 1)
@@ -319,7 +329,7 @@ def _child(folder: str, seed: int, kill_at: int, after: bool) -> None:  # pragma
 
     workflow.commit_step = commit
     try:
-        run_plan(PROTOCOL, RUNS, folder, seed=seed, pool_size=50, count=1, by="tests")
+        run_plan(*inputs, folder, seed=seed, pool_size=50, count=1, by="tests")
         os._exit(0)
     except BaseException:
         os._exit(3)
@@ -342,9 +352,10 @@ def drive(folder: Path, trials: int, seed: int) -> dict:  # pragma: no cover - r
     for trial in range(trials):
         k, after = points[trial % len(points)]
         count_before = ledger.verify(log).count
+        inputs = _trial_inputs(folder, trial)
         pid = os.fork()
         if pid == 0:
-            _child(str(folder), 1000 + trial, k, after)
+            _child(str(folder), 1000 + trial, k, after, inputs)
         _, status = os.waitpid(pid, 0)
         if not os.WIFSIGNALED(status):
             outcomes["survived"] += 1

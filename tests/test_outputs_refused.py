@@ -192,3 +192,15 @@ def test_check_output_target_is_the_one_home_for_the_rule(tmp_path):
     with pytest.raises(OutputError, match="b.csv is a symbolic link"):
         atomic_write_many({tmp_path / "a.csv": b"1", link: b"2"})
     assert not (tmp_path / "a.csv").exists()
+
+
+def test_write_protected_input_copies_with_the_same_bytes_are_left_alone(campaign):
+    """A second step on the same inputs names the same copies; protecting them does not block it."""
+    for copy in (campaign / "inputs").iterdir():
+        os.chmod(copy, 0o444)
+    before = {p.name: p.read_bytes() for p in (campaign / "inputs").iterdir()}
+    res = run("plan", PROTOCOL, RUNS, "--out", campaign, *FAST, "--seed", 7)
+    assert res.exit_code == 0, res.output
+    assert {p.name: p.read_bytes() for p in (campaign / "inputs").iterdir()} == before
+    assert all(stat.S_IMODE(p.stat().st_mode) == 0o444 for p in (campaign / "inputs").iterdir())
+    assert run("verify", campaign / "decisions.jsonl", "--expect-count", 2).exit_code == 0

@@ -156,14 +156,18 @@ def _check_named(folder: Path, item: NamedFile) -> str | None:
 
 
 def _all_entries(folder: Path) -> list[str]:
-    """Every file, link or other non-folder entry under ``folder``, relative, with "/"."""
+    """The entries a campaign layout can hold: the folder's own, and those of ``inputs/``.
+
+    Relative paths with "/"; a sub-folder other than ``inputs/`` is one
+    entry (reports keep their figures in ``figures-<label>/``), and links
+    are entries, never followed.
+    """
     out = []
-    for root, dirs, files in os.walk(folder, followlinks=False):
-        base = Path(root)
-        links = [d for d in dirs if (base / d).is_symlink()]
-        dirs[:] = sorted(d for d in dirs if d not in links)
-        for name in sorted([*files, *links]):
-            out.append((base / name).relative_to(folder).as_posix())
+    for path in sorted(folder.iterdir()):
+        if path.name == INPUTS and path.is_dir() and not path.is_symlink():
+            out.extend(f"{INPUTS}/{inner.name}" for inner in sorted(path.iterdir()))
+        else:
+            out.append(path.name)
     return out
 
 
@@ -252,6 +256,14 @@ def read_input_copy(folder: str | Path, entry: Any, *, where: str) -> tuple[Path
 
 
 # ------------------------------------------------------------------ writing
+def _same_file(path: Path, data: bytes) -> bool:
+    """Whether ``path`` is a regular file (not a link) holding exactly ``data``."""
+    try:
+        return os.lstat(path).st_size == len(data) and _digest_of(path) == hashlib.sha256(data).hexdigest()
+    except OSError:
+        return False
+
+
 def pending_name(name: str) -> str:
     """The hidden name a step file waits under until its record is in the log."""
     return f".{name}{_PENDING}"
@@ -297,13 +309,17 @@ def settle(folder: Path, log_path: Path) -> list[str]:
     for path in _leftovers(folder, log_path.name):
         final = _final_of(path.name)
         rel = (path.parent / final).relative_to(folder).as_posix() if final else None
-        target = path.parent / final if final else None
-        if (rel in wanted and not os.path.lexists(target)
-                and _digest_of(path) == wanted[rel]):
-            os.replace(path, target)
-            placed.append(rel)
-        else:
-            path.unlink(missing_ok=True)
+        try:
+            if not stat.S_ISREG(os.lstat(path).st_mode):
+                continue  # not ours to remove; verify names it
+            if rel in wanted and not os.path.lexists(path.parent / final) \
+                    and _digest_of(path) == wanted[rel]:
+                os.replace(path, path.parent / final)
+                placed.append(rel)
+            else:
+                path.unlink()
+        except OSError:
+            continue  # left for verify to name; the step's own files are checked next
     return placed
 
 
@@ -319,7 +335,8 @@ def commit_step(
     """Write a step's files and append its record, all or nothing.
 
     Under the log's lock: leftovers of an interrupted step are settled;
-    every target is checked (:func:`check_output_target`); each file is
+    the folder must pass :func:`check_folder`; every target not already in
+    place with the same bytes is checked (:func:`check_output_target`) and
     written under its pending name; the record is appended; the pending
     files are renamed into place. If anything fails before the append, the
     pending files are removed and the log is unchanged.
@@ -335,10 +352,13 @@ def commit_step(
             if not found.ok:
                 raise VerificationError(f"refusing to add a step to the campaign folder {folder}: "
                                         + "; ".join(found.problems))
-        for target in files:
+        # a file already in place with the same bytes (the same inputs as an
+        # earlier step) is left as it is, even if write-protected
+        todo = {target: data for target, data in files.items() if not _same_file(target, data)}
+        for target in todo:
             check_output_target(target)
         try:
-            for target, data in files.items():
+            for target, data in todo.items():
                 pending = target.parent / pending_name(target.name)
                 staged.append((pending, target))
                 atomic_write_bytes(pending, data)

@@ -116,3 +116,35 @@ def test_the_same_study_in_three_units_plans_the_same():
         np.testing.assert_allclose(x, ref_x, rtol=1e-5, atol=1e-7, err_msg=unit)
         np.testing.assert_allclose([p.joint for p in result.proposals], [p.joint for p in ref.proposals],
                                    rtol=1e-5, atol=1e-7, err_msg=unit)
+
+
+def _temperature_study(unit: str, shift: float) -> dict:
+    data = study("nmol/L")
+    data["factors"][1] = {"name": "b", "kind": "continuous", "lower": 20.0 + shift, "upper": 40.0 + shift,
+                          "unit": unit}
+    data["constraints"] = [{"rule": f"b <= {35.0 + shift!r}"}, {"rule": f"a + 0.01 * b <= {0.5 + 0.01 * (30 + shift)!r}"}]
+    data["screen"].pop("forbidden")
+    return data
+
+
+def test_an_offset_unit_gives_the_same_space():
+    """Degrees Celsius and kelvin: the same ranges, centre and membership after the shift."""
+    celsius = parse_protocol(_temperature_study("degC", 0.0)).design_space()
+    kelvin = parse_protocol(_temperature_study("K", 273.15)).design_space()
+    c, k = celsius.check(), kelvin.check()
+    assert not c.empty and not k.empty
+    np.testing.assert_allclose(k.ranges - [[0, 0], [273.15, 273.15]], c.ranges, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(k.centre - [0, 273.15], c.centre, rtol=0, atol=1e-9)
+    for point in ([0.1, 30.0], [0.1, 35.5], [0.45, 25.0]):
+        assert celsius.contains([point])[0] == kelvin.contains([[point[0], point[1] + 273.15]])[0]
+
+
+def test_a_narrow_span_far_from_zero_is_not_taken_for_fixed():
+    data = study("nmol/L")
+    data["factors"][1] = {"name": "b", "kind": "continuous", "lower": 1e6, "upper": 1e6 + 1e-3}
+    data["constraints"] = [{"rule": f"b <= {1e6 + 0.5e-3!r}"}]
+    data["screen"].pop("forbidden")
+    space = parse_protocol(data).design_space()
+    check = space.check()
+    assert bool(space.free[1])
+    assert check.ranges[1, 1] - check.ranges[1, 0] == pytest.approx(0.5e-3, rel=1e-6)

@@ -148,9 +148,9 @@ class DesignSpace:
         if len(units) != d:
             raise ValueError(f"units needs {d} entries, got {len(units)}")
         setattr_(self, "units", units)
-        # Normalise every rule row to its own scale, measured in factor-scaled
-        # units, before any tolerance applies: a rule and its multiples are
-        # the same rule (1e-13 * x1 <= 1e-14 is x1 <= 0.1).
+        # Normalise every rule row to its own scale (its largest coefficient
+        # times that factor's declared span) before any tolerance applies: a
+        # rule and its multiples are the same rule (1e-13 * x1 <= 1e-14 is x1 <= 0.1).
         for a_name, b_name in (("A_eq", "b_eq"), ("A_ub", "b_ub")):
             A, b = self.normalise_rows(getattr(self, a_name), getattr(self, b_name))
             setattr_(self, a_name, read_only(A))
@@ -158,25 +158,41 @@ class DesignSpace:
 
     # ------------------------------------------------------------- scale-free
     @cached_property
-    def _scale(self) -> np.ndarray:
-        """Each factor's magnitude: the largest absolute bound or level (1 for a factor fixed at 0).
+    def _frame(self) -> tuple[np.ndarray, np.ndarray]:
+        """Offset and scale of each factor: ``x = offset + scale * u`` maps [0, 1] onto its declared span.
 
-        Every tolerance of this package applies to the space divided by
-        these (:attr:`_unit`), so a study written in mol/L behaves as the
-        same study written in nmol/L.
+        The span is the declared bounds joined with the discrete levels; a
+        factor fixed by its bounds is scaled by its magnitude (1 at 0).
+        Every tolerance of this package applies to the space in these
+        coordinates (:attr:`_unit`), so a study written in mol/L behaves as
+        the same study written in nmol/L, or offset (kelvin, not degrees C).
         """
-        s = np.maximum(np.abs(self.lower), np.abs(self.upper))
+        lo, hi = self.lower.copy(), self.upper.copy()
         for j, lv in self.levels.items():
-            s[j] = max(s[j], float(np.max(np.abs(lv))))
-        return read_only(np.where(s > 0, s, 1.0))
+            lo[j], hi[j] = min(lo[j], lv[0]), max(hi[j], lv[-1])
+        width, magnitude = hi - lo, np.maximum(np.abs(lo), np.abs(hi))
+        scale = np.where(width > 0, width, np.where(magnitude > 0, magnitude, 1.0))
+        return read_only(lo), read_only(scale)
+
+    @property
+    def _scale(self) -> np.ndarray:
+        return self._frame[1]
 
     @property
     def factor_scale(self) -> np.ndarray:
-        """Each factor's magnitude (largest absolute bound or level; 1 for a factor fixed at 0)."""
+        """Each factor's declared span (its magnitude when fixed; 1 for a factor fixed at 0)."""
         return self._scale
 
+    def _to_frame(self, X) -> np.ndarray:
+        offset, scale = self._frame
+        return (np.asarray(X, dtype=float) - offset) / scale
+
+    def _from_frame(self, U) -> np.ndarray:
+        offset, scale = self._frame
+        return offset + np.asarray(U, dtype=float) * scale
+
     def normalise_rows(self, A, b) -> tuple[np.ndarray, np.ndarray]:
-        """Rows ``A x <= b`` (or ``==``) divided by their largest coefficient in factor-scaled units.
+        """Rows ``A x <= b`` (or ``==``) divided by their largest coefficient times a factor's span.
 
         The one home of the rule: the design space's own rows and the
         screen's forbidden regions are normalised by it, so that a fixed
@@ -191,18 +207,19 @@ class DesignSpace:
 
     @cached_property
     def _unit(self) -> "DesignSpace":
-        """The same space with each factor divided by its :attr:`_scale` (itself when all are 1)."""
-        s = self._scale
-        if np.all(s == 1.0):
+        """The same space in the coordinates of :attr:`_frame` (itself when they are the identity)."""
+        offset, scale = self._frame
+        if np.all(scale == 1.0) and np.all(offset == 0.0):
             return self
         return DesignSpace(
-            self.names, self.lower / s, self.upper / s, self.A_eq * s, self.b_eq,
-            self.A_ub * s, self.b_ub, self.eq_labels, self.ub_labels,
-            {j: lv / s[j] for j, lv in self.levels.items()}, self.units,
+            self.names, self._to_frame(self.lower), self._to_frame(self.upper),
+            self.A_eq * scale, self.b_eq - self.A_eq @ offset,
+            self.A_ub * scale, self.b_ub - self.A_ub @ offset, self.eq_labels, self.ub_labels,
+            {j: (lv - offset[j]) / scale[j] for j, lv in self.levels.items()}, self.units,
         )
 
     def _fixed(self, ranges: np.ndarray) -> np.ndarray:
-        """Factors whose real range is narrower than FIXED_RANGE_TOL of their magnitude."""
+        """Factors whose real range is narrower than FIXED_RANGE_TOL of their declared span."""
         return (ranges[:, 1] - ranges[:, 0]) < FIXED_RANGE_TOL * self._scale
 
     # ------------------------------------------------------------------ basics
@@ -321,7 +338,7 @@ class DesignSpace:
         """
         X = self._as_points(X)
         if self._unit is not self:
-            return self._unit.contains(X / self._scale, tol=tol)
+            return self._unit.contains(self._to_frame(X), tol=tol)
         s = tol * self._tol_scale
         d, n_l, m_eq = self.n_factors, len(self.levels), self.A_eq.shape[0]
         ok = np.all(X >= self.lower - s[:d], axis=1)
@@ -345,7 +362,7 @@ class DesignSpace:
         if x.shape[0] != 1:
             raise ValueError("describe_violation takes a single point")
         unit = self._unit
-        v = unit.violations(x / self._scale)[0]
+        v = unit.violations(self._to_frame(x))[0]
         bad = np.flatnonzero(v > tol * unit._tol_scale)
         if bad.size == 0:
             return ""
@@ -426,9 +443,9 @@ class DesignSpace:
     def _check(self) -> SpaceCheck:
         if self._unit is self:
             return feasibility.space_check(self)
-        found, s = self._unit.check(), self._scale
-        return dataclasses.replace(found, ranges=read_only(found.ranges * s[:, None]),
-                                   centre=read_only(found.centre * s))
+        found = self._unit.check()
+        return dataclasses.replace(found, ranges=read_only(self._from_frame(found.ranges.T).T),
+                                   centre=read_only(self._from_frame(found.centre)))
 
     @cached_property
     def _geometry(self) -> tuple[np.ndarray, Slice | None]:
@@ -448,8 +465,8 @@ class DesignSpace:
         Parameters and method: :func:`~guardband.planner.space.sampler.sample`.
         """
         if self._unit is not self:
-            return self._unit.sample(n, rng=rng, method=method, burn_in=burn_in, thin=thin,
-                                     n_chains=n_chains) * self._scale
+            return self._from_frame(self._unit.sample(n, rng=rng, method=method, burn_in=burn_in,
+                                                      thin=thin, n_chains=n_chains))
         return sampler.sample(self, n, rng=rng, method=method, burn_in=burn_in,
                               thin=thin, n_chains=n_chains)
 
@@ -460,5 +477,5 @@ class DesignSpace:
         :func:`~guardband.planner.space.projection.project`.
         """
         if self._unit is not self:
-            return self._unit.project(np.asarray(x, dtype=float) / self._scale) * self._scale
+            return self._from_frame(self._unit.project(self._to_frame(x)))
         return projection.project(self, x)

@@ -20,7 +20,6 @@ from typer.testing import CliRunner
 from guardband.planner.cli import app
 from guardband.planner.errors import EXIT_IO, EXIT_USAGE, EXIT_VERIFY, OutputError
 
-from conftest import PROTOCOLS
 from test_campaign_files import FAST, PROTOCOL, RUNS, snapshot
 
 runner = CliRunner()

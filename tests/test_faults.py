@@ -4,9 +4,9 @@ The kill test is real (50 trials): a ``guardband plan`` process is killed with S
 To afford many trials, a driver process (this file run as a script)
 imports the tool once and forks one child per trial; the child runs the
 command line's ``main()`` exactly as ``guardband plan`` does. Most kills
-are aimed at the writing phase: the driver watches the campaign's
-``inputs/`` folder, whose modification time changes when the first output
-file is created, and kills after a random part of the writing time
+are aimed at the writing phase: the driver watches the campaign folder,
+whose modification time changes when the first output file is created
+(under its pending name), and kills after a random part of the writing time
 measured beforehand; the other kills fall anywhere in the run. No hook in
 the tool is used.
 
@@ -46,9 +46,11 @@ HERE = Path(__file__).resolve().parent / "bad_inputs"
 PROTOCOL = HERE / "good_blend.toml"
 RUNS = HERE / "good_blend_runs.csv"
 N_TRIALS = 50
-#: the folder whose modification time marks the start of writing (the input
-#: copies are written first, each through a new temporary file there)
-WATCH = "inputs"
+#: the folder whose modification time marks the start of writing: every
+#: trial uses the same inputs, whose copies are already in place and are left
+#: alone, so the first new entry is the exclusion table's temporary file in
+#: the campaign folder itself
+WATCH = "."
 
 
 # ------------------------------------------------------------------ checks

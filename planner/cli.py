@@ -8,10 +8,10 @@ messages go to stderr. Exit codes (see :mod:`planner.errors`):
 2     usage error (unknown option, missing argument)
 3     bad protocol, or its design space is empty
 4     bad runs data
-5     a decision log failed verification, or a replay differed
+5     a decision log or a file it names failed verification, or a replay differed
 6     no candidate passed the safety screen
 7     a model could not be fitted or cannot be trusted
-8     an output could not be written
+8     an output could not be written, or its path is refused
 ====  ==========================================================
 """
 
@@ -52,6 +52,8 @@ class Format(str, Enum):
 
 
 FORMAT_HELP = "Output format on stdout: table (readable), csv or json."
+BY_HELP = ("Operator name recorded on the record (default: $GUARDBAND_OPERATOR, else the login "
+           "name; the record says which).")
 
 
 class Delimiter(str, Enum):
@@ -63,6 +65,13 @@ class Delimiter(str, Enum):
 class Decimal(str, Enum):
     point = "."
     comma = ","
+
+
+def _nonempty_out(value):
+    """``--out ""`` would name the current folder; refuse it as a usage error."""
+    if value is not None and not str(value).strip():
+        raise typer.BadParameter("is empty; give a file or folder name", param_hint="--out")
+    return value
 
 
 def _err(text: str = "") -> None:
@@ -151,7 +160,8 @@ def check(
 def start(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
     runs: int = typer.Option(..., "--runs", "-n", min=1, max=10000, help="How many starting runs."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Write the design as CSV to this file."),
+    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
+                                      help="Write the design as CSV to this file."),
     seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's)."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
@@ -189,7 +199,8 @@ def start(
 def plan(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
     runs: Path = typer.Argument(..., help="The runs file (CSV, tab-separated text or .xlsx) with the runs made so far."),
-    out: Path = typer.Option(..., "--out", "-o", help="Campaign folder: plan, exclusions, decision log."),
+    out: str = typer.Option(..., "--out", "-o", callback=_nonempty_out,
+                            help="Campaign folder: plan, exclusions, decision log."),
     count: Optional[int] = typer.Option(None, "--count", "-k", min=1, max=100,
                                         help="How many runs to propose (default: the protocol's batch size)."),
     seed: Optional[int] = typer.Option(None, "--seed", min=0, max=2**63 - 1,
@@ -201,14 +212,15 @@ def plan(
                                               help="Decimal mark of the runs file's numbers (default: found from the cells)."),
     sheet: Optional[str] = typer.Option(None, "--sheet", help="Sheet of an .xlsx runs file (default: the first)."),
     report: bool = typer.Option(False, "--report", help="Also write the HTML report and PNG figures of this step into --out."),
+    by: Optional[str] = typer.Option(None, "--by", help=BY_HELP),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
     from guardband.planner.app.workflow import cautions_of, plan_table, run_plan
 
-    outcome = run_plan(protocol, runs, out, count=count, seed=seed, pool_size=pool,
+    outcome = run_plan(protocol, runs, Path(out), count=count, seed=seed, pool_size=pool,
                        delimiter=delimiter.value if delimiter else None,
-                       decimal=decimal.value if decimal else None, sheet=sheet)
+                       decimal=decimal.value if decimal else None, sheet=sheet, by=by)
     result = outcome.result
     cautions = cautions_of(result.protocol)
     header, rows = plan_table(result, step_label=outcome.record["body"]["step_label"])
@@ -276,35 +288,66 @@ def verify(
     log: Path = typer.Argument(..., help="The decision log (decisions.jsonl)."),
     expect_head: Optional[str] = typer.Option(None, "--expect-head", help="Head hash printed by an earlier report."),
     expect_count: Optional[int] = typer.Option(None, "--expect-count", min=0, help="Number of records the log must have."),
+    accept_empty: bool = typer.Option(False, "--accept-empty", help="Let a log with no record pass "
+                                      "(by default an empty log fails: it proves nothing)."),
     summary: bool = typer.Option(False, "--summary", help="Print the reviewer's summary of every planning step "
                                  "(inputs, exclusion counts, near misses, corrections) once the log verifies."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
-    """Verify a decision log's hash chain and name the first bad record."""
-    from guardband.safety import ledger
+    """Verify a decision log's hash chain and every file its records name; name the first problem."""
+    from guardband.planner.app.audit import verify_campaign
 
     try:
-        result = ledger.verify(log, expect_head=expect_head, expect_count=expect_count)
+        verdict = verify_campaign(log, expect_head=expect_head, expect_count=expect_count,
+                                  accept_empty=accept_empty)
     except ValueError as exc:
         _err(f"Error: {exc}")
         raise typer.Exit(2)
-    if summary and result.ok:
+    result = verdict.log
+    if summary and verdict.ok:
         from guardband.planner.app.review import summarize_log
 
         typer.echo(summarize_log(log).render(format.value), nl=False)
     elif format is Format.json:
-        typer.echo(_json(result.to_dict()))
+        typer.echo(_json(verdict.to_dict()))
     elif format is Format.csv:
         d = result.to_dict()
+        d.update({"ok": verdict.ok, "problem": verdict.problem,
+                  "files_checked": verdict.files.checked if verdict.files else None})
         typer.echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
     else:
-        if result.ok:
-            typer.echo(f"ok: {result.count} records, head {result.head}")
+        if verdict.ok:
+            files = f"; {verdict.files.checked} named files match their SHA-256" if verdict.files else ""
+            typer.echo(f"ok: {result.count} records, head {result.head}{files}")
         else:
-            typer.echo(f"FAILED: {result.problem}")
-    if not result.ok:
-        _err(f"Error: decision log {log} failed verification: {result.problem}")
+            typer.echo(f"FAILED: {verdict.problem}")
+    for note in verdict.notes:
+        _err(f"note: {note}")
+    if not verdict.ok:
+        _err(f"Error: decision log {log} failed verification: {verdict.problem}")
         raise typer.Exit(EXIT_VERIFY)
+
+
+# --------------------------------------------------------------- supersede
+@app.command()
+@_guarded
+def supersede(
+    log: Path = typer.Argument(..., help="The decision log (decisions.jsonl)."),
+    record: int = typer.Option(..., "--record", "-r", min=0, help="Index of the record that is superseded."),
+    reason: str = typer.Option(..., "--reason", help="Why, in a sentence (recorded)."),
+    by: Optional[str] = typer.Option(None, "--by", help=BY_HELP),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Append a correction: an earlier record is superseded, why, and by whom (nothing is erased)."""
+    from guardband.planner.app.audit import supersede_record
+
+    rec = supersede_record(log, record, reason, by=by)
+    if format is Format.json:
+        typer.echo(_json(rec))
+    else:
+        op = rec["body"]["operator"]
+        typer.echo(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
+                   f"(by {op['name']}, from {op['source']}); head {rec['hash']}")
 
 
 # ------------------------------------------------------------------ replay
@@ -397,7 +440,8 @@ def simulate(
                                        help="Candidate pool of every planning step (default: the settings')."),
     settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
                                                help="Use the problem's own planner settings (same as '-')."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Also write the CSV to this file."),
+    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
+                                      help="Also write the CSV to this file."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Simulate campaigns on a test problem: what the protocol's settings cost and risk."""
@@ -452,12 +496,13 @@ def simulate(
 @app.command()
 @_guarded
 def demo(
-    out: Path = typer.Option(Path("guardband-demo"), "--out", "-o", help="Folder for everything the demo writes."),
+    out: str = typer.Option("guardband-demo", "--out", "-o", callback=_nonempty_out,
+                            help="Folder for everything the demo writes."),
 ) -> None:
     """Run check, plan, verify and replay on the bundled tablet-blend protocol."""
     from guardband.planner.app.demo import run_demo
 
-    lines = run_demo(out, echo=typer.echo)
+    lines = run_demo(Path(out), echo=typer.echo)
     for line in lines:
         _err(line)
 

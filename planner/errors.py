@@ -23,6 +23,7 @@ __all__ = [
     "NoSafeCandidateError",
     "ModelError",
     "OutputError",
+    "OperatorError",
 ]
 
 EXIT_OK = 0
@@ -75,3 +76,9 @@ class OutputError(GuardbandError):
     """An output file could not be written; previous files are unchanged."""
 
     exit_code = EXIT_IO
+
+
+class OperatorError(GuardbandError):
+    """An operator name (``--by``, ``GUARDBAND_OPERATOR``) or a correction's reason is unusable."""
+
+    exit_code = EXIT_USAGE

@@ -5,14 +5,19 @@ Inner code imports these instead of scattering literals.
 
 from __future__ import annotations
 
-#: Tolerance for "a point lies inside the design space" (absolute, in protocol units).
+#: Tolerance for "a point lies inside the design space", in factor-scaled
+#: units: each factor mapped onto [0, 1] by its declared span (its magnitude
+#: when fixed), each rule divided by its largest coefficient there
+#: (``DesignSpace.normalise_rows``), so the same study written in mol/L or in
+#: nmol/L is judged the same.
 FEASIBILITY_TOL = 1e-9
 #: Tolerance on a mixture total when reading measured runs (absolute, fraction units).
 MIXTURE_SUM_TOL = 2e-3
 #: Relative tolerance (times max(1, |upper bound|)) when a measured run's
 #: factor value is compared with its bounds and discrete levels.
 FACTOR_VALUE_RTOL = 1e-9
-#: A factor whose real range is narrower than this is treated as fixed.
+#: A factor whose real range is narrower than this share of its declared
+#: span (its magnitude when fixed by its bounds) is treated as fixed.
 FIXED_RANGE_TOL = 1e-9
 #: Initial Cholesky jitter, relative to the mean diagonal of the kernel matrix.
 JITTER_START = 1e-10
@@ -71,3 +76,8 @@ FAMILY_OPTIMUM_POLISH = 2
 #: limit. Runs that all read alike (a saturated response) say nothing about
 #: how far the response can move once it leaves them.
 LIMIT_SIGNAL_VARIANCE_MIN = 1.0
+
+# --------------------------------------------- campaign folders
+#: Largest input copy (protocol or runs file) a replay or a summary reads
+#: from a campaign folder; a larger file is refused, not read.
+CAMPAIGN_FILE_MAX_BYTES = 64 * 2**20

@@ -33,20 +33,21 @@ kind ``"correction"`` whose body names the superseded record
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
 import math
 import os
 import re
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from datetime import datetime, timezone
 from typing import Any, Union
 
 import filelock
 
 from guardband.planner.errors import OutputError, VerificationError
-from guardband.planner.app.fileio import atomic_write_bytes
+from guardband.planner.app.fileio import atomic_write_bytes, check_output_target
 from guardband.safety.canonical import canonical_json, canonical_string, to_jsonable, write_canonical
 
 __all__ = [
@@ -56,6 +57,7 @@ __all__ = [
     "VerifyResult",
     "record_hash",
     "append_record",
+    "locked",
     "read_records",
     "verify",
     "verify_or_raise",
@@ -614,6 +616,37 @@ def _build_body(
     return out
 
 
+@contextlib.contextmanager
+def locked(path: PathLike, timeout: float = LOCK_TIMEOUT) -> Iterator[None]:
+    """Hold the writers' lock of a decision log (``<log>.lock``) for the ``with`` block.
+
+    Raises
+    ------
+    OutputError
+        The lock path is a folder, a link or another non-regular file, or
+        the lock could not be taken within ``timeout`` seconds.
+    """
+    lock_path = os.fspath(path) + ".lock"
+    try:
+        check_output_target(lock_path)
+    except OutputError as exc:
+        raise OutputError(f"the lock file of the decision log is refused: {exc}") from None
+    lock = filelock.FileLock(lock_path, timeout=timeout)
+    try:
+        lock.acquire()
+    except filelock.Timeout as exc:
+        raise OutputError(
+            f"could not lock {lock_path} within {timeout:g} s: another process may be "
+            "writing the decision log; try again"
+        ) from exc
+    except OSError as exc:
+        raise OutputError(f"cannot take the lock {lock_path}: {exc.strerror or exc}") from exc
+    try:
+        yield
+    finally:
+        lock.release()
+
+
 def append_record(
     path: PathLike,
     kind: str,
@@ -623,6 +656,7 @@ def append_record(
     supersedes: int | None = None,
     reason: str | None = None,
     lock_timeout: float = LOCK_TIMEOUT,
+    lock_held: bool = False,
 ) -> dict[str, Any]:
     """Append one record to the decision log, creating the log if needed.
 
@@ -644,6 +678,9 @@ def append_record(
         Why; stored in the body. Required and non-empty with ``supersedes``.
     lock_timeout : float, default LOCK_TIMEOUT
         Seconds to wait for another writer.
+    lock_held : bool, default False
+        The caller already holds :func:`locked` for this log (to write
+        other files under the same lock); no lock is taken here.
 
     Returns
     -------
@@ -675,42 +712,36 @@ def append_record(
     path = os.fspath(path)
     content = _build_body(kind, body, supersedes, reason)
     stamp = _format_time(time)
-    lock = filelock.FileLock(path + ".lock", timeout=lock_timeout)
-    try:
-        with lock:
-            try:
-                data = _read_bytes(path)
-            except FileNotFoundError:
-                data = b""
-            except OSError as exc:
-                raise OutputError(
-                    f"cannot read decision log {path}: {exc.strerror or exc}"
-                ) from exc
-            _, existing = _check_chain(data)
-            if not existing.ok:
-                raise VerificationError(
-                    f"refusing to append to decision log {path}: {existing.problem}. "
-                    "The file was not changed"
-                )
-            target = content.get("supersedes")
-            if target is not None and target >= existing.count:
-                raise ValueError(
-                    f"supersedes={target} does not name an earlier record: the log has "
-                    f"{_plural(existing.count)}"
-                    + (f" (0 to {existing.count - 1})" if existing.count else "")
-                )
-            record: dict[str, Any] = {
-                "index": existing.count,
-                "kind": kind,
-                "time": stamp,
-                "prev": existing.head,
-                "body": content,
-            }
-            record["hash"] = record_hash(record)
-            atomic_write_bytes(path, data + canonical_json(record) + b"\n")
-    except filelock.Timeout as exc:
-        raise OutputError(
-            f"could not lock {path}.lock within {lock_timeout:g} s: another process may be "
-            "writing the decision log; try again"
-        ) from exc
+    with contextlib.nullcontext() if lock_held else locked(path, lock_timeout):
+        check_output_target(path)  # before reading: a FIFO or a link is refused, not read
+        try:
+            data = _read_bytes(path)
+        except FileNotFoundError:
+            data = b""
+        except OSError as exc:
+            raise OutputError(
+                f"cannot read decision log {path}: {exc.strerror or exc}"
+            ) from exc
+        _, existing = _check_chain(data)
+        if not existing.ok:
+            raise VerificationError(
+                f"refusing to append to decision log {path}: {existing.problem}. "
+                "The file was not changed"
+            )
+        target = content.get("supersedes")
+        if target is not None and target >= existing.count:
+            raise ValueError(
+                f"supersedes={target} does not name an earlier record: the log has "
+                f"{_plural(existing.count)}"
+                + (f" (0 to {existing.count - 1})" if existing.count else "")
+            )
+        record: dict[str, Any] = {
+            "index": existing.count,
+            "kind": kind,
+            "time": stamp,
+            "prev": existing.head,
+            "body": content,
+        }
+        record["hash"] = record_hash(record)
+        atomic_write_bytes(path, data + canonical_json(record) + b"\n")
     return record

@@ -83,7 +83,9 @@ class ScreenRules:
         limits = limit_rules(protocol)
         regions = []
         for region in protocol.screen.forbidden:
-            A, b, _ = protocol.rule_rows(region.parsed)
+            # normalised as the design space's rows are, so that the screen's
+            # slack on A x - b means the same at any scale of factors and rules
+            A, b = protocol.design_space().normalise_rows(*protocol.rule_rows(region.parsed)[:2])
             regions.append(ForbiddenRegion(region.name, tuple(region.rules), A, b))
         s = protocol.screen
         return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step,

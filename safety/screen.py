@@ -48,8 +48,9 @@ from scipy.special import ndtr
 
 from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules
 
-#: Absolute slack when testing ``A x <= b`` for a forbidden region (the same
-#: feasibility tolerance as the design space's).
+#: Slack when testing ``A x <= b`` for a forbidden region (the same
+#: feasibility tolerance as the design space's; the rows are normalised by
+#: ``DesignSpace.normalise_rows``, so it means the same at any scale).
 REGION_TOL = 1e-9
 
 __all__ = [

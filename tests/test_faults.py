@@ -4,9 +4,9 @@ The kill test is real (50 trials): a ``guardband plan`` process is killed with S
 To afford many trials, a driver process (this file run as a script)
 imports the tool once and forks one child per trial; the child runs the
 command line's ``main()`` exactly as ``guardband plan`` does. Most kills
-are aimed at the writing phase: the driver watches the campaign's
-``inputs/`` folder, whose modification time changes when the first output
-file is created, and kills after a random part of the writing time
+are aimed at the writing phase: the driver watches the campaign folder,
+whose modification time changes when the first output file is created
+(under its pending name), and kills after a random part of the writing time
 measured beforehand; the other kills fall anywhere in the run. No hook in
 the tool is used.
 
@@ -15,7 +15,10 @@ be a prefix of the new one, every file a record names must exist with
 the recorded SHA-256, and every output file must be whole: it parses as
 CSV (or is the exact input copy) and its name's 12-hex-digit digest
 matches its bytes. Temporary files (hidden, ``.tmp``) left by a kill are
-counted, not taken for outputs.
+counted, not taken for outputs; a kill may leave them, but never an output
+file that no record names. After each trial the driver does what the next
+writer does first under the lock (``campaign.settle``), and then nothing
+but whole, recorded files may remain.
 
 A SIGKILL loses nothing already handed to the kernel, so these trials test
 the order of writes, renames and the lock, not the ``fsync`` calls that
@@ -43,9 +46,11 @@ HERE = Path(__file__).resolve().parent / "bad_inputs"
 PROTOCOL = HERE / "good_blend.toml"
 RUNS = HERE / "good_blend_runs.csv"
 N_TRIALS = 50
-#: the folder whose modification time marks the start of writing (the input
-#: copies are written first, each through a new temporary file there)
-WATCH = "inputs"
+#: the folder whose modification time marks the start of writing: every
+#: trial uses the same inputs, whose copies are already in place and are left
+#: alone, so the first new entry is the exclusion table's temporary file in
+#: the campaign folder itself
+WATCH = "."
 
 
 # ------------------------------------------------------------------ checks
@@ -153,7 +158,9 @@ def _wait_for_change(pid: int, path: Path, before: int) -> tuple[bool, int] | No
 
 
 def drive(folder: Path, trials: int, seed: int) -> dict:  # pragma: no cover - runs in the driver
+    from guardband.planner.app.campaign import settle
     from guardband.planner.app.workflow import run_plan
+    from guardband.safety import ledger
 
     rng = random.Random(seed)
     run_plan(PROTOCOL, RUNS, folder, seed=1)  # a campaign with history; warms the imports
@@ -198,16 +205,25 @@ def drive(folder: Path, trials: int, seed: int) -> dict:  # pragma: no cover - r
         killed = ended[0]
         if not killed:
             outcomes["finished_before_kill"] += 1
+        _, at_once = check_campaign(folder, previous["log"])
+        if at_once["unrecorded"] > previous["unrecorded"]:
+            problems.append(f"trial {trial}: the kill left output files that no record names")
+        if at_once["temps"] > previous["temps"]:
+            outcomes["left_temp_files"] += 1
+        # what the next writer does first, under the lock: a step killed between
+        # its record and its renames is put in place; other leftovers are removed
+        with ledger.locked(folder / "decisions.jsonl"):
+            settle(folder, folder / "decisions.jsonl")
         found, state = check_campaign(folder, previous["log"])
         problems += [f"trial {trial}: {p}" for p in found]
+        if state["temps"]:
+            problems.append(f"trial {trial}: {state['temps']} temporary files remain after settling")
         added = state["records"] - previous["records"]
         if added not in (0, 1):
             problems.append(f"trial {trial}: the log went from {previous['records']} to {state['records']} records")
         outcomes["appended" if added == 1 else "not_appended"] += 1
         if state["unrecorded"] > previous["unrecorded"]:
             outcomes["left_unrecorded_files"] += 1
-        if state["temps"] > previous["temps"]:
-            outcomes["left_temp_files"] += 1
         previous = state
     return {"trials": trials, "problems": problems, "outcomes": outcomes, "records": previous["records"],
             "temp_files": previous["temps"], "write_time": write_time, "run_time": run_time}
@@ -231,7 +247,8 @@ def test_plan_killed_at_random_moments_leaves_whole_files_and_a_valid_log(tmp_pa
     assert report["trials"] == N_TRIALS >= 50
     # the kills did land on both sides of the append, and some inside the writing
     assert out["appended"] >= 1 and out["not_appended"] >= 1
-    assert out["left_unrecorded_files"] + out["left_temp_files"] >= 1, out
+    # kills inside the writing left temporary files, never output files that no record names
+    assert out["left_temp_files"] >= 1 and out["left_unrecorded_files"] == 0, out
     # and the real command line agrees about the log
     res = subprocess.run([sys.executable, "-m", "guardband.planner.cli", "verify", str(folder / "decisions.jsonl"),
                           "--expect-count", str(report["records"])],

@@ -21,7 +21,14 @@ fresh install had drawn newer numpy/scipy releases, which moved the last
 digits of both plans; the tests now install with those pins), and the
 screen gained the reason ``rests-on-one-run`` (limits and the joint figure
 are judged with every run counted first; the tablet exclusion table's
-reasons and details changed, its plan and the dose tables did not).
+reasons and details changed, its plan and the dose tables did not). Then
+the design space became scale-free (factors and rules normalised before any
+tolerance): the tablet plan's refined first run moved in its sixth
+significant digit (povidone 0.0110113 -> 0.0110112; four refined rows of the
+exclusion table likewise); every record body gained ``operator`` (set here
+through GUARDBAND_OPERATOR, so it holds no name of this machine), and the
+rule comparison and the price of the threshold (``rule_picks``,
+``threshold_price``).
 """
 
 from __future__ import annotations
@@ -38,6 +45,8 @@ from guardband.safety.canonical import canonical_json
 
 ROOT = Path(__file__).resolve().parents[1]
 
+#: the operator name recorded in the golden bodies
+OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
@@ -61,7 +70,8 @@ def _sha(data: bytes) -> str:
 def test_example_plans_are_byte_identical(tmp_path, name):
     out = tmp_path / name
     res = CliRunner().invoke(app, ["plan", str(ROOT / "protocols" / f"{name}.toml"),
-                                   str(ROOT / "protocols" / f"{name}_runs.csv"), "--out", str(out)])
+                                   str(ROOT / "protocols" / f"{name}_runs.csv"), "--out", str(out)],
+                             env={"GUARDBAND_OPERATOR": OPERATOR})
     assert res.exit_code == 0, res.output
     body = json.loads((out / "decisions.jsonl").read_text().splitlines()[0])["body"]
     got = (_sha((out / body["plan_table"]["file"]).read_bytes()),

@@ -7,13 +7,12 @@ The demo data is invented (see ``protocols/make_demo_runs.py``; shipped as packa
 
 from __future__ import annotations
 
-import shutil
 from importlib import resources
 from pathlib import Path
 from typing import Callable
 
 from guardband.planner.errors import GuardbandError, OutputError
-from guardband.planner.app.fileio import atomic_write_text
+from guardband.planner.app.fileio import atomic_write_bytes, atomic_write_text
 from guardband.planner.app.textable import render_table
 
 __all__ = ["DEMO_PROTOCOL", "DEMO_RUNS", "examples_dir", "run_demo"]
@@ -35,17 +34,23 @@ def examples_dir() -> Path:
 
 def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -> list[str]:
     """Run the demo into ``out``; return the summary lines (also written to SUMMARY.txt)."""
-    from guardband.safety import ledger
 
     from guardband.planner.app.workflow import LOG_NAME, cautions_of, check_protocol, plan_table, replay_record, run_plan
 
+    from guardband.planner.app.audit import verify_campaign
+
     out = Path(out)
     src = examples_dir()
-    out.mkdir(parents=True, exist_ok=True)
+    if out.is_symlink() or (out.exists() and not out.is_dir()):
+        raise OutputError(f"{out} exists and is not a folder; --out names the folder the demo writes into")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the demo folder {out}: {exc.strerror or exc}") from None
     protocol_path = out / DEMO_PROTOCOL
     runs_path = out / DEMO_RUNS
-    shutil.copyfile(src / DEMO_PROTOCOL, protocol_path)
-    shutil.copyfile(src / DEMO_RUNS, runs_path)
+    atomic_write_bytes(protocol_path, (src / DEMO_PROTOCOL).read_bytes())
+    atomic_write_bytes(runs_path, (src / DEMO_RUNS).read_bytes())
     summary: list[str] = []
 
     def say(line: str = "") -> None:
@@ -78,8 +83,11 @@ def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -
 
     say("")
     say("== 3. verify the decision log")
-    v = ledger.verify(out / LOG_NAME, expect_head=outcome.head, expect_count=outcome.count)
-    say(f"{'ok' if v.ok else 'FAILED'}: {v.count} record(s), head {v.head}" + ("" if v.ok else f": {v.problem}"))
+    verdict = verify_campaign(out / LOG_NAME, expect_head=outcome.head, expect_count=outcome.count)
+    v = verdict.log
+    files = f"; {verdict.files.checked} named files match their SHA-256" if verdict.files else ""
+    say(f"{'ok' if verdict.ok else 'FAILED'}: {v.count} record(s), head {v.head}{files}"
+        + ("" if verdict.ok else f": {verdict.problem}"))
 
     say("")
     say("== 4. replay the planning step")

@@ -29,6 +29,8 @@ __all__ = [
     "atomic_write_bytes",
     "atomic_write_text",
     "atomic_write_many",
+    "check_output_target",
+    "read_regular_file",
     "sha256_file",
     "csv_safe_cell",
     "write_csv_text",
@@ -97,6 +99,78 @@ def _target_mode(path: str) -> int:
         return 0o666 & ~_UMASK
 
 
+_KINDS = ((stat.S_ISDIR, "a folder"), (stat.S_ISFIFO, "a FIFO (named pipe)"),
+          (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"),
+          (stat.S_ISSOCK, "a socket"))
+
+
+def _kind_of(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "not a regular file")
+
+
+def check_output_target(path: PathLike) -> None:
+    """Refuse to write ``path`` unless it is a new path or a writable regular file.
+
+    A symbolic link is refused, not followed (writing would replace the
+    link, or through it its target); so are folders, devices, FIFOs and
+    sockets, and a regular file without write permission (a write-protected
+    log or table is not silently rewritten).
+
+    Raises
+    ------
+    OutputError
+        Naming the path and what it is; nothing is written.
+    """
+    path = os.fspath(path)
+    try:
+        info = os.lstat(path)
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise OutputError(f"cannot write {path}: {_describe(exc)}") from exc
+    if stat.S_ISLNK(info.st_mode):
+        raise OutputError(f"{path} is a symbolic link; refusing to write through it or replace it "
+                          "(give a regular file or a new path)")
+    if not stat.S_ISREG(info.st_mode):
+        raise OutputError(f"{path} is {_kind_of(info.st_mode)}, not a regular file; refusing to "
+                          "replace it (give a regular file or a new path)")
+    if not info.st_mode & stat.S_IWUSR or not os.access(path, os.W_OK):
+        raise OutputError(f"{path} is write-protected; refusing to replace it (nothing was changed)")
+
+
+def read_regular_file(path: PathLike, *, max_bytes: int, what: str = "file") -> bytes:
+    """The bytes of a regular file of at most ``max_bytes``; never follows a final symlink.
+
+    Opened without following a final symbolic link and without blocking (a
+    FIFO cannot hang the reader); checked to be a regular file and no
+    larger than ``max_bytes`` before anything is read.
+
+    Raises
+    ------
+    OSError
+        With ``strerror`` saying what is wrong (missing, a link, not a
+        regular file, too large); callers turn it into their own error.
+    """
+    path = os.fspath(path)
+    flags = os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0)
+    try:
+        fd = os.open(path, flags)
+    except OSError as exc:
+        if os.path.islink(path):
+            raise OSError(exc.errno, "it is a symbolic link, which is not followed") from None
+        raise
+    with os.fdopen(fd, "rb") as handle:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):
+            raise OSError(0, f"it is {_kind_of(info.st_mode)}, not a regular file")
+        if info.st_size > max_bytes:
+            raise OSError(0, f"it holds {info.st_size} bytes, more than the {what} limit of {max_bytes}")
+        data = handle.read(max_bytes + 1)
+    if len(data) > max_bytes:
+        raise OSError(0, f"it grew beyond the {what} limit of {max_bytes} bytes while being read")
+    return data
+
+
 def _stage(path: str, data: bytes) -> str:
     """Write ``data`` to a synced temporary file next to ``path``; return its name.
 
@@ -142,7 +216,9 @@ def atomic_write_bytes(path: PathLike, data: bytes) -> None:
     Raises
     ------
     OutputError
-        The file could not be written; it is left exactly as it was and no
+        The file could not be written, or ``path`` is refused by
+        :func:`check_output_target` (a link, a device, a FIFO, a folder, a
+        write-protected file); it is left exactly as it was and no
         temporary file remains.
 
     Notes
@@ -154,6 +230,7 @@ def atomic_write_bytes(path: PathLike, data: bytes) -> None:
     """
     path = os.fspath(path)
     payload = _as_bytes(path, data)
+    check_output_target(path)
     tmp = _stage(path, payload)
     try:
         os.replace(tmp, path)
@@ -229,6 +306,7 @@ def atomic_write_many(files: Mapping[PathLike, bytes | str]) -> list[str]:
             raise ValueError(f"the same file is listed twice: {seen[key]} and {path}")
         seen[key] = path
         payload = content.encode("utf-8") if isinstance(content, str) else _as_bytes(path, content)
+        check_output_target(path)
         entries.append((path, payload))
 
     staged: list[tuple[str, str]] = []

@@ -13,12 +13,12 @@ because a summary of an altered log would mislead.
 
 from __future__ import annotations
 
-import hashlib
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from guardband.planner.errors import GuardbandError
+from guardband.planner.app.campaign import read_input_copy
 from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.app.textable import render_table
@@ -56,6 +56,7 @@ class StepSummary:
     plan_table: dict
     superseded_by: int | None = None
     superseded_reason: str = ""
+    operator: str = "not recorded"
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -73,6 +74,7 @@ class CorrectionSummary:
     supersedes_label: str
     reason: str
     superseded_by: int | None = None
+    operator: str = "not recorded"
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -119,7 +121,7 @@ class ReviewSummary:
         "protocol_author", "protocol_file", "protocol_sha256", "runs_file", "runs_sha256",
         "protocol_fingerprint", "tool_version", "seed", "mode", "ranking_rule", "threshold",
         "n_candidates", "survived", *REASONS, "n_proposals", "n_near_misses", "near_misses",
-        "supersedes", "superseded_by", "reason",
+        "supersedes", "superseded_by", "reason", "operator",
     )
 
     def csv_text(self) -> str:
@@ -139,6 +141,7 @@ class ReviewSummary:
                 "n_proposals": s.n_proposals, "n_near_misses": len(s.near_misses),
                 "near_misses": "; ".join(_near_miss_text(d) for d in s.near_misses),
                 "superseded_by": s.superseded_by, "reason": s.superseded_reason or None,
+                "operator": s.operator,
             }
             row.update({r: s.counts.get(r) for r in REASONS})
             rows.append((s.index, row))
@@ -146,7 +149,7 @@ class ReviewSummary:
             rows.append((c.index, {
                 "index": c.index, "kind": c.kind, "time": c.time, "status": _status(c.superseded_by),
                 "step_label": c.supersedes_label or None, "supersedes": c.supersedes,
-                "superseded_by": c.superseded_by, "reason": c.reason,
+                "superseded_by": c.superseded_by, "reason": c.reason, "operator": c.operator,
             }))
         rows.sort(key=lambda item: item[0])
         comments = [f"Guardband decision-log summary - {self.log}",
@@ -165,6 +168,7 @@ class ReviewSummary:
             out.append("")
             status = f"  [SUPERSEDED by record {s.superseded_by}: {s.superseded_reason}]" if s.superseded_by is not None else ""
             out.append(f"Step {s.step_label} (record {s.index}, {s.time}){status}")
+            out.append(f"  by: {s.operator}")
             pr = s.protocol
             if "problem" in pr:
                 out.append(f"  protocol: {pr['problem']}")
@@ -197,7 +201,8 @@ class ReviewSummary:
             for c in self.corrections:
                 target = f"record {c.supersedes} ({c.supersedes_kind}{' ' + c.supersedes_label if c.supersedes_label else ''})"
                 later = f" [itself superseded by record {c.superseded_by}]" if c.superseded_by is not None else ""
-                out.append(f"  record {c.index} ({c.kind}, {c.time}) supersedes {target}: {c.reason}{later}")
+                out.append(f"  record {c.index} ({c.kind}, {c.time}, by {c.operator}) supersedes {target}: "
+                           f"{c.reason}{later}")
         else:
             out.append("Corrections: none")
         if self.cautions:
@@ -239,23 +244,22 @@ def _protocol_info(base: Path, body: dict) -> dict:
     if not copy:
         info["problem"] = "the record names no protocol copy"
         return info
-    path = base / copy
     try:
-        data = path.read_bytes()
-    except OSError:
-        info["problem"] = f"the protocol copy {copy} is missing"
-        return info
-    if hashlib.sha256(data).hexdigest() != pf.get("sha256"):
-        info["problem"] = f"the protocol copy {copy} was altered (its hash differs from the record)"
-        return info
-    try:
+        path, _ = read_input_copy(base, pf, where="protocol_file")
         protocol = load_protocol(path)
     except GuardbandError as exc:
-        info["problem"] = f"the protocol copy {copy} cannot be read: {exc}"
+        info["problem"] = f"the protocol copy {copy} cannot be used: {exc}"
         return info
     st = protocol.study
     info.update({"title": st.title, "author": st.author, "version": st.version, "kind": st.kind})
     return info
+
+
+def _operator_text(body: dict) -> str:
+    op = body.get("operator")
+    if not isinstance(op, dict) or not op.get("name"):
+        return "not recorded"
+    return f"{op['name']} ({op.get('source', 'source not recorded')})"
 
 
 def summarize_log(path: str | Path) -> ReviewSummary:
@@ -311,6 +315,7 @@ def summarize_log(path: str | Path) -> ReviewSummary:
                 plan_table=dict(body.get("plan_table") or {}),
                 superseded_by=later,
                 superseded_reason=later_reason,
+                operator=_operator_text(body),
             ))
         if "supersedes" in body:
             target = by_index.get(body["supersedes"], {})
@@ -323,6 +328,7 @@ def summarize_log(path: str | Path) -> ReviewSummary:
                 supersedes_label=str((target.get("body") or {}).get("step_label", "")),
                 reason=str(body.get("reason", "")),
                 superseded_by=later,
+                operator=_operator_text(body),
             ))
         elif rec["kind"] != "plan":
             other[rec["kind"]] = other.get(rec["kind"], 0) + 1

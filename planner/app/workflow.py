@@ -28,9 +28,10 @@ import numpy as np
 
 from guardband.planner import __version__
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, VerificationError
-from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
+from guardband.planner.app.campaign import commit_step, read_input_copy
+from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
-from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
+from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs_bytes
 from guardband.planner.models import blas_limit
 from guardband.planner.step import PlanResult, plan_step
 from guardband.planner.app.history import campaign_calibration
@@ -289,6 +290,7 @@ def run_plan(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    by: str | None = None,
 ) -> PlanOutcome:
     """Plan the next batch and record it.
 
@@ -298,8 +300,13 @@ def run_plan(
     names them by hash. A failure before the append leaves the log as it was.
     ``delimiter``, ``decimal`` and ``sheet`` are passed to
     :func:`planner.runs.read_runs` and recorded, so that a replay reads the
-    runs copy the same way.
+    runs copy the same way. ``by`` names the operator (see
+    :func:`planner.app.audit.resolve_operator`); the record says where the
+    name came from.
     """
+    from guardband.planner.app.audit import resolve_operator
+
+    operator = resolve_operator(by)
     protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
         raise OutputError(f"{out_dir} exists and is not a folder; --out names a campaign folder")
@@ -329,7 +336,7 @@ def run_plan(
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                        seed, seed_drawn, count, pool_size, protocol_path, runs_path,
-                       read_options=read_options, calibration=calibration)
+                       read_options=read_options, calibration=calibration, operator=operator)
 
 
 def _read_input(path: Path, error, what: str) -> bytes:
@@ -365,13 +372,40 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
                 count, pool_size, protocol_path, runs_path, *, read_options=None,
-                calibration: EarnedCalibration | None = None) -> PlanOutcome:
+                calibration: EarnedCalibration | None = None, operator: dict | None = None) -> PlanOutcome:
     plan_bytes, excl_bytes, step_label = render_tables(result, count)
+    created = not out_dir.exists()
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
         (out_dir / "inputs").mkdir(exist_ok=True)
     except OSError as exc:
         raise OutputError(f"cannot create the campaign folder {out_dir}: {exc.strerror or exc}") from None
+    try:
+        return _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed,
+                            seed_drawn, count, pool_size, protocol_path, runs_path, plan_bytes,
+                            excl_bytes, step_label, read_options=read_options,
+                            calibration=calibration, operator=operator)
+    except BaseException:
+        if created:
+            _remove_new_campaign(out_dir, log_path)
+        raise
+
+
+def _remove_new_campaign(out_dir: Path, log_path: Path) -> None:
+    """Remove a campaign folder this step created, if the step left only its empty shell."""
+    if log_path.exists():
+        return
+    try:
+        Path(str(log_path) + ".lock").unlink(missing_ok=True)
+        (out_dir / "inputs").rmdir()
+        out_dir.rmdir()
+    except OSError:
+        pass  # something else is in it now: leave it
+
+
+def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
+                 count, pool_size, protocol_path, runs_path, plan_bytes, excl_bytes, step_label, *,
+                 read_options, calibration, operator) -> PlanOutcome:
     runs_suffix = runs_path.suffix.lower() if runs_path.suffix.lower() in _RUNS_SUFFIXES else ".csv"
     files = {
         "plan": out_dir / f"plan-{_short(plan_bytes)}.csv",
@@ -379,9 +413,8 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
         "protocol_copy": out_dir / "inputs" / f"protocol-{_short(protocol_bytes)}.toml",
         "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}{runs_suffix}",
     }
-    for key, data in (("protocol_copy", protocol_bytes), ("runs_copy", runs_bytes),
-                      ("exclusions", excl_bytes), ("plan", plan_bytes)):
-        atomic_write_bytes(files[key], data)
+    contents = {files["protocol_copy"]: protocol_bytes, files["runs_copy"]: runs_bytes,
+                files["exclusions"]: excl_bytes, files["plan"]: plan_bytes}
     body = result.record_body()
     body.update({
         "step_label": step_label,
@@ -400,7 +433,9 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
     })
     if calibration is not None:
         body["calibration_earned"] = calibration.to_dict()
-    record = ledger.append_record(log_path, "plan", body)
+    if operator is not None:
+        body["operator"] = operator
+    record = commit_step(out_dir, log_path, contents, "plan", body)
     head, n = ledger.head_and_count(log_path)
     return PlanOutcome(result=result, seed=int(seed), seed_drawn=seed_drawn, record=record,
                        log_path=log_path, files=files, head=head, count=n, calibration=calibration)
@@ -436,11 +471,17 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
     Raises
     ------
     VerificationError
-        The log fails verification, the record is not a plan, or an input
-        copy is missing or altered.
+        The log or a file its records name fails verification
+        (:func:`planner.app.audit.verify_campaign`), the record is not a
+        plan, or an input copy is missing, altered, outside ``inputs/`` or
+        not a regular file.
     """
+    from guardband.planner.app.audit import verify_campaign
+
     log_path = Path(log_path)
-    ledger.verify_or_raise(log_path)
+    verdict = verify_campaign(log_path, accept_empty=True)
+    if not verdict.ok:
+        raise VerificationError(f"decision log {log_path} failed verification: {verdict.problem}")
     records = ledger.read_records(log_path)
     if not 0 <= index < len(records):
         raise VerificationError(f"{log_path.name}: there is no record {index} (the log has {len(records)})")
@@ -449,19 +490,11 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
         raise VerificationError(f"{log_path.name}: record {index} is a {rec['kind']!r} record, not a plan")
     body = rec["body"]
     base = log_path.parent
-    copies = {}
-    for key in ("protocol_file", "runs_file"):
-        path = base / body[key]["copy"]
-        try:
-            data = path.read_bytes()
-        except OSError:
-            raise VerificationError(f"record {index}: the input copy {body[key]['copy']} is missing") from None
-        if hashlib.sha256(data).hexdigest() != body[key]["sha256"]:
-            raise VerificationError(f"record {index}: the input copy {body[key]['copy']} was altered (hash differs)")
-        copies[key] = path
-    protocol = load_protocol(copies["protocol_file"])
-    runs: RunsTable = read_runs(copies["runs_file"], protocol,
-                                **(body["runs_file"].get("read_options") or {}))
+    protocol_copy, _ = read_input_copy(base, body.get("protocol_file"), where=f"record {index} protocol_file")
+    runs_copy, runs_bytes = read_input_copy(base, body.get("runs_file"), where=f"record {index} runs_file")
+    protocol = load_protocol(protocol_copy)
+    runs: RunsTable = read_runs_bytes(runs_bytes, protocol, source=runs_copy.name, suffix=runs_copy.suffix,
+                                      **(body["runs_file"].get("read_options") or {}))
     with blas_limit():
         result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
                            warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))

@@ -110,7 +110,7 @@ class _Geometry:
 
     def feasible_levels(self, j: int) -> np.ndarray:
         lv = self.levels[j]
-        tol = FEASIBILITY_TOL * max(1.0, float(np.max(np.abs(lv))))
+        tol = FEASIBILITY_TOL * float(self.space.factor_scale[j])
         lo, hi = self.ranges[j]
         return lv[(lv >= lo - tol) & (lv <= hi + tol)]
 
@@ -171,7 +171,10 @@ class _Geometry:
         base, D = X[0], X[1] - X[0]
         s = self.space
         # g t <= h for every bound and inequality row, with x(t) = base + t D
-        rows = [(-D, base - s.lower), (D, s.upper - base)]
+        # (bounds rows divided by each factor's span, as the space's own rows are,
+        # so that the slope tolerance means the same at any scale)
+        span = s.factor_scale
+        rows = [(-D / span, (base - s.lower) / span), (D / span, (s.upper - base) / span)]
         if s.A_ub.shape[0]:
             rows.append((s.A_ub @ D, s.b_ub - s.A_ub @ base))
         lo, hi = -np.inf, np.inf

@@ -11,13 +11,12 @@ and the re-run is compared with the record by the workflow's own comparison.
 
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 from typing import Sequence
 
 from guardband.planner import __version__
 from guardband.planner.errors import VerificationError
-from guardband.planner.inputs.runs import RunsTable, read_runs
+from guardband.planner.inputs.runs import RunsTable, read_runs_bytes
 from guardband.safety import ledger
 
 from guardband.planner.report.data import check_factor_names
@@ -33,16 +32,22 @@ def _supersession(records: list[dict]) -> dict[int, str]:
     for rec in ledger.effective_records(records):
         later = rec.get("superseded_by")
         if later is not None:
-            reason = by_index[later]["body"].get("reason", "")
+            later_body = by_index[later]["body"]
+            reason = later_body.get("reason", "")
+            op = later_body.get("operator")
+            who = f", by {op.get('name')} ({op.get('source')})" if isinstance(op, dict) else ""
             out[rec["index"]] = (f"This planning step was superseded by record {later} "
-                                 f"({by_index[later]['kind']}): {reason}")
+                                 f"({by_index[later]['kind']}{who}): {reason}")
     return out
 
 
 def _recorded_runs(folder: Path, body: dict, protocol) -> RunsTable:
     """The runs of a plan record, read from its input copy as the plan read them."""
+    from guardband.planner.app.campaign import read_input_copy
+
     options = body["runs_file"].get("read_options") or {}
-    return read_runs(folder / body["runs_file"]["copy"], protocol, **options)
+    path, data = read_input_copy(folder, body["runs_file"], where="record runs_file")
+    return read_runs_bytes(data, protocol, source=path.name, suffix=path.suffix, **options)
 
 
 def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = None) -> list[ReportFiles]:
@@ -59,6 +64,8 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         The log is missing, fails verification, holds no plan record, or an
         input copy is missing or altered.
     """
+    from guardband.planner.app.audit import verify_campaign
+    from guardband.planner.app.campaign import read_input_copy
     from guardband.planner.app.workflow import LOG_NAME, compare_with_record, rerun_record
 
     folder = Path(folder)
@@ -66,7 +73,9 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
     if not log.is_file():
         raise VerificationError(f"{folder}: there is no decision log {LOG_NAME} here; "
                                 "run `guardband plan ... --out` into this folder first")
-    ledger.verify_or_raise(log)
+    verdict = verify_campaign(log, accept_empty=True)
+    if not verdict.ok:
+        raise VerificationError(f"decision log {log} failed verification: {verdict.problem}")
     records = ledger.read_records(log)
     plans = [r for r in records if r["kind"] == "plan"]
     if not plans:
@@ -75,9 +84,10 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         from guardband.planner.inputs.protocol import load_protocol
 
         for rec in plans:
-            pf = rec["body"]["protocol_file"]
-            copy = folder / pf["copy"]
-            if not copy.is_file() or hashlib.sha256(copy.read_bytes()).hexdigest() != pf["sha256"]:
+            try:
+                copy, _ = read_input_copy(folder, rec["body"].get("protocol_file"),
+                                          where=f"record {rec['index']} protocol_file")
+            except VerificationError:
                 continue  # rerun_record names the missing or altered copy
             check_factor_names(map_factors, load_protocol(copy).factor_names)
     head, count = ledger.head_and_count(log)

@@ -211,6 +211,9 @@ def fingerprint_rows(result: PlanResult, record, log_head, log_count) -> list[tu
     rows.append(("seed", str(result.seed) + (" (drawn at random and recorded)" if body.get("seed_drawn") else "")))
     if record:
         rows.append(("decision record", f"index {record['index']}, {record['time']}, hash {record['hash']}"))
+        op = body.get("operator")
+        rows.append(("recorded by", f"{op.get('name')} (from {op.get('source')})" if isinstance(op, dict)
+                     else "not recorded (the record predates operator names)"))
         if body.get("plan_table"):
             rows.append(("plan table", f"{body['plan_table']['file']} (sha256 {body['plan_table']['sha256']})"))
     if log_head is not None:

@@ -19,6 +19,7 @@ are shared with those modules, not with callers.
 
 from __future__ import annotations
 
+import dataclasses
 import types
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -147,6 +148,79 @@ class DesignSpace:
         if len(units) != d:
             raise ValueError(f"units needs {d} entries, got {len(units)}")
         setattr_(self, "units", units)
+        # Normalise every rule row to its own scale (its largest coefficient
+        # times that factor's declared span) before any tolerance applies: a
+        # rule and its multiples are the same rule (1e-13 * x1 <= 1e-14 is x1 <= 0.1).
+        for a_name, b_name in (("A_eq", "b_eq"), ("A_ub", "b_ub")):
+            A, b = self.normalise_rows(getattr(self, a_name), getattr(self, b_name))
+            setattr_(self, a_name, read_only(A))
+            setattr_(self, b_name, read_only(b))
+
+    # ------------------------------------------------------------- scale-free
+    @cached_property
+    def _frame(self) -> tuple[np.ndarray, np.ndarray]:
+        """Offset and scale of each factor: ``x = offset + scale * u`` maps [0, 1] onto its declared span.
+
+        The span is the declared bounds joined with the discrete levels; a
+        factor fixed by its bounds is scaled by its magnitude (1 at 0).
+        Every tolerance of this package applies to the space in these
+        coordinates (:attr:`_unit`), so a study written in mol/L behaves as
+        the same study written in nmol/L, or offset (kelvin, not degrees C).
+        """
+        lo, hi = self.lower.copy(), self.upper.copy()
+        for j, lv in self.levels.items():
+            lo[j], hi[j] = min(lo[j], lv[0]), max(hi[j], lv[-1])
+        width, magnitude = hi - lo, np.maximum(np.abs(lo), np.abs(hi))
+        scale = np.where(width > 0, width, np.where(magnitude > 0, magnitude, 1.0))
+        return read_only(lo), read_only(scale)
+
+    @property
+    def _scale(self) -> np.ndarray:
+        return self._frame[1]
+
+    @property
+    def factor_scale(self) -> np.ndarray:
+        """Each factor's declared span (its magnitude when fixed; 1 for a factor fixed at 0)."""
+        return self._scale
+
+    def _to_frame(self, X) -> np.ndarray:
+        offset, scale = self._frame
+        return (np.asarray(X, dtype=float) - offset) / scale
+
+    def _from_frame(self, U) -> np.ndarray:
+        offset, scale = self._frame
+        return offset + np.asarray(U, dtype=float) * scale
+
+    def normalise_rows(self, A, b) -> tuple[np.ndarray, np.ndarray]:
+        """Rows ``A x <= b`` (or ``==``) divided by their largest coefficient times a factor's span.
+
+        The one home of the rule: the design space's own rows and the
+        screen's forbidden regions are normalised by it, so that a fixed
+        tolerance on ``A x - b`` means the same at any scale. A row of
+        zeros is left as it is.
+        """
+        A = np.atleast_2d(np.asarray(A, dtype=float))
+        b = np.atleast_1d(np.asarray(b, dtype=float))
+        norm = np.max(np.abs(A * self._scale), axis=1, initial=0.0)
+        norm = np.where(norm > 0, norm, 1.0)
+        return A / norm[:, None], b / norm
+
+    @cached_property
+    def _unit(self) -> "DesignSpace":
+        """The same space in the coordinates of :attr:`_frame` (itself when they are the identity)."""
+        offset, scale = self._frame
+        if np.all(scale == 1.0) and np.all(offset == 0.0):
+            return self
+        return DesignSpace(
+            self.names, self._to_frame(self.lower), self._to_frame(self.upper),
+            self.A_eq * scale, self.b_eq - self.A_eq @ offset,
+            self.A_ub * scale, self.b_ub - self.A_ub @ offset, self.eq_labels, self.ub_labels,
+            {j: (lv - offset[j]) / scale[j] for j, lv in self.levels.items()}, self.units,
+        )
+
+    def _fixed(self, ranges: np.ndarray) -> np.ndarray:
+        """Factors whose real range is narrower than FIXED_RANGE_TOL of their declared span."""
+        return (ranges[:, 1] - ranges[:, 0]) < FIXED_RANGE_TOL * self._scale
 
     # ------------------------------------------------------------------ basics
     @property
@@ -254,13 +328,17 @@ class DesignSpace:
         ----------
         X : array of shape (n, n_factors) or (n_factors,)
         tol : float
-            Absolute tolerance, multiplied for each rule by max(1, its magnitude).
+            Tolerance in factor-scaled units (each factor divided by its
+            magnitude, each rule by its own), multiplied for each rule by
+            max(1, its magnitude there).
 
         Returns
         -------
         ndarray of bool, shape (n,)
         """
         X = self._as_points(X)
+        if self._unit is not self:
+            return self._unit.contains(self._to_frame(X), tol=tol)
         s = tol * self._tol_scale
         d, n_l, m_eq = self.n_factors, len(self.levels), self.A_eq.shape[0]
         ok = np.all(X >= self.lower - s[:d], axis=1)
@@ -283,8 +361,9 @@ class DesignSpace:
         x = self._as_points(x)
         if x.shape[0] != 1:
             raise ValueError("describe_violation takes a single point")
-        v = self.violations(x)[0]
-        bad = np.flatnonzero(v > tol * self._tol_scale)
+        unit = self._unit
+        v = unit.violations(self._to_frame(x))[0]
+        bad = np.flatnonzero(v > tol * unit._tol_scale)
         if bad.size == 0:
             return ""
         g = self.groups[bad[0]]
@@ -314,8 +393,7 @@ class DesignSpace:
     @property
     def free(self) -> np.ndarray:
         """Boolean mask of shape (n_factors,): factors whose real range is not ~0."""
-        r = self._require_nonempty().ranges
-        return (r[:, 1] - r[:, 0]) >= FIXED_RANGE_TOL
+        return ~self._fixed(self._require_nonempty().ranges)
 
     def to_unit(self, X) -> np.ndarray:
         """Scale points to [0, 1] per factor by the real ranges; fixed factors map to 0.5.
@@ -363,7 +441,11 @@ class DesignSpace:
 
     @cached_property
     def _check(self) -> SpaceCheck:
-        return feasibility.space_check(self)
+        if self._unit is self:
+            return feasibility.space_check(self)
+        found = self._unit.check()
+        return dataclasses.replace(found, ranges=read_only(self._from_frame(found.ranges.T).T),
+                                   centre=read_only(self._from_frame(found.centre)))
 
     @cached_property
     def _geometry(self) -> tuple[np.ndarray, Slice | None]:
@@ -382,6 +464,9 @@ class DesignSpace:
         Every row passes :meth:`contains`; the same seed gives the same points.
         Parameters and method: :func:`~guardband.planner.space.sampler.sample`.
         """
+        if self._unit is not self:
+            return self._from_frame(self._unit.sample(n, rng=rng, method=method, burn_in=burn_in,
+                                                      thin=thin, n_chains=n_chains))
         return sampler.sample(self, n, rng=rng, method=method, burn_in=burn_in,
                               thin=thin, n_chains=n_chains)
 
@@ -391,4 +476,6 @@ class DesignSpace:
         ``x`` itself (a copy) when it is already inside; see
         :func:`~guardband.planner.space.projection.project`.
         """
+        if self._unit is not self:
+            return self._from_frame(self._unit.project(self._to_frame(x)))
         return projection.project(self, x)

@@ -50,14 +50,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "cb2d54ac9373ec11b41597e91856d93ce4c346f43941ca6b82a8822e084b55b4",
-        "4c627e9e97d9aecde5786bcac5a670248cbe1f660962c607729d7fb7611e3e67",
-        "ef62945972bd18d712dc38932969049fd64435a198dcf5a93d221b46e9c24132",
+        "a80752d02476a676afb15bb760e89bf5e1fd55426fe397243ed586c8ffa54bfd",
+        "d437cb900a235225ea1f7bd9a5c3660d96fa702672c69fa49d38ee0be063a885",
+        "f46533757a643c2e7baa8369706fbacb569b2a6069d33de15b6f10ab61ca8948",
     ),
     "dose_combination": (
         "5d5e40064def094e2b2ffd3a629cf249b20bced94d9e651fecebf2a565f6abc1",
         "7885efab293973fc10bac01f80357a87bf525063edd19a9e064ce6340ef9691f",
-        "fc8c0821bf80289cab21f5064b910b95983ad781f04a47357727108f2d1f2c49",
+        "0f6942ffd76d8a72d42a8725f0d8d31c51a5fc32a39ea65e37bd9eb325bd81a6",
     ),
 }
 

@@ -285,7 +285,7 @@ def _beyond_span(U, anchors, reach, floor, basis, columns=None):
     for i in np.flatnonzero(out):
         j = int(np.argmax(np.maximum(lo - U[i], U[i] - hi)))
         detail[i] = (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
-                     f"{basis}s [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+                     f"{basis.replace('run', 'runs', 1)} [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
     return out, detail
 
 

@@ -115,6 +115,11 @@ class PlanResult:
     fitted: dict = field(default_factory=dict, repr=False, compare=False)
     space: object = field(default=None, repr=False, compare=False)
 
+    def __repr__(self) -> str:
+        counts = ", ".join(f"{k} {v}" for k, v in self.counts().items() if v)
+        return (f"PlanResult({self.protocol.study.title!r}: {len(self.proposals)} proposal(s), mode "
+                f"{self.mode}, seed {self.seed}, {self.pool.shape[0]} candidates: {counts})")
+
     def unit(self, X) -> np.ndarray:
         """Protocol units -> the unit-cube coordinates the models take."""
         return Scaler(self.space).unit(X)

@@ -26,10 +26,11 @@ from pathlib import Path
 
 import numpy as np
 
-from guardband.planner import __version__
+from guardband.planner import __version__, settings
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, VerificationError
 from guardband.planner.app.fileio import atomic_write_bytes, write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
+from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs, read_runs_bytes
 from guardband.planner.models import blas_limit
 from guardband.planner.step import PlanResult, plan_step
@@ -278,6 +279,7 @@ def run_plan(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    max_runs: int = settings.MAX_RUNS_DEFAULT,
 ) -> PlanOutcome:
     """Plan the next batch and record it.
 
@@ -303,6 +305,7 @@ def run_plan(
     read_options = {"delimiter": delimiter, "decimal": decimal, "sheet": sheet}
     runs = read_runs_bytes(runs_bytes, protocol, source=runs_path.name, suffix=runs_path.suffix,
                            **read_options)
+    check_run_count(runs, max_runs)
     seed_drawn = False
     if seed is None:
         seed = protocol.seed
@@ -322,10 +325,19 @@ def run_plan(
 
 
 def _read_input(path: Path, error, what: str) -> bytes:
-    try:
-        return path.read_bytes()
-    except OSError as exc:
-        raise error(f"{path}: cannot read the {what} file ({exc.strerror or exc})") from None
+    limit = settings.MAX_PROTOCOL_BYTES if error is ProtocolError else settings.MAX_RUNS_FILE_BYTES
+    return read_input(path, what=what, error=error, max_bytes=limit)
+
+
+def check_run_count(runs: RunsTable, max_runs: int) -> None:
+    """Refuse a runs table with more rows than ``max_runs`` (a step's time grows with their cube)."""
+    if runs.n_runs > max_runs:
+        raise RunsDataError(
+            f"{runs.source}: {runs.n_runs:,} runs, more than the {max_runs:,} a planning step takes "
+            f"(the models' fitting time grows with the cube of the number of runs; "
+            f"{settings.MAX_RUNS_DEFAULT:,} runs took about half a minute on a 2-core machine). "
+            f"To plan with them all, raise the limit: guardband plan ... --max-runs {runs.n_runs}"
+        )
 
 
 #: Suffixes a runs copy keeps (a workbook stays a workbook); others become .csv.

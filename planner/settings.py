@@ -97,3 +97,6 @@ MAX_RUNS_DEFAULT = 1000
 #: and by its rows, checked before any cell is loaded.
 MAX_SHEET_CELLS = 2_000_000
 MAX_SHEET_ROWS = 200_000
+#: Runs closer than this (unit-scaled, in every factor) count as repeats of the
+#: same factor settings when a model cannot be fitted and the message names them.
+REPEATED_RUN_DISTANCE = 1e-6

@@ -128,6 +128,9 @@ def check_protocol(path: str | Path) -> CheckReport:
     protocol = load_protocol(path)
     space = protocol.design_space()
     result = space.check()
+    point = result.single_point(space.names)
+    if point:
+        raise ProtocolError(f"{Path(path).name}: {point}")
     start = protocol.start_rows()
     message = result.message
     if not result.empty and start is not None:

@@ -97,12 +97,13 @@ class _Budget:
     """Counts rows and cells as they stream past; refuses past the limits."""
 
     def __init__(self, source: str, title: str):
-        self.source, self.title, self.cells = source, title, 0
+        self.source, self.title, self.cells, self.last = source, title, 0, 0
 
     def take(self, number: int, n_cells: int) -> None:
         self.cells += n_cells
+        self.last = number
         if number > settings.MAX_SHEET_ROWS:
-            raise _too_big(self.source, f"sheet {self.title!r} has a row numbered {number:,}")
+            raise _too_big(self.source, f"sheet {self.title!r} reaches past row {settings.MAX_SHEET_ROWS:,}")
         if self.cells > settings.MAX_SHEET_CELLS:
             raise _too_big(self.source, f"sheet {self.title!r} holds more than {settings.MAX_SHEET_CELLS:,} cells")
 
@@ -169,8 +170,18 @@ def read_sheet(raw: bytes, *, source: str, sheet: str | None) -> tuple[list[list
         # read the cells the sheet really holds
         ws.reset_dimensions()
         wf.reset_dimensions()
-        formulas = _formulas(wf, _Budget(source, title))
-        rows, numbers = _values(ws, formulas, _Budget(source, title))
+        budget = _Budget(source, title)
+        try:
+            formulas = _formulas(wf, budget)
+            budget = _Budget(source, title)
+            rows, numbers = _values(ws, formulas, budget)
+        except (ValueError, TypeError, KeyError) as exc:  # openpyxl's own reading of a cell failed
+            raise RunsDataError(
+                f"{source}: sheet {title!r}, row {budget.last + 1}: a cell cannot be read "
+                f"({type(exc).__name__}: {exc}); a number "
+                "cell holds something that is not a finite number (such as inf or nan) or the sheet is "
+                "damaged. Correct the cell in a spreadsheet program and save again, or export CSV UTF-8"
+            ) from None
     finally:
         values_book.close()
         formula_book.close()

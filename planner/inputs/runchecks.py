@@ -88,10 +88,11 @@ def to_protocol_units(protocol: Protocol, X: np.ndarray, Y: dict[str, np.ndarray
             new = conv.apply(column)
         bad = np.isfinite(column) & ~(np.abs(new) <= settings.MAX_INPUT_MAGNITUDE)
         for k in np.flatnonzero(bad)[:10]:
+            what = (f"beyond the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with safely"
+                    if np.isfinite(new[k]) or np.isinf(new[k]) else "not a number")
             problems.append(
                 f"{wheres[k]}, column {name}: {column[k]:g} [{conv.source}] converts to "
-                f"{new[k]:.3g} [{conv.target}], beyond the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool "
-                "computes with safely; check the unit in the header"
+                f"{new[k]:.3g} [{conv.target}], {what}; check the unit in the header"
             )
         column[:] = new
     return problems

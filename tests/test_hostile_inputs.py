@@ -330,3 +330,22 @@ def test_read_input_refuses_by_the_callers_error_class(tmp_path):
     assert reading.read_input(tmp_path / "f", what="runs", error=RunsDataError, max_bytes=11) == b"x" * 11
     with pytest.raises(VerificationError, match="it is a folder"):
         ledger.read_records(tmp_path)  # the log is read through the same function
+
+
+def test_the_readme_exit_code_table_covers_these_refusals():
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    rows = re.findall(r"^\| (\d) \| ([^|]+)\|(?: ([^|]+)\|)?$", text, flags=re.M)
+    by_code: dict[str, str] = {}
+    for code, first, second in rows:
+        by_code[code] = by_code.get(code, "") + first + (second or "")
+    for code, words in {
+        "3": ["not a regular file", "larger than 1 MiB", "nested deeper than 16", "not finite", "1e100",
+              "nested deeper than 40", "changes the text direction", "case ignored", "single point"],
+        "4": ["not a regular file", "64 MiB", "200,000 rows", "2,000,000 cells", "unit conversion", "run id",
+              "--max-runs"],
+        "5": ["not a regular file", "512 MiB", "nested too deeply"],
+    }.items():
+        for w in words:
+            assert w in by_code[code], (code, w)
+    assert f"default {settings.MAX_RUNS_DEFAULT:,}" in text
+    assert f"{settings.MAX_SHEET_ROWS:,} rows" in text and f"{settings.MAX_SHEET_CELLS:,} cells" in text

@@ -242,7 +242,19 @@ def test_an_input_larger_than_its_limit_is_refused_before_it_is_read(tmp_path, m
 
 def test_more_runs_than_the_stated_maximum_are_refused_with_how_to_raise_it(tmp_path):
     _plan_refused(tmp_path, HERE / "good_blend.toml", HERE / "good_blend_runs.csv", 4,
-                  "10 runs, more than the 5 a planning step takes", "--max-runs 10", extra=["--max-runs", "5"])
+                  "up to 10 runs", "more than the 5 a planning step takes", "--max-runs 10",
+                  extra=["--max-runs", "5"])
+    # exactly at the limit the step is planned; blank rows at the end are not runs
+    runs = _runs(tmp_path, lambda rows: rows.extend([[""], [""]]))
+    code, _, stderr = _cli(["plan", HERE / "good_blend.toml", runs, "--out", tmp_path / "ok", "--max-runs", "10"])
+    assert code in (0, 6), stderr
+
+
+def test_a_workbook_with_more_runs_than_the_maximum_is_refused(tmp_path):
+    path = tmp_path / "runs.xlsx"
+    path.write_bytes(_workbook())
+    _plan_refused(tmp_path, HERE / "good_blend.toml", path, 4, "runs.xlsx: 10 runs, more than the 4",
+                  "--max-runs 10", extra=["--max-runs", "4"])
 
 
 def test_ten_thousand_runs_get_a_refusal_by_default(tmp_path):
@@ -255,8 +267,8 @@ def test_ten_thousand_runs_get_a_refusal_by_default(tmp_path):
     path = tmp_path / "many.csv"
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
     assert settings.MAX_RUNS_DEFAULT < 10_000
-    _plan_refused(tmp_path, HERE / "good_blend.toml", path, 4, "10,000 runs, more than the",
-                  "--max-runs 10000")
+    _plan_refused(tmp_path, HERE / "good_blend.toml", path, 4, "up to 10,000 runs (its lines below the header), "
+                  "more than the 1,000", "--max-runs 10000")
 
 
 def test_a_workbook_declaring_millions_of_rows_is_refused_before_loading(tmp_path):

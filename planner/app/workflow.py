@@ -307,8 +307,7 @@ def run_plan(
     runs_bytes = _read_input(runs_path, RunsDataError, "runs")
     read_options = {"delimiter": delimiter, "decimal": decimal, "sheet": sheet}
     runs = read_runs_bytes(runs_bytes, protocol, source=runs_path.name, suffix=runs_path.suffix,
-                           **read_options)
-    check_run_count(runs, max_runs)
+                           max_runs=max_runs, **read_options)
     seed_drawn = False
     if seed is None:
         seed = protocol.seed
@@ -330,17 +329,6 @@ def run_plan(
 def _read_input(path: Path, error, what: str) -> bytes:
     limit = settings.MAX_PROTOCOL_BYTES if error is ProtocolError else settings.MAX_RUNS_FILE_BYTES
     return read_input(path, what=what, error=error, max_bytes=limit)
-
-
-def check_run_count(runs: RunsTable, max_runs: int) -> None:
-    """Refuse a runs table with more rows than ``max_runs`` (a step's time grows with their cube)."""
-    if runs.n_runs > max_runs:
-        raise RunsDataError(
-            f"{runs.source}: {runs.n_runs:,} runs, more than the {max_runs:,} a planning step takes "
-            f"(the models' fitting time grows with the cube of the number of runs; "
-            f"{settings.MAX_RUNS_DEFAULT:,} runs took about half a minute on a 2-core machine). "
-            f"To plan with them all, raise the limit: guardband plan ... --max-runs {runs.n_runs}"
-        )
 
 
 #: Suffixes a runs copy keeps (a workbook stays a workbook); others become .csv.

@@ -200,6 +200,7 @@ def read_runs(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
     """Read and check a runs file (CSV, tab-separated text or .xlsx) against a protocol.
 
@@ -213,6 +214,8 @@ def read_runs(
         Decimal mark of text cells; found from the cells if not given.
     sheet : str, optional
         Workbook sheet to read; the first sheet if not given.
+    max_runs : int, optional
+        Most rows taken; a larger table is refused before its cells are checked.
 
     Raises
     ------
@@ -222,7 +225,7 @@ def read_runs(
     path = Path(path)
     raw = read_input(path, what="runs", error=RunsDataError, max_bytes=settings.MAX_RUNS_FILE_BYTES)
     return read_runs_bytes(raw, protocol, source=path.name, suffix=path.suffix,
-                           delimiter=delimiter, decimal=decimal, sheet=sheet)
+                           delimiter=delimiter, decimal=decimal, sheet=sheet, max_runs=max_runs)
 
 
 def read_runs_bytes(
@@ -234,23 +237,25 @@ def read_runs_bytes(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
     """Check a runs file given as its bytes; see :func:`read_runs`.
 
     The format is taken from the content (a workbook is a zip archive), not
     from ``suffix``, which only sharpens the messages. ``sha256`` of the
-    table is the digest of exactly these bytes.
+    table is the digest of exactly these bytes. A table of more than
+    ``max_runs`` rows is refused before its cells are checked.
     """
     delimiter, decimal = _check_options(source, delimiter, decimal)
     sha256 = hashlib.sha256(raw).hexdigest()
     kind = _format_of(raw, suffix, source)
     if kind == "xlsx":
         grid = _read_xlsx(raw, source=source, sheet=sheet)
-        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
     if sheet is not None:
         raise RunsDataError(f"{source}: a sheet ({sheet!r}) was named, but the file is text, not a workbook")
     return parse_runs_text(_decode(raw, source), protocol, source=source, sha256=sha256,
-                           delimiter=delimiter, decimal=decimal)
+                           delimiter=delimiter, decimal=decimal, max_runs=max_runs)
 
 
 def _check_options(source: str, delimiter, decimal) -> tuple[str | None, str | None]:
@@ -314,8 +319,9 @@ def parse_runs_text(
     sha256: str | None = None,
     delimiter: str | None = None,
     decimal: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
-    """Check a runs table given as text; see :func:`read_runs`."""
+    """Check a runs table given as text; see :func:`read_runs` and :func:`read_runs_bytes`."""
     delimiter, decimal = _check_options(source, delimiter, decimal)
     if sha256 is None:
         sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
@@ -346,16 +352,21 @@ def parse_runs_text(
         delimiter = _sniff_delimiter(lines[skip] if skip < len(lines) else "")
     reader = csv.reader(io.StringIO(body), delimiter=delimiter, strict=True)
     rows: list[list[object]] = []
+    filled = 0  # rows with a value, header included
     try:
         for row in reader:
             rows.append(list(row))
+            filled += not _blank_row(row)
+            if max_runs is not None and filled - 1 > max_runs:  # stop reading: a step will not take them
+                lines = body.count("\n") + (not body.endswith("\n"))
+                raise RunsDataError(too_many_runs(source, lines - 1, max_runs, at_least=True))
     except csv.Error as exc:
         raise RunsDataError(
             f"{source}: row {len(rows) + 1 + skip}: the file cannot be read as "
             f"{_delimiter_name(delimiter)}-separated text ({exc}); a quoted cell may not be closed"
         ) from None
     grid = _Grid(rows=rows, row_numbers=[skip + i + 1 for i in range(len(rows))], delimiter=delimiter)
-    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
 
 
 def _delimiter_name(d: str) -> str:
@@ -474,6 +485,18 @@ def _number(value: object, decimal: str | None) -> tuple[float | None, str | Non
     return _in_range(v, repr(s))
 
 
+def too_many_runs(source: str, n: int, max_runs: int, *, at_least: bool = False) -> str:
+    """The refusal of a table with more rows than a planning step takes, saying how to raise the limit.
+
+    ``at_least``: ``n`` counts the file's lines (read no further), an upper bound of its runs.
+    """
+    runs = f"up to {n:,} runs (its lines below the header)" if at_least else f"{n:,} runs"
+    return (f"{source}: {runs}, more than the {max_runs:,} a planning step takes (the models' fitting "
+            f"time grows with the cube of the number of runs; {settings.MAX_RUNS_DEFAULT:,} runs took about "
+            f"half a minute on a 2-core machine). To plan with them all, raise the limit: "
+            f"guardband plan ... --max-runs {n}")
+
+
 def too_large(text: str) -> str:
     """The problem text for a value beyond ``settings.MAX_INPUT_MAGNITUDE``."""
     return (f"{text} is larger in size than the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with "
@@ -562,7 +585,7 @@ class _Values:
 
 
 def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
-                decimal: str | None) -> RunsTable:
+                decimal: str | None, max_runs: int | None = None) -> RunsTable:
     """Check cells as read against the protocol: header, cells, units, bounds and totals.
 
     Raises
@@ -571,6 +594,9 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         Listing every problem found; nothing is computed.
     """
     grid = _trimmed(grid, source)
+    n_runs = sum(not _blank_row(r) for r in grid.rows[1:])
+    if max_runs is not None and n_runs > max_runs:
+        raise RunsDataError(too_many_runs(source, n_runs, max_runs))
     problems: list[str] = []
     flags: list[str] = []
     columns = _check_header(grid, protocol, problems, flags)

@@ -6,8 +6,8 @@ messages go to stderr. Exit codes (see :mod:`planner.errors`):
 ====  ==========================================================
 0     ok
 2     usage error (unknown option, missing argument)
-3     bad protocol, or its design space is empty
-4     bad runs data
+3     bad protocol, or its design space is empty or a single point
+4     bad runs data, or more runs than --max-runs
 5     a decision log failed verification, or a replay differed
 6     no candidate passed the safety screen
 7     a model could not be fitted or cannot be trusted

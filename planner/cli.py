@@ -6,8 +6,8 @@ messages go to stderr. Exit codes (see :mod:`planner.errors`):
 ====  ==========================================================
 0     ok
 2     usage error (unknown option, missing argument)
-3     bad protocol, or its design space is empty
-4     bad runs data
+3     bad protocol, or its design space is empty or a single point
+4     bad runs data, or more runs than --max-runs
 5     a decision log or a file it names failed verification, or a replay differed
 6     no candidate passed the safety screen
 7     a model could not be fitted or cannot be trusted
@@ -28,9 +28,11 @@ from typing import Optional
 import typer
 
 from guardband.planner import __version__
+from guardband.planner.settings import MAX_RUNS_DEFAULT
 from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text
 from guardband.planner.app.textable import render_table
+from guardband.planner.inputs.names import shown
 
 app = typer.Typer(
     name="guardband",
@@ -74,8 +76,13 @@ def _nonempty_out(value):
     return value
 
 
+def _echo(text: str = "", **kwargs) -> None:
+    """Print text that may hold input text: control and hidden characters are shown escaped."""
+    typer.echo(shown(str(text)), **kwargs)
+
+
 def _err(text: str = "") -> None:
-    typer.echo(text, err=True)
+    _echo(text, err=True)
 
 
 def _cautions_block(cautions) -> str:
@@ -107,7 +114,7 @@ def _root(
     version: bool = typer.Option(False, "--version", help="Print the tool version and exit."),
 ) -> None:
     if version:
-        typer.echo(f"guardband {__version__}")
+        _echo(f"guardband {__version__}")
         raise typer.Exit(0)
 
 
@@ -125,25 +132,25 @@ def check(
     data = report.to_dict()
     rows = report.rows()
     if format is Format.json:
-        typer.echo(_json(data))
+        _echo(_json(data))
     elif format is Format.csv:
         header = list(rows[0].keys())
-        typer.echo(write_csv_text([list(r.values()) for r in rows], header,
+        _echo(write_csv_text([list(r.values()) for r in rows], header,
                                   comment_lines=[f"fingerprint {report.protocol.fingerprint}"]
                                   + [f"CAUTION: {c}" for c in data["cautions"]]), nl=False)
     else:
         p = report.protocol
-        typer.echo(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
-        typer.echo(f"fingerprint: {p.fingerprint}")
-        typer.echo(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
+        _echo(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
+        _echo(f"fingerprint: {p.fingerprint}")
+        _echo(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
         if p.limits:
-            typer.echo("limits: " + "; ".join(
+            _echo("limits: " + "; ".join(
                 f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
-        typer.echo(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
+        _echo(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
                    f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
         for line in data["guidance"]:
-            typer.echo(f"rule: {line}")
-        typer.echo(_cautions_block(data["cautions"]))
+            _echo(f"rule: {line}")
+        _echo(_cautions_block(data["cautions"]))
     for line in data["threshold_warnings"]:
         _err(f"warning: {line}")
     if report.empty:
@@ -182,15 +189,15 @@ def start(
         atomic_write_text(out, text)
         _err(f"wrote {len(rows)} starting runs to {out}")
     if format is Format.json:
-        typer.echo(_json({"header": header, "rows": rows, "seed": seed_used, "notes": notes,
+        _echo(_json({"header": header, "rows": rows, "seed": seed_used, "notes": notes,
                           "cautions": list(cautions)}))
     elif format is Format.csv:
-        typer.echo(text, nl=False)
+        _echo(text, nl=False)
     else:
-        typer.echo(render_table(header, rows))
+        _echo(render_table(header, rows))
         for n in notes:
-            typer.echo(f"note: {n}")
-        typer.echo(_cautions_block(cautions))
+            _echo(f"note: {n}")
+        _echo(_cautions_block(cautions))
 
 
 # -------------------------------------------------------------------- plan
@@ -213,6 +220,8 @@ def plan(
     sheet: Optional[str] = typer.Option(None, "--sheet", help="Sheet of an .xlsx runs file (default: the first)."),
     report: bool = typer.Option(False, "--report", help="Also write the HTML report and PNG figures of this step into --out."),
     by: Optional[str] = typer.Option(None, "--by", help=BY_HELP),
+    max_runs: int = typer.Option(MAX_RUNS_DEFAULT, "--max-runs", min=1,
+                                 help="Most runs (rows) the step takes; more are refused (fitting time grows with their cube)."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
@@ -220,33 +229,33 @@ def plan(
 
     outcome = run_plan(protocol, runs, Path(out), count=count, seed=seed, pool_size=pool,
                        delimiter=delimiter.value if delimiter else None,
-                       decimal=decimal.value if decimal else None, sheet=sheet, by=by)
+                       decimal=decimal.value if decimal else None, sheet=sheet, by=by, max_runs=max_runs)
     result = outcome.result
     cautions = cautions_of(result.protocol)
     header, rows = plan_table(result, step_label=outcome.record["body"]["step_label"])
     if format is Format.json:
         body = dict(outcome.record["body"])
         body["log"] = {"file": outcome.log_path.name, "head": outcome.head, "count": outcome.count}
-        typer.echo(_json(body))
+        _echo(_json(body))
     elif format is Format.csv:
-        typer.echo(outcome.files["plan"].read_text(encoding="utf-8"), nl=False)
+        _echo(outcome.files["plan"].read_text(encoding="utf-8"), nl=False)
     else:
         p = result.protocol
         inc = result.incumbent
-        typer.echo(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
-        typer.echo(f"mode: {result.mode}; incumbent: "
+        _echo(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
+        _echo(f"mode: {result.mode}; incumbent: "
                    + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
         counts = result.counts()
-        typer.echo("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
+        _echo("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
         for m in result.messages:
-            typer.echo(f"note: {m}")
+            _echo(f"note: {m}")
         if outcome.calibration is not None:
-            typer.echo(outcome.calibration.sentence())
+            _echo(outcome.calibration.sentence())
         if rows:
-            typer.echo(render_table(header, rows))
+            _echo(render_table(header, rows))
         _echo_attitudes(result)
-        typer.echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
-        typer.echo(_cautions_block(cautions))
+        _echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
+        _echo(_cautions_block(cautions))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
     for f in result.flags:
@@ -269,16 +278,16 @@ def _echo_attitudes(result) -> None:
                                                      guidance_lines, price_rows, price_sentence)
 
     if result.rule_picks:
-        typer.echo("what each ranking rule would propose first (figures for the next measured result):")
-        typer.echo(render_table(COMPARISON_HEADER, comparison_rows(result)))
+        _echo("what each ranking rule would propose first (figures for the next measured result):")
+        _echo(render_table(COMPARISON_HEADER, comparison_rows(result)))
         for line in guidance_lines(result):
-            typer.echo(f"rule: {line}")
+            _echo(f"rule: {line}")
     if result.threshold_price:
-        typer.echo("the price of the threshold (best predicted objective among candidates that pass):")
-        typer.echo(render_table(PRICE_HEADER, price_rows(result)))
+        _echo("the price of the threshold (best predicted objective among candidates that pass):")
+        _echo(render_table(PRICE_HEADER, price_rows(result)))
         sentence = price_sentence(result)
         if sentence:
-            typer.echo(f"threshold: {sentence}")
+            _echo(f"threshold: {sentence}")
 
 
 # ------------------------------------------------------------------ verify
@@ -307,20 +316,20 @@ def verify(
     if summary and verdict.ok:
         from guardband.planner.app.review import summarize_log
 
-        typer.echo(summarize_log(log).render(format.value), nl=False)
+        _echo(summarize_log(log).render(format.value), nl=False)
     elif format is Format.json:
-        typer.echo(_json(verdict.to_dict()))
+        _echo(_json(verdict.to_dict()))
     elif format is Format.csv:
         d = result.to_dict()
         d.update({"ok": verdict.ok, "problem": verdict.problem,
                   "files_checked": verdict.files.checked if verdict.files else None})
-        typer.echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
+        _echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
     else:
         if verdict.ok:
             files = f"; {verdict.files.checked} named files match their SHA-256" if verdict.files else ""
-            typer.echo(f"ok: {result.count} records, head {result.head}{files}")
+            _echo(f"ok: {result.count} records, head {result.head}{files}")
         else:
-            typer.echo(f"FAILED: {verdict.problem}")
+            _echo(f"FAILED: {verdict.problem}")
     for note in verdict.notes:
         _err(f"note: {note}")
     if not verdict.ok:
@@ -343,10 +352,10 @@ def supersede(
 
     rec = supersede_record(log, record, reason, by=by)
     if format is Format.json:
-        typer.echo(_json(rec))
+        _echo(_json(rec))
     else:
         op = rec["body"]["operator"]
-        typer.echo(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
+        _echo(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
                    f"(by {op['name']}, from {op['source']}); head {rec['hash']}")
 
 
@@ -363,16 +372,16 @@ def replay(
 
     outcome = replay_record(log, record)
     if format is Format.json:
-        typer.echo(_json(outcome.to_dict()))
+        _echo(_json(outcome.to_dict()))
     elif format is Format.csv:
         d = outcome.to_dict()
         d["differences"] = "; ".join(d["differences"])
-        typer.echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
+        _echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
     else:
         if outcome.identical:
-            typer.echo(f"identical: record {record} replays to the same plan (sha256 {outcome.replayed_sha256})")
+            _echo(f"identical: record {record} replays to the same plan (sha256 {outcome.replayed_sha256})")
         else:
-            typer.echo(f"DIFFERENT: record {record}: " + "; ".join(outcome.differences))
+            _echo(f"DIFFERENT: record {record}: " + "; ".join(outcome.differences))
     if not outcome.identical:
         raise typer.Exit(EXIT_VERIFY)
 
@@ -401,13 +410,13 @@ def report(
 
     written = report_folder(folder, map_factors=_map_pair(map))
     if format is Format.json:
-        typer.echo(_json([w.to_dict() for w in written]))
+        _echo(_json([w.to_dict() for w in written]))
     elif format is Format.csv:
         rows = [[w.record_index, w.step_label, str(w.html), len(w.figures), "; ".join(w.problems)] for w in written]
-        typer.echo(write_csv_text(rows, ["record", "step_label", "report", "figures", "problems"]), nl=False)
+        _echo(write_csv_text(rows, ["record", "step_label", "report", "figures", "problems"]), nl=False)
     else:
         for w in written:
-            typer.echo(f"record {w.record_index}: {w.html} ({len(w.figures)} figures in {w.html.parent / ('figures-' + w.step_label)})")
+            _echo(f"record {w.record_index}: {w.html} ({len(w.figures)} figures in {w.html.parent / ('figures-' + w.step_label)})")
     for w in written:
         for problem in w.problems:
             _err(f"warning: report {w.html.name}: {problem}")
@@ -481,12 +490,12 @@ def simulate(
     if out is not None:
         atomic_write_text(out, csv_text)
     if format is Format.json:
-        typer.echo(_json(result.to_dict()))
+        _echo(_json(result.to_dict()))
     elif format is Format.csv:
-        typer.echo(csv_text, nl=False)
+        _echo(csv_text, nl=False)
     else:
-        typer.echo(result.table_text())
-        typer.echo(_cautions_block(result.cautions()))
+        _echo(result.table_text())
+        _echo(_cautions_block(result.cautions()))
     n = sum(len(v) for k, v in result.histories.items() if k not in result.same_as)
     _err(f"simulated {n} campaigns in {time.perf_counter() - began:.1f} s with {result.workers} worker(s)"
          + (f"; wrote {out}" if out is not None else ""))
@@ -502,7 +511,7 @@ def demo(
     """Run check, plan, verify and replay on the bundled tablet-blend protocol."""
     from guardband.planner.app.demo import run_demo
 
-    lines = run_demo(Path(out), echo=typer.echo)
+    lines = run_demo(Path(out), echo=_echo)
     for line in lines:
         _err(line)
 

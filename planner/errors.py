@@ -28,9 +28,9 @@ __all__ = [
 
 EXIT_OK = 0
 EXIT_USAGE = 2  # typer/click's own code for a bad command line
-EXIT_PROTOCOL = 3  # protocol file unreadable, invalid, or its design space is empty
-EXIT_RUNS = 4  # runs file unreadable or invalid
-EXIT_VERIFY = 5  # decision log failed verification, or a replay differed
+EXIT_PROTOCOL = 3  # protocol file missing, unreadable, too large or invalid, or its design space empty or one point
+EXIT_RUNS = 4  # runs file missing, unreadable, too large or invalid, or more runs than --max-runs
+EXIT_VERIFY = 5  # decision log missing, unreadable or failed verification, or a replay differed
 EXIT_NO_SAFE = 6  # no candidate passed the safety screen
 EXIT_MODEL = 7  # a model could not be fitted or cannot be trusted; the tool refuses
 EXIT_IO = 8  # an output could not be written (nothing was changed)

@@ -81,3 +81,31 @@ LIMIT_SIGNAL_VARIANCE_MIN = 1.0
 #: Largest input copy (protocol or runs file) a replay or a summary reads
 #: from a campaign folder; a larger file is refused, not read.
 CAMPAIGN_FILE_MAX_BYTES = 64 * 2**20
+# --------------------------------------------------------------- inputs
+#: Largest size of each input file the tool reads, in bytes (larger files are
+#: refused before they are read; a protocol is a page of text, a runs file a
+#: table of at most some thousands of rows, a log grows one record per step).
+MAX_PROTOCOL_BYTES = 1 << 20
+MAX_RUNS_FILE_BYTES = 64 << 20
+MAX_LOG_BYTES = 512 << 20
+#: Deepest nesting of tables and arrays in a protocol, and of parentheses and
+#: signs in one rule; anything deeper is refused by name (no protocol needs
+#: more than a few levels).
+MAX_PROTOCOL_NESTING = 16
+MAX_RULE_NESTING = 40
+#: Largest magnitude of any number read from an input (protocol setting,
+#: rule, runs cell, after any unit conversion). Squares and products of such
+#: numbers stay far from the largest double (about 1.8e308); a larger value
+#: is refused by name, with advice to state it in another unit.
+MAX_INPUT_MAGNITUDE = 1e100
+#: Most runs (rows) a planning step takes by default; `plan --max-runs` raises
+#: it. The models' fitting time grows with the cube of the number of runs:
+#: 1,000 runs took about 30 s on the project's shared 2-core machine.
+MAX_RUNS_DEFAULT = 1000
+#: Largest workbook sheet read, by its declared dimensions (rows x columns)
+#: and by its rows, checked before any cell is loaded.
+MAX_SHEET_CELLS = 2_000_000
+MAX_SHEET_ROWS = 200_000
+#: Runs closer than this (unit-scaled, in every factor) count as repeats of the
+#: same factor settings when a model cannot be fitted and the message names them.
+REPEATED_RUN_DISTANCE = 1e-6

@@ -48,6 +48,8 @@ import filelock
 
 from guardband.planner.errors import OutputError, VerificationError
 from guardband.planner.app.fileio import atomic_write_bytes, check_output_target
+from guardband.planner.inputs.reading import read_regular_bytes
+from guardband.planner.settings import MAX_LOG_BYTES
 from guardband.safety.canonical import canonical_json, canonical_string, to_jsonable, write_canonical
 
 __all__ = [
@@ -168,6 +170,8 @@ def _parse_line(raw: bytes) -> dict[str, Any]:
         )
     except ValueError as exc:
         raise _LineError(f"is not valid JSON ({exc})") from None
+    except RecursionError:
+        raise _LineError("nests arrays or objects too deeply to read (no record of ours does)") from None
     if not isinstance(obj, dict):
         raise _LineError(f"is not a JSON object (found {type(obj).__name__})")
     return obj
@@ -184,8 +188,8 @@ def _split_lines(data: bytes) -> tuple[list[bytes], bool]:
 
 
 def _read_bytes(path: str) -> bytes:
-    with open(path, "rb") as handle:
-        return handle.read()
+    # a regular file only, never blocking on a FIFO, and of bounded size
+    return read_regular_bytes(path, MAX_LOG_BYTES)
 
 
 def read_records(path: PathLike) -> list[dict[str, Any]]:

@@ -24,6 +24,11 @@ __all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "limit_rules", "within
 #: Judged on the next measurement (noise included) or on the true value.
 MEASUREMENT = "measurement"
 TRUE_VALUE = "true-value"
+#: How reports and messages say what a limit's probability is about, by ``judged_on``.
+JUDGED_TEXT = {
+    MEASUREMENT: "a new measurement",
+    TRUE_VALUE: "the response's true value (the noise-free mean, measurement noise left out)",
+}
 
 
 @dataclass(frozen=True)
@@ -40,6 +45,11 @@ class LimitRule:
     def with_noise(self) -> bool:
         """Whether the limit is judged on the next measurement (noise included)."""
         return self.judged_on == MEASUREMENT
+
+    @property
+    def judged_text(self) -> str:
+        """What the limit's probability is about, in words: "a new measurement" or "the true value ..."."""
+        return JUDGED_TEXT[self.judged_on]
 
     @property
     def prior_mean(self) -> float:

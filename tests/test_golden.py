@@ -28,7 +28,8 @@ significant digit (povidone 0.0110113 -> 0.0110112; four refined rows of the
 exclusion table likewise); every record body gained ``operator`` (set here
 through GUARDBAND_OPERATOR, so it holds no name of this machine), and the
 rule comparison and the price of the threshold (``rule_picks``,
-``threshold_price``).
+``threshold_price``), the tested-span detail's wording, and near misses
+ranked by the joint figure instead of the ranking score.
 """
 
 from __future__ import annotations
@@ -51,13 +52,13 @@ OPERATOR = "golden test"
 GOLDEN = {
     "tablet_blend": (
         "a80752d02476a676afb15bb760e89bf5e1fd55426fe397243ed586c8ffa54bfd",
-        "d437cb900a235225ea1f7bd9a5c3660d96fa702672c69fa49d38ee0be063a885",
-        "f46533757a643c2e7baa8369706fbacb569b2a6069d33de15b6f10ab61ca8948",
+        "fe0ff00e144b823fce403d530d841024effd0e4b891f64c1c7c101d333424d9a",
+        "4a719b2ac2c6cdeb95d6073e2d8bca5568904cdf4bb34bea2e031928d5373890",
     ),
     "dose_combination": (
         "5d5e40064def094e2b2ffd3a629cf249b20bced94d9e651fecebf2a565f6abc1",
         "7885efab293973fc10bac01f80357a87bf525063edd19a9e064ce6340ef9691f",
-        "0f6942ffd76d8a72d42a8725f0d8d31c51a5fc32a39ea65e37bd9eb325bd81a6",
+        "5ba8e4523dd914f6ff4eb3fd97ea34b0c2aaaa601d1691b13d472e18e3f14689",
     ),
 }
 

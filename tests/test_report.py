@@ -146,6 +146,11 @@ def test_report_lists_everything_with_cautions_first(which, request):
         assert f"{label}-{prop['rank']:02d}" in batch
     for column in ("ei", "pi", "bound", "mean", "joint"):
         assert re.search(rf"\b{column}\b", batch)
+    # each limit's figure is described as that limit is judged (the dose limit: its true value)
+    if kind == "dose":
+        assert "true value" in batch and "new measurement" not in batch
+    else:
+        assert "probability that a new measurement meets it" in batch
 
     # every near miss, and the counts as in the exclusion table the plan wrote
     exclusions = page.joined("exclusions")

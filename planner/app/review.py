@@ -189,9 +189,9 @@ class ReviewSummary:
                 more = f"; the first {len(shown)} settings shown" if len(groups) > len(shown) else ""
                 out.append(f"  near misses: {len(s.near_misses)} candidate{'s' * (len(s.near_misses) != 1)} at "
                            f"{len(groups)} distinct setting{'s' * (len(groups) != 1)}{more}:")
-                header = ["candidates", "settings", "reason", "joint", "detail"]
+                header = ["candidates", "settings", "reason", "joint", "each limit", "detail"]
                 rows = [[_candidates_text(g), _settings_text(g[0]), g[0].get("reason"), g[0].get("joint"),
-                         g[0].get("detail")] for g in shown]
+                         _limits_text(g[0]), g[0].get("detail")] for g in shown]
                 out.extend("    " + line for line in render_table(header, rows, max_width=80).splitlines())
             else:
                 out.append("  near misses: none")
@@ -233,8 +233,14 @@ def _settings_text(d: dict) -> str:
     return ", ".join(f"{k}={float(v):.4g}" for k, v in (d.get("x") or {}).items())
 
 
+def _limits_text(d: dict) -> str:
+    """Every limit's probability of a near miss ("impurity 0.97, friability 0.38")."""
+    return ", ".join(f"{k} {'-' if v is None else format(float(v), '.3g')}" for k, v in (d.get("p") or {}).items())
+
+
 def _near_miss_text(d: dict) -> str:
-    return f"candidate {d.get('candidate')}: {d.get('reason')} ({d.get('detail')})"
+    return (f"candidate {d.get('candidate')}: {d.get('reason')} ({d.get('detail')}); joint {d.get('joint')}; "
+            f"{_limits_text(d)}")
 
 
 def _protocol_info(base: Path, body: dict) -> dict:

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+from guardband.planner.inputs.names import shown
+
 __all__ = ["format_cell", "render_table"]
 
 
@@ -25,12 +27,17 @@ def format_cell(value, *, digits: int = 4) -> str:
 
 
 def render_table(header, rows, *, digits: int = 4, max_width: int = 48) -> str:
-    """Render rows under a header as aligned text; long cells are cut with '...'."""
-    cells = [[str(h) for h in header]]
+    """Render rows under a header as aligned text; long cells are cut with '...'.
+
+    Every cell goes through :func:`planner.inputs.names.shown`, so text from
+    an input (a run id, a factor name) cannot move the cursor or the text
+    direction of the terminal.
+    """
+    cells = [[shown(str(h), keep="") for h in header]]
     for row in rows:
         out = []
         for v in row:
-            t = format_cell(v, digits=digits).replace("\n", " ")
+            t = shown(format_cell(v, digits=digits).replace("\n", " "), keep="")
             if len(t) > max_width:
                 t = t[: max_width - 3] + "..."
             out.append(t)

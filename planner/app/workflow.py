@@ -26,11 +26,12 @@ from pathlib import Path
 
 import numpy as np
 
-from guardband.planner import __version__
+from guardband.planner import __version__, settings
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, VerificationError
 from guardband.planner.app.campaign import commit_step, read_input_copy
 from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
+from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs_bytes
 from guardband.planner.models import blas_limit
 from guardband.planner.step import PlanResult, plan_step
@@ -139,6 +140,9 @@ def check_protocol(path: str | Path) -> CheckReport:
     protocol = load_protocol(path)
     space = protocol.design_space()
     result = space.check()
+    point = result.single_point(space.names)
+    if point:
+        raise ProtocolError(f"{Path(path).name}: {point}")
     start = protocol.start_rows()
     message = result.message
     if not result.empty and start is not None:
@@ -291,6 +295,7 @@ def run_plan(
     decimal: str | None = None,
     sheet: str | None = None,
     by: str | None = None,
+    max_runs: int = settings.MAX_RUNS_DEFAULT,
 ) -> PlanOutcome:
     """Plan the next batch and record it.
 
@@ -320,7 +325,7 @@ def run_plan(
     runs_bytes = _read_input(runs_path, RunsDataError, "runs")
     read_options = {"delimiter": delimiter, "decimal": decimal, "sheet": sheet}
     runs = read_runs_bytes(runs_bytes, protocol, source=runs_path.name, suffix=runs_path.suffix,
-                           **read_options)
+                           max_runs=max_runs, **read_options)
     seed_drawn = False
     if seed is None:
         seed = protocol.seed
@@ -340,10 +345,8 @@ def run_plan(
 
 
 def _read_input(path: Path, error, what: str) -> bytes:
-    try:
-        return path.read_bytes()
-    except OSError as exc:
-        raise error(f"{path}: cannot read the {what} file ({exc.strerror or exc})") from None
+    limit = settings.MAX_PROTOCOL_BYTES if error is ProtocolError else settings.MAX_RUNS_FILE_BYTES
+    return read_input(path, what=what, error=error, max_bytes=limit)
 
 
 #: Suffixes a runs copy keeps (a workbook stays a workbook); others become .csv.

@@ -23,7 +23,10 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from guardband.planner import settings
 from guardband.planner.errors import ProtocolError
+from guardband.planner.inputs.names import check_visible, name_key, normal_text, shown
+from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 
 __all__ = [
@@ -58,8 +61,9 @@ def _check_name(value: str, what: str) -> str:
         raise ValueError(f"{what} must be a non-empty text")
     if value != value.strip():
         raise ValueError(f"{what} {value!r} has leading or trailing spaces; remove them")
-    if any(ord(ch) < 32 for ch in value) or "`" in value:
-        raise ValueError(f"{what} {value!r} contains a control character or a backquote")
+    check_visible(value, what)
+    if "`" in value:
+        raise ValueError(f"{what} {value!r} contains a backquote")
     return value
 
 
@@ -305,7 +309,7 @@ class Ranking(_Strict):
     """Which ranking rule orders the survivors."""
 
     rule: Literal["ei", "pi", "bound", "mean"] = "ei"
-    kappa: float = Field(default=2.0, ge=0)
+    kappa: float = Field(default=2.0, ge=0, le=100, description="sds added to the mean by the bound rule")
     xi: float = Field(default=0.0, ge=0)
 
 
@@ -373,17 +377,18 @@ class Protocol(_Strict):
     @model_validator(mode="after")
     def _cross_checks(self):
         names = [f.name for f in self.factors]
-        seen: set[str] = set()
+        seen: dict[str, str] = {}
         for n in names:
-            if n in seen:
-                raise ValueError(f"factor name {n!r} is used twice")
-            seen.add(n)
+            if name_key(n) in seen:
+                raise ValueError(_twice(f"factor name {n!r} is used twice", n, seen[name_key(n)]))
+            seen[name_key(n)] = n
         responses = [self.objective.name] + [lim.name for lim in self.limits]
         for r in responses:
-            if r in seen:
-                raise ValueError(f"name {r!r} is used for a factor and a response (or twice)")
-            seen.add(r)
-        if "run_id" in seen or "notes" in seen:
+            if name_key(r) in seen:
+                raise ValueError(_twice(f"name {r!r} is used for a factor and a response (or twice)",
+                                        r, seen[name_key(r)]))
+            seen[name_key(r)] = r
+        if name_key("run_id") in seen or name_key("notes") in seen:
             raise ValueError("`run_id` and `notes` are reserved column names; rename that factor or response")
         components = [f for f in self.factors if f.kind == "component"]
         if components and self.mixture is None:
@@ -521,7 +526,41 @@ class Protocol(_Strict):
         return self.rule_rows(self.start.parsed, label_prefix="start region: ")
 
 
+def _twice(message: str, name: str, first: str) -> str:
+    if name == first:
+        return message
+    return (f"{message}: {first!r} and {name!r} print alike or differ only in case or in "
+            "compatibility forms; give them clearly different names")
+
+
 # ----------------------------------------------------------------- loading
+def _checked_data(data, source: str, loc: tuple = ()):
+    """The parsed TOML with every text in NFC; ProtocolError for a number out of range or deep nesting.
+
+    Every number must be finite and at most ``settings.MAX_INPUT_MAGNITUDE``
+    in size, and tables and arrays may nest at most
+    ``settings.MAX_PROTOCOL_NESTING`` deep; the refusal names the field.
+    """
+    if len(loc) > settings.MAX_PROTOCOL_NESTING:
+        raise ProtocolError(f"{source}: {_format_loc(loc[:settings.MAX_PROTOCOL_NESTING])}: tables or arrays "
+                            f"nest deeper than {settings.MAX_PROTOCOL_NESTING} levels; no protocol needs that")
+    if isinstance(data, dict):
+        return {normal_text(k): _checked_data(v, source, loc + (shown(normal_text(k)),)) for k, v in data.items()}
+    if isinstance(data, list):
+        return [_checked_data(v, source, loc + (k,)) for k, v in enumerate(data)]
+    if isinstance(data, str):
+        return normal_text(data)
+    if isinstance(data, (int, float)) and not isinstance(data, bool):
+        if isinstance(data, float) and not math.isfinite(data):
+            raise ProtocolError(f"{source}: {_format_loc(loc)}: {data!r} is not a finite number")
+        if abs(data) > settings.MAX_INPUT_MAGNITUDE:
+            raise ProtocolError(
+                f"{source}: {_format_loc(loc)}: {data:.3g} is larger in size than the "
+                f"{settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with safely; state it in another unit"
+            )
+    return data
+
+
 def _format_loc(loc: tuple) -> str:
     out = ""
     for part in loc:
@@ -565,6 +604,7 @@ def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
     ProtocolError
         Naming ``source``, the field path and what to change.
     """
+    data = _checked_data(data, source)
     try:
         protocol = Protocol.model_validate(data)
     except ValidationError as exc:
@@ -607,10 +647,7 @@ def load_protocol(path: str | Path) -> Protocol:
         When the file cannot be read, is not TOML, or is not a valid protocol.
     """
     path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise ProtocolError(f"{path}: cannot read the protocol file ({exc.strerror})") from None
+    raw = read_input(path, what="protocol", error=ProtocolError, max_bytes=settings.MAX_PROTOCOL_BYTES)
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -619,4 +656,7 @@ def load_protocol(path: str | Path) -> Protocol:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ProtocolError(f"{path}: not valid TOML: {exc}") from None
+    except RecursionError:
+        raise ProtocolError(f"{path}: tables or arrays nest too deeply to read (more than "
+                            f"{settings.MAX_PROTOCOL_NESTING} levels are refused)") from None
     return parse_protocol(data, source=str(path.name))

@@ -34,6 +34,8 @@ import math
 import re
 from dataclasses import dataclass
 
+from guardband.planner.settings import MAX_INPUT_MAGNITUDE, MAX_RULE_NESTING
+
 __all__ = ["RuleSyntaxError", "LinearRule", "parse_rule"]
 
 
@@ -187,6 +189,7 @@ class _Parser:
         self.text = text
         self.tokens = _tokenize(text)
         self.i = 0
+        self.depth = 0  # open parentheses and signs being read; at most MAX_RULE_NESTING
 
     def peek(self) -> tuple[str, str, int]:
         return self.tokens[self.i]
@@ -246,11 +249,22 @@ class _Parser:
                     left = _Ratio(left, right)
         return left
 
+    def nested(self, read, pos: int):
+        """``read()`` one level deeper, refused past MAX_RULE_NESTING levels (no recursion error)."""
+        if self.depth >= MAX_RULE_NESTING:
+            self.fail(f"parentheses and signs nest deeper than {MAX_RULE_NESTING} levels; "
+                      "write the rule more simply", pos)
+        self.depth += 1
+        try:
+            return read()
+        finally:
+            self.depth -= 1
+
     def unary(self):
         kind, value, pos = self.peek()
         if kind == "op" and value in "+-":
             self.take()
-            inner = self.unary()
+            inner = self.nested(self.unary, pos)
             if value == "+":
                 return inner
             if isinstance(inner, _Ratio):
@@ -261,11 +275,15 @@ class _Parser:
     def atom(self):
         kind, value, pos = self.take()
         if kind == "number":
-            return _Lin.constant(float(value))
+            number = float(value)
+            if not abs(number) <= MAX_INPUT_MAGNITUDE:
+                self.fail(f"the number {value} is larger in size than the {MAX_INPUT_MAGNITUDE:.0e} "
+                          "the tool computes with safely (or not finite); state the rule in other units", pos)
+            return _Lin.constant(number)
         if kind == "name":
             return _Lin.name(value.strip())
         if kind == "op" and value == "(":
-            inner = self.expr()
+            inner = self.nested(self.expr, pos)
             k2, v2, p2 = self.take()
             if not (k2 == "op" and v2 == ")"):
                 self.fail("expected ')'", p2)
@@ -297,10 +315,13 @@ def _compare(text: str, left, sense: str, right) -> LinearRule:
     coefs = tuple((n, c) for n, c in diff.as_dict().items() if c != 0.0)
     if not coefs:
         raise RuleSyntaxError("the rule names no factor (or its factors cancel out)")
-    for _, c in coefs:
-        if not math.isfinite(c):
-            raise RuleSyntaxError("a coefficient is not a finite number")
     rhs = -diff.const + 0.0  # "+ 0.0" turns -0.0 into 0.0
+    for c in (*(c for _, c in coefs), rhs):
+        if not abs(c) <= MAX_INPUT_MAGNITUDE:  # also NaN and infinities
+            raise RuleSyntaxError(
+                f"a coefficient or constant works out to {c:.3g}, beyond the {MAX_INPUT_MAGNITUDE:.0e} the "
+                "tool computes with safely; state the rule in other units"
+            )
     return LinearRule(text=text, coefs=coefs, sense=sense, rhs=rhs, divisors=tuple(divisors))
 
 

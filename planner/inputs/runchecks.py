@@ -58,7 +58,7 @@ def check_unit(convert: dict[str, object], label: str, name: str, unit: str, pro
 
 
 def to_protocol_units(protocol: Protocol, X: np.ndarray, Y: dict[str, np.ndarray],
-                      convert: dict[str, object]) -> None:
+                      convert: dict[str, object], wheres: list[str]) -> list[str]:
     """Convert, in place, each column of ``X`` and ``Y`` whose header stated another unit.
 
     Parameters
@@ -68,15 +68,34 @@ def to_protocol_units(protocol: Protocol, X: np.ndarray, Y: dict[str, np.ndarray
     Y : dict of str to ndarray of shape (n_runs,)
     convert : dict of str to Conversion or None
         By column name; None (the unit cannot be converted) leaves the values as read.
+    wheres : list of str
+        Each row as messages name it ("row 5 (run R1)").
+
+    Returns
+    -------
+    list of str
+        A problem for each value the conversion took past
+        ``settings.MAX_INPUT_MAGNITUDE`` or out of the doubles (an overflow is
+        never read as "not measured").
     """
-    for q, f in enumerate(protocol.factors):
-        conv = convert.get(f.name)
-        if conv is not None:
-            X[:, q] = conv.apply(X[:, q])
-    for r, y in Y.items():
-        conv = convert.get(r)
-        if conv is not None:
-            y[:] = conv.apply(y)
+    problems: list[str] = []
+    columns = [(f.name, X[:, q]) for q, f in enumerate(protocol.factors)] + list(Y.items())
+    for name, column in columns:
+        conv = convert.get(name)
+        if conv is None:
+            continue
+        with np.errstate(over="ignore", invalid="ignore"):
+            new = conv.apply(column)
+        bad = np.isfinite(column) & ~(np.abs(new) <= settings.MAX_INPUT_MAGNITUDE)
+        for k in np.flatnonzero(bad)[:10]:
+            what = (f"beyond the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with safely"
+                    if np.isfinite(new[k]) or np.isinf(new[k]) else "not a number")
+            problems.append(
+                f"{wheres[k]}, column {name}: {column[k]:g} [{conv.source}] converts to "
+                f"{new[k]:.3g} [{conv.target}], {what}; check the unit in the header"
+            )
+        column[:] = new
+    return problems
 
 
 def factor_value_flags(protocol: Protocol, X: np.ndarray, wheres: list[str],

@@ -46,8 +46,14 @@ from pathlib import Path
 
 import numpy as np
 
+from guardband.planner import settings
 from guardband.planner.errors import RunsDataError
+from guardband.planner.inputs.names import check_visible, name_key, normal_text
 from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.inputs.reading import read_input
+from guardband.planner.inputs.workbook import Formula as _Formula
+from guardband.planner.inputs.workbook import SheetError as _SheetError
+from guardband.planner.inputs.workbook import read_sheet
 from guardband.planner.inputs.runchecks import (
     check_unit,
     factor_value_flags,
@@ -133,21 +139,6 @@ class RunsTable:
         return ~np.any(np.column_stack([np.isfinite(v) for v in self.Y.values()]), axis=1)
 
 
-# ------------------------------------------------------------ cell kinds
-@dataclass(frozen=True)
-class _Formula:
-    """A workbook cell holding a formula whose result was never saved."""
-
-    text: str
-
-
-@dataclass(frozen=True)
-class _SheetError:
-    """A workbook cell holding an error value such as ``#DIV/0!``."""
-
-    code: str
-
-
 @dataclass
 class _Grid:
     """Cells as read, before any checking."""
@@ -209,6 +200,7 @@ def read_runs(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
     """Read and check a runs file (CSV, tab-separated text or .xlsx) against a protocol.
 
@@ -222,6 +214,8 @@ def read_runs(
         Decimal mark of text cells; found from the cells if not given.
     sheet : str, optional
         Workbook sheet to read; the first sheet if not given.
+    max_runs : int, optional
+        Most rows taken; a larger table is refused before its cells are checked.
 
     Raises
     ------
@@ -229,12 +223,9 @@ def read_runs(
         Listing every problem with its row and column; nothing is computed.
     """
     path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise RunsDataError(f"{path}: cannot read the runs file ({exc.strerror or exc})") from None
+    raw = read_input(path, what="runs", error=RunsDataError, max_bytes=settings.MAX_RUNS_FILE_BYTES)
     return read_runs_bytes(raw, protocol, source=path.name, suffix=path.suffix,
-                           delimiter=delimiter, decimal=decimal, sheet=sheet)
+                           delimiter=delimiter, decimal=decimal, sheet=sheet, max_runs=max_runs)
 
 
 def read_runs_bytes(
@@ -246,23 +237,25 @@ def read_runs_bytes(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
     """Check a runs file given as its bytes; see :func:`read_runs`.
 
     The format is taken from the content (a workbook is a zip archive), not
     from ``suffix``, which only sharpens the messages. ``sha256`` of the
-    table is the digest of exactly these bytes.
+    table is the digest of exactly these bytes. A table of more than
+    ``max_runs`` rows is refused before its cells are checked.
     """
     delimiter, decimal = _check_options(source, delimiter, decimal)
     sha256 = hashlib.sha256(raw).hexdigest()
     kind = _format_of(raw, suffix, source)
     if kind == "xlsx":
         grid = _read_xlsx(raw, source=source, sheet=sheet)
-        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
     if sheet is not None:
         raise RunsDataError(f"{source}: a sheet ({sheet!r}) was named, but the file is text, not a workbook")
     return parse_runs_text(_decode(raw, source), protocol, source=source, sha256=sha256,
-                           delimiter=delimiter, decimal=decimal)
+                           delimiter=delimiter, decimal=decimal, max_runs=max_runs)
 
 
 def _check_options(source: str, delimiter, decimal) -> tuple[str | None, str | None]:
@@ -326,8 +319,9 @@ def parse_runs_text(
     sha256: str | None = None,
     delimiter: str | None = None,
     decimal: str | None = None,
+    max_runs: int | None = None,
 ) -> RunsTable:
-    """Check a runs table given as text; see :func:`read_runs`."""
+    """Check a runs table given as text; see :func:`read_runs` and :func:`read_runs_bytes`."""
     delimiter, decimal = _check_options(source, delimiter, decimal)
     if sha256 is None:
         sha256 = hashlib.sha256(text.encode("utf-8")).hexdigest()
@@ -358,16 +352,21 @@ def parse_runs_text(
         delimiter = _sniff_delimiter(lines[skip] if skip < len(lines) else "")
     reader = csv.reader(io.StringIO(body), delimiter=delimiter, strict=True)
     rows: list[list[object]] = []
+    filled = 0  # rows with a value, header included
     try:
         for row in reader:
             rows.append(list(row))
+            filled += not _blank_row(row)
+            if max_runs is not None and filled - 1 > max_runs:  # stop reading: a step will not take them
+                lines = body.count("\n") + (not body.endswith("\n"))
+                raise RunsDataError(too_many_runs(source, lines - 1, max_runs, at_least=True))
     except csv.Error as exc:
         raise RunsDataError(
             f"{source}: row {len(rows) + 1 + skip}: the file cannot be read as "
             f"{_delimiter_name(delimiter)}-separated text ({exc}); a quoted cell may not be closed"
         ) from None
     grid = _Grid(rows=rows, row_numbers=[skip + i + 1 for i in range(len(rows))], delimiter=delimiter)
-    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
 
 
 def _delimiter_name(d: str) -> str:
@@ -385,67 +384,7 @@ def _sniff_delimiter(header_line: str) -> str:
 
 
 def _read_xlsx(raw: bytes, *, source: str, sheet: str | None) -> _Grid:
-    import openpyxl
-
-    books = []
-    try:
-        for data_only in (True, False):
-            books.append(openpyxl.load_workbook(io.BytesIO(raw), read_only=True, data_only=data_only))
-    except Exception as exc:  # a damaged workbook raises KeyError, BadZipFile, XML errors, ...
-        for b in books:
-            b.close()
-        raise RunsDataError(
-            f"{source}: cannot read the workbook ({type(exc).__name__}: {exc}); save it again as "
-            ".xlsx, or export CSV UTF-8"
-        ) from None
-    values_book, formula_book = books
-    try:
-        names = list(values_book.sheetnames)
-        if not names:
-            raise RunsDataError(f"{source}: the workbook has no sheets")
-        if sheet is None:
-            title = names[0]
-        elif sheet in names:
-            title = sheet
-        else:
-            raise RunsDataError(
-                f"{source}: there is no sheet {sheet!r}; the sheets are "
-                f"{', '.join(repr(n) for n in names)}"
-            )
-        ws, wf = values_book[title], formula_book[title]
-        if not hasattr(ws, "iter_rows"):
-            raise RunsDataError(f"{source}: sheet {title!r} is a chart, not a table of cells")
-        ws.reset_dimensions()
-        wf.reset_dimensions()
-        formulas: dict[tuple[int, int], str] = {}
-        for number, cells in enumerate(wf.iter_rows(), start=1):
-            for j, c in enumerate(cells):
-                if getattr(c, "data_type", None) == "f" and c.value is not None:
-                    text = c.value if isinstance(c.value, str) else getattr(c.value, "text", str(c.value))
-                    formulas[(getattr(c, "row", number), j)] = str(text)
-        rows: list[list[object]] = []
-        numbers: list[int] = []
-        for number, cells in enumerate(ws.iter_rows(), start=1):
-            number = next((c.row for c in cells if getattr(c, "row", None)), number)
-            row: list[object] = []
-            for j, c in enumerate(cells):
-                v = c.value
-                if getattr(c, "data_type", None) == "e":
-                    v = _SheetError(str(v))
-                elif v is None and (number, j) in formulas:
-                    v = _Formula(formulas[(number, j)])
-                elif isinstance(v, str):
-                    v = v.strip()
-                row.append(v)
-            # rows the sheet skips entirely still count
-            while len(numbers) and numbers[-1] + 1 < number:
-                numbers.append(numbers[-1] + 1)
-                rows.append([])
-            rows.append(row)
-            numbers.append(number)
-    finally:
-        values_book.close()
-        formula_book.close()
+    rows, numbers, title = read_sheet(raw, source=source, sheet=sheet)
     # leading "# ..." rows (a starting design opened and saved in a spreadsheet)
     skip = 0
     while skip < len(rows):
@@ -525,7 +464,7 @@ def _number(value: object, decimal: str | None) -> tuple[float | None, str | Non
         v = float(value)
         if not math.isfinite(v):
             return None, f"{value!r} is not a finite number"
-        return v, None
+        return _in_range(v, repr(value))
     s = str(value).strip()
     if not s:
         return None, None
@@ -543,6 +482,30 @@ def _number(value: object, decimal: str | None) -> tuple[float | None, str | Non
         return None, _why_not_number(s, decimal)
     if not math.isfinite(v):  # "1e400" reads as infinity
         return None, f"{s!r} is too large to be a finite number"
+    return _in_range(v, repr(s))
+
+
+def too_many_runs(source: str, n: int, max_runs: int, *, at_least: bool = False) -> str:
+    """The refusal of a table with more rows than a planning step takes, saying how to raise the limit.
+
+    ``at_least``: ``n`` counts the file's lines (read no further), an upper bound of its runs.
+    """
+    runs = f"up to {n:,} runs (its lines below the header)" if at_least else f"{n:,} runs"
+    return (f"{source}: {runs}, more than the {max_runs:,} a planning step takes (the models' fitting "
+            f"time grows with the cube of the number of runs; {settings.MAX_RUNS_DEFAULT:,} runs took about "
+            f"half a minute on a 2-core machine). To plan with them all, raise the limit: "
+            f"guardband plan ... --max-runs {n}")
+
+
+def too_large(text: str) -> str:
+    """The problem text for a value beyond ``settings.MAX_INPUT_MAGNITUDE``."""
+    return (f"{text} is larger in size than the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with "
+            "safely; state the column's unit in the header (e.g. 'name [mg]') or rescale it")
+
+
+def _in_range(v: float, text: str) -> tuple[float | None, str | None]:
+    if abs(v) > settings.MAX_INPUT_MAGNITUDE:
+        return None, too_large(text)
     return v, None
 
 
@@ -622,7 +585,7 @@ class _Values:
 
 
 def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
-                decimal: str | None) -> RunsTable:
+                decimal: str | None, max_runs: int | None = None) -> RunsTable:
     """Check cells as read against the protocol: header, cells, units, bounds and totals.
 
     Raises
@@ -631,6 +594,9 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         Listing every problem found; nothing is computed.
     """
     grid = _trimmed(grid, source)
+    n_runs = sum(not _blank_row(r) for r in grid.rows[1:])
+    if max_runs is not None and n_runs > max_runs:
+        raise RunsDataError(too_many_runs(source, n_runs, max_runs))
     problems: list[str] = []
     flags: list[str] = []
     columns = _check_header(grid, protocol, problems, flags)
@@ -640,7 +606,7 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
     if mixed:
         problems.append(mixed)
     values = _read_rows(grid, protocol, columns, decimal, problems)
-    to_protocol_units(protocol, values.X, values.Y, columns.convert)
+    problems += to_protocol_units(protocol, values.X, values.Y, columns.convert, values.wheres)
     flags += factor_value_flags(protocol, values.X, values.wheres, columns.convert)
     problems += mixture_total_problems(protocol, values.X, values.wheres, columns.convert)
     if problems:
@@ -711,7 +677,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
 
 def _header_name(cell: object, known: set[str]) -> tuple[str, str | None]:
     """A header cell as (name, unit stated in brackets or None)."""
-    text = _text_of(cell)
+    text = normal_text(_text_of(cell))
     # a name that itself ends in brackets ("x [1]") is taken whole
     name, unit = (text, None) if text in known else _split_header(text)
     if name not in known and name[:1] == "'" and name[1:2] in _FORMULA_PREFIXES and name[1:] in known:
@@ -729,7 +695,7 @@ def _read_rows(grid: _Grid, protocol: Protocol, columns: _Columns, decimal: str 
     n = len(grid.rows) - 1
     values = _Values([], [], [], np.full((n, len(protocol.factors)), np.nan),
                      {r: np.full(n, np.nan) for r in protocol.response_names})
-    seen_ids: dict[str, int] = {}
+    seen_ids: dict[str, tuple[str, int]] = {}
     width = len(grid.rows[0])
     for k, row in enumerate(grid.rows[1:]):
         i, line = k + 1, grid.row_numbers[k + 1]
@@ -760,18 +726,27 @@ def _cell(row: list[object], j: int) -> object:
     return row[j] if j < len(row) else None
 
 
-def _run_id(grid: _Grid, i: int, columns: _Columns, seen: dict[str, int], problems: list[str]) -> str:
+def _run_id(grid: _Grid, i: int, columns: _Columns, seen: dict[str, tuple[str, int]],
+            problems: list[str]) -> str:
     """Row ``i``'s run id; an empty id, or one an earlier row used (``seen``), is a problem."""
     if RUN_ID not in columns.at:
         return ""
     j = columns.at[RUN_ID]
-    rid = _text_of(_cell(grid.rows[i], j))
+    rid = normal_text(_text_of(_cell(grid.rows[i], j)))
+    try:
+        check_visible(rid, "run id")
+    except ValueError as exc:
+        problems.append(f"{grid.at(i, j, RUN_ID)}: {exc}")
+        return rid
+    key = name_key(rid)
     if not rid:
         problems.append(f"{grid.at(i, j, RUN_ID)}: the run id is empty")
-    elif rid in seen:
-        problems.append(f"{grid.at(i, j, RUN_ID, rid)}: run id {rid!r} is also used in row {seen[rid]}")
+    elif key in seen:
+        first, line = seen[key]
+        also = "" if first == rid else f" as {first!r} (they differ only in case or in compatibility forms)"
+        problems.append(f"{grid.at(i, j, RUN_ID, rid)}: run id {rid!r} is also used in row {line}{also}")
     else:
-        seen[rid] = grid.row_numbers[i]
+        seen[key] = (rid, grid.row_numbers[i])
     return rid
 
 

@@ -190,12 +190,10 @@ def read_unit(text: str) -> UnitReading:
 
 
 def _round(values: np.ndarray) -> np.ndarray:
+    """Each value to SIGNIFICANT_DIGITS significant digits (decimal text, so no scale factor can overflow)."""
     out = np.array(values, dtype=float, copy=True)
     finite = np.isfinite(out) & (out != 0)
-    if np.any(finite):
-        mag = np.floor(np.log10(np.abs(out[finite])))
-        scale = 10.0 ** (SIGNIFICANT_DIGITS - 1 - mag)
-        out[finite] = np.round(out[finite] * scale) / scale
+    out[finite] = [float(f"{v:.{SIGNIFICANT_DIGITS}g}") for v in out[finite]]
     return out
 
 

@@ -169,8 +169,10 @@ def not_pd_advice(n: int) -> str:
     """The message for a kernel matrix of ``n`` runs that no jitter made positive definite."""
     return (
         f"the kernel matrix of {n} runs is not positive definite even with jitter "
-        f"{settings.JITTER_MAX:g} times its mean diagonal; runs may be duplicated with the noise "
-        "variance at its floor. Raise noise_floor, or merge duplicated runs"
+        f"{settings.JITTER_MAX:g} times its mean diagonal; runs may repeat the same factor settings "
+        "while the model's noise is held at its smallest value. If the response's repeatability is "
+        "known, state it as `measurement_sd` of that response in the protocol; otherwise merge or "
+        "remove the repeated runs"
     )
 
 
@@ -184,7 +186,8 @@ def clip_variance(var: np.ndarray, reference: float) -> np.ndarray:
         warnings.warn(
             f"{count} predicted variance(s) came out negative (down to {low:.3g}, "
             f"{-low / reference:.3g} of the signal variance) and were set to zero; "
-            "the kernel matrix is ill-conditioned, consider a larger noise_floor",
+            "the kernel matrix is ill-conditioned (runs very close together); if the response's "
+            "repeatability is known, state it as `measurement_sd` in the protocol",
             RuntimeWarning,
             stacklevel=3,
         )

@@ -22,6 +22,7 @@ from guardband.planner.settings import Z95
 from guardband.planner.simulation.loop import best_so_far
 from guardband.planner.step import PlanResult
 
+from guardband.planner.report.tables import band_label
 from guardband.planner.report.data import MAP_POINTS, SLICE_POINTS, MapData, SliceData, _Geometry, map_at, slice_at
 from guardband.planner.report.style import (
     LIMIT_LINE, MAP_CMAP, OKABE_ITO, RUN_MET, RUN_MISSED, ReportFigure, axes_grid, finish_figure, legend_rows,
@@ -190,7 +191,7 @@ def _slice_handles(geo: _Geometry, factors: Sequence[int], runs: RunsTable, safe
     discrete = [j in geo.levels for j in factors]
     entries = [
         (Line2D([], [], color=OKABE_ITO["blue"], lw=1.6, label="posterior mean"), not all(discrete)),
-        (Patch(facecolor=OKABE_ITO["sky"], alpha=0.35, label="95% band (limits: a new measurement)"),
+        (Patch(facecolor=OKABE_ITO["sky"], alpha=0.35, label=band_label(geo.result)),
          not all(discrete)),
         (Line2D([], [], color=OKABE_ITO["blue"], marker="s", ls="none", label="discrete level, 95% bar"),
          any(discrete)),

@@ -33,6 +33,7 @@ from guardband.planner.report.attitude_figures import price_figure, rules_figure
 from guardband.planner.report.figures import history_figure, loo_figure, map_figure, slice_figure
 from guardband.planner.report.style import REPORT_RC, ReportFigure
 from guardband.planner.report.tables import (
+    judged_sentence,
     count_rows, fingerprint_rows, fmt, model_rows, near_miss_rows, proposal_rows, proposal_run_id, run_rows,
 )
 
@@ -177,6 +178,7 @@ def build_report(
         "fingerprints": fingerprint_rows(result, record, log_head, log_count),
         "mode": result.mode,
         "rule": p.ranking.rule if result.mode == "improve" else "joint figure (feasibility first)",
+        "judged_sentence": judged_sentence(result),
         "threshold": f"{p.screen.threshold:g}",
         "joint_method": p.screen.joint,
         "incumbent": (f"{fmt(inc['value'])} (run {inc['run_id']})" if inc else

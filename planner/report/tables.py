@@ -19,7 +19,8 @@ from guardband.planner.step import PlanResult
 from guardband.safety.limits import limit_rules, within_limit
 from guardband.safety.screen import REASONS
 
-__all__ = ["fmt", "prob", "proposal_run_id", "proposal_rows", "near_miss_rows", "count_rows", "model_rows",
+__all__ = ["fmt", "prob", "proposal_run_id", "proposal_rows", "near_miss_rows", "judged_sentence", "band_label",
+           "count_rows", "model_rows",
            "model_warnings", "fingerprint_rows", "run_rows"]
 
 
@@ -40,6 +41,29 @@ def prob(p, required: float | None = None) -> str:
         if required is None or float(text) < required or p >= required:
             return text
     return repr(p)
+
+
+def judged_sentence(result: PlanResult) -> str:
+    """What each limit's figure is the probability of, following each limit's ``judged_on``."""
+    by_text: dict[str, list[str]] = {}
+    for rule in limit_rules(result.protocol):
+        by_text.setdefault(rule.judged_text, []).append(rule.name)
+    if not by_text:
+        return "There are no limits."
+    if len(by_text) == 1:
+        return f"Each limit's figure is the probability that {next(iter(by_text))} meets it."
+    parts = [f"{text} meets it ({', '.join(names)})" for text, names in by_text.items()]
+    return ("Each limit's figure is the probability, as that limit is judged, that " + " or that ".join(parts) + ".")
+
+
+def band_label(result: PlanResult) -> str:
+    """The slice figures' legend text for the 95% band, following the limits' ``judged_on``."""
+    texts = sorted({rule.judged_on for rule in limit_rules(result.protocol)})
+    if texts == ["true-value"]:
+        return "95% band (limits: the true value)"
+    if texts == ["measurement"] or not texts:
+        return "95% band (limits: a new measurement)"
+    return "95% band (limits: as each is judged)"
 
 
 def near_miss_rows(result: PlanResult, shown: Sequence[str]) -> list[dict]:

@@ -71,6 +71,14 @@ class SpaceCheck:
             "dimension": int(self.dimension),
         }
 
+    def single_point(self, names) -> str | None:
+        """The refusal for a space that is one point (nothing to choose between), else None."""
+        if self.empty or self.dimension != 0:
+            return None
+        at = ", ".join(f"{n} = {v:.6g}" for n, v in zip(names, self.centre))
+        return (f"the design space is a single point ({at}): the bounds and constraints fix every "
+                "factor, so there is nothing to plan. Widen a factor's bounds or relax a constraint")
+
 
 class GroupKind:
     """The kinds of constraint group (plain strings)."""

@@ -11,6 +11,7 @@ The fits run on worker processes when they are big.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,7 +24,7 @@ from guardband.planner.models.gp import Hyperparameters, fit_gp
 from guardband.planner.models.limitmodel import PessimisticLimitModel
 from guardband.planner.models.guards import GuardedLimitModel
 from guardband.planner.models.parallel import default_workers, map_jobs
-from guardband.planner.settings import LIMIT_SIGNAL_VARIANCE_MIN
+from guardband.planner.settings import LIMIT_SIGNAL_VARIANCE_MIN, REPEATED_RUN_DISTANCE
 from guardband.planner.step.result import ModelStatus, ModelSummary
 from guardband.safety.limits import ScreenRules
 
@@ -62,11 +63,26 @@ class FittedModels:
 
 def _fit_job(job: dict):
     """One model fit, as :func:`_fit` with the job's fields (module level: runs in a worker)."""
-    return _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
-                restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
-                length_scale_max=job["length_scale_max"],
-                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
-                short=job["short"], noise_sd=job["noise_sd"], local=job["local"])
+    model, summary = _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
+                          restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
+                          length_scale_max=job["length_scale_max"],
+                          ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
+                          short=job["short"], noise_sd=job["noise_sd"], local=job["local"])
+    if model is None and job.get("ids"):
+        summary = dataclasses.replace(summary, message=summary.message + repeated_runs_note(job["U"], job["ids"]))
+    return model, summary
+
+
+def repeated_runs_note(U: np.ndarray, ids) -> str:
+    """"; runs at the same factor settings: A and B, ..." for runs closer than REPEATED_RUN_DISTANCE, or ""."""
+    from scipy.spatial import cKDTree
+
+    pairs = sorted(cKDTree(U).query_pairs(REPEATED_RUN_DISTANCE, p=np.inf))
+    if not pairs:
+        return ""
+    shown = ", ".join(f"{ids[i]} and {ids[j]}" for i, j in pairs[:10])
+    more = f" (and {len(pairs) - 10} more pairs)" if len(pairs) > 10 else ""
+    return f"; runs at the same factor settings (unit-scaled, within {REPEATED_RUN_DISTANCE:g}): {shown}{more}"
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
@@ -150,6 +166,7 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
             "`guardband start` and measure it first"
         )
     jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
+                 ids=[runs.run_ids[i] for i in np.flatnonzero(m_obj)],
                  prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
                  noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None, local=None)]
     early: dict[int, ModelSummary] = {}
@@ -168,6 +185,7 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
                                     prior_mean=rule.prior_mean)
             continue
         jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
+                         ids=[runs.run_ids[i] for i in np.flatnonzero(mask)],
                          prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
                          seed=_seed_of(children[3 + k]), k=k, noise_sd=lim.measurement_sd,
                          length_scale_max=cap, widen=protocol.screen.widen_from_loo,

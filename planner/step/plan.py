@@ -132,6 +132,9 @@ def _space_of(protocol: Protocol):
     check = space.check()
     if check.empty:
         raise ProtocolError("the design space is empty; conflicting constraints: " + "; ".join(check.conflicts))
+    point = check.single_point(space.names)
+    if point:
+        raise ProtocolError(point)
     return space
 
 

@@ -144,9 +144,17 @@ class PlanResult:
         return self.screen.counts()
 
     def near_misses(self, count: int = NEAR_MISS_COUNT) -> list[dict]:
-        """The best-ranked excluded candidates with every limit's probability."""
+        """The excluded candidates with the highest joint figures, with every limit's probability.
+
+        Ranked by the joint figure (the screen's own measure of how near a
+        candidate came to passing every limit at once), then by score; not
+        by the margin of the first rule that failed, which says nothing about
+        the other limits.
+        """
         excluded = np.flatnonzero(~self.screen.survives & (self.screen.reason != "outside-design-space"))
-        order = excluded[np.lexsort((excluded, -self.scores[excluded]))]
+        joint = np.nan_to_num(np.asarray(self.screen.joint, dtype=float)[excluded], nan=-1.0)
+        score = np.nan_to_num(np.asarray(self.scores, dtype=float)[excluded], nan=-np.inf)
+        order = excluded[np.lexsort((excluded, -score, -joint))]
         out = []
         for i in order[:count]:
             out.append(self._candidate_dict(int(i)))

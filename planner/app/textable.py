@@ -6,7 +6,10 @@ import math
 
 from guardband.planner.inputs.names import shown
 
-__all__ = ["format_cell", "render_table"]
+__all__ = ["format_cell", "render_table", "wrap_text", "TERMINAL_WIDTH"]
+
+#: Table and prose output of the commands fits this many columns.
+TERMINAL_WIDTH = 100
 
 
 def format_cell(value, *, digits: int = 4) -> str:
@@ -26,13 +29,54 @@ def format_cell(value, *, digits: int = 4) -> str:
     return str(value)
 
 
-def render_table(header, rows, *, digits: int = 4, max_width: int = 48) -> str:
+def render_table(header, rows, *, digits: int = 4, max_width: int = 48, width: int | None = TERMINAL_WIDTH,
+                 keys: int = 1) -> str:
     """Render rows under a header as aligned text; long cells are cut with '...'.
 
     Every cell goes through :func:`planner.inputs.names.shown`, so text from
     an input (a run id, a factor name) cannot move the cursor or the text
-    direction of the terminal.
+    direction of the terminal. A table wider than ``width`` columns is
+    printed in blocks of columns one under another, each block repeating
+    the first ``keys`` columns (the row's name), so that no line is wider
+    than ``width`` (unless one column alone is); ``width=None`` never splits.
     """
+    lines = _table_lines(header, rows, digits=digits, max_width=max_width)
+    if width is None or max(map(len, lines)) <= width or len(header) <= keys + 1:
+        return "\n".join(lines)
+    blocks = _column_blocks(header, rows, digits, max_width, width, keys)
+    parts = []
+    for cols in blocks:
+        parts.append("\n".join(_table_lines([header[j] for j in cols], [[r[j] for j in cols] for r in rows],
+                                            digits=digits, max_width=max_width)))
+    return "\n\n".join(parts)
+
+
+def _column_blocks(header, rows, digits, max_width, width, keys) -> list[list[int]]:
+    """Split the columns after the first ``keys`` into blocks that fit ``width`` with the keys."""
+    w = [len(_table_lines([header[j]], [[r[j]] for r in rows], digits=digits, max_width=max_width)[1])
+         for j in range(len(header))]
+    key_w = sum(w[:keys]) + 2 * keys
+    blocks, current, used = [], [], key_w
+    for j in range(keys, len(header)):
+        if current and used + w[j] > width:
+            blocks.append(list(range(keys)) + current)
+            current, used = [], key_w
+        current.append(j)
+        used += w[j] + 2
+    blocks.append(list(range(keys)) + current)
+    return blocks
+
+
+def wrap_text(text: str, *, width: int = TERMINAL_WIDTH, indent: str = "  ") -> str:
+    """Prose wrapped to ``width`` columns, continuation lines indented (each line of the text on its own)."""
+    import textwrap
+
+    return "\n".join(textwrap.fill(line, width=width, subsequent_indent=indent, break_on_hyphens=False,
+                                    break_long_words=False) if len(line) > width else line
+                     for line in text.split("\n"))
+
+
+def _table_lines(header, rows, *, digits: int, max_width: int) -> list[str]:
     cells = [[shown(str(h), keep="") for h in header]]
     for row in rows:
         out = []
@@ -48,7 +92,7 @@ def render_table(header, rows, *, digits: int = 4, max_width: int = 48) -> str:
         lines.append("  ".join(c.rjust(w) if k and _numeric(c) else c.ljust(w) for c, w in zip(r, widths)).rstrip())
         if k == 0:
             lines.append("  ".join("-" * w for w in widths))
-    return "\n".join(lines)
+    return lines
 
 
 def _numeric(text: str) -> bool:

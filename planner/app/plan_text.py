@@ -1,0 +1,56 @@
+"""The plan as a person reads it in a terminal: the proposals in two narrow tables.
+
+The CSV plan table keeps every column; the terminal shows the settings
+(with units in the headers) and then what the models say, each table
+split into blocks that fit :data:`~guardband.planner.app.textable.TERMINAL_WIDTH`
+columns, with the run id repeated in every block.
+"""
+
+from __future__ import annotations
+
+from guardband.planner.app.textable import render_table
+from guardband.planner.step.result import PlanResult
+
+__all__ = ["settings_table", "figures_table", "WORDS"]
+
+#: Every word of the plan's table output that needs saying (the README repeats them).
+WORDS = {
+    "origin": "where a proposal came from: pool (the random sample of the design space), local "
+              "(between a run that met every limit and a pool point) or refined (a local search "
+              "from a survivor, screened again in full)",
+    "mode": "improve (ranked by the protocol's rule against the best run that met every limit) or "
+            "feasibility-first (no run has met every limit yet: ranked by the joint figure)",
+}
+
+
+def _run_id(step_label: str, rank: int) -> str:
+    return f"{step_label}-{rank:02d}"
+
+
+def settings_table(result: PlanResult, step_label: str) -> str:
+    """Rank, run id and every factor's setting, units in the headers."""
+    p = result.protocol
+    header = ["rank", "run_id", *[f.name + (f" [{f.unit}]" if f.unit else "") for f in p.factors]]
+    rows = [[q.rank, _run_id(step_label, q.rank), *[float(x) for x in q.x]] for q in result.proposals]
+    return render_table(header, rows, keys=2)
+
+
+def figures_table(result: PlanResult, step_label: str) -> str:
+    """What the models say about each proposal: the objective with its interval, each limit's
+    probability, the joint figure, the value of the rule that ranked it, its origin."""
+    p = result.protocol
+    obj = p.objective
+    unit = f" [{obj.unit}]" if obj.unit else ""
+    rule = p.ranking.rule if result.mode == "improve" else None
+    header = ["run_id", f"{obj.name}{unit}", "95% interval", *[f"P({n} ok)" for n in p.limit_names], "joint"]
+    if rule is not None and rule != "mean":  # the mean rule's value is the predicted value itself
+        header.append(f"{rule} value")
+    header.append("origin")
+    rows = []
+    for q in result.proposals:
+        row = [_run_id(step_label, q.rank), q.mean, f"{q.lo95:.4g} to {q.hi95:.4g}",
+               *[q.p[n] for n in p.limit_names], q.joint]
+        if rule is not None and rule != "mean":
+            row.append(q.values.get(rule))
+        rows.append(row + [q.origin])
+    return render_table(header, rows, keys=1)

@@ -35,11 +35,18 @@ class LimitRule:
     upper: float | None
     probability: float
     judged_on: str = MEASUREMENT
+    binomial: bool = False
+    monotone: bool = False
 
     @property
     def with_noise(self) -> bool:
         """Whether the limit is judged on the next measurement (noise included)."""
-        return self.judged_on == MEASUREMENT
+        return self.judged_on == MEASUREMENT and not self.binomial
+
+    @property
+    def scale(self) -> str:
+        """Where the limit model's mean and sd live: "response", or "logit" (of a binomial rate)."""
+        return "logit" if self.binomial else "response"
 
     @property
     def prior_mean(self) -> float:
@@ -47,9 +54,11 @@ class LimitRule:
 
         Away from the runs such a model gives a probability of about 1/2 at
         best and never claims safety. For a two-sided limit the upper edge is
-        used (the same 1/2 ceiling holds).
+        used (the same 1/2 ceiling holds). A binomial limit's model is on the
+        logit of the rate, so its prior mean is the logit of the limit.
         """
-        return float(self.upper if self.upper is not None else self.lower)
+        edge = float(self.upper if self.upper is not None else self.lower)
+        return float(np.log(edge / (1.0 - edge))) if self.binomial else edge
 
 
 @dataclass(frozen=True)
@@ -92,7 +101,8 @@ class ScreenRules:
 
 def limit_rules(protocol) -> tuple[LimitRule, ...]:
     """The limits of ``protocol`` as :class:`LimitRule` objects."""
-    return tuple(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on)
+    return tuple(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on,
+                           getattr(lim, "kind", "continuous") == "binomial", bool(protocol.monotone_for(lim)))
                  for lim in protocol.limits)
 
 
@@ -129,7 +139,8 @@ def meets_limits(limits, Y, n: int, *, margin: float = 0.0) -> np.ndarray:
         y = np.asarray(Y[lim.name], dtype=float)
         if margin:
             lim = LimitRule(lim.name, None if lim.lower is None else lim.lower + margin,
-                            None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on)
+                            None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on,
+                            lim.binomial, lim.monotone)
         ok &= within_limit(y, lim)
     return ok
 

@@ -19,6 +19,9 @@ can see how near each near miss came.
    only as far as runs at its edge come back within the limits.
 4. ``too-few-runs`` / ``model-not-fitted`` (fail closed): a limit whose
    model cannot vouch for anything excludes every candidate.
+4b. ``above-broken-cohort``: a monotone limit (a toxicity rate that never
+   falls as a dose rises) was broken by a run whose every dose is at or
+   below the candidate's; the candidate's probability of meeting it is 0.
 5. ``limit-probability``: P(limit i met) below that limit's probability.
 6. ``joint-below-threshold``: the joint figure below the screen threshold.
 
@@ -28,6 +31,14 @@ applies to what the lab will measure. The joint figure is by default the
 bound max(0, 1 - sum(1 - p_i)) (Boole/Bonferroni), valid whatever the
 correlation between limits; the product of the p_i (independence) is used
 only when the protocol names it.
+
+A binomial limit (events among subjects) is judged on the true rate: its
+model's mean and sd are of the latent logit of the rate, which is Gaussian
+under the Laplace approximation, so P(rate <= L) = Phi((logit L - mean) / sd)
+exactly; the limit's bounds are moved to the logit scale here, in one place.
+A monotone limit's probability at each point is the least over the point
+itself, every other point judged with it and every run at lower or equal
+values of every free factor (:func:`monotone_envelope`).
 
 This module works on numbers (means, standard deviations, distances); it
 does not fit models and does not import the command line.
@@ -41,7 +52,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.special import ndtr
 
-from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules
+from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules, within_limit
 
 #: Absolute slack when testing ``A x <= b`` for a forbidden region (the same
 #: feasibility tolerance as the design space's).
@@ -50,6 +61,9 @@ REGION_TOL = 1e-9
 __all__ = [
     "REASONS",
     "LimitPrediction",
+    "MonotoneBasis",
+    "monotone_envelope",
+    "above_broken",
     "HardRules",
     "ScreenResult",
     "limit_probability",
@@ -73,6 +87,7 @@ REASONS = (
     "beyond-tested-span",
     "too-few-runs",
     "model-not-fitted",
+    "above-broken-cohort",
     "limit-probability",
     "joint-below-threshold",
 )
@@ -95,13 +110,85 @@ class LimitPrediction:
     mean: np.ndarray | None = None
     sd: np.ndarray | None = None
     message: str = ""
+    scale: str = "response"  # or "logit": mean and sd of the logit of a binomial rate
+    monotone: MonotoneBasis | None = None
+
+    def p_met(self) -> np.ndarray:
+        """P(the limit is met) at each point (before any monotone envelope)."""
+        return limit_probability(self.mean, self.sd, lower=self.lower, upper=self.upper, scale=self.scale)
 
 
-def limit_probability(mean, sd, *, lower=None, upper=None) -> np.ndarray:
+@dataclass(frozen=True)
+class MonotoneBasis:
+    """What a monotone limit's envelope needs: the points judged and the runs, unit-scaled.
+
+    ``anchor_p`` is each run's own probability of meeting the limit;
+    ``anchor_broke`` marks the runs whose measured value broke it.
+    """
+
+    points: np.ndarray
+    anchors: np.ndarray
+    anchor_p: np.ndarray
+    anchor_broke: np.ndarray
+
+
+#: Slack when comparing unit-scaled coordinates for "at or below" (dominance).
+DOMINANCE_TOL = 1e-9
+
+
+def _dominated_min(values_at, A, B) -> np.ndarray:
+    """For each row b of B, the least values_at[a] over rows a of A with a <= b in every column (inf if none)."""
+    out = np.full(B.shape[0], np.inf)
+    for start in range(0, B.shape[0], 256):
+        block = B[start:start + 256]
+        below = np.all(A[None, :, :] <= block[:, None, :] + DOMINANCE_TOL, axis=2)  # (b, a)
+        out[start:start + 256] = np.min(np.where(below, values_at[None, :], np.inf), axis=1, initial=np.inf)
+    return out
+
+
+def monotone_envelope(p, basis: MonotoneBasis) -> np.ndarray:
+    """Probabilities held monotone: never above those of the points or runs at lower or equal values.
+
+    P_i <- min(P_i, min{P_j : x_j <= x_i}, min{P_run : x_run <= x_i}), and 0
+    where a run at or below the point broke the limit. The pairwise work
+    runs on the distinct points only (discrete doses repeat a lot).
+    """
+    p = np.asarray(p, dtype=float)
+    if p.size == 0:
+        return p
+    uniq, inverse = np.unique(basis.points, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    pu = np.full(uniq.shape[0], np.inf)
+    np.minimum.at(pu, inverse, p)
+    out = np.minimum(pu, _dominated_min(pu, uniq, uniq))
+    if basis.anchors.shape[0]:
+        out = np.minimum(out, _dominated_min(basis.anchor_p, basis.anchors, uniq))
+    return np.where(above_broken(basis, uniq), 0.0, out)[inverse]
+
+
+def above_broken(basis: MonotoneBasis, points=None) -> np.ndarray:
+    """Whether each point lies at or above (every free factor) a run that broke the limit."""
+    points = basis.points if points is None else points
+    broke = basis.anchors[np.asarray(basis.anchor_broke, dtype=bool)]
+    if broke.shape[0] == 0:
+        return np.zeros(points.shape[0], dtype=bool)
+    return np.isfinite(_dominated_min(np.zeros(broke.shape[0]), broke, points))
+
+
+def _logit_bound(v):
+    return None if v is None else float(np.log(v) - np.log1p(-v))
+
+
+def limit_probability(mean, sd, *, lower=None, upper=None, scale: str = "response") -> np.ndarray:
     """P(lower <= Y <= upper) for Y ~ N(mean, sd^2), elementwise.
 
     sd = 0 gives 1 or 0 according to whether the mean is within the limit.
+    With ``scale="logit"``, ``mean`` and ``sd`` are of the logit of a rate
+    whose limits ``lower`` and ``upper`` lie in (0, 1): the bounds move to
+    the logit scale (the logit is increasing, so the event is the same).
     """
+    if scale == "logit":
+        lower, upper = _logit_bound(lower), _logit_bound(upper)
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
     safe_sd = np.where(sd > 0, sd, 1.0)
@@ -184,8 +271,19 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
                                        status=status, message=message))
         else:
             mean, sd = _mean_sd(model, U, lim.with_noise)
-            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd))
+            basis = _monotone_basis(lim, model, U) if lim.monotone else None
+            out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
+                                       scale=lim.scale, monotone=basis))
     return out
+
+
+def _monotone_basis(lim: LimitRule, model, U) -> MonotoneBasis:
+    """The runs of a monotone limit's model, their probabilities, and which broke the limit."""
+    anchors, a_mean, a_sd, measured = model.runs_view()
+    a_p = limit_probability(a_mean, a_sd, lower=lim.lower, upper=lim.upper, scale=lim.scale)
+    broke = ~within_limit(measured, lim)
+    points = model.points if U is None else np.asarray(U, dtype=float)
+    return MonotoneBasis(points, anchors, a_p, broke)
 
 
 def probabilities_at(predictions: Sequence[LimitPrediction], n: int) -> tuple[np.ndarray, np.ndarray]:
@@ -202,7 +300,8 @@ def probabilities_at(predictions: Sequence[LimitPrediction], n: int) -> tuple[np
     vouch = np.ones(n, dtype=bool)
     for j, lim in enumerate(predictions):
         if lim.status == "ok":
-            P[:, j] = limit_probability(lim.mean, lim.sd, lower=lim.lower, upper=lim.upper)
+            p = lim.p_met()
+            P[:, j] = p if lim.monotone is None else monotone_envelope(p, lim.monotone)
         else:
             vouch[:] = False
     return P, vouch
@@ -466,6 +565,11 @@ def run_screen(
         if lim.status != "ok":
             mark(np.ones(n, dtype=bool), lim.status,
                  lambda i, lim=lim: f"limit {lim.name!r}: {lim.message}")
+    for lim in limits:
+        if lim.status == "ok" and lim.monotone is not None:
+            mark(above_broken(lim.monotone), "above-broken-cohort",
+                 lambda i, lim=lim: (f"limit {lim.name!r}: every free factor is at or above a run that broke "
+                                     "the limit (the rate is held not to fall as a dose rises)"))
     for j, lim in enumerate(limits):
         if lim.status == "ok":
             low = P[:, j] < lim.probability

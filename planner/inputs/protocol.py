@@ -183,9 +183,29 @@ class Objective(_Strict):
 
 
 class Limit(_Strict):
-    """A limited response: it must stay within [lower, upper] with ``probability``."""
+    """A limited response: it must stay within [lower, upper] with ``probability``.
+
+    ``kind = "binomial"``: the response is a rate of events among subjects
+    (for example dose-limiting toxicities in a cohort). The runs file then
+    gives two columns, ``events`` and ``subjects`` (their names), instead of
+    the rate; the limit is on the true rate (``judged_on = "true-value"``).
+    ``monotone``: the rate never falls as any dose rises (see
+    :meth:`Protocol.monotone_for`; on by default for binomial upper limits in
+    a dose study).
+    """
 
     name: str
+    kind: Literal["continuous", "binomial"] = "continuous"
+    events: str | None = Field(default=None, description="binomial: runs-file column with the number of events")
+    subjects: str | None = Field(default=None, description="binomial: runs-file column with the number of subjects")
+    monotone: bool | None = Field(
+        default=None,
+        description=(
+            "binomial upper limits: the rate never falls as the dose of any factor rises, so a "
+            "candidate is never judged safer than a run or candidate at lower or equal doses; "
+            "default on in a dose study"
+        ),
+    )
     unit: str = ""
     lower: float | None = None
     upper: float | None = None
@@ -202,9 +222,21 @@ class Limit(_Strict):
     )
     measurement_sd: MeasurementSd = None
 
+    @model_validator(mode="before")
+    @classmethod
+    def _binomial_on_true_rate(cls, data):
+        if isinstance(data, dict) and data.get("kind") == "binomial" and "judged_on" not in data:
+            data = {**data, "judged_on": "true-value"}
+        return data
+
     @model_validator(mode="after")
     def _check(self):
         _check_name(self.name, "limit name")
+        if self.kind == "binomial":
+            self._check_binomial()
+        elif self.events is not None or self.subjects is not None or self.monotone is not None:
+            raise ValueError(f"limit {self.name!r}: `events`, `subjects` and `monotone` belong to "
+                             "kind = \"binomial\" limits")
         if self.lower is None and self.upper is None:
             raise ValueError(f"limit {self.name!r} needs `upper`, `lower` or both")
         for side in ("lower", "upper"):
@@ -217,6 +249,36 @@ class Limit(_Strict):
                 f"upper = {self.upper:g}"
             )
         return self
+
+    def _check_binomial(self) -> None:
+        name = self.name
+        if self.events is None or self.subjects is None:
+            raise ValueError(f"binomial limit {name!r} needs `events` and `subjects`: the names of the "
+                             "runs-file columns with the number of events and the number of subjects")
+        _check_name(self.events, "events column")
+        _check_name(self.subjects, "subjects column")
+        if len({name, self.events, self.subjects}) < 3:
+            raise ValueError(f"binomial limit {name!r}: the limit, its events column and its subjects "
+                             "column need three different names")
+        for side in ("lower", "upper"):
+            v = getattr(self, side)
+            if v is not None and not 0 < v < 1:
+                raise ValueError(f"{side} of binomial limit {name!r} is a rate and must lie strictly "
+                                 f"between 0 and 1 (got {v:g})")
+        if self.judged_on != "true-value":
+            raise ValueError(f"binomial limit {name!r} is judged on the true rate; remove `judged_on` "
+                             "or set it to \"true-value\"")
+        if self.measurement_sd is not None:
+            raise ValueError(f"binomial limit {name!r}: `measurement_sd` does not apply (the counts "
+                             "carry their own uncertainty); remove it")
+        if self.monotone and (self.upper is None or self.lower is not None):
+            raise ValueError(f"binomial limit {name!r}: `monotone` needs an upper limit only "
+                             "(a rate that must not rise above a value)")
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The runs-file columns of this response: its name, or its events and subjects."""
+        return (self.events, self.subjects) if self.kind == "binomial" else (self.name,)
 
     @property
     def sides(self) -> str:
@@ -379,6 +441,7 @@ class Protocol(_Strict):
                 raise ValueError(f"factor name {n!r} is used twice")
             seen.add(n)
         responses = [self.objective.name] + [lim.name for lim in self.limits]
+        responses += [c for lim in self.limits if lim.kind == "binomial" for c in lim.columns]
         for r in responses:
             if r in seen:
                 raise ValueError(f"name {r!r} is used for a factor and a response (or twice)")
@@ -420,6 +483,21 @@ class Protocol(_Strict):
     @property
     def response_names(self) -> tuple[str, ...]:
         return (self.objective.name,) + self.limit_names
+
+    @property
+    def runs_columns(self) -> tuple[str, ...]:
+        """The response columns of a runs file: the objective, then each limit's column(s)."""
+        return (self.objective.name,) + tuple(c for lim in self.limits for c in lim.columns)
+
+    def monotone_for(self, limit: Limit) -> bool:
+        """Whether the screen holds ``limit``'s rate monotone in the doses.
+
+        As written, or by default on for a binomial upper limit in a dose study.
+        """
+        if limit.monotone is not None:
+            return bool(limit.monotone)
+        return (self.study.kind == "dose" and limit.kind == "binomial" and limit.upper is not None
+                and limit.lower is None)
 
     @property
     def maximize(self) -> bool:

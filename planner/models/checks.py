@@ -19,8 +19,11 @@ __all__ = ["loo_summary", "widen_from_loo", "looks_overconfident"]
 def loo_summary(model, y) -> tuple[float, float]:
     """(coverage, rmse) of the model's leave-one-out predictions of ``y``."""
     loo = model.loo()
-    sd = np.sqrt(loo.variance)
-    inside = np.abs(loo.residual) <= Z95 * sd
+    if hasattr(loo, "lo"):  # a rate's leave-one-out interval (binomial model): its own quantiles
+        y = np.asarray(y, dtype=float)
+        inside = (y >= loo.lo - 1e-12) & (y <= loo.hi + 1e-12)
+    else:
+        inside = np.abs(loo.residual) <= Z95 * np.sqrt(loo.variance)
     return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 

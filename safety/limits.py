@@ -14,7 +14,7 @@ import the planner.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -24,6 +24,12 @@ __all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "limit_rules", "within
 #: Judged on the next measurement (noise included) or on the true value.
 MEASUREMENT = "measurement"
 TRUE_VALUE = "true-value"
+
+
+#: Values per continuous factor in a monotone limit's dominance lattice, and
+#: the most lattice points in all (fewer values per factor beyond it).
+LATTICE_VALUES = 11
+LATTICE_MAX_POINTS = 4096
 
 
 @dataclass(frozen=True)
@@ -37,6 +43,12 @@ class LimitRule:
     judged_on: str = MEASUREMENT
     binomial: bool = False
     monotone: bool = False
+    #: A monotone limit's fixed lattice (unit-scaled free factors): every
+    #: combination of the discrete levels, and LATTICE_VALUES evenly spaced
+    #: values of each continuous factor. A point is never judged safer than
+    #: the lattice points at or below it, so its figure does not depend on
+    #: which other points are judged with it (all of them, for discrete doses).
+    lattice: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     @property
     def with_noise(self) -> bool:
@@ -101,9 +113,27 @@ class ScreenRules:
 
 def limit_rules(protocol) -> tuple[LimitRule, ...]:
     """The limits of ``protocol`` as :class:`LimitRule` objects."""
-    return tuple(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on,
-                           getattr(lim, "kind", "continuous") == "binomial", bool(protocol.monotone_for(lim)))
-                 for lim in protocol.limits)
+    out = []
+    for lim in protocol.limits:
+        monotone = bool(protocol.monotone_for(lim))
+        out.append(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on,
+                             lim.kind == "binomial", monotone, dominance_lattice(protocol) if monotone else None))
+    return tuple(out)
+
+
+def dominance_lattice(protocol) -> np.ndarray:
+    """The lattice of a monotone limit (see :attr:`LimitRule.lattice`), unit-scaled free factors."""
+    factors = protocol.factors
+    n_cont = sum(1 for f in factors if f.kind != "discrete" and f.high > f.low)
+    per = LATTICE_VALUES
+    n_disc = int(np.prod([len(f.levels) for f in factors if f.kind == "discrete"]))
+    while n_cont and per > 2 and n_disc * per**n_cont > LATTICE_MAX_POINTS:
+        per -= 1
+    axes = [np.asarray(f.levels, float) if f.kind == "discrete" else np.linspace(f.low, f.high, per)
+            for f in factors]
+    X = np.stack([a.ravel() for a in np.meshgrid(*axes, indexing="ij")], axis=1)
+    space = protocol.design_space()
+    return np.ascontiguousarray(np.asarray(space.to_unit(X))[:, np.asarray(space.free, dtype=bool)])
 
 
 def within_limit(y, limit: LimitRule) -> np.ndarray:
@@ -140,7 +170,7 @@ def meets_limits(limits, Y, n: int, *, margin: float = 0.0) -> np.ndarray:
         if margin:
             lim = LimitRule(lim.name, None if lim.lower is None else lim.lower + margin,
                             None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on,
-                            lim.binomial, lim.monotone)
+                            lim.binomial, lim.monotone, lim.lattice)
         ok &= within_limit(y, lim)
     return ok
 

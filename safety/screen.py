@@ -37,8 +37,11 @@ model's mean and sd are of the latent logit of the rate, which is Gaussian
 under the Laplace approximation, so P(rate <= L) = Phi((logit L - mean) / sd)
 exactly; the limit's bounds are moved to the logit scale here, in one place.
 A monotone limit's probability at each point is the least over the point
-itself, every other point judged with it and every run at lower or equal
-values of every free factor (:func:`monotone_envelope`).
+itself, every other point judged with it, every run and every point of the
+rule's fixed lattice (all combinations of the discrete levels) at lower or
+equal values of every free factor (:func:`monotone_envelope`). With discrete
+doses the lattice holds every candidate, so a point's figure does not depend
+on which points are judged with it.
 
 This module works on numbers (means, standard deviations, distances); it
 does not fit models and does not import the command line.
@@ -278,10 +281,16 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
 
 
 def _monotone_basis(lim: LimitRule, model, U) -> MonotoneBasis:
-    """The runs of a monotone limit's model, their probabilities, and which broke the limit."""
+    """A monotone limit's anchors: the model's runs and the rule's lattice, their probabilities,
+    and which runs broke the limit (the lattice is predicted by the model fitted to real data)."""
     anchors, a_mean, a_sd, measured = model.runs_view()
-    a_p = limit_probability(a_mean, a_sd, lower=lim.lower, upper=lim.upper, scale=lim.scale)
     broke = ~within_limit(measured, lim)
+    if lim.lattice is not None and lim.lattice.shape[0]:
+        g_mean, g_sd = model.lattice_prediction(lim.lattice)
+        anchors = np.vstack([anchors, lim.lattice])
+        a_mean, a_sd = np.concatenate([a_mean, g_mean]), np.concatenate([a_sd, g_sd])
+        broke = np.concatenate([broke, np.zeros(lim.lattice.shape[0], dtype=bool)])
+    a_p = limit_probability(a_mean, a_sd, lower=lim.lower, upper=lim.upper, scale=lim.scale)
     points = model.points if U is None else np.asarray(U, dtype=float)
     return MonotoneBasis(points, anchors, a_p, broke)
 

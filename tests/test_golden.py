@@ -15,7 +15,10 @@ limit in a batch) changed the plans of both examples, as they were meant to;
 then a guarded limit model added its one noise variance instead of
 predicting twice (the tablet plan's printed values are unchanged; six
 exclusion-table probabilities moved by up to 0.003 where the two
-predictions had come from different models of the pair).
+predictions had come from different models of the pair). Then the dose
+example's toxicity became a binomial limit (counts per cohort, a GP on the
+logit of the rate, held monotone in the doses), which changed its plan on
+purpose; the tablet example's plan did not change.
 """
 
 from __future__ import annotations
@@ -40,9 +43,10 @@ GOLDEN = {
         "ea3f37314431b19d8ee4d17a07d7b5cc627954a3172480ffd83de3ed6ee0a923",
     ),
     "dose_combination": (
-        "fcf83b7caf8965af4668b0195d4b658f75677733a4789fab59fdb6ae16aefd1d",
-        "7885efab293973fc10bac01f80357a87bf525063edd19a9e064ce6340ef9691f",
-        "fa0483b94401d5a75fc1948171dbebd6159a2746ef6b769bdedf2c27acfb2996",
+        # binomial toxicity limit (counts, logit GP, monotone): the plan changed on purpose
+        "b1735ee04ec4a9932d0d4136fbe6dbf7138f26c98b18908971d1d1194d5f43bf",
+        "2d42afcfdb4bdd5c23fb633973c8f0c06ecce6e78a3ad0953eb926087c17db94",
+        "9abec043b4d537b7e4d6467518d9516c111d9651c80d972b1a65d50ccd5a7196",
     ),
 }
 

@@ -295,6 +295,10 @@ class Limit(_Strict):
         return f"{self.name} >= {self.lower:g}{unit}"
 
 
+#: Limit fields added after protocols were first fingerprinted, with their defaults.
+_LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None, "monotone": None}
+
+
 class Forbidden(_Strict):
     """A region the protocol forbids: every point meeting all its rules is excluded."""
 
@@ -508,8 +512,17 @@ class Protocol(_Strict):
 
     # ----------------------------------------------------------- fingerprint
     def canonical(self) -> bytes:
-        """Canonical JSON of the validated protocol (sorted keys, no NaN)."""
+        """Canonical JSON of the validated protocol (sorted keys, no NaN).
+
+        A limit's binomial fields are left out while at their defaults, so a
+        protocol written before they existed keeps its fingerprint (and its
+        recorded decision logs replay).
+        """
         data = self.model_dump(mode="json")
+        for lim in data["limits"]:
+            for key, default in _LIMIT_LATER_DEFAULTS.items():
+                if lim.get(key, default) == default:
+                    lim.pop(key, None)
         return json.dumps(
             data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
         ).encode("utf-8")

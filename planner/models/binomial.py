@@ -183,6 +183,7 @@ class BinomialGP:
         self._K = self._k(X, X)
         self.mode = laplace_mode(self._K, self.prior_mean, events, subjects)
         self.log_marginal_likelihood = self.mode.log_q
+        self._lattice_key, self._lattice_value = None, None
 
     @property
     def n_train(self) -> int:
@@ -227,6 +228,14 @@ class BinomialGP:
         """(runs unit-scaled, latent mean and sd at them, measured rates): for a monotone screen."""
         mean, sd = self.predict(self.X)
         return self.X, mean, sd, self.y
+
+    def lattice_prediction(self, lattice):
+        """Latent mean and sd at a monotone limit's fixed lattice (computed once per lattice)."""
+        key = (lattice.shape, lattice.tobytes())
+        if self._lattice_key != key:
+            self._lattice_value = self.predict(lattice)
+            self._lattice_key = key
+        return self._lattice_value
 
     def loo(self) -> RateLeaveOneOut:
         """Approximate leave-one-out predictions of each run's measured rate (cavity of the Laplace sites).
@@ -309,6 +318,10 @@ class BinomialPosteriorAt:
     def runs_view(self):
         """The fitted model's runs (fantasised cohorts are not runs); see :meth:`BinomialGP.runs_view`."""
         return self._model.runs_view()
+
+    def lattice_prediction(self, lattice):
+        """The fitted model's (not the fantasies') prediction at the lattice."""
+        return self._model.lattice_prediction(lattice)
 
     @property
     def n_points(self) -> int:

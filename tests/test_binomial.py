@@ -275,3 +275,23 @@ def test_starting_design_template_has_count_columns(tmp_path):
 def test_limit_rule_defaults_stay_gaussian():
     rule = LimitRule("a", None, 1.0, 0.9)
     assert not rule.binomial and not rule.monotone and rule.scale == "response" and rule.prior_mean == 1.0
+
+
+def test_dose_example_slices_and_model_checks_show_rates_inside_unit_interval():
+    from guardband.planner.inputs.runs import read_runs
+    from guardband.planner.models.checks import loo_interval
+    from guardband.planner.report.data import slice_data
+    from guardband.planner.step import plan_step
+
+    p = load_protocol(DOSE)
+    runs = read_runs(ROOT / "protocols" / "dose_combination_runs.csv", p)
+    result = plan_step(p, runs, seed=2, pool_size=300)
+    assert result.proposals
+    x0 = result.proposals[0].x
+    for factor in ("dose_a", "dose_b"):
+        sl = slice_data(result, x0, factor)
+        centre, lo, hi = sl.band("dlt_rate")
+        assert np.all((lo >= 0) & (lo <= centre) & (centre <= hi) & (hi <= 1))
+        assert np.any(hi > 0.25)  # the doses never given are uncertain, and the band says so
+    lo, hi, inside = loo_interval(result.fitted["dlt_rate"])
+    assert np.all((lo >= 0) & (hi <= 1) & (lo <= hi))

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "limit_rules", "within_limit", "meets_limits",
+__all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "LevelLadder", "level_ladders", "limit_rules", "within_limit", "meets_limits",
            "met_every_limit"]
 
 #: Judged on the next measurement (noise included) or on the true value.
@@ -87,6 +87,40 @@ class ForbiddenRegion:
 
 
 @dataclass(frozen=True)
+class LevelLadder:
+    """One discrete factor's levels, for the no-skipping rule: its column among the free factors."""
+
+    name: str
+    column: int
+    levels: np.ndarray  # in protocol units
+    units: np.ndarray  # the same, unit-scaled
+
+    def index(self, u) -> np.ndarray:
+        """The level index nearest each unit-scaled value."""
+        return np.argmin(np.abs(np.asarray(u, float)[:, None] - self.units[None, :]), axis=1)
+
+
+def level_ladders(protocol) -> tuple[LevelLadder, ...]:
+    """The discrete free factors' ladders when the protocol forbids skipping untried levels, else ()."""
+    esc = getattr(protocol, "escalation", None)
+    if esc is None or not esc.no_skipping:
+        return ()
+    space = protocol.design_space()
+    free = np.asarray(space.free, dtype=bool)
+    column = np.cumsum(free) - 1
+    centre = np.array([0.5 * (f.low + f.high) for f in protocol.factors])
+    out = []
+    for j, f in enumerate(protocol.factors):
+        if f.kind != "discrete" or not free[j]:
+            continue
+        levels = np.asarray(f.levels, dtype=float)
+        X = np.tile(centre, (levels.size, 1))
+        X[:, j] = levels
+        out.append(LevelLadder(f.name, int(column[j]), levels, np.asarray(space.to_unit(X))[:, j]))
+    return tuple(out)
+
+
+@dataclass(frozen=True)
 class ScreenRules:
     """Every rule of the screen, from one protocol."""
 
@@ -97,6 +131,7 @@ class ScreenRules:
     max_step: float | None
     span_reach: float | None = None
     span_floor: float = 0.0
+    ladders: tuple[LevelLadder, ...] = ()
 
     @classmethod
     def from_protocol(cls, protocol) -> ScreenRules:
@@ -108,7 +143,7 @@ class ScreenRules:
             regions.append(ForbiddenRegion(region.name, tuple(region.rules), A, b))
         s = protocol.screen
         return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step,
-                   s.span_reach, float(s.span_floor))
+                   s.span_reach, float(s.span_floor), level_ladders(protocol))
 
 
 def limit_rules(protocol) -> tuple[LimitRule, ...]:

@@ -17,6 +17,9 @@ can see how near each near miss came.
    seen a region reads alike everywhere in it; this rule keeps each step's
    extrapolation in proportion to what has been tested, so the region grows
    only as far as runs at its edge come back within the limits.
+3c. ``skips-untried-level`` (protocol ``[escalation] no_skipping``): a
+   discrete factor more than one level above the highest level given in a
+   run that met every limit, or more than one factor above theirs at once.
 4. ``too-few-runs`` / ``model-not-fitted`` (fail closed): a limit whose
    model cannot vouch for anything excludes every candidate.
 4b. ``above-broken-cohort``: a monotone limit (a toxicity rate that never
@@ -88,6 +91,7 @@ REASONS = (
     "forbidden-region",
     "step-too-large",
     "beyond-tested-span",
+    "skips-untried-level",
     "too-few-runs",
     "model-not-fitted",
     "above-broken-cohort",
@@ -355,6 +359,34 @@ class HardRules:
     step_basis: str
     beyond: np.ndarray | None = None
     beyond_detail: list[str] | None = None
+    skips: np.ndarray | None = None
+    skips_detail: list[str] | None = None
+
+
+def skipped_levels(ladders, U, anchors) -> tuple[np.ndarray, list[str]]:
+    """Which points skip an untried level (see rule 3c), and how, from the anchors (unit-scaled)."""
+    n = U.shape[0]
+    out, detail = np.zeros(n, dtype=bool), [""] * n
+    if not ladders or anchors.shape[0] == 0:
+        return out, detail
+    rises = np.zeros((n, len(ladders)), dtype=int)
+    for q, lad in enumerate(ladders):
+        rises[:, q] = lad.index(U[:, lad.column]) - int(np.max(lad.index(anchors[:, lad.column])))
+    too_high = np.any(rises > 1, axis=1)
+    several = np.sum(rises > 0, axis=1) > 1
+    out = too_high | several
+    for i in np.flatnonzero(out):
+        if too_high[i]:
+            q = int(np.argmax(rises[i]))
+            lad = ladders[q]
+            top = lad.levels[int(np.max(lad.index(anchors[:, lad.column])))]
+            detail[i] = (f"{lad.name} would rise {rises[i, q]} levels above {top:g}, the highest level given "
+                         "in a run that met every limit (one level at a time)")
+        else:
+            names = [ladders[q].name for q in np.flatnonzero(rises[i] > 0)]
+            detail[i] = (f"{' and '.join(names)} would {'both' if len(names) == 2 else 'all'} rise above their "
+                         "highest levels at once (one factor at a time)")
+    return out, detail
 
 
 def tested_span(anchors, reach: float, floor: float) -> tuple[np.ndarray, np.ndarray]:
@@ -405,8 +437,9 @@ def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str, spa
     forb, forb_detail = forbidden_mask(rules.forbidden, X)
     beyond, beyond_detail = _beyond_span(np.asarray(U, float), np.asarray(anchors, float), rules.span_reach,
                                          rules.span_floor, step_basis, span_columns)
+    skips, skips_detail = skipped_levels(rules.ladders, np.asarray(U, float), np.asarray(anchors, float))
     return HardRules(inside, outside_detail, forb, forb_detail, step_distance(U, anchors), step_basis,
-                     beyond, beyond_detail)
+                     beyond, beyond_detail, skips, skips_detail)
 
 
 def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[LimitPrediction]) -> ScreenResult:
@@ -421,6 +454,8 @@ def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[Lim
         step_basis=hard.step_basis,
         beyond=hard.beyond,
         beyond_detail=hard.beyond_detail,
+        skips=hard.skips,
+        skips_detail=hard.skips_detail,
         limits=list(predictions),
         threshold=rules.threshold,
         joint=rules.joint,
@@ -511,6 +546,8 @@ def run_screen(
     step_basis: str = "run that met every limit",
     beyond: np.ndarray | None = None,
     beyond_detail: list[str] | None = None,
+    skips: np.ndarray | None = None,
+    skips_detail: list[str] | None = None,
     limits: list[LimitPrediction],
     threshold: float,
     joint: str = "bound",
@@ -535,6 +572,9 @@ def run_screen(
     beyond : bool array (n,), optional
         Whether each candidate lies beyond the tested span (see :func:`tested_span`).
     beyond_detail : list of str, optional
+    skips : bool array (n,), optional
+        Whether each candidate skips an untried level (see :func:`skipped_levels`).
+    skips_detail : list of str, optional
     limits : list of LimitPrediction
     threshold : float
         The joint figure a candidate must reach.
@@ -570,6 +610,9 @@ def run_screen(
     if beyond is not None:
         mark(np.asarray(beyond, dtype=bool), "beyond-tested-span",
              lambda i: beyond_detail[i] if beyond_detail else "beyond the span of the tested runs")
+    if skips is not None:
+        mark(np.asarray(skips, dtype=bool), "skips-untried-level",
+             lambda i: skips_detail[i] if skips_detail else "skips an untried level")
     for lim in limits:
         if lim.status != "ok":
             mark(np.ones(n, dtype=bool), lim.status,

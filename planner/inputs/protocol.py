@@ -40,6 +40,7 @@ __all__ = [
     "Batch",
     "ModelSettings",
     "StartRegion",
+    "Escalation",
     "load_protocol",
     "parse_protocol",
     "RANKING_RULES",
@@ -409,6 +410,22 @@ class ModelSettings(_Strict):
     )
 
 
+class Escalation(_Strict):
+    """Dose escalation as the trade does it (factors with discrete levels)."""
+
+    no_skipping: bool = Field(
+        default=True,
+        description=(
+            "no untried level is skipped: a candidate may lie at most one level above the highest level "
+            "of each factor given in a run that met every limit, and above it in one factor only"
+        ),
+    )
+    cohort_size: int | None = Field(
+        default=None, ge=1, le=10_000,
+        description="subjects in each proposed cohort (the batch's unit); a binomial limit's batch fantasies use it",
+    )
+
+
 class StartRegion(_Strict):
     """A region known to be safe where a campaign with no runs may start."""
 
@@ -434,6 +451,7 @@ class Protocol(_Strict):
     batch: Batch = Batch()
     model: ModelSettings = ModelSettings()
     start: StartRegion | None = None
+    escalation: Escalation | None = None
     seed: int | None = Field(default=None, ge=0, lt=2**63)
 
     @model_validator(mode="after")
@@ -457,6 +475,9 @@ class Protocol(_Strict):
             raise ValueError(
                 "factors of kind 'component' need a [mixture] table with the `total` they add up to"
             )
+        if self.escalation is not None and self.escalation.no_skipping and not any(
+                f.kind == "discrete" for f in self.factors):
+            raise ValueError("escalation.no_skipping needs factors of kind \"discrete\" (dose levels)")
         if self.mixture is not None and not components:
             raise ValueError("a [mixture] table was given but no factor has kind = \"component\"")
         if components:
@@ -519,6 +540,8 @@ class Protocol(_Strict):
         recorded decision logs replay).
         """
         data = self.model_dump(mode="json")
+        if data.get("escalation") is None:
+            data.pop("escalation", None)
         for lim in data["limits"]:
             for key, default in _LIMIT_LATER_DEFAULTS.items():
                 if lim.get(key, default) == default:

@@ -172,8 +172,10 @@ class BinomialGP:
     """A fitted GP on the logit of a rate; immutable. Build one with :func:`fit_binomial_gp`."""
 
     def __init__(self, X, events, subjects, prior_mean: float, hp: BinomialHyperparameters, *,
-                 used_priors: bool = False, message: str = ""):
+                 used_priors: bool = False, message: str = "", cohort_size: int | None = None):
         self.X = X
+        #: subjects of a fantasised cohort (the batch); default the runs' median cohort
+        self.cohort_size = float(np.median(subjects) if cohort_size is None else cohort_size)
         self.events, self.subjects = events, subjects
         self.y = events / subjects  # the measured rates
         self.prior_mean = float(prior_mean)
@@ -295,8 +297,8 @@ class BinomialPosteriorAt:
     """The latent posterior at fixed points, with rank-one fantasy updates (for the batch).
 
     A fantasised cohort at point j is a Gaussian pseudo-observation of the
-    latent with the Laplace site variance of a cohort of the runs' median
-    size at that rate, 1 / (n p (1 - p)); the update is the sequential GP
+    latent with the Laplace site variance of a cohort (the protocol's
+    cohort size, else the runs' median) at that rate, 1 / (n p (1 - p)); the update is the sequential GP
     posterior (R&W eq. 2.24, one point at a time), as for
     :class:`planner.models.gp.PosteriorAt`.
     """
@@ -309,7 +311,7 @@ class BinomialPosteriorAt:
         self._mean, sd = model.predict(self._Xs)
         self._var = sd**2
         self._updates: list[np.ndarray] = []
-        self._cohort = float(np.median(model.subjects))
+        self._cohort = model.cohort_size
 
     @property
     def points(self) -> np.ndarray:
@@ -389,7 +391,7 @@ def _check_counts(X, events, subjects):
 @limited_blas
 def fit_binomial_gp(X, events, subjects, *, prior_mean: float, hyperparameters=None, n_restarts: int = 4,
                     warm_start=None, rng=None, length_scale_max: float | None = None,
-                    ml_runs_per_hyperparameter: float = 12.0) -> BinomialGP:
+                    ml_runs_per_hyperparameter: float = 12.0, cohort_size: int | None = None) -> BinomialGP:
     """Fit a binomial GP: hyperparameters given, or searched (MAP while data are few, as :func:`fit_gp`).
 
     Parameters
@@ -406,7 +408,8 @@ def fit_binomial_gp(X, events, subjects, *, prior_mean: float, hyperparameters=N
     X, k, n = _check_counts(X, events, subjects)
     d = X.shape[1]
     if hyperparameters is not None:
-        return BinomialGP(X, k, n, prior_mean, hyperparameters, message="fixed hyperparameters")
+        return BinomialGP(X, k, n, prior_mean, hyperparameters, message="fixed hyperparameters",
+                          cohort_size=cohort_size)
     use_priors = X.shape[0] < ml_runs_per_hyperparameter * (d + 1)
     bounds = _bounds(d, length_scale_max)
     lo, hi = np.array(bounds).T
@@ -428,5 +431,5 @@ def fit_binomial_gp(X, events, subjects, *, prior_mean: float, hyperparameters=N
         raise ModelError("the binomial model could not be fitted: no hyperparameters gave a finite likelihood")
     hp = BinomialHyperparameters.from_theta(best.x)
     how = "maximum a posteriori (weak priors)" if use_priors else "maximum likelihood"
-    return BinomialGP(X, k, n, prior_mean, hp, used_priors=use_priors,
+    return BinomialGP(X, k, n, prior_mean, hp, used_priors=use_priors, cohort_size=cohort_size,
                       message=f"binomial likelihood, Laplace approximation; hyperparameters by {how}")

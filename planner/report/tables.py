@@ -128,8 +128,10 @@ _REASON_TEXT = {
     "forbidden-region": "inside a region the protocol forbids",
     "step-too-large": "too far from the nearest run that met every limit",
     "beyond-tested-span": "beyond the span of the runs that met every limit (span_reach)",
+    "skips-untried-level": "would skip an untried dose level, or raise two factors at once (escalation)",
     "too-few-runs": "a limit has too few runs to vouch for anything (fail closed)",
     "model-not-fitted": "a limit's model could not be fitted (fail closed)",
+    "above-broken-cohort": "at or above the doses of a cohort that broke a monotone limit",
     "limit-probability": "a limit's probability below its requirement",
     "joint-below-threshold": "joint figure below the screen threshold",
 }

@@ -123,7 +123,8 @@ def _fit_binomial(job: dict):
         model = fit_binomial_gp(U, job["events"], job["subjects"], prior_mean=prior_mean,
                                 n_restarts=job["restarts"], warm_start=BinomialHyperparameters.from_dict(job["warm"]),
                                 rng=job["seed"], length_scale_max=job["length_scale_max"],
-                                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"])
+                                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"],
+                                cohort_size=job["cohort_size"])
     except ModelError as exc:
         return None, ModelSummary(response, "limit", n_runs, ModelStatus.NOT_FITTED, str(exc), prior_mean=prior_mean)
     cov, rmse = loo_summary(model, model.y) if n_runs >= 3 else (None, None)
@@ -196,7 +197,8 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
                                     prior_mean=rule.prior_mean)
             continue
         if lim.kind == "binomial":
-            jobs.append(_binomial_job(lim, rule, runs, U_runs, mask, warm_start, children[3 + k], k, cap))
+            cohort = protocol.escalation.cohort_size if protocol.escalation is not None else None
+            jobs.append(_binomial_job(lim, rule, runs, U_runs, mask, warm_start, children[3 + k], k, cap, cohort))
             continue
         jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
                          prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
@@ -211,14 +213,16 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
     return jobs, early
 
 
-def _binomial_job(lim, rule, runs: RunsTable, U_runs, mask, warm_start, child, k: int, cap: float) -> dict:
+def _binomial_job(lim, rule, runs: RunsTable, U_runs, mask, warm_start, child, k: int, cap: float,
+                  cohort_size: int | None) -> dict:
     if lim.name not in runs.counts:
         raise ModelError(f"limit {lim.name!r} is binomial but the runs give no counts for it; give the "
                          f"columns {lim.events!r} and {lim.subjects!r}")
     events, subjects = runs.counts[lim.name]
     return dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
                 events=events[mask], subjects=subjects[mask], prior_mean=rule.prior_mean,
-                warm=warm_start.get(lim.name), seed=_seed_of(child), k=k, length_scale_max=cap)
+                warm=warm_start.get(lim.name), seed=_seed_of(child), k=k, length_scale_max=cap,
+                cohort_size=cohort_size)
 
 
 def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, *, warm_start: dict,

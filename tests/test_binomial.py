@@ -295,3 +295,24 @@ def test_dose_example_slices_and_model_checks_show_rates_inside_unit_interval():
         assert np.any(hi > 0.25)  # the doses never given are uncertain, and the band says so
     lo, hi, inside = loo_interval(result.fitted["dlt_rate"])
     assert np.all((lo >= 0) & (hi <= 1) & (lo <= hi))
+
+
+def test_plan_excludes_doses_at_or_above_a_cohort_that_broke_the_limit():
+    # the dose example with R06 at (10, 1) mg/kg coming back 3 of 6: every candidate with
+    # dose_a >= 10 and dose_b >= 1 is excluded for that reason, and none is proposed
+    p = load_protocol(DOSE)
+    text = (ROOT / "protocols" / "dose_combination_runs.csv").read_text().replace(
+        "R06,10,1,37.3283,0,6", "R06,10,1,37.3283,3,6")
+    runs = parse_runs_text(text, p)
+    from guardband.planner.step import plan_step
+
+    result = plan_step(p, runs, seed=5, pool_size=300)
+    X, reason = result.pool, result.screen.reason
+    above = (X[:, 0] >= 10) & (X[:, 1] >= 1)
+    assert np.any(above)
+    hard = {"outside-design-space", "forbidden-region", "step-too-large", "beyond-tested-span",
+            "skips-untried-level"}
+    assert all(r == "above-broken-cohort" or r in hard for r in reason[above])
+    assert np.any(reason[above] == "above-broken-cohort")
+    assert np.all(result.screen.P[above, 0] == 0.0)
+    assert not any((q.x[0] >= 10) and (q.x[1] >= 1) for q in result.proposals)

@@ -43,6 +43,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, optimize
 from scipy.special import expit, gammaln, log_expit, roots_hermitenorm
+from scipy.stats import binom
 
 from guardband.planner.errors import ModelError
 from guardband.planner.models.arrays import check_points
@@ -273,8 +274,6 @@ class RateLeaveOneOut:
 
 
 def _count_predictive(mu, sd, events, subjects) -> RateLeaveOneOut:
-    from scipy.stats import binom
-
     nodes, weights = roots_hermitenorm(QUADRATURE_NODES)
     weights = weights / weights.sum()
     n_runs = len(mu)

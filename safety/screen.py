@@ -130,7 +130,8 @@ class MonotoneBasis:
     """What a monotone limit's envelope needs: the points judged and the runs, unit-scaled.
 
     ``anchor_p`` is each run's own probability of meeting the limit;
-    ``anchor_broke`` marks the runs whose measured value broke it.
+    ``anchor_broke`` marks the runs whose measured value broke it (a
+    binomial model pools the runs at one point: events over subjects).
     """
 
     points: np.ndarray

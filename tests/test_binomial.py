@@ -316,3 +316,13 @@ def test_plan_excludes_doses_at_or_above_a_cohort_that_broke_the_limit():
     assert np.any(reason[above] == "above-broken-cohort")
     assert np.all(result.screen.P[above, 0] == 0.0)
     assert not any((q.x[0] >= 10) and (q.x[1] >= 1) for q in result.proposals)
+
+
+def test_broken_dose_is_judged_on_all_its_subjects():
+    # trade practice: a dose level is judged on all its subjects (3+3: "2 or more of 6")
+    model = fit_binomial_gp(np.array([[0.2], [0.2], [0.5]]), [1, 0, 0], [3, 3, 1], prior_mean=float(logit(0.25)),
+                            hyperparameters=BinomialHyperparameters(np.array([0.3]), 4.0))
+    X, mean, sd, rates = model.runs_view()
+    np.testing.assert_array_equal(X[:, 0], [0.2, 0.5])
+    np.testing.assert_allclose(rates, [1 / 6, 0.0])
+    np.testing.assert_allclose(mean, model.predict(X)[0])

@@ -84,8 +84,10 @@ def test_no_point_is_judged_safer_than_the_doses_below_it(case):
     run_below = np.all(U_runs[None, :, :] <= U[:, None, :] + DOMINANCE_TOL, axis=2)
     for i in range(len(X)):
         assert np.all(P[i] <= run_p[run_below[i]] + 1e-12)
-    # a point at or above a cohort that broke the limit is excluded for that reason, with probability 0
-    broke = events / subjects > 0.25
+    # a point at or above a dose that broke the limit (all its subjects pooled) is excluded for that
+    # reason, with probability 0
+    same = np.all(runs[:, None, :] == runs[None, :, :], axis=2)
+    broke = (same @ events) / (same @ subjects) > 0.25
     above = np.any(run_below & broke[None, :], axis=1)
     assert np.all(P[above] == 0.0)
     res = run_screen(inside=np.ones(len(X), dtype=bool), limits=preds, threshold=0.9)

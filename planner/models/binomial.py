@@ -228,9 +228,18 @@ class BinomialGP:
         return BinomialPosteriorAt(self, Xs)
 
     def runs_view(self):
-        """(runs unit-scaled, latent mean and sd at them, measured rates): for a monotone screen."""
-        mean, sd = self.predict(self.X)
-        return self.X, mean, sd, self.y
+        """(doses tried, unit-scaled; latent mean and sd there; measured rate there): for a monotone screen.
+
+        Runs at the same point are pooled (their events over their subjects),
+        as the trade judges a dose level by all its subjects: two cohorts of
+        six at one dose with 1 and 2 events are 3 of 12, not a cohort of 2 of 6.
+        """
+        X, inverse = np.unique(self.X, axis=0, return_inverse=True)
+        inverse = inverse.reshape(-1)
+        events = np.bincount(inverse, weights=self.events, minlength=X.shape[0])
+        subjects = np.bincount(inverse, weights=self.subjects, minlength=X.shape[0])
+        mean, sd = self.predict(X)
+        return X, mean, sd, events / subjects
 
     def lattice_prediction(self, lattice):
         """Latent mean and sd at a monotone limit's fixed lattice (computed once per lattice)."""

@@ -33,13 +33,17 @@ Designs, all written here:
   control of escalation with overdose control (P(rate above target) <= 0.25;
   Babb, Rogatko & Zacks 1998, from memory); p = 0.5 asks only that the
   posterior median rate be within the target, like an MTD-seeking design.
+  By default a dose whose subjects' rate exceeds the target excludes every
+  dose at or above it at once (one event in a cohort of three does); the
+  variants "/6" let a dose break the limit only once six subjects were
+  treated there (``broken_after = 6``), as the 3+3 design judges a level.
 
 Figures per scenario and design: the share of trials selecting the true
 MTD, the share selecting a level above it, the share of subjects treated
 above it, events (toxicities) per trial and subjects per trial.
 
-Run:  python benchmarks/dose_finding.py [--trials 1000] [--guardband-trials 20]
-          [--thresholds 0.75 0.5] [--workers 2] [--seed 1] [--out benchmarks/results/dose_finding.csv]
+Run:  python benchmarks/dose_finding.py [--trials 1000] [--guardband-trials 16]
+          [--variants 0.75 0.75/6 0.5/6] [--workers 2] [--seed 1] [--out benchmarks/results/dose_finding.csv]
 """
 
 from __future__ import annotations
@@ -156,14 +160,14 @@ def crm(rates, rng):
 
 
 # --------------------------------------------------------------------------- Guardband
-def guardband_protocol(threshold: float):
+def guardband_protocol(threshold: float, broken_after: int | None):
     return parse_protocol({
         "study": {"title": "single-agent dose finding (benchmark)", "version": "1", "author": "benchmark",
                   "kind": "dose"},
         "factors": [{"name": "level", "kind": "discrete", "levels": list(range(1, LEVELS + 1))}],
         "objective": {"name": "dose_given", "direction": "maximize"},
         "limits": [{"name": "dlt", "kind": "binomial", "events": "dlt_events", "subjects": "subjects",
-                    "upper": TARGET, "probability": threshold}],
+                    "upper": TARGET, "probability": threshold, "broken_after": broken_after}],
         "screen": {"threshold": threshold, "min_runs": 1, "span_reach": None},
         "escalation": {"no_skipping": True, "cohort_size": COHORT},
         "ranking": {"rule": "mean"},
@@ -183,8 +187,8 @@ def _next_level(protocol, given, events, seed) -> int | None:
 
 
 def guardband_trial(job):
-    rates, threshold, seed = job
-    protocol = guardband_protocol(threshold)
+    rates, (threshold, broken_after), seed = job
+    protocol = guardband_protocol(threshold, broken_after)
     rng = np.random.default_rng(seed)
     given, events = [], []
     level = 1
@@ -217,11 +221,18 @@ def summarise(design, scenario, rates, trials):
             "subjects_per_trial": round(float(subjects.mean()), 1)}
 
 
+def _variant(text: str) -> tuple[float, int | None]:
+    p, _, n = text.partition("/")
+    return float(p), (int(n) if n else None)
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--trials", type=int, default=1000, help="trials per scenario for 3+3 and CRM")
-    ap.add_argument("--guardband-trials", type=int, default=20, help="trials per scenario and threshold")
-    ap.add_argument("--thresholds", type=float, nargs="+", default=[0.75, 0.5])
+    ap.add_argument("--guardband-trials", type=int, default=16, help="trials per scenario and variant")
+    ap.add_argument("--variants", nargs="+", default=["0.75", "0.75/6", "0.5/6"],
+                    help="Guardband settings as p or p/n: the screen threshold p, and broken_after n "
+                         "(a dose breaks the limit only once n subjects were treated there; default 1)")
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--out", default="benchmarks/results/dose_finding.csv")
@@ -233,14 +244,16 @@ def main(argv=None):
         rows.append(summarise("3+3", name, rates, [three_plus_three(rates, rng) for _ in range(args.trials)]))
         rng = np.random.default_rng([args.seed, k, 1])
         rows.append(summarise("CRM", name, rates, [crm(rates, rng) for _ in range(args.trials)]))
-    jobs = [(rates, t, args.seed * 100_000 + 1000 * k + i)
-            for t in args.thresholds for k, rates in enumerate(SCENARIOS.values())
+    variants = [_variant(v) for v in args.variants]
+    jobs = [(rates, v, args.seed * 100_000 + 1000 * k + i)
+            for v in variants for k, rates in enumerate(SCENARIOS.values())
             for i in range(args.guardband_trials)]
     results = run_in_workers(guardband_trial, jobs, workers=args.workers)
     at = 0
-    for t in args.thresholds:
+    for t, n in variants:
         for name, rates in SCENARIOS.items():
-            rows.append(summarise(f"Guardband p={t:g}", name, rates, results[at:at + args.guardband_trials]))
+            label = f"Guardband p={t:g}" + (f", broken after {n}" if n else "")
+            rows.append(summarise(label, name, rates, results[at:at + args.guardband_trials]))
             at += args.guardband_trials
     rows.sort(key=lambda r: (list(SCENARIOS).index(r["scenario"]), r["design"]))
     out = Path(args.out)

@@ -49,6 +49,8 @@ class LimitRule:
     #: the lattice points at or below it, so its figure does not depend on
     #: which other points are judged with it (all of them, for discrete doses).
     lattice: np.ndarray | None = field(default=None, compare=False, repr=False)
+    #: A dose counts as having broken a monotone limit once this many subjects were treated there.
+    broken_after: int = 1
 
     @property
     def with_noise(self) -> bool:
@@ -152,7 +154,8 @@ def limit_rules(protocol) -> tuple[LimitRule, ...]:
     for lim in protocol.limits:
         monotone = bool(protocol.monotone_for(lim))
         out.append(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on,
-                             lim.kind == "binomial", monotone, dominance_lattice(protocol) if monotone else None))
+                             lim.kind == "binomial", monotone, dominance_lattice(protocol) if monotone else None,
+                             int(getattr(lim, "broken_after", None) or 1)))
     return tuple(out)
 
 
@@ -205,7 +208,7 @@ def meets_limits(limits, Y, n: int, *, margin: float = 0.0) -> np.ndarray:
         if margin:
             lim = LimitRule(lim.name, None if lim.lower is None else lim.lower + margin,
                             None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on,
-                            lim.binomial, lim.monotone, lim.lattice)
+                            lim.binomial, lim.monotone, lim.lattice, lim.broken_after)
         ok &= within_limit(y, lim)
     return ok
 

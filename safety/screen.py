@@ -288,8 +288,8 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
 def _monotone_basis(lim: LimitRule, model, U) -> MonotoneBasis:
     """A monotone limit's anchors: the model's runs and the rule's lattice, their probabilities,
     and which runs broke the limit (the lattice is predicted by the model fitted to real data)."""
-    anchors, a_mean, a_sd, measured = model.runs_view()
-    broke = ~within_limit(measured, lim)
+    anchors, a_mean, a_sd, measured, subjects = model.runs_view()
+    broke = ~within_limit(measured, lim) & (subjects >= lim.broken_after)
     if lim.lattice is not None and lim.lattice.shape[0]:
         g_mean, g_sd = model.lattice_prediction(lim.lattice)
         anchors = np.vstack([anchors, lim.lattice])

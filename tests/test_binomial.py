@@ -322,7 +322,29 @@ def test_broken_dose_is_judged_on_all_its_subjects():
     # trade practice: a dose level is judged on all its subjects (3+3: "2 or more of 6")
     model = fit_binomial_gp(np.array([[0.2], [0.2], [0.5]]), [1, 0, 0], [3, 3, 1], prior_mean=float(logit(0.25)),
                             hyperparameters=BinomialHyperparameters(np.array([0.3]), 4.0))
-    X, mean, sd, rates = model.runs_view()
+    X, mean, sd, rates, subjects = model.runs_view()
     np.testing.assert_array_equal(X[:, 0], [0.2, 0.5])
     np.testing.assert_allclose(rates, [1 / 6, 0.0])
+    np.testing.assert_array_equal(subjects, [6, 1])
     np.testing.assert_allclose(mean, model.predict(X)[0])
+
+
+@pytest.mark.parametrize("broken_after, excluded", [(None, True), (6, True), (9, False)])
+def test_broken_after_waits_for_enough_subjects(broken_after, excluded):
+    # 2 of 6 at (10, 1): broken by default and with broken_after = 6; with 9 not yet (six treated)
+    data = _dose_data()
+    if broken_after is not None:
+        data["limits"][0]["broken_after"] = broken_after
+    p = parse_protocol(data)
+    text = (ROOT / "protocols" / "dose_combination_runs.csv").read_text().replace(
+        "R06,10,1,37.3283,0,6", "R06,10,1,37.3283,2,6")
+    runs = parse_runs_text(text, p)
+    rules = ScreenRules.from_protocol(p)
+    space = p.design_space()
+    U = space.to_unit(runs.X)
+    events, subjects = runs.counts["dlt_rate"]
+    model = fit_binomial_gp(U, events, subjects, prior_mean=rules.limits[0].prior_mean,
+                            hyperparameters=BinomialHyperparameters(np.array([0.3, 0.3]), 4.0))
+    preds = limit_predictions(rules.limits, [model], space.to_unit(np.array([[10.0, 1.0], [20.0, 2.0]])))
+    P, _ = probabilities_at(preds, 2)
+    assert bool(np.all(P[:, 0] == 0.0)) is excluded

@@ -199,6 +199,14 @@ class Limit(_Strict):
     kind: Literal["continuous", "binomial"] = "continuous"
     events: str | None = Field(default=None, description="binomial: runs-file column with the number of events")
     subjects: str | None = Field(default=None, description="binomial: runs-file column with the number of subjects")
+    broken_after: int | None = Field(
+        default=None, ge=1,
+        description=(
+            "monotone binomial limits: a dose counts as having broken the limit (and excludes every dose "
+            "at or above it) only once this many subjects were treated there; default 1, any cohort "
+            "(the 3+3 design judges a level on six)"
+        ),
+    )
     monotone: bool | None = Field(
         default=None,
         description=(
@@ -235,8 +243,9 @@ class Limit(_Strict):
         _check_name(self.name, "limit name")
         if self.kind == "binomial":
             self._check_binomial()
-        elif self.events is not None or self.subjects is not None or self.monotone is not None:
-            raise ValueError(f"limit {self.name!r}: `events`, `subjects` and `monotone` belong to "
+        elif (self.events is not None or self.subjects is not None or self.monotone is not None
+              or self.broken_after is not None):
+            raise ValueError(f"limit {self.name!r}: `events`, `subjects`, `monotone` and `broken_after` belong to "
                              "kind = \"binomial\" limits")
         if self.lower is None and self.upper is None:
             raise ValueError(f"limit {self.name!r} needs `upper`, `lower` or both")
@@ -297,7 +306,8 @@ class Limit(_Strict):
 
 
 #: Limit fields added after protocols were first fingerprinted, with their defaults.
-_LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None, "monotone": None}
+_LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None, "monotone": None,
+                         "broken_after": None}
 
 
 class Forbidden(_Strict):

@@ -228,7 +228,7 @@ class BinomialGP:
         return BinomialPosteriorAt(self, Xs)
 
     def runs_view(self):
-        """(doses tried, unit-scaled; latent mean and sd there; measured rate there): for a monotone screen.
+        """(doses tried, unit-scaled; latent mean and sd there; measured rate and subjects there): for a monotone screen.
 
         Runs at the same point are pooled (their events over their subjects),
         as the trade judges a dose level by all its subjects: two cohorts of
@@ -239,7 +239,7 @@ class BinomialGP:
         events = np.bincount(inverse, weights=self.events, minlength=X.shape[0])
         subjects = np.bincount(inverse, weights=self.subjects, minlength=X.shape[0])
         mean, sd = self.predict(X)
-        return X, mean, sd, events / subjects
+        return X, mean, sd, events / subjects, subjects
 
     def lattice_prediction(self, lattice):
         """Latent mean and sd at a monotone limit's fixed lattice (computed once per lattice)."""

@@ -299,10 +299,14 @@ class Limit(_Strict):
     def describe(self) -> str:
         unit = f" {self.unit}" if self.unit else ""
         if self.sides == "two-sided":
-            return f"{self.lower:g} <= {self.name} <= {self.upper:g}{unit}"
-        if self.sides == "upper":
-            return f"{self.name} <= {self.upper:g}{unit}"
-        return f"{self.name} >= {self.lower:g}{unit}"
+            text = f"{self.lower:g} <= {self.name} <= {self.upper:g}{unit}"
+        elif self.sides == "upper":
+            text = f"{self.name} <= {self.upper:g}{unit}"
+        else:
+            text = f"{self.name} >= {self.lower:g}{unit}"
+        if self.kind == "binomial":
+            text += f" (the true rate of {self.events} among {self.subjects})"
+        return text
 
 
 #: Limit fields added after protocols were first fingerprinted, with their defaults.

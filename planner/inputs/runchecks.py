@@ -17,7 +17,7 @@ from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.units import UnitError, conversion
 
 __all__ = ["check_unit", "to_protocol_units", "factor_value_flags", "mixture_total_problems",
-           "binomial_counts"]
+           "binomial_counts", "rate_column_problem"]
 
 
 def _unconvertible(convert: dict[str, object], name: str) -> bool:
@@ -181,3 +181,10 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
             Y[lim.name] = events / subjects
         counts[lim.name] = (events, subjects)
     return counts
+
+
+def rate_column_problem(limit, label: str) -> str:
+    """Why a column holding a binomial response's rate is refused, and what to give instead."""
+    return (f"{label}: {limit.name!r} is a binomial response and a rate alone cannot be used: give the "
+            f"number of events in column {limit.events!r} and the number of subjects in column "
+            f"{limit.subjects!r} (for example 1 and 6, not 0.1667)")

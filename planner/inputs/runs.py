@@ -50,6 +50,7 @@ from guardband.planner.errors import RunsDataError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runchecks import (
     binomial_counts,
+    rate_column_problem,
     check_unit,
     factor_value_flags,
     mixture_total_problems,
@@ -117,8 +118,7 @@ class RunsTable:
     sha256: str
     source: str = "runs"
     factor_names: tuple[str, ...] = field(default=())
-    #: Binomial responses: (events, subjects) per run, NaN where not measured;
-    #: ``Y`` holds their rate events / subjects.
+    #: Binomial responses: (events, subjects) per run, NaN where not measured; Y holds the rate.
     counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
     @property
@@ -695,12 +695,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
             if any(j < len(r) and not _blank(r[j]) for r in grid.rows[1:]):
                 problems.append(f"column {letter}{grid.ref(0, j)} has values but no header")
         elif name in rates:
-            lim = rates[name]
-            problems.append(
-                f"column {letter}{grid.ref(0, j)}: {name!r} is a binomial response and a rate alone "
-                f"cannot be used: give the number of events in column {lim.events!r} and the number "
-                f"of subjects in column {lim.subjects!r} (for example 1 and 6, not 0.1667)"
-            )
+            problems.append(rate_column_problem(rates[name], f"column {letter}{grid.ref(0, j)}"))
         elif name in columns.at:
             problems.append(f"column {letter}{grid.ref(0, j)}: header {name!r} appears twice")
             twice.add(name)

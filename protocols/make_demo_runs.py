@@ -47,7 +47,8 @@ def make(protocol_file: str, runs_file: str, n: int, truth, noise: dict, seed: i
     mixture = [k for k, f in enumerate(p.factors) if f.kind == "component"] or None
     X, _ = starting_design(space, n, rng=rng, mixture_indices=mixture,
                            region=None if region is None else region[:2])
-    header = ["run_id", *p.factor_names, *p.response_names, "notes"]
+    header = ["run_id", *p.factor_names, *p.runs_columns, "notes"]
+    binomial = {lim.name for lim in p.limits if lim.kind == "binomial"}
     rows = []
     for i, x in enumerate(X, start=1):
         xd = dict(zip(p.factor_names, x))
@@ -55,10 +56,10 @@ def make(protocol_file: str, runs_file: str, n: int, truth, noise: dict, seed: i
         cells = []
         for r in p.response_names:
             v = y[r] + rng.normal(0, noise[r])
-            if cohort:  # a toxicity rate is a count out of a cohort
-                if r == "dlt_rate":
-                    v = rng.binomial(cohort, min(max(y[r], 0), 1)) / cohort
-            cells.append(round(float(v), 4))
+            if r in binomial:  # a toxicity rate is observed as events among a cohort
+                cells += [int(rng.binomial(cohort, min(max(y[r], 0), 1))), cohort]
+            else:
+                cells.append(round(float(v), 4))
         rows.append([f"R{i:02d}", *[round(float(v), 5) for v in x], *cells, "invented demo run"])
     text = write_csv_text(rows, header, float_format=".6g")
     (HERE / runs_file).write_text(text, encoding="utf-8")

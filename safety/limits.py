@@ -14,11 +14,11 @@ import the planner.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "limit_rules", "within_limit", "meets_limits",
+__all__ = ["LimitRule", "ForbiddenRegion", "ScreenRules", "LevelLadder", "level_ladders", "limit_rules", "within_limit", "meets_limits",
            "met_every_limit"]
 
 #: Judged on the next measurement (noise included) or on the true value.
@@ -31,6 +31,12 @@ JUDGED_TEXT = {
 }
 
 
+#: Values per continuous factor in a monotone limit's dominance lattice, and
+#: the most lattice points in all (fewer values per factor beyond it).
+LATTICE_VALUES = 11
+LATTICE_MAX_POINTS = 4096
+
+
 @dataclass(frozen=True)
 class LimitRule:
     """One limit: ``lower <= response <= upper`` with at least ``probability``."""
@@ -40,11 +46,26 @@ class LimitRule:
     upper: float | None
     probability: float
     judged_on: str = MEASUREMENT
+    binomial: bool = False
+    monotone: bool = False
+    #: A monotone limit's fixed lattice (unit-scaled free factors): every
+    #: combination of the discrete levels, and LATTICE_VALUES evenly spaced
+    #: values of each continuous factor. A point is never judged safer than
+    #: the lattice points at or below it, so its figure does not depend on
+    #: which other points are judged with it (all of them, for discrete doses).
+    lattice: np.ndarray | None = field(default=None, compare=False, repr=False)
+    #: A dose counts as having broken a monotone limit once this many subjects were treated there.
+    broken_after: int = 1
 
     @property
     def with_noise(self) -> bool:
         """Whether the limit is judged on the next measurement (noise included)."""
-        return self.judged_on == MEASUREMENT
+        return self.judged_on == MEASUREMENT and not self.binomial
+
+    @property
+    def scale(self) -> str:
+        """Where the limit model's mean and sd live: "response", or "logit" (of a binomial rate)."""
+        return "logit" if self.binomial else "response"
 
     @property
     def judged_text(self) -> str:
@@ -57,9 +78,11 @@ class LimitRule:
 
         Away from the runs such a model gives a probability of about 1/2 at
         best and never claims safety. For a two-sided limit the upper edge is
-        used (the same 1/2 ceiling holds).
+        used (the same 1/2 ceiling holds). A binomial limit's model is on the
+        logit of the rate, so its prior mean is the logit of the limit.
         """
-        return float(self.upper if self.upper is not None else self.lower)
+        edge = float(self.upper if self.upper is not None else self.lower)
+        return float(np.log(edge / (1.0 - edge))) if self.binomial else edge
 
 
 @dataclass(frozen=True)
@@ -76,6 +99,40 @@ class ForbiddenRegion:
 
 
 @dataclass(frozen=True)
+class LevelLadder:
+    """One discrete factor's levels, for the no-skipping rule: its column among the free factors."""
+
+    name: str
+    column: int
+    levels: np.ndarray  # in protocol units
+    units: np.ndarray  # the same, unit-scaled
+
+    def index(self, u) -> np.ndarray:
+        """The level index nearest each unit-scaled value."""
+        return np.argmin(np.abs(np.asarray(u, float)[:, None] - self.units[None, :]), axis=1)
+
+
+def level_ladders(protocol) -> tuple[LevelLadder, ...]:
+    """The discrete free factors' ladders when the protocol forbids skipping untried levels, else ()."""
+    esc = getattr(protocol, "escalation", None)
+    if esc is None or not esc.no_skipping:
+        return ()
+    space = protocol.design_space()
+    free = np.asarray(space.free, dtype=bool)
+    column = np.cumsum(free) - 1
+    centre = np.array([0.5 * (f.low + f.high) for f in protocol.factors])
+    out = []
+    for j, f in enumerate(protocol.factors):
+        if f.kind != "discrete" or not free[j]:
+            continue
+        levels = np.asarray(f.levels, dtype=float)
+        X = np.tile(centre, (levels.size, 1))
+        X[:, j] = levels
+        out.append(LevelLadder(f.name, int(column[j]), levels, np.asarray(space.to_unit(X))[:, j]))
+    return tuple(out)
+
+
+@dataclass(frozen=True)
 class ScreenRules:
     """Every rule of the screen, from one protocol."""
 
@@ -86,6 +143,7 @@ class ScreenRules:
     max_step: float | None
     span_reach: float | None = None
     span_floor: float = 0.0
+    ladders: tuple[LevelLadder, ...] = ()
 
     @classmethod
     def from_protocol(cls, protocol) -> ScreenRules:
@@ -99,13 +157,33 @@ class ScreenRules:
             regions.append(ForbiddenRegion(region.name, tuple(region.rules), A, b))
         s = protocol.screen
         return cls(limits, tuple(regions), float(s.threshold), s.joint, s.max_step,
-                   s.span_reach, float(s.span_floor))
+                   s.span_reach, float(s.span_floor), level_ladders(protocol))
 
 
 def limit_rules(protocol) -> tuple[LimitRule, ...]:
     """The limits of ``protocol`` as :class:`LimitRule` objects."""
-    return tuple(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on)
-                 for lim in protocol.limits)
+    out = []
+    for lim in protocol.limits:
+        monotone = bool(protocol.monotone_for(lim))
+        out.append(LimitRule(lim.name, lim.lower, lim.upper, float(lim.probability), lim.judged_on,
+                             lim.kind == "binomial", monotone, dominance_lattice(protocol) if monotone else None,
+                             int(getattr(lim, "broken_after", None) or 1)))
+    return tuple(out)
+
+
+def dominance_lattice(protocol) -> np.ndarray:
+    """The lattice of a monotone limit (see :attr:`LimitRule.lattice`), unit-scaled free factors."""
+    factors = protocol.factors
+    n_cont = sum(1 for f in factors if f.kind != "discrete" and f.high > f.low)
+    per = LATTICE_VALUES
+    n_disc = int(np.prod([len(f.levels) for f in factors if f.kind == "discrete"]))
+    while n_cont and per > 2 and n_disc * per**n_cont > LATTICE_MAX_POINTS:
+        per -= 1
+    axes = [np.asarray(f.levels, float) if f.kind == "discrete" else np.linspace(f.low, f.high, per)
+            for f in factors]
+    X = np.stack([a.ravel() for a in np.meshgrid(*axes, indexing="ij")], axis=1)
+    space = protocol.design_space()
+    return np.ascontiguousarray(np.asarray(space.to_unit(X))[:, np.asarray(space.free, dtype=bool)])
 
 
 def within_limit(y, limit: LimitRule) -> np.ndarray:
@@ -141,7 +219,8 @@ def meets_limits(limits, Y, n: int, *, margin: float = 0.0) -> np.ndarray:
         y = np.asarray(Y[lim.name], dtype=float)
         if margin:
             lim = LimitRule(lim.name, None if lim.lower is None else lim.lower + margin,
-                            None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on)
+                            None if lim.upper is None else lim.upper - margin, lim.probability, lim.judged_on,
+                            lim.binomial, lim.monotone, lim.lattice, lim.broken_after)
         ok &= within_limit(y, lim)
     return ok
 

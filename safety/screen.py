@@ -17,8 +17,14 @@ can see how near each near miss came.
    seen a region reads alike everywhere in it; this rule keeps each step's
    extrapolation in proportion to what has been tested, so the region grows
    only as far as runs at its edge come back within the limits.
+3c. ``skips-untried-level`` (protocol ``[escalation] no_skipping``): a
+   discrete factor more than one level above the highest level given in a
+   run that met every limit, or more than one factor above theirs at once.
 4. ``too-few-runs`` / ``model-not-fitted`` (fail closed): a limit whose
    model cannot vouch for anything excludes every candidate.
+4b. ``above-broken-cohort``: a monotone limit (a toxicity rate that never
+   falls as a dose rises) was broken by a run whose every dose is at or
+   below the candidate's; the candidate's probability of meeting it is 0.
 5. ``limit-probability``: P(limit i met) below that limit's probability.
 6. ``joint-below-threshold``: the joint figure below the screen threshold.
 7. ``rests-on-one-run``: 5 and 6 hold with every run counted, but not
@@ -34,6 +40,17 @@ bound max(0, 1 - sum(1 - p_i)) (Boole/Bonferroni), valid whatever the
 correlation between limits; the product of the p_i (independence) is used
 only when the protocol names it.
 
+A binomial limit (events among subjects) is judged on the true rate: its
+model's mean and sd are of the latent logit of the rate, which is Gaussian
+under the Laplace approximation, so P(rate <= L) = Phi((logit L - mean) / sd)
+exactly; the limit's bounds are moved to the logit scale here, in one place.
+A monotone limit's probability at each point is the least over the point
+itself, every other point judged with it, every run and every point of the
+rule's fixed lattice (all combinations of the discrete levels) at lower or
+equal values of every free factor (:func:`monotone_envelope`). With discrete
+doses the lattice holds every candidate, so a point's figure does not depend
+on which points are judged with it.
+
 This module works on numbers (means, standard deviations, distances); it
 does not fit models and does not import the command line.
 """
@@ -46,7 +63,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy.special import ndtr
 
-from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules
+from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules, within_limit
 
 #: Slack when testing ``A x <= b`` for a forbidden region (the same
 #: feasibility tolerance as the design space's; the rows are normalised by
@@ -56,6 +73,9 @@ REGION_TOL = 1e-9
 __all__ = [
     "REASONS",
     "LimitPrediction",
+    "MonotoneBasis",
+    "monotone_envelope",
+    "above_broken",
     "HardRules",
     "ScreenResult",
     "limit_probability",
@@ -77,8 +97,10 @@ REASONS = (
     "forbidden-region",
     "step-too-large",
     "beyond-tested-span",
+    "skips-untried-level",
     "too-few-runs",
     "model-not-fitted",
+    "above-broken-cohort",
     "limit-probability",
     "joint-below-threshold",
     "rests-on-one-run",
@@ -106,13 +128,86 @@ class LimitPrediction:
     #: run id the check leaned on at each point ("" where it changed nothing)
     sd_all: np.ndarray | None = None
     leaning: np.ndarray | None = None
+    scale: str = "response"  # or "logit": mean and sd of the logit of a binomial rate
+    monotone: MonotoneBasis | None = None
+
+    def p_met(self) -> np.ndarray:
+        """P(the limit is met) at each point (before any monotone envelope)."""
+        return limit_probability(self.mean, self.sd, lower=self.lower, upper=self.upper, scale=self.scale)
 
 
-def limit_probability(mean, sd, *, lower=None, upper=None) -> np.ndarray:
+@dataclass(frozen=True)
+class MonotoneBasis:
+    """What a monotone limit's envelope needs: the points judged and the runs, unit-scaled.
+
+    ``anchor_p`` is each run's own probability of meeting the limit;
+    ``anchor_broke`` marks the runs whose measured value broke it (a
+    binomial model pools the runs at one point: events over subjects).
+    """
+
+    points: np.ndarray
+    anchors: np.ndarray
+    anchor_p: np.ndarray
+    anchor_broke: np.ndarray
+
+
+#: Slack when comparing unit-scaled coordinates for "at or below" (dominance).
+DOMINANCE_TOL = 1e-9
+
+
+def _dominated_min(values_at, A, B) -> np.ndarray:
+    """For each row b of B, the least values_at[a] over rows a of A with a <= b in every column (inf if none)."""
+    out = np.full(B.shape[0], np.inf)
+    for start in range(0, B.shape[0], 256):
+        block = B[start:start + 256]
+        below = np.all(A[None, :, :] <= block[:, None, :] + DOMINANCE_TOL, axis=2)  # (b, a)
+        out[start:start + 256] = np.min(np.where(below, values_at[None, :], np.inf), axis=1, initial=np.inf)
+    return out
+
+
+def monotone_envelope(p, basis: MonotoneBasis) -> np.ndarray:
+    """Probabilities held monotone: never above those of the points or runs at lower or equal values.
+
+    P_i <- min(P_i, min{P_j : x_j <= x_i}, min{P_run : x_run <= x_i}), and 0
+    where a run at or below the point broke the limit. The pairwise work
+    runs on the distinct points only (discrete doses repeat a lot).
+    """
+    p = np.asarray(p, dtype=float)
+    if p.size == 0:
+        return p
+    uniq, inverse = np.unique(basis.points, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    pu = np.full(uniq.shape[0], np.inf)
+    np.minimum.at(pu, inverse, p)
+    out = np.minimum(pu, _dominated_min(pu, uniq, uniq))
+    if basis.anchors.shape[0]:
+        out = np.minimum(out, _dominated_min(basis.anchor_p, basis.anchors, uniq))
+    return np.where(above_broken(basis, uniq), 0.0, out)[inverse]
+
+
+def above_broken(basis: MonotoneBasis, points=None) -> np.ndarray:
+    """Whether each point lies at or above (every free factor) a run that broke the limit."""
+    points = basis.points if points is None else points
+    broke = basis.anchors[np.asarray(basis.anchor_broke, dtype=bool)]
+    if broke.shape[0] == 0:
+        return np.zeros(points.shape[0], dtype=bool)
+    return np.isfinite(_dominated_min(np.zeros(broke.shape[0]), broke, points))
+
+
+def _logit_bound(v):
+    return None if v is None else float(np.log(v) - np.log1p(-v))
+
+
+def limit_probability(mean, sd, *, lower=None, upper=None, scale: str = "response") -> np.ndarray:
     """P(lower <= Y <= upper) for Y ~ N(mean, sd^2), elementwise.
 
     sd = 0 gives 1 or 0 according to whether the mean is within the limit.
+    With ``scale="logit"``, ``mean`` and ``sd`` are of the logit of a rate
+    whose limits ``lower`` and ``upper`` lie in (0, 1): the bounds move to
+    the logit scale (the logit is increasing, so the event is the same).
     """
+    if scale == "logit":
+        lower, upper = _logit_bound(lower), _logit_bound(upper)
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
     safe_sd = np.where(sd > 0, sd, 1.0)
@@ -200,9 +295,25 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
                                        status=status, message=message))
         else:
             mean, sd, sd_all, leaning = _mean_sd(model, U, lim.with_noise)
+            basis = _monotone_basis(lim, model, U) if lim.monotone else None
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
-                                       sd_all=sd_all, leaning=leaning))
+                                       sd_all=sd_all, leaning=leaning, scale=lim.scale, monotone=basis))
     return out
+
+
+def _monotone_basis(lim: LimitRule, model, U) -> MonotoneBasis:
+    """A monotone limit's anchors: the model's runs and the rule's lattice, their probabilities,
+    and which runs broke the limit (the lattice is predicted by the model fitted to real data)."""
+    anchors, a_mean, a_sd, measured, subjects = model.runs_view()
+    broke = ~within_limit(measured, lim) & (subjects >= lim.broken_after)
+    if lim.lattice is not None and lim.lattice.shape[0]:
+        g_mean, g_sd = model.lattice_prediction(lim.lattice)
+        anchors = np.vstack([anchors, lim.lattice])
+        a_mean, a_sd = np.concatenate([a_mean, g_mean]), np.concatenate([a_sd, g_sd])
+        broke = np.concatenate([broke, np.zeros(lim.lattice.shape[0], dtype=bool)])
+    a_p = limit_probability(a_mean, a_sd, lower=lim.lower, upper=lim.upper, scale=lim.scale)
+    points = model.points if U is None else np.asarray(U, dtype=float)
+    return MonotoneBasis(points, anchors, a_p, broke)
 
 
 def probabilities_at(predictions: Sequence[LimitPrediction], n: int) -> tuple[np.ndarray, np.ndarray]:
@@ -219,7 +330,8 @@ def probabilities_at(predictions: Sequence[LimitPrediction], n: int) -> tuple[np
     vouch = np.ones(n, dtype=bool)
     for j, lim in enumerate(predictions):
         if lim.status == "ok":
-            P[:, j] = limit_probability(lim.mean, lim.sd, lower=lim.lower, upper=lim.upper)
+            p = lim.p_met()
+            P[:, j] = p if lim.monotone is None else monotone_envelope(p, lim.monotone)
         else:
             vouch[:] = False
     return P, vouch
@@ -264,6 +376,34 @@ class HardRules:
     step_basis: str
     beyond: np.ndarray | None = None
     beyond_detail: list[str] | None = None
+    skips: np.ndarray | None = None
+    skips_detail: list[str] | None = None
+
+
+def skipped_levels(ladders, U, anchors) -> tuple[np.ndarray, list[str]]:
+    """Which points skip an untried level (see rule 3c), and how, from the anchors (unit-scaled)."""
+    n = U.shape[0]
+    out, detail = np.zeros(n, dtype=bool), [""] * n
+    if not ladders or anchors.shape[0] == 0:
+        return out, detail
+    rises = np.zeros((n, len(ladders)), dtype=int)
+    for q, lad in enumerate(ladders):
+        rises[:, q] = lad.index(U[:, lad.column]) - int(np.max(lad.index(anchors[:, lad.column])))
+    too_high = np.any(rises > 1, axis=1)
+    several = np.sum(rises > 0, axis=1) > 1
+    out = too_high | several
+    for i in np.flatnonzero(out):
+        if too_high[i]:
+            q = int(np.argmax(rises[i]))
+            lad = ladders[q]
+            top = lad.levels[int(np.max(lad.index(anchors[:, lad.column])))]
+            detail[i] = (f"{lad.name} would rise {rises[i, q]} levels above {top:g}, the highest level given "
+                         "in a run that met every limit (one level at a time)")
+        else:
+            names = [ladders[q].name for q in np.flatnonzero(rises[i] > 0)]
+            detail[i] = (f"{' and '.join(names)} would {'both' if len(names) == 2 else 'all'} rise above their "
+                         "highest levels at once (one factor at a time)")
+    return out, detail
 
 
 def tested_span(anchors, reach: float, floor: float) -> tuple[np.ndarray, np.ndarray]:
@@ -314,8 +454,9 @@ def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str, spa
     forb, forb_detail = forbidden_mask(rules.forbidden, X)
     beyond, beyond_detail = _beyond_span(np.asarray(U, float), np.asarray(anchors, float), rules.span_reach,
                                          rules.span_floor, step_basis, span_columns)
+    skips, skips_detail = skipped_levels(rules.ladders, np.asarray(U, float), np.asarray(anchors, float))
     return HardRules(inside, outside_detail, forb, forb_detail, step_distance(U, anchors), step_basis,
-                     beyond, beyond_detail)
+                     beyond, beyond_detail, skips, skips_detail)
 
 
 def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[LimitPrediction]) -> ScreenResult:
@@ -330,6 +471,8 @@ def screen_points(rules: ScreenRules, hard: HardRules, predictions: Sequence[Lim
         step_basis=hard.step_basis,
         beyond=hard.beyond,
         beyond_detail=hard.beyond_detail,
+        skips=hard.skips,
+        skips_detail=hard.skips_detail,
         limits=list(predictions),
         threshold=rules.threshold,
         joint=rules.joint,
@@ -436,6 +579,8 @@ def run_screen(
     step_basis: str = "run that met every limit",
     beyond: np.ndarray | None = None,
     beyond_detail: list[str] | None = None,
+    skips: np.ndarray | None = None,
+    skips_detail: list[str] | None = None,
     limits: list[LimitPrediction],
     threshold: float,
     joint: str = "bound",
@@ -460,6 +605,9 @@ def run_screen(
     beyond : bool array (n,), optional
         Whether each candidate lies beyond the tested span (see :func:`tested_span`).
     beyond_detail : list of str, optional
+    skips : bool array (n,), optional
+        Whether each candidate skips an untried level (see :func:`skipped_levels`).
+    skips_detail : list of str, optional
     limits : list of LimitPrediction
     threshold : float
         The joint figure a candidate must reach.
@@ -495,10 +643,18 @@ def run_screen(
     if beyond is not None:
         mark(np.asarray(beyond, dtype=bool), "beyond-tested-span",
              lambda i: beyond_detail[i] if beyond_detail else "beyond the span of the tested runs")
+    if skips is not None:
+        mark(np.asarray(skips, dtype=bool), "skips-untried-level",
+             lambda i: skips_detail[i] if skips_detail else "skips an untried level")
     for lim in limits:
         if lim.status != "ok":
             mark(np.ones(n, dtype=bool), lim.status,
                  lambda i, lim=lim: f"limit {lim.name!r}: {lim.message}")
+    for lim in limits:
+        if lim.status == "ok" and lim.monotone is not None:
+            mark(above_broken(lim.monotone), "above-broken-cohort",
+                 lambda i, lim=lim: (f"limit {lim.name!r}: every free factor is at or above a run that broke "
+                                     "the limit (the rate is held not to fall as a dose rises)"))
     # with every run counted first: a candidate that fails only because one
     # run carries its claim gets its own reason, naming that run
     P_all, J_all = figures_at(_with_every_run(limits), n, method=joint)

@@ -87,4 +87,5 @@ def test_limit_rules_carry_how_each_limit_is_judged():
     dose = load_protocol(PROTOCOLS / "dose_combination.toml")
     (rule,) = limit_rules(dose)
     assert rule.judged_on == "true-value" and not rule.with_noise
-    assert rule.prior_mean == dose.limits[0].upper
+    # a binomial limit's model is on the logit of the rate: its prior mean is the limit's logit
+    assert rule.binomial and rule.prior_mean == pytest.approx(np.log(0.25 / 0.75), abs=1e-15)

@@ -35,6 +35,18 @@ def dose():
 
 
 @pytest.fixture(scope="module")
+def dose_gaussian(dose):
+    """The dose example with its toxicity rate modelled as a Gaussian response (the runs' rates)."""
+    p, runs = dose
+    data = p.model_dump(mode="python")
+    lim = data["limits"][0]
+    for key in ("events", "subjects", "monotone"):
+        lim.pop(key)
+    lim["kind"] = "continuous"
+    return parse_protocol(data), runs
+
+
+@pytest.fixture(scope="module")
 def tablet_plan(tablet):
     p, runs = tablet
     return plan_step(p, runs, seed=3, pool_size=POOL)
@@ -188,28 +200,36 @@ def test_gramacy_campaign_reaches_published_optimum():
     assert min(bests) >= 0.5998 * 0.99  # cannot beat the known optimum by more than rounding
 
 
-def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose):
-    # every cohort so far (doses <= 10 and <= 2) had no dose-limiting
-    # toxicity; without the step rule, a model that carries that flat 0 out to
-    # 80 mg/kg would call the top dose safe. The capped limit length scale
-    # makes the model return to its prior mean (the limit) there instead.
-    p, runs = dose
+def _joint_at_top(p, runs, cap):
     data = p.model_dump(mode="python")
     data["screen"]["max_step"] = None
     data["screen"]["forbidden"] = []
+    data["model"]["limit_length_scale_max"] = cap
+    result = plan_step(parse_protocol(data), runs, seed=1, pool_size=POOL)
+    X = result.pool
+    top = np.flatnonzero((X[:, 0] == 80) & (X[:, 1] == 0))
+    assert top.size
+    return result.screen.joint[top[0]], result.screen.survives[top[0]]
 
-    def joint_at_top(cap):
-        data["model"]["limit_length_scale_max"] = cap
-        result = plan_step(parse_protocol(data), runs, seed=1, pool_size=POOL)
-        X = result.pool
-        top = np.flatnonzero((X[:, 0] == 80) & (X[:, 1] == 0))
-        assert top.size
-        return result.screen.joint[top[0]], result.screen.survives[top[0]]
 
-    joint, survives = joint_at_top(0.4)  # the default
+def test_flat_limit_response_claims_no_safety_far_from_the_runs(dose_gaussian):
+    # every cohort so far (doses <= 10 and <= 2) had no dose-limiting
+    # toxicity; without the step rule, a Gaussian model that carries that flat 0
+    # out to 80 mg/kg would call the top dose safe. The capped limit length
+    # scale makes the model return to its prior mean (the limit) there instead.
+    p, runs = dose_gaussian
+    joint, survives = _joint_at_top(p, runs, 0.4)  # the default
     assert joint < 0.9 and not survives
-    joint_uncapped, _ = joint_at_top(1000.0)  # what the cap prevents
+    joint_uncapped, _ = _joint_at_top(p, runs, 1000.0)  # what the cap prevents
     assert joint_uncapped > joint
+
+
+def test_binomial_limit_claims_no_safety_at_the_top_dose(dose):
+    # the same runs as counts: the binomial model, with or without the cap, does not clear 80 mg/kg
+    p, runs = dose
+    for cap in (0.4, 1000.0):
+        joint, survives = _joint_at_top(p, runs, cap)
+        assert joint < 0.9 and not survives
 
 
 def test_loo_widening_scales_every_sd_by_the_loo_factor_and_keeps_the_mean():
@@ -294,10 +314,10 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     assert 40 * np.sum((p.x - 0.5) ** 2) - 0.5 < 0  # and it is truly inside the pocket
 
 
-def test_a_limit_judged_on_the_true_value_leaves_the_noise_out(dose):
+def test_a_limit_judged_on_the_true_value_leaves_the_noise_out(dose_gaussian):
     from guardband.safety.screen import limit_probability
 
-    p, runs = dose
+    p, runs = dose_gaussian
     lim = p.limits[0]
     assert lim.judged_on == "true-value"
     plan = plan_step(p, runs, seed=1, pool_size=POOL)

@@ -187,11 +187,11 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
         space, n, rng=np.random.default_rng(seed), mixture_indices=mixture,
         region=None if region is None else (region[0], region[1]),
     )
-    header = [RUN_ID, *protocol.factor_names, *protocol.response_names, "notes"]
+    header = [RUN_ID, *protocol.factor_names, *protocol.runs_columns, "notes"]
     rows = []
     width = max(2, len(str(n)))
     for i, (x, label) in enumerate(zip(X, labels), start=1):
-        rows.append([f"S{i:0{width}d}", *[float(v) for v in x], *[""] * len(protocol.response_names), label])
+        rows.append([f"S{i:0{width}d}", *[float(v) for v in x], *[""] * len(protocol.runs_columns), label])
     notes = []
     if region is not None:
         notes.append("every starting run lies inside the protocol's starting region")

@@ -43,6 +43,7 @@ __all__ = [
     "Batch",
     "ModelSettings",
     "StartRegion",
+    "Escalation",
     "load_protocol",
     "parse_protocol",
     "RANKING_RULES",
@@ -187,9 +188,37 @@ class Objective(_Strict):
 
 
 class Limit(_Strict):
-    """A limited response: it must stay within [lower, upper] with ``probability``."""
+    """A limited response: it must stay within [lower, upper] with ``probability``.
+
+    ``kind = "binomial"``: the response is a rate of events among subjects
+    (for example dose-limiting toxicities in a cohort). The runs file then
+    gives two columns, ``events`` and ``subjects`` (their names), instead of
+    the rate; the limit is on the true rate (``judged_on = "true-value"``).
+    ``monotone``: the rate never falls as any dose rises (see
+    :meth:`Protocol.monotone_for`; on by default for binomial upper limits in
+    a dose study).
+    """
 
     name: str
+    kind: Literal["continuous", "binomial"] = "continuous"
+    events: str | None = Field(default=None, description="binomial: runs-file column with the number of events")
+    subjects: str | None = Field(default=None, description="binomial: runs-file column with the number of subjects")
+    broken_after: int | None = Field(
+        default=None, ge=1,
+        description=(
+            "monotone binomial limits: a dose counts as having broken the limit (and excludes every dose "
+            "at or above it) only once this many subjects were treated there; default 1, any cohort "
+            "(the 3+3 design judges a level on six)"
+        ),
+    )
+    monotone: bool | None = Field(
+        default=None,
+        description=(
+            "binomial upper limits: the rate never falls as the dose of any factor rises, so a "
+            "candidate is never judged safer than a run or candidate at lower or equal doses; "
+            "default on in a dose study"
+        ),
+    )
     unit: str = ""
     lower: float | None = None
     upper: float | None = None
@@ -206,9 +235,22 @@ class Limit(_Strict):
     )
     measurement_sd: MeasurementSd = None
 
+    @model_validator(mode="before")
+    @classmethod
+    def _binomial_on_true_rate(cls, data):
+        if isinstance(data, dict) and data.get("kind") == "binomial" and "judged_on" not in data:
+            data = {**data, "judged_on": "true-value"}
+        return data
+
     @model_validator(mode="after")
     def _check(self):
         _check_name(self.name, "limit name")
+        if self.kind == "binomial":
+            self._check_binomial()
+        elif (self.events is not None or self.subjects is not None or self.monotone is not None
+              or self.broken_after is not None):
+            raise ValueError(f"limit {self.name!r}: `events`, `subjects`, `monotone` and `broken_after` belong to "
+                             "kind = \"binomial\" limits")
         if self.lower is None and self.upper is None:
             raise ValueError(f"limit {self.name!r} needs `upper`, `lower` or both")
         for side in ("lower", "upper"):
@@ -222,6 +264,36 @@ class Limit(_Strict):
             )
         return self
 
+    def _check_binomial(self) -> None:
+        name = self.name
+        if self.events is None or self.subjects is None:
+            raise ValueError(f"binomial limit {name!r} needs `events` and `subjects`: the names of the "
+                             "runs-file columns with the number of events and the number of subjects")
+        _check_name(self.events, "events column")
+        _check_name(self.subjects, "subjects column")
+        if len({name, self.events, self.subjects}) < 3:
+            raise ValueError(f"binomial limit {name!r}: the limit, its events column and its subjects "
+                             "column need three different names")
+        for side in ("lower", "upper"):
+            v = getattr(self, side)
+            if v is not None and not 0 < v < 1:
+                raise ValueError(f"{side} of binomial limit {name!r} is a rate and must lie strictly "
+                                 f"between 0 and 1 (got {v:g})")
+        if self.judged_on != "true-value":
+            raise ValueError(f"binomial limit {name!r} is judged on the true rate; remove `judged_on` "
+                             "or set it to \"true-value\"")
+        if self.measurement_sd is not None:
+            raise ValueError(f"binomial limit {name!r}: `measurement_sd` does not apply (the counts "
+                             "carry their own uncertainty); remove it")
+        if self.monotone and (self.upper is None or self.lower is not None):
+            raise ValueError(f"binomial limit {name!r}: `monotone` needs an upper limit only "
+                             "(a rate that must not rise above a value)")
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The runs-file columns of this response: its name, or its events and subjects."""
+        return (self.events, self.subjects) if self.kind == "binomial" else (self.name,)
+
     @property
     def sides(self) -> str:
         if self.lower is not None and self.upper is not None:
@@ -231,10 +303,19 @@ class Limit(_Strict):
     def describe(self) -> str:
         unit = f" {self.unit}" if self.unit else ""
         if self.sides == "two-sided":
-            return f"{self.lower:g} <= {self.name} <= {self.upper:g}{unit}"
-        if self.sides == "upper":
-            return f"{self.name} <= {self.upper:g}{unit}"
-        return f"{self.name} >= {self.lower:g}{unit}"
+            text = f"{self.lower:g} <= {self.name} <= {self.upper:g}{unit}"
+        elif self.sides == "upper":
+            text = f"{self.name} <= {self.upper:g}{unit}"
+        else:
+            text = f"{self.name} >= {self.lower:g}{unit}"
+        if self.kind == "binomial":
+            text += f" (the true rate of {self.events} among {self.subjects})"
+        return text
+
+
+#: Limit fields added after protocols were first fingerprinted, with their defaults.
+_LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None, "monotone": None,
+                         "broken_after": None}
 
 
 class Forbidden(_Strict):
@@ -347,6 +428,22 @@ class ModelSettings(_Strict):
     )
 
 
+class Escalation(_Strict):
+    """Dose escalation as the trade does it (factors with discrete levels)."""
+
+    no_skipping: bool = Field(
+        default=True,
+        description=(
+            "no untried level is skipped: a candidate may lie at most one level above the highest level "
+            "of each factor given in a run that met every limit, and above it in one factor only"
+        ),
+    )
+    cohort_size: int | None = Field(
+        default=None, ge=1, le=10_000,
+        description="subjects in each proposed cohort (the batch's unit); a binomial limit's batch fantasies use it",
+    )
+
+
 class StartRegion(_Strict):
     """A region known to be safe where a campaign with no runs may start."""
 
@@ -372,6 +469,7 @@ class Protocol(_Strict):
     batch: Batch = Batch()
     model: ModelSettings = ModelSettings()
     start: StartRegion | None = None
+    escalation: Escalation | None = None
     seed: int | None = Field(default=None, ge=0, lt=2**63)
 
     @model_validator(mode="after")
@@ -383,6 +481,7 @@ class Protocol(_Strict):
                 raise ValueError(_twice(f"factor name {n!r} is used twice", n, seen[name_key(n)]))
             seen[name_key(n)] = n
         responses = [self.objective.name] + [lim.name for lim in self.limits]
+        responses += [c for lim in self.limits if lim.kind == "binomial" for c in lim.columns]
         for r in responses:
             if name_key(r) in seen:
                 raise ValueError(_twice(f"name {r!r} is used for a factor and a response (or twice)",
@@ -395,6 +494,9 @@ class Protocol(_Strict):
             raise ValueError(
                 "factors of kind 'component' need a [mixture] table with the `total` they add up to"
             )
+        if self.escalation is not None and self.escalation.no_skipping and not any(
+                f.kind == "discrete" for f in self.factors):
+            raise ValueError("escalation.no_skipping needs factors of kind \"discrete\" (dose levels)")
         if self.mixture is not None and not components:
             raise ValueError("a [mixture] table was given but no factor has kind = \"component\"")
         if components:
@@ -427,6 +529,21 @@ class Protocol(_Strict):
         return (self.objective.name,) + self.limit_names
 
     @property
+    def runs_columns(self) -> tuple[str, ...]:
+        """The response columns of a runs file: the objective, then each limit's column(s)."""
+        return (self.objective.name,) + tuple(c for lim in self.limits for c in lim.columns)
+
+    def monotone_for(self, limit: Limit) -> bool:
+        """Whether the screen holds ``limit``'s rate monotone in the doses.
+
+        As written, or by default on for a binomial upper limit in a dose study.
+        """
+        if limit.monotone is not None:
+            return bool(limit.monotone)
+        return (self.study.kind == "dose" and limit.kind == "binomial" and limit.upper is not None
+                and limit.lower is None)
+
+    @property
     def maximize(self) -> bool:
         return self.objective.direction == "maximize"
 
@@ -435,8 +552,19 @@ class Protocol(_Strict):
 
     # ----------------------------------------------------------- fingerprint
     def canonical(self) -> bytes:
-        """Canonical JSON of the validated protocol (sorted keys, no NaN)."""
+        """Canonical JSON of the validated protocol (sorted keys, no NaN).
+
+        A limit's binomial fields are left out while at their defaults, so a
+        protocol written before they existed keeps its fingerprint (and its
+        recorded decision logs replay).
+        """
         data = self.model_dump(mode="json")
+        if data.get("escalation") is None:
+            data.pop("escalation", None)
+        for lim in data["limits"]:
+            for key, default in _LIMIT_LATER_DEFAULTS.items():
+                if lim.get(key, default) == default:
+                    lim.pop(key, None)
         return json.dumps(
             data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
         ).encode("utf-8")

@@ -4,7 +4,8 @@ A unit stated in a column header is converted to the protocol's, or
 refused where that is not safe (see :mod:`planner.inputs.units`). A factor
 value outside its bounds, or off a discrete factor's levels, is kept and
 flagged; a run whose components miss the mixture total is a problem. The
-values of a column whose stated unit cannot be converted are not judged.
+values of a column whose stated unit cannot be converted are not judged. A
+binomial response's two count columns become its rate (and the counts).
 """
 
 from __future__ import annotations
@@ -15,7 +16,8 @@ from guardband.planner import settings
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.units import UnitError, conversion
 
-__all__ = ["check_unit", "to_protocol_units", "factor_value_flags", "mixture_total_problems"]
+__all__ = ["check_unit", "to_protocol_units", "factor_value_flags", "mixture_total_problems",
+           "binomial_counts", "rate_column_problem"]
 
 
 def _unconvertible(convert: dict[str, object], name: str) -> bool:
@@ -151,3 +153,57 @@ def mixture_total_problems(protocol: Protocol, X: np.ndarray, wheres: list[str],
                 f"(tolerance {mixture.tolerance:g})"
             )
     return problems
+
+
+def _count_problem(events: float, subjects: float) -> str | None:
+    """Why a pair of counts (either may be NaN: empty) cannot be used, or None."""
+    if np.isnan(events) != np.isnan(subjects):
+        return "give both counts, or leave both empty if not measured"
+    if np.isnan(events):
+        return None
+    if events != np.floor(events) or subjects != np.floor(subjects):
+        return f"counts must be whole numbers (got {events:g} of {subjects:g})"
+    if subjects < 1:
+        return f"the number of subjects must be at least 1 (got {subjects:g})"
+    if not 0 <= events <= subjects:
+        return f"the number of events must lie between 0 and the number of subjects (got {events:g} of {subjects:g})"
+    return None
+
+
+def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[str],
+                    problems: list[str]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Replace, in ``Y``, each binomial response's count columns by its rate; return the counts.
+
+    Parameters
+    ----------
+    protocol : Protocol
+    Y : dict of str to ndarray
+        By runs-file column; changed in place: the events and subjects columns
+        of a binomial limit are removed and the limit's rate added (NaN where
+        not measured or where the counts are a problem).
+    wheres : list of str
+        Each run as messages name it.
+    problems : list of str
+        Appended to, naming the row and both columns.
+    """
+    counts = {}
+    for lim in protocol.limits:
+        if lim.kind != "binomial":
+            continue
+        events, subjects = Y.pop(lim.events), Y.pop(lim.subjects)
+        for k, where in enumerate(wheres):
+            problem = _count_problem(events[k], subjects[k])
+            if problem:
+                problems.append(f"{where}, columns {lim.events}/{lim.subjects}: {problem}")
+                events[k] = subjects[k] = np.nan
+        with np.errstate(invalid="ignore", divide="ignore"):
+            Y[lim.name] = events / subjects
+        counts[lim.name] = (events, subjects)
+    return counts
+
+
+def rate_column_problem(limit, label: str) -> str:
+    """Why a column holding a binomial response's rate is refused, and what to give instead."""
+    return (f"{label}: {limit.name!r} is a binomial response and a rate alone cannot be used: give the "
+            f"number of events in column {limit.events!r} and the number of subjects in column "
+            f"{limit.subjects!r} (for example 1 and 6, not 0.1667)")

@@ -55,6 +55,8 @@ from guardband.planner.inputs.workbook import Formula as _Formula
 from guardband.planner.inputs.workbook import SheetError as _SheetError
 from guardband.planner.inputs.workbook import read_sheet
 from guardband.planner.inputs.runchecks import (
+    binomial_counts,
+    rate_column_problem,
     check_unit,
     factor_value_flags,
     mixture_total_problems,
@@ -122,6 +124,8 @@ class RunsTable:
     sha256: str
     source: str = "runs"
     factor_names: tuple[str, ...] = field(default=())
+    #: Binomial responses: (events, subjects) per run, NaN where not measured; Y holds the rate.
+    counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
     @property
     def n_runs(self) -> int:
@@ -600,13 +604,14 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
     problems: list[str] = []
     flags: list[str] = []
     columns = _check_header(grid, protocol, problems, flags)
-    numeric_cols = [(n, columns.at[n]) for n in (*protocol.factor_names, *protocol.response_names)
+    numeric_cols = [(n, columns.at[n]) for n in (*protocol.factor_names, *protocol.runs_columns)
                     if n in columns.at]
     decimal, mixed = _decimal_of(grid, numeric_cols, decimal)
     if mixed:
         problems.append(mixed)
     values = _read_rows(grid, protocol, columns, decimal, problems)
     problems += to_protocol_units(protocol, values.X, values.Y, columns.convert, values.wheres)
+    counts = binomial_counts(protocol, values.Y, values.wheres, problems)
     flags += factor_value_flags(protocol, values.X, values.wheres, columns.convert)
     problems += mixture_total_problems(protocol, values.X, values.wheres, columns.convert)
     if problems:
@@ -620,6 +625,7 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         sha256=sha256,
         source=source,
         factor_names=protocol.factor_names,
+        counts=counts,
     )
 
 
@@ -642,17 +648,20 @@ def _trimmed(grid: _Grid, source: str) -> _Grid:
 # ------------------------------------------------------------ the header
 def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str]) -> _Columns:
     """Find each known column, appending a problem for each unknown, repeated or missing one."""
-    factor_names, responses = list(protocol.factor_names), list(protocol.response_names)
+    factor_names, responses = list(protocol.factor_names), list(protocol.runs_columns)
     known_list = [RUN_ID, *factor_names, *responses, NOTES]
     known = set(known_list)
+    rates = {lim.name: lim for lim in protocol.limits if lim.kind == "binomial"}
     columns = _Columns()
     twice: set[str] = set()
     for j, cell in enumerate(grid.rows[0]):
         letter = _column_letter(j)
-        name, unit = _header_name(cell, known)
+        name, unit = _header_name(cell, known | set(rates))
         if not name:
             if any(j < len(r) and not _blank(r[j]) for r in grid.rows[1:]):
                 problems.append(f"column {letter}{grid.ref(0, j)} has values but no header")
+        elif name in rates:
+            problems.append(rate_column_problem(rates[name], f"column {letter}{grid.ref(0, j)}"))
         elif name in columns.at:
             problems.append(f"column {letter}{grid.ref(0, j)}: header {name!r} appears twice")
             twice.add(name)
@@ -666,6 +675,8 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
             columns.at[name] = j
             if unit and name in (RUN_ID, NOTES):
                 problems.append(f"column {letter} ({name}): a unit [{unit}] makes no sense here; remove it")
+            elif unit and name not in protocol.response_names and name in responses:
+                problems.append(f"column {letter} ({name}): a count takes no unit [{unit}]; remove it")
             elif unit:
                 check_unit(columns.convert, f"column {letter} ({name})", name, unit, protocol,
                            problems, flags)
@@ -694,7 +705,7 @@ def _read_rows(grid: _Grid, protocol: Protocol, columns: _Columns, decimal: str 
     """
     n = len(grid.rows) - 1
     values = _Values([], [], [], np.full((n, len(protocol.factors)), np.nan),
-                     {r: np.full(n, np.nan) for r in protocol.response_names})
+                     {r: np.full(n, np.nan) for r in protocol.runs_columns})
     seen_ids: dict[str, tuple[str, int]] = {}
     width = len(grid.rows[0])
     for k, row in enumerate(grid.rows[1:]):
@@ -713,9 +724,9 @@ def _read_rows(grid: _Grid, protocol: Protocol, columns: _Columns, decimal: str 
         values.notes.append(_text_of(_cell(row, columns.at[NOTES])) if NOTES in columns.at else "")
         values.X[k] = _row_numbers(grid, i, rid, protocol.factor_names, columns, decimal, problems,
                                    empty="the factor value is empty")
-        y = _row_numbers(grid, i, rid, protocol.response_names, columns, decimal, problems,
+        y = _row_numbers(grid, i, rid, protocol.runs_columns, columns, decimal, problems,
                          hint=" (leave it empty if not measured)")
-        for r, v in zip(protocol.response_names, y):
+        for r, v in zip(protocol.runs_columns, y):
             values.Y[r][k] = v
         if len(problems) > _MAX_PROBLEMS:
             break

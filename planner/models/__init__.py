@@ -5,11 +5,13 @@ The modules, one idea each: :mod:`.gp` (the fitted model and
 :mod:`.kernel` (Matérn 5/2 and the linear algebra), :mod:`.arrays` (input
 arrays), :mod:`.checks` (leave-one-out coverage and widening),
 :mod:`.limitmodel` (the short-length-scale guard), :mod:`.guards` (the
-single-run check and the local one-sided widening), :mod:`.parallel` (jobs
+single-run check and the local one-sided widening), :mod:`.binomial` (a GP
+on the logit of a rate, Laplace approximation), :mod:`.parallel` (jobs
 on worker processes) and :mod:`.blas` (BLAS held to one thread).
 Other packages import the names below from here.
 """
 
+from guardband.planner.models.binomial import BinomialGP, fit_binomial_gp
 from guardband.planner.models.blas import blas_limit, hold_blas_limit, limited_blas
 from guardband.planner.models.gp import GaussianProcess, LeaveOneOut, PosteriorAt, fit_gp
 from guardband.planner.models.hyperparameters import Hyperparameters, log_marginal_likelihood
@@ -19,6 +21,8 @@ from guardband.planner.models.parallel import default_workers, map_jobs
 
 __all__ = [
     "fit_gp",
+    "fit_binomial_gp",
+    "BinomialGP",
     "GaussianProcess",
     "Hyperparameters",
     "LeaveOneOut",

@@ -13,14 +13,29 @@ import numpy as np
 
 from guardband.planner.settings import COVERAGE_MIN_RUNS, COVERAGE_WARNING, Z95
 
-__all__ = ["loo_summary", "widen_from_loo", "looks_overconfident"]
+__all__ = ["loo_interval", "loo_summary", "widen_from_loo", "looks_overconfident"]
+
+
+def loo_interval(model, y=None, loo=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(lower, upper, inside) of each run's leave-one-out 95% interval, in the response's units.
+
+    A Gaussian model's interval is mean -/+ 1.96 sd of a new measurement; a
+    binomial model's is the 2.5% and 97.5% quantiles of the measured rate
+    (inside [0, 1]). ``inside``: the measured value (``y``, default the
+    model's own) lies within it; ``loo`` the model's leave-one-out, when already computed.
+    """
+    loo = model.loo() if loo is None else loo
+    y = np.asarray(model.y if y is None else y, dtype=float)
+    if hasattr(loo, "lo"):
+        return loo.lo, loo.hi, (y >= loo.lo - 1e-12) & (y <= loo.hi + 1e-12)
+    half = Z95 * np.sqrt(np.asarray(loo.variance, dtype=float))
+    return loo.mean - half, loo.mean + half, np.abs(loo.residual) <= half
 
 
 def loo_summary(model, y) -> tuple[float, float]:
-    """(coverage, rmse) of the model's leave-one-out predictions of ``y``."""
+    """(coverage, rmse) of the model's leave-one-out predictions of ``y`` (its own measured values)."""
     loo = model.loo()
-    sd = np.sqrt(loo.variance)
-    inside = np.abs(loo.residual) <= Z95 * sd
+    inside = loo_interval(model, y, loo)[2]
     return float(np.mean(inside)), float(np.sqrt(np.mean(loo.residual**2)))
 
 

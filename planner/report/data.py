@@ -14,7 +14,8 @@ from typing import Sequence
 import numpy as np
 
 from guardband.planner.errors import ProtocolError
-from guardband.planner.settings import FEASIBILITY_TOL
+from guardband.planner.models.binomial import rate_band
+from guardband.planner.settings import FEASIBILITY_TOL, Z95
 from guardband.planner.step import PlanResult
 from guardband.safety.limits import ScreenRules
 from guardband.safety.screen import forbidden_mask
@@ -46,10 +47,13 @@ class SliceData:
     mean, sd : dict of str to array of shape (n,)
         Per response; None where the response has no model. The objective
         is the latent response; a limit is a new measurement (noise
-        included), as the screen uses it.
+        included) or its true value, as the screen uses it; a binomial
+        limit is the latent logit of its rate (see :meth:`band`).
     discrete : bool
     mixture : bool
         True when the other components move in proportion to keep the total.
+    rates : frozenset of str
+        The binomial responses, shown as rates.
     """
 
     factor: int
@@ -59,6 +63,18 @@ class SliceData:
     sd: dict
     discrete: bool
     mixture: bool
+    rates: frozenset = frozenset()
+
+    def band(self, name: str):
+        """(centre, lower, upper) of the 95% interval of a response along the slice, in its own units.
+
+        A binomial response is shown as its rate: the median and the 95%
+        interval of the true rate, all inside [0, 1].
+        """
+        mean, sd = self.mean[name], self.sd[name]
+        if name in self.rates:
+            return rate_band(mean, sd, Z95)
+        return mean, mean - Z95 * sd, mean + Z95 * sd
 
 
 @dataclass(frozen=True)
@@ -259,7 +275,8 @@ def slice_at(geo: _Geometry, x0: np.ndarray, j: int, n: int) -> SliceData:
     mean, sd = {}, {}
     for name in geo.protocol.response_names:
         mean[name], sd[name] = geo.predict(name, X)
-    return SliceData(j, t, X, mean, sd, discrete, geo.moves_in_proportion([j]))
+    rates = frozenset(r.name for r in geo.rules.limits if r.binomial)
+    return SliceData(j, t, X, mean, sd, discrete, geo.moves_in_proportion([j]), rates)
 
 
 def map_data(result: PlanResult, x0, factors: Sequence[int | str], *, n: int = MAP_POINTS) -> MapData:

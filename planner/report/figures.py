@@ -18,6 +18,7 @@ from matplotlib.ticker import MaxNLocator
 
 from guardband.planner.app.textable import format_cell
 from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.models.checks import loo_interval
 from guardband.planner.settings import Z95
 from guardband.planner.simulation.loop import best_so_far
 from guardband.planner.step import PlanResult
@@ -242,19 +243,22 @@ def _slice_panel(ax, geo: _Geometry, runs: RunsTable, safe: np.ndarray, sl: Slic
     ax.scatter(_positions(geo, j, runs.X[ok & safe, j]) + shift, y[ok & safe], **measured_ok)
     ax.scatter(_positions(geo, j, runs.X[ok & ~safe, j]) + shift, y[ok & ~safe], **measured_bad)
     values = list(y[ok])
-    mean, sd = sl.mean[name], sl.sd[name]
+    mean = sl.mean[name]
     if mean is None:
         ax.text(0.5, 0.5, "no model\n(fails closed)", transform=ax.transAxes,
                 ha="center", va="center", fontsize=8.5, color="#444444")
+    else:
+        mean, lo, hi = sl.band(name)
+    if mean is None:
+        pass
     elif sl.discrete:
-        ax.errorbar(pos, mean, yerr=Z95 * sd, fmt="s", ms=4.5, color=OKABE_ITO["blue"],
+        ax.errorbar(pos, mean, yerr=np.vstack([mean - lo, hi - mean]), fmt="s", ms=4.5, color=OKABE_ITO["blue"],
                     ecolor=OKABE_ITO["blue"], elinewidth=1.2, capsize=3, zorder=3)
     else:
-        ax.fill_between(pos, mean - Z95 * sd, mean + Z95 * sd, color=OKABE_ITO["sky"],
-                        alpha=0.35, lw=0, zorder=1)
+        ax.fill_between(pos, lo, hi, color=OKABE_ITO["sky"], alpha=0.35, lw=0, zorder=1)
         ax.plot(pos, mean, color=OKABE_ITO["blue"], lw=1.6, zorder=2)
     if mean is not None:
-        values += [float(np.min(mean - Z95 * sd)), float(np.max(mean + Z95 * sd))]
+        values += [float(np.min(lo)), float(np.max(hi))]
     values += _limit_values(geo, name)
     _limit_lines(ax, geo, name)
     ax.axvline(at, color=OKABE_ITO["black"], ls=":", lw=1.0, zorder=2)
@@ -283,6 +287,11 @@ def _slice_intro(geo: _Geometry, factors: Sequence[int]) -> str:
              "measurement, as the screen uses it). Runs made so far are drawn at their own value of "
              "the moved factor, whatever their other factors: they are projections, not points on "
              "the curve."]
+    rates = [r.name for r in geo.rules.limits if r.binomial]
+    if rates:
+        parts.append(f"A rate of events among subjects ({', '.join(rates)}) is shown as the median and 95% "
+                     "interval of its true rate (a Gaussian process on the logit of the rate), so it "
+                     "stays between 0 and 1; the runs are their measured events / subjects.")
     if geo.total is not None and any(geo.component[j] for j in factors):
         parts.append(f"A mixture component moves against the other free components, which keep their "
                      f"proportions so that the total stays {geo.total:g}: x_j = t and each other "
@@ -515,17 +524,17 @@ def loo_figure(geo: _Geometry, salt: str) -> tuple[ReportFigure | None, list[dic
     axes = axes_grid(fig, nrows, ncols, left=left, right=0.25, top=top, bottom=bottom, wgap=wgap, hgap=hgap)
     for k, (name, model) in enumerate(models):
         ax = axes.flat[k]
-        loo = model.loo()
         y = np.asarray(model.y, dtype=float)
-        half = Z95 * np.sqrt(np.asarray(loo.variance, dtype=float))
-        inside = np.abs(loo.residual) <= half
-        ax.errorbar(y[inside], loo.mean[inside], yerr=half[inside], fmt="o", ms=4.5, color=OKABE_ITO["blue"],
+        loo_lo, loo_hi, inside = loo_interval(model)
+        loo = model.loo()
+        err = np.maximum(np.vstack([loo.mean - loo_lo, loo_hi - loo.mean]), 0.0)
+        ax.errorbar(y[inside], loo.mean[inside], yerr=err[:, inside], fmt="o", ms=4.5, color=OKABE_ITO["blue"],
                     elinewidth=1.0, capsize=2.5, label="inside its 95% interval")
-        ax.errorbar(y[~inside], loo.mean[~inside], yerr=half[~inside], fmt="^", ms=6, mfc="white",
+        ax.errorbar(y[~inside], loo.mean[~inside], yerr=err[:, ~inside], fmt="^", ms=6, mfc="white",
                     mec=OKABE_ITO["vermillion"], color=OKABE_ITO["vermillion"], elinewidth=1.0, capsize=2.5,
                     label="outside its 95% interval")
-        lo = float(min(y.min(), (loo.mean - half).min()))
-        hi = float(max(y.max(), (loo.mean + half).max()))
+        lo = float(min(y.min(), loo_lo.min()))
+        hi = float(max(y.max(), loo_hi.max()))
         pad = 0.04 * (hi - lo if hi > lo else 1.0)
         ax.plot([lo - pad, hi + pad], [lo - pad, hi + pad], color=OKABE_ITO["black"], ls="--", lw=1.0,
                 label="predicted = measured")
@@ -548,7 +557,9 @@ def loo_figure(geo: _Geometry, salt: str) -> tuple[ReportFigure | None, list[dic
     caption = ("Leave-one-out check: each run predicted by the model fitted to all the other runs "
                "(closed form, same hyperparameters), with the 95% interval of a new measurement. "
                "About 95% of the points should fall inside their interval; far fewer means the "
-               "model is overconfident and its probabilities are too optimistic.")
+               "model is overconfident and its probabilities are too optimistic. For a rate of events "
+               "among subjects the interval is that of the measured rate of a cohort of the same size "
+               "(2.5% and 97.5% quantiles of its count), inside [0, 1].")
     return finish_figure(fig, "model-checks", "Model checks (leave-one-out)", caption, salt), rows
 
 

@@ -19,6 +19,7 @@ import numpy as np
 from guardband.planner.errors import ModelError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.models.binomial import BinomialHyperparameters, fit_binomial_gp
 from guardband.planner.models.checks import loo_summary, looks_overconfident, widen_from_loo
 from guardband.planner.models.gp import Hyperparameters, fit_gp
 from guardband.planner.models.limitmodel import PessimisticLimitModel
@@ -63,6 +64,8 @@ class FittedModels:
 
 def _fit_job(job: dict):
     """One model fit, as :func:`_fit` with the job's fields (module level: runs in a worker)."""
+    if "events" in job:
+        return _fit_binomial(job)
     model, summary = _fit(job["response"], job["role"], job["U"], job["y"], prior_mean=job["prior_mean"],
                           restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
                           length_scale_max=job["length_scale_max"],
@@ -119,6 +122,33 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
         local_factor=local_factor,
     )
     return model, summary
+
+
+def _fit_binomial(job: dict):
+    """A binomial limit's model: a GP on the logit of the rate (Laplace), with no Gaussian guards.
+
+    The guards of a Gaussian limit model (the short model, the leave-one-out
+    and local widening, the single-run check) answer a Gaussian model's
+    overconfidence about a response it measures with noise; a binomial
+    model's uncertainty comes from the counts themselves (six subjects
+    weigh what six subjects weigh), and its prior mean sits at the limit's
+    logit, so far from the cohorts it claims nothing.
+    """
+    response, U, prior_mean = job["response"], job["U"], job["prior_mean"]
+    n_runs = int(len(job["events"]))
+    try:
+        model = fit_binomial_gp(U, job["events"], job["subjects"], prior_mean=prior_mean,
+                                n_restarts=job["restarts"], warm_start=BinomialHyperparameters.from_dict(job["warm"]),
+                                rng=job["seed"], length_scale_max=job["length_scale_max"],
+                                ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"],
+                                cohort_size=job["cohort_size"])
+    except ModelError as exc:
+        return None, ModelSummary(response, "limit", n_runs, ModelStatus.NOT_FITTED, str(exc), prior_mean=prior_mean)
+    cov, rmse = loo_summary(model, model.y) if n_runs >= 3 else (None, None)
+    return model, ModelSummary(
+        response=response, role="limit", n_runs=n_runs, status=ModelStatus.OK, message=model.message,
+        hyperparameters=model.hyperparameters.to_dict(), log_marginal_likelihood=float(model.log_marginal_likelihood),
+        prior_mean=prior_mean, loo_coverage=cov, loo_rmse=rmse)
 
 
 def _with_signal_floor(model, U, y, prior_mean):
@@ -184,6 +214,10 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
             early[k] = ModelSummary(lim.name, "limit", n_lim, ModelStatus.TOO_FEW_RUNS, msg,
                                     prior_mean=rule.prior_mean)
             continue
+        if lim.kind == "binomial":
+            cohort = protocol.escalation.cohort_size if protocol.escalation is not None else None
+            jobs.append(_binomial_job(lim, rule, runs, U_runs, mask, warm_start, children[3 + k], k, cap, cohort))
+            continue
         jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
                          ids=[runs.run_ids[i] for i in np.flatnonzero(mask)],
                          prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
@@ -197,6 +231,18 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
         job.update(restarts=protocol.model.restarts,
                    ml_runs_per_hyperparameter=protocol.model.ml_runs_per_hyperparameter)
     return jobs, early
+
+
+def _binomial_job(lim, rule, runs: RunsTable, U_runs, mask, warm_start, child, k: int, cap: float,
+                  cohort_size: int | None) -> dict:
+    if lim.name not in runs.counts:
+        raise ModelError(f"limit {lim.name!r} is binomial but the runs give no counts for it; give the "
+                         f"columns {lim.events!r} and {lim.subjects!r}")
+    events, subjects = runs.counts[lim.name]
+    return dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
+                events=events[mask], subjects=subjects[mask], prior_mean=rule.prior_mean,
+                warm=warm_start.get(lim.name), seed=_seed_of(child), k=k, length_scale_max=cap,
+                cohort_size=cohort_size)
 
 
 def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, *, warm_start: dict,

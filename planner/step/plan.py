@@ -211,6 +211,9 @@ def plan_step(
     price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
     chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize)
     messages += more
+    esc = protocol.escalation
+    if esc is not None and esc.cohort_size is not None:
+        messages.append(f"each proposal is one cohort of {esc.cohort_size} subjects (escalation.cohort_size)")
     # all four values from the models fitted to real data (EI and PI are NaN,
     # shown empty, when there is no incumbent yet)
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)

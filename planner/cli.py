@@ -31,7 +31,7 @@ from guardband.planner import __version__
 from guardband.planner.settings import MAX_RUNS_DEFAULT
 from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text
-from guardband.planner.app.textable import render_table
+from guardband.planner.app.textable import render_table, wrap_text
 from guardband.planner.inputs.names import shown
 
 app = typer.Typer(
@@ -79,6 +79,11 @@ def _nonempty_out(value):
 def _echo(text: str = "", **kwargs) -> None:
     """Print text that may hold input text: control and hidden characters are shown escaped."""
     typer.echo(shown(str(text)), **kwargs)
+
+
+def _show(text: str = "") -> None:
+    """Print prose or a table of the table format, wrapped to fit the terminal width."""
+    _echo(wrap_text(str(text)))
 
 
 def _err(text: str = "") -> None:
@@ -140,17 +145,17 @@ def check(
                                   + [f"CAUTION: {c}" for c in data["cautions"]]), nl=False)
     else:
         p = report.protocol
-        _echo(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
-        _echo(f"fingerprint: {p.fingerprint}")
-        _echo(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
+        _show(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
+        _show(f"fingerprint: {p.fingerprint}")
+        _show(render_table(list(rows[0].keys()), [list(r.values()) for r in rows]))
         if p.limits:
-            _echo("limits: " + "; ".join(
+            _show("limits: " + "; ".join(
                 f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
-        _echo(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
+        _show(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
                    f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
         for line in data["guidance"]:
-            _echo(f"rule: {line}")
-        _echo(_cautions_block(data["cautions"]))
+            _show(f"rule: {line}")
+        _show(_cautions_block(data["cautions"]))
     for line in data["threshold_warnings"]:
         _err(f"warning: {line}")
     if report.empty:
@@ -194,10 +199,10 @@ def start(
     elif format is Format.csv:
         _echo(text, nl=False)
     else:
-        _echo(render_table(header, rows))
+        _show(render_table(header, rows))
         for n in notes:
-            _echo(f"note: {n}")
-        _echo(_cautions_block(cautions))
+            _show(f"note: {n}")
+        _show(_cautions_block(cautions))
 
 
 # -------------------------------------------------------------------- plan
@@ -225,14 +230,14 @@ def plan(
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Plan the next batch: fit the models, screen every candidate, rank, propose, log."""
-    from guardband.planner.app.workflow import cautions_of, plan_table, run_plan
+    from guardband.planner.app.plan_text import figures_table, settings_table
+    from guardband.planner.app.workflow import cautions_of, run_plan
 
     outcome = run_plan(protocol, runs, Path(out), count=count, seed=seed, pool_size=pool,
                        delimiter=delimiter.value if delimiter else None,
                        decimal=decimal.value if decimal else None, sheet=sheet, by=by, max_runs=max_runs)
     result = outcome.result
     cautions = cautions_of(result.protocol)
-    header, rows = plan_table(result, step_label=outcome.record["body"]["step_label"])
     if format is Format.json:
         body = dict(outcome.record["body"])
         body["log"] = {"file": outcome.log_path.name, "head": outcome.head, "count": outcome.count}
@@ -242,20 +247,24 @@ def plan(
     else:
         p = result.protocol
         inc = result.incumbent
-        _echo(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
-        _echo(f"mode: {result.mode}; incumbent: "
-                   + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
+        label = outcome.record["body"]["step_label"]
+        _show(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
+        _show(f"mode: {result.mode}; incumbent: "
+              + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
         counts = result.counts()
-        _echo("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
+        _show("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
         for m in result.messages:
-            _echo(f"note: {m}")
+            _show(f"note: {m}")
         if outcome.calibration is not None:
-            _echo(outcome.calibration.sentence())
-        if rows:
-            _echo(render_table(header, rows))
+            _show(outcome.calibration.sentence())
+        if result.proposals:
+            _show("proposed runs (settings; every column is in the CSV plan table):")
+            _show(settings_table(result, label))
+            _show("what the models say about them:")
+            _show(figures_table(result, label))
         _echo_attitudes(result)
-        _echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
-        _echo(_cautions_block(cautions))
+        _show(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
+        _show(_cautions_block(cautions))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
     for f in result.flags:
@@ -278,16 +287,16 @@ def _echo_attitudes(result) -> None:
                                                      guidance_lines, price_rows, price_sentence)
 
     if result.rule_picks:
-        _echo("what each ranking rule would propose first (figures for the next measured result):")
-        _echo(render_table(COMPARISON_HEADER, comparison_rows(result)))
+        _show("what each ranking rule would propose first (figures for the next measured result):")
+        _show(render_table(COMPARISON_HEADER, comparison_rows(result)))
         for line in guidance_lines(result):
-            _echo(f"rule: {line}")
+            _show(f"rule: {line}")
     if result.threshold_price:
-        _echo("the price of the threshold (best predicted objective among candidates that pass):")
-        _echo(render_table(PRICE_HEADER, price_rows(result)))
+        _show("the price of the threshold (best predicted objective among candidates that pass):")
+        _show(render_table(PRICE_HEADER, price_rows(result)))
         sentence = price_sentence(result)
         if sentence:
-            _echo(f"threshold: {sentence}")
+            _show(f"threshold: {sentence}")
 
 
 # ------------------------------------------------------------------ verify
@@ -316,7 +325,8 @@ def verify(
     if summary and verdict.ok:
         from guardband.planner.app.review import summarize_log
 
-        _echo(summarize_log(log).render(format.value), nl=False)
+        text = summarize_log(log).render(format.value)
+        _show(text.rstrip("\n")) if format is Format.table else _echo(text, nl=False)
     elif format is Format.json:
         _echo(_json(verdict.to_dict()))
     elif format is Format.csv:
@@ -327,9 +337,9 @@ def verify(
     else:
         if verdict.ok:
             files = f"; {verdict.files.checked} named files match their SHA-256" if verdict.files else ""
-            _echo(f"ok: {result.count} records, head {result.head}{files}")
+            _show(f"ok: {result.count} records, head {result.head}{files}")
         else:
-            _echo(f"FAILED: {verdict.problem}")
+            _show(f"FAILED: {verdict.problem}")
     for note in verdict.notes:
         _err(f"note: {note}")
     if not verdict.ok:
@@ -355,7 +365,7 @@ def supersede(
         _echo(_json(rec))
     else:
         op = rec["body"]["operator"]
-        _echo(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
+        _show(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
                    f"(by {op['name']}, from {op['source']}); head {rec['hash']}")
 
 
@@ -379,9 +389,9 @@ def replay(
         _echo(write_csv_text([list(d.values())], list(d.keys())), nl=False)
     else:
         if outcome.identical:
-            _echo(f"identical: record {record} replays to the same plan (sha256 {outcome.replayed_sha256})")
+            _show(f"identical: record {record} replays to the same plan (sha256 {outcome.replayed_sha256})")
         else:
-            _echo(f"DIFFERENT: record {record}: " + "; ".join(outcome.differences))
+            _show(f"DIFFERENT: record {record}: " + "; ".join(outcome.differences))
     if not outcome.identical:
         raise typer.Exit(EXIT_VERIFY)
 
@@ -494,8 +504,8 @@ def simulate(
     elif format is Format.csv:
         _echo(csv_text, nl=False)
     else:
-        _echo(result.table_text())
-        _echo(_cautions_block(result.cautions()))
+        _show(result.table_text())
+        _show(_cautions_block(result.cautions()))
     n = sum(len(v) for k, v in result.histories.items() if k not in result.same_as)
     _err(f"simulated {n} campaigns in {time.perf_counter() - began:.1f} s with {result.workers} worker(s)"
          + (f"; wrote {out}" if out is not None else ""))
@@ -511,7 +521,7 @@ def demo(
     """Run check, plan, verify and replay on the bundled tablet-blend protocol."""
     from guardband.planner.app.demo import run_demo
 
-    lines = run_demo(Path(out), echo=_echo)
+    lines = run_demo(Path(out), echo=_show)
     for line in lines:
         _err(line)
 

@@ -71,9 +71,12 @@ def wrap_text(text: str, *, width: int = TERMINAL_WIDTH, indent: str = "  ") -> 
     """Prose wrapped to ``width`` columns, continuation lines indented (each line of the text on its own)."""
     import textwrap
 
-    return "\n".join(textwrap.fill(line, width=width, subsequent_indent=indent, break_on_hyphens=False,
-                                    break_long_words=False) if len(line) > width else line
-                     for line in text.split("\n"))
+    def fill(line: str) -> str:
+        lead = line[:len(line) - len(line.lstrip())]
+        return textwrap.fill(line, width=width, subsequent_indent=lead + indent, break_on_hyphens=False,
+                             break_long_words=False)
+
+    return "\n".join(fill(line) if len(line) > width else line for line in text.split("\n"))
 
 
 def _table_lines(header, rows, *, digits: int, max_width: int) -> list[str]:

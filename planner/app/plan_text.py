@@ -11,17 +11,7 @@ from __future__ import annotations
 from guardband.planner.app.textable import render_table
 from guardband.planner.step.result import PlanResult
 
-__all__ = ["settings_table", "figures_table", "WORDS"]
-
-#: Every word of the plan's table output that needs saying (the README repeats them).
-WORDS = {
-    "origin": "where a proposal came from: pool (the random sample of the design space), local "
-              "(between a run that met every limit and a pool point) or refined (a local search "
-              "from a survivor, screened again in full)",
-    "mode": "improve (ranked by the protocol's rule against the best run that met every limit) or "
-            "feasibility-first (no run has met every limit yet: ranked by the joint figure)",
-}
-
+__all__ = ["settings_table", "figures_table"]
 
 def _run_id(step_label: str, rank: int) -> str:
     return f"{step_label}-{rank:02d}"

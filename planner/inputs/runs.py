@@ -209,6 +209,7 @@ def read_runs(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Read and check a runs file (CSV, tab-separated text or .xlsx) against a protocol.
 
@@ -222,6 +223,8 @@ def read_runs(
         Decimal mark of text cells; found from the cells if not given.
     sheet : str, optional
         Workbook sheet to read; the first sheet if not given.
+    responses_required : bool
+        False for a table of recipes (no results): response columns may be left out.
 
     Raises
     ------
@@ -234,7 +237,8 @@ def read_runs(
     except OSError as exc:
         raise RunsDataError(f"{path}: cannot read the runs file ({exc.strerror or exc})") from None
     return read_runs_bytes(raw, protocol, source=path.name, suffix=path.suffix,
-                           delimiter=delimiter, decimal=decimal, sheet=sheet)
+                           delimiter=delimiter, decimal=decimal, sheet=sheet,
+                           responses_required=responses_required)
 
 
 def read_runs_bytes(
@@ -246,6 +250,7 @@ def read_runs_bytes(
     delimiter: str | None = None,
     decimal: str | None = None,
     sheet: str | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Check a runs file given as its bytes; see :func:`read_runs`.
 
@@ -258,11 +263,12 @@ def read_runs_bytes(
     kind = _format_of(raw, suffix, source)
     if kind == "xlsx":
         grid = _read_xlsx(raw, source=source, sheet=sheet)
-        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal,
+                           responses_required=responses_required)
     if sheet is not None:
         raise RunsDataError(f"{source}: a sheet ({sheet!r}) was named, but the file is text, not a workbook")
     return parse_runs_text(_decode(raw, source), protocol, source=source, sha256=sha256,
-                           delimiter=delimiter, decimal=decimal)
+                           delimiter=delimiter, decimal=decimal, responses_required=responses_required)
 
 
 def _check_options(source: str, delimiter, decimal) -> tuple[str | None, str | None]:
@@ -326,6 +332,7 @@ def parse_runs_text(
     sha256: str | None = None,
     delimiter: str | None = None,
     decimal: str | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Check a runs table given as text; see :func:`read_runs`."""
     delimiter, decimal = _check_options(source, delimiter, decimal)
@@ -367,7 +374,8 @@ def parse_runs_text(
             f"{_delimiter_name(delimiter)}-separated text ({exc}); a quoted cell may not be closed"
         ) from None
     grid = _Grid(rows=rows, row_numbers=[skip + i + 1 for i in range(len(rows))], delimiter=delimiter)
-    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal)
+    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal,
+                       responses_required=responses_required)
 
 
 def _delimiter_name(d: str) -> str:
@@ -622,7 +630,7 @@ class _Values:
 
 
 def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
-                decimal: str | None) -> RunsTable:
+                decimal: str | None, responses_required: bool = True) -> RunsTable:
     """Check cells as read against the protocol: header, cells, units, bounds and totals.
 
     Raises
@@ -633,7 +641,8 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
     grid = _trimmed(grid, source)
     problems: list[str] = []
     flags: list[str] = []
-    columns = _check_header(grid, protocol, problems, flags)
+    columns = _check_header(grid, protocol, problems, flags,
+                            optional=() if responses_required else protocol.response_names)
     numeric_cols = [(n, columns.at[n]) for n in (*protocol.factor_names, *protocol.response_names)
                     if n in columns.at]
     decimal, mixed = _decimal_of(grid, numeric_cols, decimal)
@@ -674,8 +683,10 @@ def _trimmed(grid: _Grid, source: str) -> _Grid:
 
 
 # ------------------------------------------------------------ the header
-def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str]) -> _Columns:
-    """Find each known column, appending a problem for each unknown, repeated or missing one."""
+def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str],
+                  optional=()) -> _Columns:
+    """Find each known column, appending a problem for each unknown, repeated or missing one
+    (``optional`` columns may be missing)."""
     factor_names, responses = list(protocol.factor_names), list(protocol.response_names)
     known_list = [RUN_ID, *factor_names, *responses, NOTES]
     known = set(known_list)
@@ -704,7 +715,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
                 check_unit(columns.convert, f"column {letter} ({name})", name, unit, protocol,
                            problems, flags)
     for name in known_list:
-        if name != NOTES and name not in columns.at and name not in twice:
+        if name != NOTES and name not in optional and name not in columns.at and name not in twice:
             problems.append(f"missing column {name!r}")
     return columns
 

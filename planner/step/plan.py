@@ -25,12 +25,16 @@ The flow (see DESIGN.md):
 5. the incumbent is the best measured objective among runs that met every
    limit; with none, the step ranks by the joint figure (feasibility first)
    and says so;
-6. the batch is chosen greedily with fantasised results (:mod:`.batch`).
+6. the batch is chosen greedily with fantasised results (:mod:`.batch`),
+   after conditioning every model on the runs in progress (factors set,
+   nothing measured yet) as on earlier picks.
    Every value shown for a proposal comes from the models fitted to real
    data.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -48,7 +52,7 @@ from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
 
-__all__ = ["plan_step", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
+__all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
 #: When no pool candidate passes the screen, the local search for the
 #: highest joint figure starts from this many of the closest candidates.
@@ -127,12 +131,66 @@ def _proposals(pool: Pool, chosen, origin, values) -> list[Proposal]:
             for r, i in enumerate(chosen, start=1)]
 
 
+def _in_progress_messages(runs: RunsTable, in_progress) -> list[str]:
+    n = int(np.sum(in_progress))
+    if not n:
+        return []
+    ids = ", ".join(np.asarray(runs.run_ids, dtype=object)[in_progress][:10])
+    return [f"{n} run(s) in progress ({ids}{', ...' if n > 10 else ''}) shaped the batch: every model was "
+            "conditioned on them as on earlier picks (objective at its mean, limits towards the limit), "
+            "no proposal lies within the batch separation of one, and they do not move the incumbent"]
+
+
 def _space_of(protocol: Protocol):
     space = protocol.design_space()
     check = space.check()
     if check.empty:
         raise ProtocolError("the design space is empty; conflicting constraints: " + "; ".join(check.conflicts))
     return space
+
+
+@dataclass(frozen=True)
+class PreparedStep:
+    """What a step knows before it looks at any candidate: the models, the incumbent, the ranking."""
+
+    ctx: StepContext
+    safe: np.ndarray
+    used: np.ndarray
+    U_runs: np.ndarray
+    incumbent: dict | None
+    mode: str
+    inc_value: float | None
+    rank_kw: dict
+    scores_of: object
+    messages: list
+    warm_start: dict
+    children: list
+
+
+def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: dict | None = None) -> PreparedStep:
+    """Fit the models and find the incumbent, as a planning step does (phases 1, 2 and 5).
+
+    :func:`plan_step` and :func:`guardband.planner.step.judge.judge_points`
+    both start here, so a recipe judged with the same seed and warm start
+    meets the very models of the plan.
+    """
+    space = _space_of(protocol)
+    warm_start = dict(warm_start or {})
+    children = np.random.SeedSequence(seed).spawn(2 + len(protocol.response_names))
+    scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
+    used, U_runs = ~runs.pending, scaler.unit(runs.X)
+    models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
+                        n_free=int(scaler.free.sum()))
+    safe = safe_runs_mask(protocol, runs)
+    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
+    anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
+        U_runs[used], "measured run (none has met every limit yet)")
+    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis)
+    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
+    return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
+                        inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,
+                        scores_of=_scorer(protocol, mode, rank_kw), messages=models.warnings() + inc_messages,
+                        warm_start=warm_start, children=children)
 
 
 def plan_step(
@@ -151,7 +209,11 @@ def plan_step(
     ----------
     protocol : Protocol
     runs : RunsTable
-        Checked runs; pending runs (nothing measured) are not used as data.
+        Checked runs. A run with nothing measured yet is *in progress*: not
+        data, but the batch treats it as already chosen (every model is
+        conditioned on its fantasised results and no proposal lies within the
+        batch separation of it; :mod:`.batch`); it never becomes the
+        incumbent. A partly measured run is data for the responses present.
         The step rule measures from the runs that met every limit (or, when
         there is none yet, from the measured runs, and says so).
     seed : int
@@ -179,44 +241,31 @@ def plan_step(
     ModelError
         When the objective model cannot be fitted or has too few runs.
     """
-    space = _space_of(protocol)
     count = protocol.batch.size if count is None else int(count)
     pool_size = protocol.batch.pool if pool_size is None else int(pool_size)
-    warm_start = dict(warm_start or {})
-    children = np.random.SeedSequence(seed).spawn(2 + len(protocol.response_names))
-    scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
-    used, U_runs = ~runs.pending, scaler.unit(runs.X)
-
-    models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
-                        n_free=int(scaler.free.sum()))
-    safe = safe_runs_mask(protocol, runs)
-    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
-    messages = models.warnings() + inc_messages
-    X_pool, origin = candidate_pool(space, runs.X[safe], pool_size, np.random.default_rng(children[0]))
-
-    anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
-        U_runs[used], "measured run (none has met every limit yet)")
-    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis)
-    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
-    scores_of = _scorer(protocol, mode, rank_kw)
-    inc_value = incumbent["value"] if incumbent else None
+    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start)
+    ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
+    space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
+    X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))
     pool = _screened(ctx, X_pool, scores_of, inc_value)
-    pool, origin, more = _refine_phase(ctx, pool, origin, mode, scores_of, inc_value, rank_kw)
+    pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw)
     messages += more
 
     picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []
     price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
-    chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize)
-    messages += more
+    in_progress = runs.pending  # factors set, nothing measured yet: already chosen
+    chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
+                                U_busy=U_runs[in_progress])
+    messages += more + _in_progress_messages(runs, in_progress)
     # all four values from the models fitted to real data (EI and PI are NaN,
     # shown empty, when there is no incumbent yet)
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)
     return PlanResult(
-        protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=mode,
-        incumbent=incumbent, proposals=_proposals(pool, chosen, origin, values), pool=pool.X, origin=origin,
+        protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=st.mode,
+        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values), pool=pool.X, origin=origin,
         screen=pool.result, scores=np.asarray(pool.scores, dtype=float), models=models.summaries,
-        messages=list(pool.result.messages) + messages, warm_start=warm_start, runs_sha256=runs.sha256,
-        n_runs_used=int(used.sum()), n_pending=int(runs.pending.sum()), flags=runs.flags,
+        messages=list(pool.result.messages) + messages, warm_start=st.warm_start, runs_sha256=runs.sha256,
+        n_runs_used=int(used.sum()), n_in_progress=int(in_progress.sum()), flags=runs.flags,
         fitted={protocol.objective.name: models.objective,
                 **{lim.name: lm for lim, lm in zip(protocol.limits, models.limits)}},
         space=space, rule_picks=picks, threshold_price=price,

@@ -103,7 +103,8 @@ class PlanResult:
     warm_start: dict
     runs_sha256: str
     n_runs_used: int
-    n_pending: int
+    #: runs in progress (factors set, nothing measured): they shaped the batch
+    n_in_progress: int
     flags: tuple[str, ...] = field(default=())
     version: str = __version__
     #: What each ranking rule would propose, and what each threshold costs
@@ -194,7 +195,7 @@ class PlanResult:
             "joint_method": self.protocol.screen.joint,
             "incumbent": self.incumbent,
             "n_runs_used": self.n_runs_used,
-            "n_pending": self.n_pending,
+            "n_in_progress": self.n_in_progress,
             "n_candidates": int(self.pool.shape[0]),
             "counts": self.counts(),
             "models": [m.to_dict() for m in self.models],

@@ -19,7 +19,10 @@ The flow (see DESIGN.md):
    inside the polytope), plus a local refinement of the best candidates;
    when no candidate passes, a local search for the highest joint figure
    from the closest ones (its points are screened like any other);
-   (:mod:`.pool`, :mod:`.refine`);
+   (:mod:`.pool`, :mod:`.refine`); where factors state a ``resolution``,
+   every candidate is then rounded to it and screened again
+   (:mod:`guardband.planner.space.rounding`), so only amounts that can be
+   weighed are proposed;
 4. the safety screen on the pool (:mod:`guardband.safety.screen`, through
    :class:`.context.StepContext`);
 5. the incumbent is the best measured objective among runs that met every
@@ -48,6 +51,7 @@ from guardband.planner.step.batch import Pool, greedy_batch
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
+from guardband.planner.space.rounding import rounding_of
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
@@ -118,6 +122,26 @@ def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
                         f"from the {len(starts)} closest candidates found {int(np.sum(pool.result.survives))} "
                         "that pass")
     return pool, origin, messages
+
+
+def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
+    """Every candidate rounded to the factors' resolutions and screened again (when any is stated):
+    the batch then chooses among rounded candidates only, so one that fails once rounded is
+    replaced by the best rounded candidate that passes."""
+    rnd = rounding_of(ctx.protocol)
+    if not rnd.any:
+        return pool, origin, []
+    X = rnd.round(pool.X)
+    moved = np.any(X != pool.X, axis=1)
+    rounded = _screened(ctx, X, scores_of, inc_value)
+    before = pool.result.survives
+    lost = before & ~rounded.result.survives
+    origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)], dtype=object)
+    return rounded, origin, [
+        f"every candidate was rounded to its factors' resolution ({rnd.describe()}; a mixture's total "
+        f"restored by largest remainders) and screened again: {int(moved.sum())} moved; "
+        f"{int(lost.sum())} of the {int(before.sum())} that passed before rounding fail after it and "
+        "cannot be proposed"]
 
 
 def _proposals(pool: Pool, chosen, origin, values) -> list[Proposal]:
@@ -249,6 +273,8 @@ def plan_step(
     X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))
     pool = _screened(ctx, X_pool, scores_of, inc_value)
     pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw)
+    messages += more
+    pool, origin, more = _rounding_phase(ctx, pool, origin, scores_of, inc_value)
     messages += more
 
     picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []

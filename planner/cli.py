@@ -248,6 +248,8 @@ def plan(
             typer.echo(outcome.calibration.sentence())
         if rows:
             typer.echo(render_table(header, rows))
+        for prop in result.proposals:
+            typer.echo(f"why rank {prop.rank}: {prop.reason}")
         _echo_attitudes(result)
         typer.echo(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
         typer.echo(_cautions_block(cautions))

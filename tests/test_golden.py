@@ -34,7 +34,10 @@ record gained ``warm_start_from`` (the record its warm start came from):
 both record-body hashes changed, neither plan table did. At the same time
 the tablet exclusion table's hash was recorded anew: at the parent commit,
 under the pinned versions, it already came out as fe0ff00e144b... while its
-plan table and both dose tables matched (cause not traced).
+plan table and both dose tables matched (cause not traced). Then each
+proposal gained its values given the earlier picks and a one-line reason
+(``given_earlier``, ``reason``; "# why rank k" lines in the plan table):
+both plan tables and record bodies changed, their numbers did not.
 """
 
 from __future__ import annotations
@@ -56,14 +59,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "a80752d02476a676afb15bb760e89bf5e1fd55426fe397243ed586c8ffa54bfd",
+        "5ea35bea03df055ce6da187e4009ad969f62d09597875eaded74f51a4934ef37",
         "fe0ff00e144b823fce403d530d841024effd0e4b891f64c1c7c101d333424d9a",
-        "dd8bafe008cfc6e1023aee2ce6e3bef3ff9b7c15b9fba4ec8d47ee651ab1d938",
+        "1ea8db4d762e427419efadca43f8336fe732931bbf82ac9aee6b0dfdf2af599d",
     ),
     "dose_combination": (
-        "5d5e40064def094e2b2ffd3a629cf249b20bced94d9e651fecebf2a565f6abc1",
+        "e7a0b36baf12e32443b9c0cc18940d457c63d1be64ead176b932c9e91918b2ea",
         "7885efab293973fc10bac01f80357a87bf525063edd19a9e064ce6340ef9691f",
-        "b4d43ceb9ff7c88f432746248de2d53d348b4cc5843215a817b91fff4f5b60a5",
+        "8e4f90fecadea10e3eb3c63927092a0feb19358656cbd5f100b9f40b70c71cfa",
     ),
 }
 

@@ -376,6 +376,7 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
     extra += [f"note: {m}" for m in result.messages]
     extra.append("rank is the order of the greedy batch choice: after each pick its fantasised "
                  "results are added to the models, so a later rank may show a larger single-run value")
+    extra += [f"why rank {prop.rank}: {prop.reason}" for prop in result.proposals if prop.reason]
     plan_text = write_csv_text(rows, header, comment_lines=_header_lines(result, "plan", extra),
                                float_format=_FLOAT)
     eh, er = exclusion_table(result)

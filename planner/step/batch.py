@@ -112,19 +112,22 @@ class _Fantasies:
         return f_mu
 
     def rescreen(self, scores_of, incumbent_value):
-        """The pool screened and ranked under the fantasies."""
+        """The pool screened and ranked under the fantasies: (result, scores, mean, sd)."""
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             mu_f, sd_f = _Head(self.objective, self.n).mean_sd()
             lims_f = self.ctx.limit_predictions(None, [None if lp is None else _Head(lp, self.n)
                                                        for lp in self.limits])
         result = self.ctx.screen(self.pool.X, self.pool.U, lims_f)
-        return result, scores_of(mu_f, sd_f, result, incumbent_value)
+        return result, scores_of(mu_f, sd_f, result, incumbent_value), mu_f, sd_f
 
 
 def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_value,
-                 maximize: bool, U_busy=None) -> tuple[list[int], list[str]]:
-    """Indices of the chosen candidates, in order, and messages.
+                 maximize: bool, U_busy=None) -> tuple[list[int], list[str], list[dict]]:
+    """Indices of the chosen candidates, in order, messages, and for each pick what it was
+    chosen on: its objective mean and sd under the fantasies of the runs in progress and
+    the earlier picks, the incumbent then, its joint figure then, and how many candidates
+    were still eligible.
 
     ``scores_of(mu, sd, result, incumbent)`` ranks candidates (larger is better).
     ``U_busy`` (unit-scaled) are the runs in progress: every model is
@@ -135,8 +138,9 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
     chosen: list[int] = []
     messages: list[str] = []
     fant = None
-    cur_result, cur_scores = pool.result, pool.scores
+    cur_result, cur_scores, cur_mu, cur_sd = pool.result, pool.scores, pool.mu, pool.sd
     fantasy_inc = incumbent_value
+    given: list[dict] = []
     too_close = np.zeros(pool.X.shape[0], dtype=bool)
     if U_busy.shape[0]:
         for u in U_busy:
@@ -144,7 +148,7 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         fant = _Fantasies(ctx, pool, U_busy)
         for j in range(U_busy.shape[0]):
             fant.add(pool.U.shape[0] + j)
-        cur_result, cur_scores = fant.rescreen(scores_of, fantasy_inc)
+        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
     for k in range(count):
         ok = pool.result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
@@ -153,6 +157,9 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         idx = np.flatnonzero(ok)
         best = int(idx[np.lexsort((idx, -cur_scores[idx]))[0]])
         chosen.append(best)
+        given.append({"mean": float(cur_mu[best]), "sd": float(cur_sd[best]), "incumbent": fantasy_inc,
+                      "joint": float(cur_result.joint[best]), "eligible": int(idx.size),
+                      "earlier": k, "in_progress": int(U_busy.shape[0])})
         if k + 1 == count:
             break
         # a batch never holds two runs closer than MIN_SEPARATION
@@ -164,5 +171,5 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         # incumbent, so the next pick must improve on it
         if fantasy_inc is not None:
             fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
-        cur_result, cur_scores = fant.rescreen(scores_of, fantasy_inc)
-    return chosen, messages
+        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
+    return chosen, messages, given

@@ -52,6 +52,7 @@ from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.space.rounding import rounding_of
+from guardband.planner.step.explain import pick_explanations
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
@@ -144,14 +145,14 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
         "cannot be proposed"]
 
 
-def _proposals(pool: Pool, chosen, origin, values) -> list[Proposal]:
+def _proposals(pool: Pool, chosen, origin, values, why) -> list[Proposal]:
     res = pool.result
     return [Proposal(rank=r, x=pool.X[i].copy(), origin=str(origin[i]), mean=float(pool.mu[i]),
                      sd=float(pool.sd[i]), lo95=float(pool.mu[i] - Z95 * pool.sd[i]),
                      hi95=float(pool.mu[i] + Z95 * pool.sd[i]),
                      p={n: float(res.P[i, j]) for j, n in enumerate(res.limit_names)},
                      joint=float(res.joint[i]), values={key: _num(v[i]) for key, v in values.items()},
-                     score=float(pool.scores[i]))
+                     score=float(pool.scores[i]), given_earlier=why[r - 1][0], reason=why[r - 1][1])
             for r, i in enumerate(chosen, start=1)]
 
 
@@ -280,15 +281,16 @@ def plan_step(
     picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []
     price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
     in_progress = runs.pending  # factors set, nothing measured yet: already chosen
-    chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
-                                U_busy=U_runs[in_progress])
+    chosen, more, given = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
+                                       U_busy=U_runs[in_progress])
+    why = pick_explanations(given, st.mode, protocol.ranking.rule, rank_kw)
     messages += more + _in_progress_messages(runs, in_progress)
     # all four values from the models fitted to real data (EI and PI are NaN,
     # shown empty, when there is no incumbent yet)
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)
     return PlanResult(
         protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=st.mode,
-        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values), pool=pool.X, origin=origin,
+        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values, why), pool=pool.X, origin=origin,
         screen=pool.result, scores=np.asarray(pool.scores, dtype=float), models=models.summaries,
         messages=list(pool.result.messages) + messages, warm_start=st.warm_start, runs_sha256=runs.sha256,
         n_runs_used=int(used.sum()), n_in_progress=int(in_progress.sum()), flags=runs.flags,

@@ -82,6 +82,10 @@ class Proposal:
     joint: float
     values: dict[str, float]  # ei, pi, bound, mean
     score: float
+    #: the four values on the models conditioned on the earlier picks (and runs in
+    #: progress), which the pick was chosen on, and a one-line reason (:mod:`.explain`)
+    given_earlier: dict = field(default_factory=dict)
+    reason: str = ""
 
 
 @dataclass(frozen=True)
@@ -178,6 +182,8 @@ class PlanResult:
                     "joint": p.joint,
                     "values": dict(p.values),
                     "score": p.score,
+                    "given_earlier": dict(p.given_earlier),
+                    "reason": p.reason,
                 }
             )
         return out

@@ -132,3 +132,17 @@ def test_a_resolution_with_no_multiple_inside_the_bounds_is_refused():
     force.update(lower=6.1, upper=6.4, resolution=0.5)
     with pytest.raises(ProtocolError, match="no multiple of its resolution"):
         parse_protocol(data)
+
+
+def test_grid_neighbours_are_on_the_grid_keep_the_total_and_bounds(tablet, points):
+    rnd = rounding_of(tablet)
+    lo = np.array([f.low for f in tablet.factors])
+    hi = np.array([f.high for f in tablet.factors])
+    comp = np.array([f.kind == "component" for f in tablet.factors])
+    for x in points[:20]:
+        N = rnd.neighbours(x)
+        assert N.shape[0] > 1
+        np.testing.assert_array_equal(N[0], rnd.round(x)[0])
+        assert on_grid(N, rnd.resolution).all()
+        assert np.all(N >= lo - 1e-12) and np.all(N <= hi + 1e-12)
+        np.testing.assert_allclose(N[:, comp].sum(axis=1), 1.0, atol=1e-12)

@@ -7,7 +7,11 @@ checks this) and must still add up to the total: each is rounded down to
 the grid, then the units still missing go one at a time to the components
 with the largest remainders (largest-remainder, or Hamilton, apportionment),
 never past a bound; a surplus is taken back from the smallest remainders.
-Fixed factors are left as they are. A rounded point that leaves the design
+Fixed factors are left as they are. :meth:`Rounding.neighbours` lists the
+grid points next to a point's rounding (one factor the other way, one unit
+moved between two components), so that a refined point whose rounding
+fails the screen can be replaced by a nearby one that passes. A rounded
+point that leaves the design
 space (a rule of the protocol, say) is reported as not roundable; the caller
 screens every rounded point again.
 """
@@ -54,6 +58,29 @@ class Rounding:
         if np.any(self.mixture):
             out[:, self.mixture] = self._apportion(X[:, self.mixture])
         return out
+
+    def neighbours(self, x) -> np.ndarray:
+        """Grid points around one point: its rounding, each single factor rounded the other way,
+        and each move of one grid unit between two varying components (bounds kept)."""
+        base = self.round(x)[0]
+        out = [base]
+        res = self.resolution
+        for j in np.flatnonzero(np.isfinite(res) & ~self.mixture):
+            k = base[j] / res[j]
+            for step in (-1.0, 1.0):
+                if self.lo_units[j] <= round(k) + step <= self.hi_units[j]:
+                    y = base.copy()
+                    y[j] = (round(k) + step) * res[j]
+                    out.append(y)
+        comps = np.flatnonzero(self.mixture)
+        for a in comps:
+            for b in comps:
+                ka, kb = round(base[a] / res[a]), round(base[b] / res[b])
+                if a != b and ka + 1 <= self.hi_units[a] and kb - 1 >= self.lo_units[b]:
+                    y = base.copy()
+                    y[a], y[b] = (ka + 1) * res[a], (kb - 1) * res[b]
+                    out.append(y)
+        return np.array(out)
 
     def _apportion(self, Xm) -> np.ndarray:
         r = float(self.resolution[self.mixture][0])

@@ -134,15 +134,20 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
         return pool, origin, []
     X = rnd.round(pool.X)
     moved = np.any(X != pool.X, axis=1)
-    rounded = _screened(ctx, X, scores_of, inc_value)
     before = pool.result.survives
-    lost = before & ~rounded.result.survives
-    origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)], dtype=object)
+    # the grid points around each refined survivor's rounding are candidates too
+    refined = np.flatnonzero(before & (origin == "refined"))
+    near = [rnd.neighbours(pool.X[i])[1:] for i in refined]
+    near = np.vstack(near) if near else np.zeros((0, X.shape[1]))
+    rounded = _screened(ctx, np.vstack([X, near]), scores_of, inc_value)
+    lost = before & ~rounded.result.survives[: X.shape[0]]
+    origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)]
+                      + ["refined, rounded, grid neighbour"] * near.shape[0], dtype=object)
     return rounded, origin, [
         f"every candidate was rounded to its factors' resolution ({rnd.describe()}; a mixture's total "
         f"restored by largest remainders) and screened again: {int(moved.sum())} moved; "
         f"{int(lost.sum())} of the {int(before.sum())} that passed before rounding fail after it and "
-        "cannot be proposed"]
+        f"cannot be proposed; {near.shape[0]} grid neighbours of the refined candidates were added"]
 
 
 def _proposals(pool: Pool, chosen, origin, values, why) -> list[Proposal]:

@@ -110,3 +110,17 @@ def test_the_csv_output_carries_the_cautions(tmp_path):
     assert "CAUTIONS" in res.stdout and "qualified person" in res.stdout
     rows = [r for r in csv.reader(io.StringIO(res.stdout)) if r and not r[0].startswith("#")]
     assert rows[0][0] == "recipe" and rows[1][0] == "A"
+
+
+def test_a_recipe_that_repeats_a_run_in_progress_is_named(tmp_path):
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    x = [0.1, 0.45, 0.40, 0.03, 0.01, 0.01, 12.0]
+    lines = TABLET[1].read_text().splitlines()
+    lines.append("R99," + ",".join(map(str, x)) + ",,,,in the lab")
+    (tmp_path / "runs.csv").write_text("\n".join(lines) + "\n")
+    _recipes_csv(tmp_path / "r.csv", names, [("again", x)])
+    res = run("judge", TABLET[0], tmp_path / "runs.csv", tmp_path / "r.csv", "--out", tmp_path / "c",
+              "--seed", 1, "--format", "json")
+    assert res.exit_code == 0, res.output
+    notes = json.loads(res.stdout)["messages"]
+    assert any("recipe again" in m and "R99" in m for m in notes), notes

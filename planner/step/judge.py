@@ -19,8 +19,10 @@ from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.settings import Z95
 from guardband.planner.step.acquisition import all_values
+from guardband.planner.step.batch import MIN_SEPARATION
 from guardband.planner.step.plan import prepare_step
 from guardband.planner.step.result import Mode, _num
+from guardband.safety.screen import step_distance
 
 __all__ = ["RecipeVerdict", "JudgeResult", "judge_points"]
 
@@ -64,6 +66,20 @@ class JudgeResult:
     warm_start: dict
 
 
+def _near_in_progress(runs: RunsTable, U_runs, U, names) -> list[str]:
+    """A note for each recipe within the batch separation of a run in progress."""
+    busy = np.flatnonzero(runs.pending)
+    out = []
+    for i in range(U.shape[0]):
+        d = step_distance(U_runs[busy], U[i : i + 1]) if busy.size else np.zeros(0)
+        close = busy[d < MIN_SEPARATION]
+        if close.size:
+            ids = ", ".join(str(runs.run_ids[j]) for j in close)
+            out.append(f"recipe {names[i]} is within the batch separation of run(s) in progress ({ids}): "
+                       "it repeats a run already in the lab")
+    return out
+
+
 def judge_points(protocol: Protocol, runs: RunsTable, X, names, *, seed: int,
                  warm_start: dict | None = None) -> JudgeResult:
     """Judge the recipes ``X`` (rows, protocol units) named ``names``.
@@ -87,7 +103,7 @@ def judge_points(protocol: Protocol, runs: RunsTable, X, names, *, seed: int,
                       detail=res.detail[i] or "")
         for i in range(X.shape[0])
     ]
-    messages = list(st.messages) + list(res.messages)
+    messages = list(st.messages) + list(res.messages) + _near_in_progress(runs, st.U_runs, U, names)
     if st.mode == Mode.FEASIBILITY_FIRST:
         messages.append("no run meets every limit yet: EI and PI have no incumbent to improve on")
     return JudgeResult(verdicts, st.mode, st.incumbent, st.ctx.models.summaries, messages, st.warm_start)

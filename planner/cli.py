@@ -7,7 +7,7 @@ messages go to stderr. Exit codes (see :mod:`planner.errors`):
 0     ok
 2     usage error (unknown option, missing argument)
 3     bad protocol, or its design space is empty or a single point
-4     bad runs data, or more runs than --max-runs
+4     bad runs data, more runs than --max-runs, or a bad recipes table (judge)
 5     a decision log or a file it names failed verification, or a replay differed
 6     no candidate passed the safety screen
 7     a model could not be fitted or cannot be trusted
@@ -248,9 +248,13 @@ def plan(
         p = result.protocol
         inc = result.incumbent
         label = outcome.record["body"]["step_label"]
-        _show(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_pending} pending")
+        _show(f"{p.study.title}: {result.n_runs_used} runs used, {result.n_in_progress} in progress"
+              + (" (treated as already chosen: they shaped the batch)" if result.n_in_progress else ""))
         _show(f"mode: {result.mode}; incumbent: "
               + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
+        warm_from = outcome.record["body"].get("warm_start_from")
+        if warm_from is not None:
+            _show(f"warm start: the model search began at the hyperparameters of record {warm_from}")
         counts = result.counts()
         _show("candidates: " + ", ".join(f"{k} {v}" for k, v in counts.items() if v))
         for m in result.messages:
@@ -262,6 +266,8 @@ def plan(
             _show(settings_table(result, label))
             _show("what the models say about them:")
             _show(figures_table(result, label))
+        for prop in result.proposals:
+            _show(f"why rank {prop.rank}: {prop.reason}")
         _echo_attitudes(result)
         _show(f"decision log: {outcome.log_path} (records {outcome.count}, head {outcome.head})")
         _show(_cautions_block(cautions))
@@ -279,6 +285,50 @@ def plan(
     if not result.proposals:
         _err("Error: no candidate passed the safety screen; see the exclusion table for why")
         raise typer.Exit(EXIT_NO_SAFE)
+
+
+@app.command()
+@_guarded
+def judge(
+    protocol: Path = typer.Argument(..., help="The protocol TOML file."),
+    runs: Path = typer.Argument(..., help="The runs file (CSV, tab-separated text or .xlsx) with the runs made so far."),
+    recipes: Path = typer.Argument(..., help="Your recipes: run_id (a name) and one column per factor, "
+                                   "as in a runs file (CSV, tab-separated text or .xlsx)."),
+    out: str = typer.Option(..., "--out", "-o", callback=_nonempty_out,
+                            help="Campaign folder: the verdict table and the decision log."),
+    seed: Optional[int] = typer.Option(None, "--seed", min=0, max=2**63 - 1,
+                                       help="Random seed of the model fits (default: the protocol's; else drawn and recorded)."),
+    delimiter: Optional[Delimiter] = typer.Option(None, "--delimiter", help="Field separator of text files."),
+    decimal: Optional[Decimal] = typer.Option(None, "--decimal", help="Decimal mark of the numbers."),
+    sheet: Optional[str] = typer.Option(None, "--sheet", help="Sheet of an .xlsx runs file (default: the first)."),
+    recipes_sheet: Optional[str] = typer.Option(None, "--recipes-sheet", help="Sheet of an .xlsx recipes file."),
+    by: Optional[str] = typer.Option(None, "--by", help=BY_HELP),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Judge your own recipes as the plan judges its candidates, and log the judgement."""
+    from guardband.planner.app.judge import judge_table, run_judge
+    from guardband.planner.app.workflow import cautions_of
+
+    outcome = run_judge(protocol, runs, recipes, Path(out), seed=seed,
+                        delimiter=delimiter.value if delimiter else None,
+                        decimal=decimal.value if decimal else None, sheet=sheet, recipes_sheet=recipes_sheet, by=by)
+    if format is Format.json:
+        _echo(_json(dict(outcome.record["body"])))
+    elif format is Format.csv:
+        _echo(outcome.files["judge"].read_text(encoding="utf-8"), nl=False)
+    else:
+        res, p = outcome.result, outcome.protocol
+        inc = res.incumbent
+        _show(f"{p.study.title}: {len(res.verdicts)} recipe(s) judged; mode: {res.mode}; incumbent: "
+                   + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
+        for m in res.messages:
+            _show(f"note: {m}")
+        _show(render_table(*judge_table(p, res)))
+        _show(f"decision log: {outcome.log_path} (record {outcome.record['index']}, kind judge)")
+        _show(_cautions_block(cautions_of(p)))
+    if outcome.seed_drawn:
+        _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
+    _err(f"wrote {outcome.files['judge']}")
 
 
 def _echo_attitudes(result) -> None:

@@ -109,3 +109,34 @@ def test_a_given_seed_is_used_and_not_reported_as_drawn(tmp_path):
         assert "drawn" not in res.stderr
         body = ledger.read_records(out / "decisions.jsonl")[0]["body"]
         assert body["seed"] == expected and body["seed_drawn"] is False
+
+
+def _plan(out: Path, runs: Path = TABLET_RUNS, seed: int = 8):
+    res = runner.invoke(app, ["plan", str(TABLET), str(runs), "--out", str(out), "--seed", str(seed),
+                              "--pool", "200", "--count", "2", "--format", "json"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    return json.loads(res.stdout)
+
+
+def test_replanning_into_the_same_folder_is_identical(tmp_path):
+    out = tmp_path / "campaign"
+    first, again = _plan(out), _plan(out)
+    same = ("proposals", "models", "step_label", "plan_table", "exclusion_table", "warm_start",
+            "warm_start_from", "incumbent", "counts")
+    assert {k: first[k] for k in same} == {k: again[k] for k in same}
+    assert first["warm_start_from"] is None
+    assert [r["kind"] for r in ledger.read_records(out / "decisions.jsonl")] == ["plan", "plan"]
+
+
+def test_a_plan_on_new_runs_says_which_record_it_warm_started_from(tmp_path):
+    out = tmp_path / "campaign"
+    _plan(out)
+    # the same runs with one more (invented) measured run: a new step
+    lines = TABLET_RUNS.read_text().splitlines()
+    extra = "R99,0.1,0.44,0.40,0.03,0.02,0.01,12,70.0,0.12,0.7,invented"
+    (tmp_path / "runs.csv").write_text("\n".join([*lines, extra]) + "\n")
+    new = _plan(out, tmp_path / "runs.csv")
+    assert new["warm_start_from"] == 0 and new["warm_start"]
+    # and re-planning that step again reuses the same warm start, so the same plan
+    again = _plan(out, tmp_path / "runs.csv")
+    assert again["proposals"] == new["proposals"] and again["warm_start_from"] == 0

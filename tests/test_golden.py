@@ -34,7 +34,12 @@ example's toxicity became a binomial limit (counts per cohort, a GP on the
 logit of the rate, held monotone in the doses) with the escalation rules
 (no skipping of untried levels, cohorts of six), which changed its plan on
 purpose; the screen's counts gained two reasons (above-broken-cohort,
-skips-untried-level), which changed both record bodies.
+skips-untried-level), which changed both record bodies. Then the record
+body's ``n_pending`` became ``n_in_progress`` (runs in progress now shape
+the batch), every plan record gained ``warm_start_from``, and each proposal
+its values given the earlier picks and a one-line reason (``given_earlier``,
+``reason``; "# why rank k" lines in the plan table): both plan tables and
+record bodies changed, their numbers did not.
 """
 
 from __future__ import annotations

@@ -161,15 +161,16 @@ def test_report_lists_everything_with_cautions_first(which, request):
     for rule, n in counts.items():
         assert re.search(rf"{re.escape(rule)} {n}\b", exclusions), (rule, n)
 
-    # one slice figure per proposal, the map, the model checks and the history; each also as PNG
-    n_figures = len(body["proposals"]) + 3
+    # one slice figure per proposal, the map, the model checks and the history, and the rule
+    # comparison and the price of the threshold when the step found them; each also as PNG
+    n_figures = len(body["proposals"]) + 3 + bool(body["rule_picks"]) + bool(body["threshold_price"])
     assert html.count("<svg") == n_figures
     pngs = sorted((folder / f"figures-{label}").glob("*.png"))
     assert len(pngs) == n_figures
     for png in pngs:
         with Image.open(png) as im:
             im.verify()
-    assert sum(page.tags[s].get("svg", 0) for s in ("slices", "map", "models", "history")) == n_figures
+    assert sum(page.tags[s].get("svg", 0) for s in ("risk", "slices", "map", "models", "history")) == n_figures
 
     # model checks: the coverage shown is the one recorded by the planning step
     models = page.joined("models")

@@ -48,7 +48,7 @@ __all__ = [
 #: Sub-folder of a campaign that holds the input copies.
 INPUTS = "inputs"
 _PENDING = ".pending.tmp"
-_STEP_PREFIXES = ("plan-", "exclusions-")
+_STEP_PREFIXES = ("plan-", "exclusions-", "judge-")
 _REPORT_PREFIXES = ("report-", "figures-")
 
 
@@ -62,8 +62,8 @@ class NamedFile:
     field: str
 
 
-_FIELDS = (("plan_table", "file"), ("exclusion_table", "file"),
-           ("protocol_file", "copy"), ("runs_file", "copy"))
+_FIELDS = (("plan_table", "file"), ("exclusion_table", "file"), ("judge_table", "file"),
+           ("protocol_file", "copy"), ("runs_file", "copy"), ("recipes_file", "copy"))
 
 
 def _relative(value: Any, where: str) -> str:

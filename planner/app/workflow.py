@@ -50,6 +50,7 @@ __all__ = [
     "start_design",
     "PlanOutcome",
     "run_plan",
+    "warm_start_for",
     "plan_table",
     "exclusion_table",
     "ReplayOutcome",
@@ -271,16 +272,28 @@ class PlanOutcome:
     calibration: EarnedCalibration | None = None
 
 
-def _warm_start_from_log(log_path: Path, fingerprint: str) -> dict:
-    """Hyperparameters of the last plan on this protocol in the log."""
+def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int) -> tuple[dict, int | None]:
+    """The warm start of a step on these inputs, and the record it comes from (None: none).
+
+    A warm start changes where the hyperparameter search begins, and so can
+    move the answer in its last digits. So a step on the same protocol, runs
+    and seed as an earlier plan in the log takes that plan's own warm start
+    (and names the same source), and gives the same plan; any other step
+    starts from the hyperparameters of the last plan on this protocol.
+    """
     if not log_path.exists():
-        return {}
-    for rec in reversed(ledger.read_records(log_path)):
-        body = rec.get("body", {})
-        if rec.get("kind") == "plan" and body.get("protocol_fingerprint") == fingerprint:
-            return {m["response"]: m["hyperparameters"] for m in body.get("models", [])
-                    if m.get("hyperparameters")}
-    return {}
+        return {}, None
+    plans = [rec for rec in ledger.read_records(log_path)
+             if rec.get("kind") == "plan" and rec.get("body", {}).get("protocol_fingerprint") == fingerprint]
+    for rec in reversed(plans):
+        body = rec["body"]
+        if body.get("runs_sha256") == runs_sha256 and body.get("seed") == seed:
+            return dict(body.get("warm_start") or {}), body.get("warm_start_from")
+    if not plans:
+        return {}, None
+    last = plans[-1]
+    return ({m["response"]: m["hyperparameters"] for m in last["body"].get("models", [])
+             if m.get("hyperparameters")}, int(last["index"]))
 
 
 def run_plan(
@@ -335,13 +348,14 @@ def run_plan(
     log_path = out_dir / LOG_NAME
     if log_path.exists():
         ledger.verify_or_raise(log_path)
-    warm = _warm_start_from_log(log_path, protocol.fingerprint)
+    warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
     calibration = campaign_calibration(log_path, protocol, runs)
     with blas_limit():
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                        seed, seed_drawn, count, pool_size, protocol_path, runs_path,
-                       read_options=read_options, calibration=calibration, operator=operator)
+                       read_options=read_options, calibration=calibration, operator=operator,
+                       warm_from=warm_from)
 
 
 def _read_input(path: Path, error, what: str) -> bytes:
@@ -365,6 +379,7 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
     extra += [f"note: {m}" for m in result.messages]
     extra.append("rank is the order of the greedy batch choice: after each pick its fantasised "
                  "results are added to the models, so a later rank may show a larger single-run value")
+    extra += [f"why rank {prop.rank}: {prop.reason}" for prop in result.proposals if prop.reason]
     plan_text = write_csv_text(rows, header, comment_lines=_header_lines(result, "plan", extra),
                                float_format=_FLOAT)
     eh, er = exclusion_table(result)
@@ -375,7 +390,8 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
                 count, pool_size, protocol_path, runs_path, *, read_options=None,
-                calibration: EarnedCalibration | None = None, operator: dict | None = None) -> PlanOutcome:
+                calibration: EarnedCalibration | None = None, operator: dict | None = None,
+                warm_from: int | None = None) -> PlanOutcome:
     plan_bytes, excl_bytes, step_label = render_tables(result, count)
     created = not out_dir.exists()
     try:
@@ -387,7 +403,7 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
         return _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed,
                             seed_drawn, count, pool_size, protocol_path, runs_path, plan_bytes,
                             excl_bytes, step_label, read_options=read_options,
-                            calibration=calibration, operator=operator)
+                            calibration=calibration, operator=operator, warm_from=warm_from)
     except BaseException:
         if created:
             _remove_new_campaign(out_dir, log_path)
@@ -408,7 +424,7 @@ def _remove_new_campaign(out_dir: Path, log_path: Path) -> None:
 
 def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
                  count, pool_size, protocol_path, runs_path, plan_bytes, excl_bytes, step_label, *,
-                 read_options, calibration, operator) -> PlanOutcome:
+                 read_options, calibration, operator, warm_from=None) -> PlanOutcome:
     runs_suffix = runs_path.suffix.lower() if runs_path.suffix.lower() in _RUNS_SUFFIXES else ".csv"
     files = {
         "plan": out_dir / f"plan-{_short(plan_bytes)}.csv",
@@ -424,6 +440,8 @@ def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path
         "count_requested": count,
         "pool_size_requested": pool_size,
         "seed_drawn": seed_drawn,
+        # the record whose models' hyperparameters the search started from (None: none)
+        "warm_start_from": warm_from,
         "protocol_file": {"name": protocol_path.name, "sha256": hashlib.sha256(protocol_bytes).hexdigest(),
                           "copy": files["protocol_copy"].relative_to(out_dir).as_posix()},
         "runs_file": {"name": runs_path.name, "sha256": result.runs_sha256,

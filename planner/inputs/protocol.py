@@ -91,10 +91,15 @@ class Factor(_Strict):
     upper: float | None = None
     levels: tuple[float, ...] | None = None
     unit: str = ""
+    #: The smallest step the lab can set or weigh (0.001 of a fraction, 0.5 kN);
+    #: proposals are rounded to its multiples. Not for discrete factors.
+    resolution: float | None = Field(default=None, gt=0, allow_inf_nan=False)
 
     @model_validator(mode="after")
     def _check(self):
         _check_name(self.name, "factor name")
+        if self.kind == "discrete" and self.resolution is not None:
+            raise ValueError(f"discrete factor {self.name!r} takes `levels`, not `resolution`")
         if self.kind == "discrete":
             if self.levels is None or len(self.levels) == 0:
                 raise ValueError(
@@ -132,6 +137,11 @@ class Factor(_Strict):
                     f"component {self.name!r} has a negative lower bound ({self.lower:g}); "
                     "mixture fractions cannot be negative"
                 )
+            r = self.resolution
+            if r is not None and self.lower < self.upper and (
+                    math.ceil(self.lower / r - 1e-9) > math.floor(self.upper / r + 1e-9)):
+                raise ValueError(f"factor {self.name!r}: no multiple of its resolution {r:g} lies between "
+                                 f"{self.lower:g} and {self.upper:g}")
         return self
 
     @property
@@ -141,6 +151,28 @@ class Factor(_Strict):
     @property
     def high(self) -> float:
         return float(self.levels[-1]) if self.kind == "discrete" else float(self.upper)
+
+
+def _check_mixture_resolution(components, total: float) -> None:
+    """The free components state one common resolution or none, and can meet the total on its grid."""
+    free = [f for f in components if f.lower < f.upper]
+    stated = {f.resolution for f in free if f.resolution is not None}
+    if not stated:
+        return
+    if len(stated) > 1 or any(f.resolution is None for f in free):
+        raise ValueError(
+            "mixture: the components that can vary (" + ", ".join(f.name for f in free) + ") must all "
+            "state the same `resolution`, or none (the total is restored on one grid)")
+    r = stated.pop()
+    share = (total - sum(f.lower for f in components if f.lower == f.upper)) / r
+    if abs(share - round(share)) > 1e-6:
+        raise ValueError(f"mixture: what the varying components share ({share * r:g}) is not a multiple of "
+                         f"their resolution {r:g}")
+    lows = sum(math.ceil(f.lower / r - 1e-9) for f in free)
+    highs = sum(math.floor(f.upper / r + 1e-9) for f in free)
+    if not lows <= round(share) <= highs:
+        raise ValueError(f"mixture: on the grid of resolution {r:g} the varying components cannot add up "
+                         "to the total within their bounds")
 
 
 class Mixture(_Strict):
@@ -513,6 +545,7 @@ class Protocol(_Strict):
                     f"mixture: the component upper bounds add up to {high:g}, less than the total "
                     f"{total:g}; raise some bounds"
                 )
+            _check_mixture_resolution(components, total)
         return self
 
     # ----------------------------------------------------------------- names
@@ -554,7 +587,8 @@ class Protocol(_Strict):
     def canonical(self) -> bytes:
         """Canonical JSON of the validated protocol (sorted keys, no NaN).
 
-        A limit's binomial fields are left out while at their defaults, so a
+        A limit's binomial fields are left out while at their defaults, and a
+        factor without a ``resolution`` is written without the key, so a
         protocol written before they existed keeps its fingerprint (and its
         recorded decision logs replay).
         """
@@ -565,6 +599,9 @@ class Protocol(_Strict):
             for key, default in _LIMIT_LATER_DEFAULTS.items():
                 if lim.get(key, default) == default:
                     lim.pop(key, None)
+        for f in data.get("factors", []):
+            if f.get("resolution") is None:
+                f.pop("resolution", None)
         return json.dumps(
             data, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
         ).encode("utf-8")

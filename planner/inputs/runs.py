@@ -205,6 +205,7 @@ def read_runs(
     decimal: str | None = None,
     sheet: str | None = None,
     max_runs: int | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Read and check a runs file (CSV, tab-separated text or .xlsx) against a protocol.
 
@@ -220,6 +221,8 @@ def read_runs(
         Workbook sheet to read; the first sheet if not given.
     max_runs : int, optional
         Most rows taken; a larger table is refused before its cells are checked.
+    responses_required : bool
+        False for a table of recipes (no results): response columns may be left out.
 
     Raises
     ------
@@ -229,7 +232,8 @@ def read_runs(
     path = Path(path)
     raw = read_input(path, what="runs", error=RunsDataError, max_bytes=settings.MAX_RUNS_FILE_BYTES)
     return read_runs_bytes(raw, protocol, source=path.name, suffix=path.suffix,
-                           delimiter=delimiter, decimal=decimal, sheet=sheet, max_runs=max_runs)
+                           delimiter=delimiter, decimal=decimal, sheet=sheet, max_runs=max_runs,
+                           responses_required=responses_required)
 
 
 def read_runs_bytes(
@@ -242,6 +246,7 @@ def read_runs_bytes(
     decimal: str | None = None,
     sheet: str | None = None,
     max_runs: int | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Check a runs file given as its bytes; see :func:`read_runs`.
 
@@ -255,11 +260,13 @@ def read_runs_bytes(
     kind = _format_of(raw, suffix, source)
     if kind == "xlsx":
         grid = _read_xlsx(raw, source=source, sheet=sheet)
-        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
+        return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs,
+                       responses_required=responses_required)
     if sheet is not None:
         raise RunsDataError(f"{source}: a sheet ({sheet!r}) was named, but the file is text, not a workbook")
     return parse_runs_text(_decode(raw, source), protocol, source=source, sha256=sha256,
-                           delimiter=delimiter, decimal=decimal, max_runs=max_runs)
+                           delimiter=delimiter, decimal=decimal, max_runs=max_runs,
+                           responses_required=responses_required)
 
 
 def _check_options(source: str, delimiter, decimal) -> tuple[str | None, str | None]:
@@ -324,6 +331,7 @@ def parse_runs_text(
     delimiter: str | None = None,
     decimal: str | None = None,
     max_runs: int | None = None,
+    responses_required: bool = True,
 ) -> RunsTable:
     """Check a runs table given as text; see :func:`read_runs` and :func:`read_runs_bytes`."""
     delimiter, decimal = _check_options(source, delimiter, decimal)
@@ -370,7 +378,8 @@ def parse_runs_text(
             f"{_delimiter_name(delimiter)}-separated text ({exc}); a quoted cell may not be closed"
         ) from None
     grid = _Grid(rows=rows, row_numbers=[skip + i + 1 for i in range(len(rows))], delimiter=delimiter)
-    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs)
+    return _check_grid(grid, protocol, source=source, sha256=sha256, decimal=decimal, max_runs=max_runs,
+                       responses_required=responses_required)
 
 
 def _delimiter_name(d: str) -> str:
@@ -589,7 +598,8 @@ class _Values:
 
 
 def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
-                decimal: str | None, max_runs: int | None = None) -> RunsTable:
+                decimal: str | None, max_runs: int | None = None,
+                responses_required: bool = True) -> RunsTable:
     """Check cells as read against the protocol: header, cells, units, bounds and totals.
 
     Raises
@@ -603,7 +613,8 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         raise RunsDataError(too_many_runs(source, n_runs, max_runs))
     problems: list[str] = []
     flags: list[str] = []
-    columns = _check_header(grid, protocol, problems, flags)
+    columns = _check_header(grid, protocol, problems, flags,
+                            optional=() if responses_required else protocol.runs_columns)
     numeric_cols = [(n, columns.at[n]) for n in (*protocol.factor_names, *protocol.runs_columns)
                     if n in columns.at]
     decimal, mixed = _decimal_of(grid, numeric_cols, decimal)
@@ -646,8 +657,10 @@ def _trimmed(grid: _Grid, source: str) -> _Grid:
 
 
 # ------------------------------------------------------------ the header
-def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str]) -> _Columns:
-    """Find each known column, appending a problem for each unknown, repeated or missing one."""
+def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: list[str],
+                  optional=()) -> _Columns:
+    """Find each known column, appending a problem for each unknown, repeated or missing one
+    (``optional`` columns may be missing)."""
     factor_names, responses = list(protocol.factor_names), list(protocol.runs_columns)
     known_list = [RUN_ID, *factor_names, *responses, NOTES]
     known = set(known_list)
@@ -681,7 +694,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
                 check_unit(columns.convert, f"column {letter} ({name})", name, unit, protocol,
                            problems, flags)
     for name in known_list:
-        if name != NOTES and name not in columns.at and name not in twice:
+        if name != NOTES and name not in optional and name not in columns.at and name not in twice:
             problems.append(f"missing column {name!r}")
     return columns
 

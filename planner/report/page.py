@@ -184,7 +184,7 @@ def build_report(
         "incumbent": (f"{fmt(inc['value'])} (run {inc['run_id']})" if inc else
                       "none: no run so far meets every limit"),
         "n_runs_used": result.n_runs_used,
-        "n_pending": result.n_pending,
+        "n_in_progress": result.n_in_progress,
         "earned": earned[0] if earned is not None else None,
         "messages": list(result.messages),
         "flags": list(result.flags),

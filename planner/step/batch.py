@@ -10,7 +10,10 @@ Ginsbourger, Le Riche & Carraro (2010, from memory) that lies towards the
 limit. Under it a later pick next to an earlier one must be safe even if the
 earlier one comes out as badly as its promise allows, so one hopeful region
 of a limit model cannot claim several runs of a batch. Two runs of one batch are never closer than
-MIN_SEPARATION. A candidate must pass the screen under the models fitted to
+MIN_SEPARATION. Runs in progress (factors set, nothing measured yet) are
+treated as picks made before the batch: every model is conditioned on
+their fantasies first, and no pick lies within MIN_SEPARATION of one; they
+do not move the incumbent (they have no result). A candidate must pass the screen under the models fitted to
 real data *and* under the models with the fantasies, so fantasised data can
 never admit a candidate that the real data would exclude.
 """
@@ -62,18 +65,90 @@ def _pessimistic_value(rule, posterior, j: int) -> float:
     return m + z * s if rule.upper is not None else m - z * s
 
 
+class _Head:
+    """A posterior over ``n`` pool points followed by other points: shows only the pool points."""
+
+    def __init__(self, posterior, n: int):
+        self._posterior, self._n = posterior, n
+
+    @property
+    def n_points(self) -> int:
+        return self._n
+
+    def mean_sd(self, *, include_noise: bool = False):
+        mean, sd = self._posterior.mean_sd(include_noise=include_noise)
+        return mean[: self._n], sd[: self._n]
+
+    def condition(self, j: int, y_j: float) -> None:
+        self._posterior.condition(j, y_j)
+
+    def __getattr__(self, name):  # the guarded posterior's parts, cut to the pool points
+        if name == "mean_sd_parts" and hasattr(self._posterior, name):
+            def parts(*, include_noise: bool = False):
+                return tuple(a[: self._n] for a in self._posterior.mean_sd_parts(include_noise=include_noise))
+            return parts
+        raise AttributeError(name)
+
+
+class _Fantasies:
+    """Every model's posterior over the pool (and the runs in progress), conditioned on fantasies."""
+
+    def __init__(self, ctx: StepContext, pool: Pool, U_busy: np.ndarray):
+        self.ctx, self.pool, self.n = ctx, pool, pool.U.shape[0]
+        U = np.vstack([pool.U, U_busy]) if U_busy.shape[0] else pool.U
+        self.objective = ctx.models.objective.posterior_at(U)
+        self.limits = [None if lm is None else lm.posterior_at(U) for lm in ctx.models.limits]
+
+    def add(self, j: int) -> float:
+        """Fantasise results at point j: the objective at its posterior mean (returned),
+        each limit towards the limit."""
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            f_mu = float(self.objective.mean_sd()[0][j])
+            self.objective.condition(j, f_mu)
+            for rule, lp in zip(self.ctx.rules.limits, self.limits):
+                if lp is not None:
+                    lp.condition(j, _pessimistic_value(rule, lp, j))
+        return f_mu
+
+    def rescreen(self, scores_of, incumbent_value):
+        """The pool screened and ranked under the fantasies: (result, scores, mean, sd)."""
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            mu_f, sd_f = _Head(self.objective, self.n).mean_sd()
+            lims_f = self.ctx.limit_predictions(None, [None if lp is None else _Head(lp, self.n)
+                                                       for lp in self.limits])
+        result = self.ctx.screen(self.pool.X, self.pool.U, lims_f)
+        return result, scores_of(mu_f, sd_f, result, incumbent_value), mu_f, sd_f
+
+
 def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_value,
-                 maximize: bool) -> tuple[list[int], list[str]]:
-    """Indices of the chosen candidates, in order, and messages.
+                 maximize: bool, U_busy=None) -> tuple[list[int], list[str], list[dict]]:
+    """Indices of the chosen candidates, in order, messages, and for each pick what it was
+    chosen on: its objective mean and sd under the fantasies of the runs in progress and
+    the earlier picks, the incumbent then, its joint figure then, and how many candidates
+    were still eligible.
 
     ``scores_of(mu, sd, result, incumbent)`` ranks candidates (larger is better).
+    ``U_busy`` (unit-scaled) are the runs in progress: every model is
+    conditioned on them first, as on earlier picks, and no pick lies within
+    MIN_SEPARATION of one; they do not move the incumbent (no result yet).
     """
+    U_busy = np.zeros((0, pool.U.shape[1])) if U_busy is None else np.asarray(U_busy, dtype=float)
     chosen: list[int] = []
     messages: list[str] = []
-    obj_f = lim_f = None
-    cur_result, cur_scores = pool.result, pool.scores
+    fant = None
+    cur_result, cur_scores, cur_mu, cur_sd = pool.result, pool.scores, pool.mu, pool.sd
     fantasy_inc = incumbent_value
+    given: list[dict] = []
     too_close = np.zeros(pool.X.shape[0], dtype=bool)
+    if U_busy.shape[0]:
+        for u in U_busy:
+            too_close |= step_distance(pool.U, u[None, :]) < MIN_SEPARATION
+        fant = _Fantasies(ctx, pool, U_busy)
+        for j in range(U_busy.shape[0]):
+            fant.add(pool.U.shape[0] + j)
+        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
     for k in range(count):
         ok = pool.result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
@@ -82,26 +157,19 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         idx = np.flatnonzero(ok)
         best = int(idx[np.lexsort((idx, -cur_scores[idx]))[0]])
         chosen.append(best)
+        given.append({"mean": float(cur_mu[best]), "sd": float(cur_sd[best]), "incumbent": fantasy_inc,
+                      "joint": float(cur_result.joint[best]), "eligible": int(idx.size),
+                      "earlier": k, "in_progress": int(U_busy.shape[0])})
         if k + 1 == count:
             break
         # a batch never holds two runs closer than MIN_SEPARATION
         too_close |= step_distance(pool.U, pool.U[best : best + 1]) < MIN_SEPARATION
-        if obj_f is None:  # posteriors over the pool, updated by rank one per pick
-            obj_f = ctx.models.objective.posterior_at(pool.U)
-            lim_f = [None if lm is None else lm.posterior_at(pool.U) for lm in ctx.models.limits]
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            f_mu = float(obj_f.mean_sd()[0][best])
-            obj_f.condition(best, f_mu)
-            # kriging believer: the fantasised result also counts for the
-            # incumbent, so the next pick must improve on it
-            if fantasy_inc is not None:
-                fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
-            for rule, lp in zip(ctx.rules.limits, lim_f):
-                if lp is not None:
-                    lp.condition(best, _pessimistic_value(rule, lp, best))
-            mu_f, sd_f = obj_f.mean_sd()
-            lims_f = ctx.limit_predictions(None, lim_f)
-        cur_result = ctx.screen(pool.X, pool.U, lims_f)
-        cur_scores = scores_of(mu_f, sd_f, cur_result, fantasy_inc)
-    return chosen, messages
+        if fant is None:  # posteriors over the pool, updated by rank one per pick
+            fant = _Fantasies(ctx, pool, U_busy)
+        f_mu = fant.add(best)
+        # kriging believer: the fantasised result also counts for the
+        # incumbent, so the next pick must improve on it
+        if fantasy_inc is not None:
+            fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
+        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
+    return chosen, messages, given

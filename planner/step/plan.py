@@ -19,18 +19,25 @@ The flow (see DESIGN.md):
    inside the polytope), plus a local refinement of the best candidates;
    when no candidate passes, a local search for the highest joint figure
    from the closest ones (its points are screened like any other);
-   (:mod:`.pool`, :mod:`.refine`);
+   (:mod:`.pool`, :mod:`.refine`); where factors state a ``resolution``,
+   every candidate is then rounded to it and screened again
+   (:mod:`guardband.planner.space.rounding`), so only amounts that can be
+   weighed are proposed;
 4. the safety screen on the pool (:mod:`guardband.safety.screen`, through
    :class:`.context.StepContext`);
 5. the incumbent is the best measured objective among runs that met every
    limit; with none, the step ranks by the joint figure (feasibility first)
    and says so;
-6. the batch is chosen greedily with fantasised results (:mod:`.batch`).
+6. the batch is chosen greedily with fantasised results (:mod:`.batch`),
+   after conditioning every model on the runs in progress (factors set,
+   nothing measured yet) as on earlier picks.
    Every value shown for a proposal comes from the models fitted to real
    data.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -44,11 +51,13 @@ from guardband.planner.step.batch import Pool, greedy_batch
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
+from guardband.planner.space.rounding import rounding_of
+from guardband.planner.step.explain import pick_explanations
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
 
-__all__ = ["plan_step", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
+__all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
 #: When no pool candidate passes the screen, the local search for the
 #: highest joint figure starts from this many of the closest candidates.
@@ -116,15 +125,50 @@ def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
     return pool, origin, messages
 
 
-def _proposals(pool: Pool, chosen, origin, values) -> list[Proposal]:
+def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
+    """Every candidate rounded to the factors' resolutions and screened again (when any is stated):
+    the batch then chooses among rounded candidates only, so one that fails once rounded is
+    replaced by the best rounded candidate that passes."""
+    rnd = rounding_of(ctx.protocol)
+    if not rnd.any:
+        return pool, origin, []
+    X = rnd.round(pool.X)
+    moved = np.any(X != pool.X, axis=1)
+    before = pool.result.survives
+    # the grid points around each refined survivor's rounding are candidates too
+    refined = np.flatnonzero(before & (origin == "refined"))
+    near = [rnd.neighbours(pool.X[i])[1:] for i in refined]
+    near = np.vstack(near) if near else np.zeros((0, X.shape[1]))
+    rounded = _screened(ctx, np.vstack([X, near]), scores_of, inc_value)
+    lost = before & ~rounded.result.survives[: X.shape[0]]
+    origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)]
+                      + ["refined, rounded, grid neighbour"] * near.shape[0], dtype=object)
+    return rounded, origin, [
+        f"every candidate was rounded to its factors' resolution ({rnd.describe()}; a mixture's total "
+        f"restored by largest remainders) and screened again: {int(moved.sum())} moved; "
+        f"{int(lost.sum())} of the {int(before.sum())} that passed before rounding fail after it and "
+        f"cannot be proposed; {near.shape[0]} grid neighbours of the refined candidates were added"]
+
+
+def _proposals(pool: Pool, chosen, origin, values, why) -> list[Proposal]:
     res = pool.result
     return [Proposal(rank=r, x=pool.X[i].copy(), origin=str(origin[i]), mean=float(pool.mu[i]),
                      sd=float(pool.sd[i]), lo95=float(pool.mu[i] - Z95 * pool.sd[i]),
                      hi95=float(pool.mu[i] + Z95 * pool.sd[i]),
                      p={n: float(res.P[i, j]) for j, n in enumerate(res.limit_names)},
                      joint=float(res.joint[i]), values={key: _num(v[i]) for key, v in values.items()},
-                     score=float(pool.scores[i]))
+                     score=float(pool.scores[i]), given_earlier=why[r - 1][0], reason=why[r - 1][1])
             for r, i in enumerate(chosen, start=1)]
+
+
+def _in_progress_messages(runs: RunsTable, in_progress) -> list[str]:
+    n = int(np.sum(in_progress))
+    if not n:
+        return []
+    ids = ", ".join(np.asarray(runs.run_ids, dtype=object)[in_progress][:10])
+    return [f"{n} run(s) in progress ({ids}{', ...' if n > 10 else ''}) shaped the batch: every model was "
+            "conditioned on them as on earlier picks (objective at its mean, limits towards the limit), "
+            "no proposal lies within the batch separation of one, and they do not move the incumbent"]
 
 
 def _space_of(protocol: Protocol):
@@ -136,6 +180,50 @@ def _space_of(protocol: Protocol):
     if point:
         raise ProtocolError(point)
     return space
+
+
+@dataclass(frozen=True)
+class PreparedStep:
+    """What a step knows before it looks at any candidate: the models, the incumbent, the ranking."""
+
+    ctx: StepContext
+    safe: np.ndarray
+    used: np.ndarray
+    U_runs: np.ndarray
+    incumbent: dict | None
+    mode: str
+    inc_value: float | None
+    rank_kw: dict
+    scores_of: object
+    messages: list
+    warm_start: dict
+    children: list
+
+
+def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: dict | None = None) -> PreparedStep:
+    """Fit the models and find the incumbent, as a planning step does (phases 1, 2 and 5).
+
+    :func:`plan_step` and :func:`guardband.planner.step.judge.judge_points`
+    both start here, so a recipe judged with the same seed and warm start
+    meets the very models of the plan.
+    """
+    space = _space_of(protocol)
+    warm_start = dict(warm_start or {})
+    children = np.random.SeedSequence(seed).spawn(2 + len(protocol.response_names))
+    scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
+    used, U_runs = ~runs.pending, scaler.unit(runs.X)
+    models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
+                        n_free=int(scaler.free.sum()))
+    safe = safe_runs_mask(protocol, runs)
+    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
+    anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
+        U_runs[used], "measured run (none has met every limit yet)")
+    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis)
+    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
+    return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
+                        inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,
+                        scores_of=_scorer(protocol, mode, rank_kw), messages=models.warnings() + inc_messages,
+                        warm_start=warm_start, children=children)
 
 
 def plan_step(
@@ -154,7 +242,11 @@ def plan_step(
     ----------
     protocol : Protocol
     runs : RunsTable
-        Checked runs; pending runs (nothing measured) are not used as data.
+        Checked runs. A run with nothing measured yet is *in progress*: not
+        data, but the batch treats it as already chosen (every model is
+        conditioned on its fantasised results and no proposal lies within the
+        batch separation of it; :mod:`.batch`); it never becomes the
+        incumbent. A partly measured run is data for the responses present.
         The step rule measures from the runs that met every limit (or, when
         there is none yet, from the measured runs, and says so).
     seed : int
@@ -182,35 +274,25 @@ def plan_step(
     ModelError
         When the objective model cannot be fitted or has too few runs.
     """
-    space = _space_of(protocol)
     count = protocol.batch.size if count is None else int(count)
     pool_size = protocol.batch.pool if pool_size is None else int(pool_size)
-    warm_start = dict(warm_start or {})
-    children = np.random.SeedSequence(seed).spawn(2 + len(protocol.response_names))
-    scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
-    used, U_runs = ~runs.pending, scaler.unit(runs.X)
-
-    models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
-                        n_free=int(scaler.free.sum()))
-    safe = safe_runs_mask(protocol, runs)
-    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
-    messages = models.warnings() + inc_messages
-    X_pool, origin = candidate_pool(space, runs.X[safe], pool_size, np.random.default_rng(children[0]))
-
-    anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
-        U_runs[used], "measured run (none has met every limit yet)")
-    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis)
-    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
-    scores_of = _scorer(protocol, mode, rank_kw)
-    inc_value = incumbent["value"] if incumbent else None
+    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start)
+    ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
+    space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
+    X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))
     pool = _screened(ctx, X_pool, scores_of, inc_value)
-    pool, origin, more = _refine_phase(ctx, pool, origin, mode, scores_of, inc_value, rank_kw)
+    pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw)
+    messages += more
+    pool, origin, more = _rounding_phase(ctx, pool, origin, scores_of, inc_value)
     messages += more
 
     picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []
     price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
-    chosen, more = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize)
-    messages += more
+    in_progress = runs.pending  # factors set, nothing measured yet: already chosen
+    chosen, more, given = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
+                                       U_busy=U_runs[in_progress])
+    why = pick_explanations(given, st.mode, protocol.ranking.rule, rank_kw)
+    messages += more + _in_progress_messages(runs, in_progress)
     esc = protocol.escalation
     if esc is not None and esc.cohort_size is not None:
         messages.append(f"each proposal is one cohort of {esc.cohort_size} subjects (escalation.cohort_size)")
@@ -218,11 +300,11 @@ def plan_step(
     # shown empty, when there is no incumbent yet)
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)
     return PlanResult(
-        protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=mode,
-        incumbent=incumbent, proposals=_proposals(pool, chosen, origin, values), pool=pool.X, origin=origin,
+        protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=st.mode,
+        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values, why), pool=pool.X, origin=origin,
         screen=pool.result, scores=np.asarray(pool.scores, dtype=float), models=models.summaries,
-        messages=list(pool.result.messages) + messages, warm_start=warm_start, runs_sha256=runs.sha256,
-        n_runs_used=int(used.sum()), n_pending=int(runs.pending.sum()), flags=runs.flags,
+        messages=list(pool.result.messages) + messages, warm_start=st.warm_start, runs_sha256=runs.sha256,
+        n_runs_used=int(used.sum()), n_in_progress=int(in_progress.sum()), flags=runs.flags,
         fitted={protocol.objective.name: models.objective,
                 **{lim.name: lm for lim, lm in zip(protocol.limits, models.limits)}},
         space=space, rule_picks=picks, threshold_price=price,

@@ -3,7 +3,9 @@
 SLSQP (scipy) moves the free continuous factors of a candidate (discrete
 levels are kept); the design space's linear constraints are kept exactly,
 and the screen enters as constraints p_i(x) >= probability_i and
-joint(x) >= threshold, each aimed REFINE_MARGIN inside. Each refined point
+joint(x) >= threshold, each aimed REFINE_MARGIN inside. Where factors
+state a resolution, their bounds are first pulled in to the nearest
+multiples of it, so rounding never has to jump a refined point back inside. Each refined point
 is screened again in full before it can be chosen. With ``rescue`` (no
 candidate passed the screen) the search maximises the joint figure within
 the design space alone, and keeps any point that raised it.
@@ -17,6 +19,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.errors import ModelError
+from guardband.planner.space.rounding import rounding_of
 from guardband.planner.step.acquisition import log_expected_improvement, score as rule_score
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.result import Mode
@@ -87,6 +90,18 @@ def _linear_constraints(space, x0, cont, lo, span) -> list[dict]:
     return cons
 
 
+def _grid_bounds(protocol, space, cont) -> tuple[np.ndarray, np.ndarray]:
+    """The bounds of the refined factors, pulled in to the nearest multiples of a stated
+    resolution, so that rounding never has to jump a refined point back inside a bound."""
+    rnd = rounding_of(protocol)
+    lo, hi = space.lower[cont].copy(), space.upper[cont].copy()
+    res = rnd.resolution[cont]
+    has = np.isfinite(res)
+    lo[has] = rnd.lo_units[cont][has] * res[has]
+    hi[has] = rnd.hi_units[cont][has] * res[has]
+    return lo, hi
+
+
 def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, rescue: bool = False,
            rule: str | None = None) -> np.ndarray:
     """Refine the pool candidates ``top`` locally for ``rule`` (default the protocol's);
@@ -99,8 +114,8 @@ def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, resc
     cont = np.flatnonzero(free)
     if cont.size == 0 or any(lm is None for lm in ctx.models.limits):
         return np.zeros((0, X_pool.shape[1]))
-    lo = space.lower[cont]
-    span = np.where(space.upper[cont] - lo > 0, space.upper[cont] - lo, 1.0)
+    lo, hi = _grid_bounds(ctx.protocol, space, cont)
+    span = np.where(hi - lo > 0, hi - lo, 1.0)
     values_at = lambda X: _values_at(ctx, X, mode, inc_value, rank_kw, rule)
     out = []
     for i in top:

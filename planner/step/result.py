@@ -82,6 +82,10 @@ class Proposal:
     joint: float
     values: dict[str, float]  # ei, pi, bound, mean
     score: float
+    #: the four values on the models conditioned on the earlier picks (and runs in
+    #: progress), which the pick was chosen on, and a one-line reason (:mod:`.explain`)
+    given_earlier: dict = field(default_factory=dict)
+    reason: str = ""
 
 
 @dataclass(frozen=True)
@@ -103,7 +107,8 @@ class PlanResult:
     warm_start: dict
     runs_sha256: str
     n_runs_used: int
-    n_pending: int
+    #: runs in progress (factors set, nothing measured): they shaped the batch
+    n_in_progress: int
     flags: tuple[str, ...] = field(default=())
     version: str = __version__
     #: What each ranking rule would propose, and what each threshold costs
@@ -190,6 +195,8 @@ class PlanResult:
                     "joint": p.joint,
                     "values": dict(p.values),
                     "score": p.score,
+                    "given_earlier": dict(p.given_earlier),
+                    "reason": p.reason,
                 }
             )
         return out
@@ -207,7 +214,7 @@ class PlanResult:
             "joint_method": self.protocol.screen.joint,
             "incumbent": self.incumbent,
             "n_runs_used": self.n_runs_used,
-            "n_pending": self.n_pending,
+            "n_in_progress": self.n_in_progress,
             "n_candidates": int(self.pool.shape[0]),
             "counts": self.counts(),
             "models": [m.to_dict() for m in self.models],

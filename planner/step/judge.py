@@ -1,0 +1,109 @@
+"""Judge given recipes as the plan judges its own candidates.
+
+A recipe (a point in protocol units) gets what a proposal gets: the hard
+rules and the full screen (through :class:`.context.StepContext`, which
+calls :func:`guardband.safety.screen.screen_points`), the objective's
+prediction with its 95% interval, every limit's probability, the joint
+figure and the four rule values, all from the models of
+:func:`.plan.prepare_step`. With the seed and warm start of a plan, a
+proposal of that plan fed back gets the plan's own numbers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from guardband.planner.inputs.protocol import Protocol
+from guardband.planner.inputs.runs import RunsTable
+from guardband.planner.settings import Z95
+from guardband.planner.step.acquisition import all_values
+from guardband.planner.step.batch import MIN_SEPARATION
+from guardband.planner.step.plan import prepare_step
+from guardband.planner.step.result import Mode, _num
+from guardband.safety.screen import step_distance
+
+__all__ = ["RecipeVerdict", "JudgeResult", "judge_points"]
+
+
+@dataclass(frozen=True)
+class RecipeVerdict:
+    """What the models and the screen say about one recipe."""
+
+    name: str
+    x: np.ndarray
+    inside: bool
+    mean: float
+    sd: float
+    lo95: float
+    hi95: float
+    p: dict
+    joint: float
+    values: dict
+    passes: bool
+    reason: str
+    detail: str
+
+    def to_dict(self, factor_names) -> dict:
+        return {"recipe": self.name, "x": {n: float(v) for n, v in zip(factor_names, self.x)},
+                "inside_design_space": self.inside,
+                "objective": {"mean": self.mean, "sd": self.sd, "lo95": self.lo95, "hi95": self.hi95},
+                "p": {k: _num(v) for k, v in self.p.items()}, "joint": self.joint,
+                "values": {k: _num(v) for k, v in self.values.items()},
+                "passes": self.passes, "reason": self.reason, "detail": self.detail}
+
+
+@dataclass(frozen=True)
+class JudgeResult:
+    """Every recipe's verdict, with the step's mode, incumbent and model summaries."""
+
+    verdicts: list[RecipeVerdict]
+    mode: str
+    incumbent: dict | None
+    models: list
+    messages: list[str]
+    warm_start: dict
+
+
+def _near_in_progress(runs: RunsTable, U_runs, U, names) -> list[str]:
+    """A note for each recipe within the batch separation of a run in progress."""
+    busy = np.flatnonzero(runs.pending)
+    out = []
+    for i in range(U.shape[0]):
+        d = step_distance(U_runs[busy], U[i : i + 1]) if busy.size else np.zeros(0)
+        close = busy[d < MIN_SEPARATION]
+        if close.size:
+            ids = ", ".join(str(runs.run_ids[j]) for j in close)
+            out.append(f"recipe {names[i]} is within the batch separation of run(s) in progress ({ids}): "
+                       "it repeats a run already in the lab")
+    return out
+
+
+def judge_points(protocol: Protocol, runs: RunsTable, X, names, *, seed: int,
+                 warm_start: dict | None = None) -> JudgeResult:
+    """Judge the recipes ``X`` (rows, protocol units) named ``names``.
+
+    Raises what :func:`.plan.prepare_step` raises (an empty design space, an
+    objective model that cannot be fitted): a model that cannot be trusted
+    makes the judgement refuse, as it makes the plan refuse.
+    """
+    X = np.atleast_2d(np.asarray(X, dtype=float))
+    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start)
+    U, mu, sd, lims = st.ctx.predict(X)
+    res = st.ctx.screen(X, U, lims)
+    values = all_values(mu, sd, st.inc_value, **st.rank_kw)
+    hard = st.ctx.hard(X, U)
+    verdicts = [
+        RecipeVerdict(name=str(names[i]), x=X[i].copy(), inside=bool(hard.inside[i]), mean=float(mu[i]),
+                      sd=float(sd[i]), lo95=float(mu[i] - Z95 * sd[i]), hi95=float(mu[i] + Z95 * sd[i]),
+                      p={n: float(res.P[i, j]) for j, n in enumerate(res.limit_names)},
+                      joint=float(res.joint[i]), values={k: float(v[i]) for k, v in values.items()},
+                      passes=bool(res.survives[i]), reason=str(res.reason[i]) or "passes",
+                      detail=res.detail[i] or "")
+        for i in range(X.shape[0])
+    ]
+    messages = list(st.messages) + list(res.messages) + _near_in_progress(runs, st.U_runs, U, names)
+    if st.mode == Mode.FEASIBILITY_FIRST:
+        messages.append("no run meets every limit yet: EI and PI have no incumbent to improve on")
+    return JudgeResult(verdicts, st.mode, st.incumbent, st.ctx.models.summaries, messages, st.warm_start)

@@ -1,0 +1,126 @@
+"""`guardband judge`: the chemist's own recipes, judged as the plan judges its candidates."""
+
+import csv
+import io
+import json
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from guardband.planner.cli import app
+from guardband.planner.errors import EXIT_RUNS
+from guardband.safety import ledger
+
+from conftest import PROTOCOLS
+
+runner = CliRunner()
+TABLET = (PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv")
+
+
+def run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+def _recipes_csv(path, factor_names, rows):
+    with open(path, "w", newline="") as f:
+        w = csv.writer(f)
+        w.writerow(["run_id", *factor_names])
+        for name, x in rows:
+            w.writerow([name, *[repr(float(v)) for v in x]])
+
+
+@pytest.fixture(scope="module")
+def fed_back(tmp_path_factory):
+    """A plan, then its proposals (and one recipe of our own) judged in the same folder."""
+    tmp = tmp_path_factory.mktemp("judge")
+    camp = tmp / "camp"
+    res = run("plan", *TABLET, "--out", camp, "--seed", 11, "--count", 2, "--pool", 300, "--format", "json")
+    assert res.exit_code == 0, res.output
+    plan = json.loads(res.stdout)
+    names = list(plan["proposals"][0]["x"])
+    rows = [(f"P{p['rank']}", list(p["x"].values())) for p in plan["proposals"]]
+    rows.append(("far", [0.1, 0.40, 0.40, 0.04, 0.04, 0.02, 12.0]))
+    _recipes_csv(tmp / "recipes.csv", names, rows)
+    res = run("judge", *TABLET, tmp / "recipes.csv", "--out", camp, "--seed", 11, "--format", "json")
+    assert res.exit_code == 0, res.output
+    return plan, json.loads(res.stdout), camp
+
+
+def test_a_proposal_fed_back_gets_the_plans_own_figures(fed_back):
+    plan, judged, _ = fed_back
+    assert plan["proposals"]
+    for prop in plan["proposals"]:
+        v = next(v for v in judged["verdicts"] if v["recipe"] == f"P{prop['rank']}")
+        assert v["passes"] and v["reason"] == "passes" and v["inside_design_space"]
+        for key in ("mean", "sd", "lo95", "hi95"):
+            assert v["objective"][key] == pytest.approx(prop["objective"][key], rel=0, abs=1e-12)
+        for name, p in prop["p"].items():
+            assert v["p"][name] == pytest.approx(p, rel=0, abs=1e-12)
+        assert v["joint"] == pytest.approx(prop["joint"], rel=0, abs=1e-12)
+        for rule, value in prop["values"].items():
+            assert v["values"][rule] == pytest.approx(value, rel=1e-12, abs=0), rule
+
+
+def test_the_judgement_is_its_own_record_and_the_folder_verifies(fed_back):
+    _, judged, camp = fed_back
+    records = ledger.read_records(camp / "decisions.jsonl")
+    assert [r["kind"] for r in records] == ["plan", "judge"]
+    assert records[1]["body"]["verdicts"] == judged["verdicts"]
+    res = run("verify", camp / "decisions.jsonl")
+    assert res.exit_code == 0, res.output
+    assert "6 named files" in res.output  # plan, exclusions, judge table, three input copies
+
+
+def test_a_recipe_that_fails_gets_the_screens_reason(fed_back):
+    _, judged, _ = fed_back
+    far = next(v for v in judged["verdicts"] if v["recipe"] == "far")
+    assert not far["passes"]
+    # the reasons of safety/screen.py, in their order
+    from guardband.safety.screen import REASONS
+
+    assert far["reason"] in REASONS and far["detail"]
+
+
+def test_a_recipe_outside_the_bounds_says_why(tmp_path):
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    # force 40 kN lies beyond the protocol's bound
+    _recipes_csv(tmp_path / "r.csv", names, [("hot", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 40.0])])
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "json")
+    assert res.exit_code == 0, res.output
+    v = json.loads(res.stdout)["verdicts"][0]
+    assert not v["inside_design_space"] and v["reason"] == "outside-design-space"
+    assert "force" in v["detail"]
+
+
+def test_a_bad_recipes_table_is_refused_naming_file_row_column_and_nothing_is_written(tmp_path):
+    (tmp_path / "r.csv").write_text("run_id,active,mcc,lactose,croscarmellose,povidone,mg_stearate,force\n"
+                                    "A,0.1,0.48875,0.38875,0.01,0.01,0.0025,thirteen\n")
+    res = runner.invoke(app, ["judge", *map(str, TABLET), str(tmp_path / "r.csv"), "--out", str(tmp_path / "c")])
+    assert res.exit_code == EXIT_RUNS
+    assert "r.csv" in res.stderr and "row 2" in res.stderr and "force" in res.stderr
+    assert not (tmp_path / "c").exists()
+
+
+def test_the_csv_output_carries_the_cautions(tmp_path):
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    _recipes_csv(tmp_path / "r.csv", names, [("A", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 13.0])])
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "csv")
+    assert res.exit_code == 0
+    assert "CAUTIONS" in res.stdout and "qualified person" in res.stdout
+    rows = [r for r in csv.reader(io.StringIO(res.stdout)) if r and not r[0].startswith("#")]
+    assert rows[0][0] == "recipe" and rows[1][0] == "A"
+
+
+def test_a_recipe_that_repeats_a_run_in_progress_is_named(tmp_path):
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    x = [0.1, 0.45, 0.40, 0.03, 0.01, 0.01, 12.0]
+    lines = TABLET[1].read_text().splitlines()
+    lines.append("R99," + ",".join(map(str, x)) + ",,,,in the lab")
+    (tmp_path / "runs.csv").write_text("\n".join(lines) + "\n")
+    _recipes_csv(tmp_path / "r.csv", names, [("again", x)])
+    res = run("judge", TABLET[0], tmp_path / "runs.csv", tmp_path / "r.csv", "--out", tmp_path / "c",
+              "--seed", 1, "--format", "json")
+    assert res.exit_code == 0, res.output
+    notes = json.loads(res.stdout)["messages"]
+    assert any("recipe again" in m and "R99" in m for m in notes), notes

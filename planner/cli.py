@@ -118,7 +118,7 @@ def check(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
-    """Check a protocol: validity, empty design space, real factor ranges, centre, fingerprint."""
+    """Check a protocol: validity, empty design space, reachable factor ranges, centre, fingerprint."""
     from guardband.planner.app.workflow import check_protocol
 
     report = check_protocol(protocol)

@@ -492,6 +492,32 @@ def simulate(
          + (f"; wrote {out}" if out is not None else ""))
 
 
+# --------------------------------------------------------------- reference
+class RefFormat(str, Enum):
+    markdown = "markdown"
+    json_schema = "json-schema"
+
+
+@app.command()
+@_guarded
+def reference(
+    format: RefFormat = typer.Option(RefFormat.markdown, "--format", "-f",
+                                     help="markdown (every setting: type, default, unit, allowed values) "
+                                          "or json-schema (for editors)."),
+    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
+                                      help="Write to this file instead of stdout."),
+) -> None:
+    """Write the protocol reference or the protocol's JSON Schema, made from the schema itself."""
+    from guardband.planner.inputs.reference import protocol_json_schema_text, protocol_reference_markdown
+
+    text = protocol_reference_markdown() if format is RefFormat.markdown else protocol_json_schema_text()
+    if out is None:
+        typer.echo(text, nl=False)
+    else:
+        atomic_write_text(out, text)
+        _err(f"wrote {out}")
+
+
 # -------------------------------------------------------------------- demo
 @app.command()
 @_guarded

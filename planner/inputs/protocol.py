@@ -24,6 +24,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from guardband.planner.errors import ProtocolError
+from guardband.planner.inputs.hints import percent_total_hint, quoted_rule, unknown_key_hint
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 
 __all__ = [
@@ -53,6 +54,11 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+def _unit(text: str) -> dict:
+    """The unit of a setting, carried into the JSON Schema and the protocol reference."""
+    return {"x-unit": text}
+
+
 def _check_name(value: str, what: str) -> str:
     if not isinstance(value, str) or not value.strip():
         raise ValueError(f"{what} must be a non-empty text")
@@ -66,11 +72,13 @@ def _check_name(value: str, what: str) -> str:
 class Study(_Strict):
     """Who wrote the protocol, and what kind of study it is."""
 
-    title: str = Field(min_length=1)
-    version: str = Field(min_length=1)
-    author: str = Field(min_length=1)
-    kind: Literal["formulation", "dose"] = "formulation"
-    description: str = ""
+    title: str = Field(min_length=1, description="the study's title, printed on every output")
+    version: str = Field(min_length=1, description="the protocol's own version, as text (e.g. \"1.0\")")
+    author: str = Field(min_length=1, description="who wrote the protocol")
+    kind: Literal["formulation", "dose"] = Field(
+        default="formulation", description="the kind of study; it chooses the cautions every output carries"
+    )
+    description: str = Field(default="", description="free text about the study")
 
 
 class Factor(_Strict):
@@ -80,12 +88,30 @@ class Factor(_Strict):
     example an active ingredient at a fixed fraction).
     """
 
-    name: str
-    kind: Literal["continuous", "component", "discrete"]
-    lower: float | None = None
-    upper: float | None = None
-    levels: tuple[float, ...] | None = None
-    unit: str = ""
+    name: str = Field(
+        description="the factor's name, as in the runs file's header and in rules (quote a name "
+        "with spaces in a rule with backquotes: `name with spaces`)"
+    )
+    kind: Literal["continuous", "component", "discrete"] = Field(
+        description="continuous: any value between lower and upper; component: a mixture component "
+        "(the components add up to [mixture] total); discrete: one of `levels`"
+    )
+    lower: float | None = Field(
+        default=None, description="lowest value (continuous and component factors)",
+        json_schema_extra=_unit("the factor's unit"),
+    )
+    upper: float | None = Field(
+        default=None, description="highest value (continuous and component factors); equal to lower "
+        "fixes the factor", json_schema_extra=_unit("the factor's unit"),
+    )
+    levels: tuple[float, ...] | None = Field(
+        default=None, description="the values a discrete factor can take (e.g. the dose strengths that "
+        "exist), in increasing order", json_schema_extra=_unit("the factor's unit"),
+    )
+    unit: str = Field(
+        default="", description="the factor's unit (e.g. \"kN\", \"mg/kg\", \"fraction\"); a runs file "
+        "may give another unit of the same kind in its header, which is converted",
+    )
 
     @model_validator(mode="after")
     def _check(self):
@@ -141,17 +167,25 @@ class Factor(_Strict):
 class Mixture(_Strict):
     """The total that the component factors add up to."""
 
-    total: float = Field(default=1.0, gt=0)
+    total: float = Field(
+        default=1.0, gt=0,
+        description="what the components add up to: 1 for fractions, 100 for percentages",
+        json_schema_extra=_unit("the components' unit"),
+    )
     tolerance: float = Field(
-        default=2e-3, gt=0, description="how far a measured run's components may miss the total"
+        default=2e-3, gt=0, description="how far a measured run's components may miss the total",
+        json_schema_extra=_unit("the components' unit"),
     )
 
 
 class Rule(_Strict):
     """A named linear rule over factor names, e.g. ``mcc >= 2 * lactose``."""
 
-    name: str = ""
-    rule: str
+    name: str = Field(default="", description="a name for the rule, used in messages")
+    rule: str = Field(
+        description="a linear rule over factor names, e.g. \"mcc >= 2 * lactose\", \"a / b <= 3\" or "
+        "\"0.02 <= x + y <= 0.04\"; quote a name with spaces in backquotes"
+    )
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -161,6 +195,7 @@ class Rule(_Strict):
 #: Known repeatability of a response's measurement (objective and limits alike).
 MeasurementSd = Annotated[float | None, Field(
     ge=0,
+    json_schema_extra=_unit("the response's unit"),
     description=(
         "known repeatability of the measurement (sd, in the response's unit), e.g. from "
         "method validation; fixes the model's noise instead of estimating it"
@@ -171,9 +206,11 @@ MeasurementSd = Annotated[float | None, Field(
 class Objective(_Strict):
     """The performance response to improve."""
 
-    name: str
-    direction: Literal["maximize", "minimize"]
-    unit: str = ""
+    name: str = Field(description="the response's name, as in the runs file's header")
+    direction: Literal["maximize", "minimize"] = Field(
+        description="whether a larger (maximize) or a smaller (minimize) value is better"
+    )
+    unit: str = Field(default="", description="the response's unit, shown in tables and figures")
     measurement_sd: MeasurementSd = None
 
     @model_validator(mode="after")
@@ -185,13 +222,27 @@ class Objective(_Strict):
 class Limit(_Strict):
     """A limited response: it must stay within [lower, upper] with ``probability``."""
 
-    name: str
-    unit: str = ""
-    lower: float | None = None
-    upper: float | None = None
-    probability: float = Field(gt=0, lt=1)
-    min_runs: int | None = Field(default=None, ge=1)
-    source: str = ""
+    name: str = Field(description="the limited response's name, as in the runs file's header")
+    unit: str = Field(default="", description="the response's unit, shown in tables and figures")
+    lower: float | None = Field(
+        default=None, description="the least value allowed (give lower, upper or both)",
+        json_schema_extra=_unit("the response's unit"),
+    )
+    upper: float | None = Field(
+        default=None, description="the largest value allowed (give lower, upper or both)",
+        json_schema_extra=_unit("the response's unit"),
+    )
+    probability: float = Field(
+        gt=0, lt=1, description="the probability with which a proposed run must meet this limit",
+        json_schema_extra=_unit("probability"),
+    )
+    min_runs: int | None = Field(
+        default=None, ge=1, description="measured runs this limit's model needs before it is fitted "
+        "(default: [screen] min_runs); until then no candidate passes this limit",
+        json_schema_extra=_unit("runs"),
+    )
+    source: str = Field(default="", description="where the limit comes from (regulation, monograph, "
+                        "quality unit), printed with it")
     judged_on: Literal["measurement", "true-value"] = Field(
         default="measurement",
         description=(
@@ -236,8 +287,11 @@ class Limit(_Strict):
 class Forbidden(_Strict):
     """A region the protocol forbids: every point meeting all its rules is excluded."""
 
-    name: str
-    rules: tuple[str, ...] = Field(min_length=1)
+    name: str = Field(description="a name for the region, used in the exclusion table")
+    rules: tuple[str, ...] = Field(
+        min_length=1, description="linear rules that together describe the region (a point meeting "
+        "every one is excluded), e.g. [\"dose_a >= 40\", \"dose_b >= 8\"]"
+    )
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -247,30 +301,42 @@ class Forbidden(_Strict):
 class Screen(_Strict):
     """Safety-screen settings."""
 
-    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach")
-    joint: Literal["bound", "independent"] = "bound"
-    min_runs: int = Field(default=5, ge=1)
+    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach",
+                             json_schema_extra=_unit("probability"))
+    joint: Literal["bound", "independent"] = Field(
+        default="bound", description="how the limits' probabilities p_i combine into the joint figure: "
+        "bound = max(0, 1 - sum(1 - p_i)), true whatever the correlation; independent = prod(p_i)"
+    )
+    min_runs: int = Field(default=5, ge=1, description="measured runs a limit's model needs before it is "
+                          "fitted (a limit's own min_runs overrides it)", json_schema_extra=_unit("runs"))
     max_step: float | None = Field(
         default=None,
         gt=0,
-        description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
+        description="largest distance from the nearest run that met every limit (not set: no such rule)",
+        json_schema_extra=_unit("unit-scaled distance (each free factor's reachable range scaled to 0..1) "
+                                "per sqrt(number of free factors)"),
     )
     span_reach: float | None = Field(
         default=0.25,
         ge=0,
         description=(
             "a candidate must lie inside the box the runs that met every limit span (free continuous "
-            "factors, unit-scaled), each side pushed out by this share of its width; none turns the "
-            "rule off (factors with discrete levels step under max_step)"
+            "factors, unit-scaled), each side pushed out by this share of its width; None turns the "
+            "rule off, from Python only (TOML has no empty value); factors with discrete levels step "
+            "under max_step"
         ),
+        json_schema_extra=_unit("share of the box's width"),
     )
     span_floor: float = Field(
         default=0.05,
         ge=0,
         le=1,
         description="the least push of each side of that box (unit-scaled), so a tight cluster can grow",
+        json_schema_extra=_unit("unit-scaled (each factor's reachable range is 0..1)"),
     )
-    forbidden: tuple[Forbidden, ...] = ()
+    forbidden: tuple[Forbidden, ...] = Field(
+        default=(), description="regions no candidate may enter ([[screen.forbidden]] tables)"
+    )
     short_model: bool = Field(
         default=True,
         description=(
@@ -304,23 +370,32 @@ class Screen(_Strict):
 class Ranking(_Strict):
     """Which ranking rule orders the survivors."""
 
-    rule: Literal["ei", "pi", "bound", "mean"] = "ei"
-    kappa: float = Field(default=2.0, ge=0)
-    xi: float = Field(default=0.0, ge=0)
+    rule: Literal["ei", "pi", "bound", "mean"] = Field(
+        default="ei", description="ei: expected improvement; pi: probability of improvement; bound: the "
+        "optimistic confidence bound (mean + kappa sd); mean: the predicted value alone"
+    )
+    kappa: float = Field(default=2.0, ge=0, description="how many predictive sds the bound rule adds "
+                         "to the mean", json_schema_extra=_unit("standard deviations"))
+    xi: float = Field(default=0.0, ge=0, description="the least gain over the best run that the pi rule "
+                      "counts as an improvement", json_schema_extra=_unit("the objective's unit"))
 
 
 class Batch(_Strict):
     """Batch and search settings."""
 
-    size: int = Field(default=4, ge=1, le=100)
-    pool: int = Field(default=4000, ge=50, le=500_000)
-    refine: int = Field(default=4, ge=0, le=50)
+    size: int = Field(default=4, ge=1, le=100, description="runs proposed per planning step (the batch "
+                      "may come out smaller; the plan says so)", json_schema_extra=_unit("runs"))
+    pool: int = Field(default=4000, ge=50, le=500_000, description="random candidates drawn from the design "
+                      "space at each step", json_schema_extra=_unit("candidates"))
+    refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
+                        "(0: none)", json_schema_extra=_unit("candidates"))
 
 
 class ModelSettings(_Strict):
     """Gaussian-process fitting settings."""
 
-    restarts: int = Field(default=4, ge=1, le=50)
+    restarts: int = Field(default=4, ge=1, le=50, description="starts of each model's hyperparameter "
+                          "search", json_schema_extra=_unit("starts"))
     ml_runs_per_hyperparameter: float = Field(
         default=12.0,
         ge=0,
@@ -330,6 +405,7 @@ class ModelSettings(_Strict):
             "measured runs per hyperparameter (number of free factors + 2); maximum likelihood "
             "from then on"
         ),
+        json_schema_extra=_unit("runs per hyperparameter"),
     )
     limit_length_scale_max: float = Field(
         default=0.4,
@@ -340,14 +416,17 @@ class ModelSettings(_Strict):
             "unit-scaled design space (the unit of max_step), so that far from the runs the "
             "model returns to the limit instead of extrapolating a flat response"
         ),
+        json_schema_extra=_unit("unit-scaled distance per sqrt(number of free factors), as max_step"),
     )
 
 
 class StartRegion(_Strict):
     """A region known to be safe where a campaign with no runs may start."""
 
-    rules: tuple[str, ...] = Field(min_length=1)
-    note: str = ""
+    rules: tuple[str, ...] = Field(
+        min_length=1, description="linear rules that describe the region, e.g. [\"dose_a <= 10\"]"
+    )
+    note: str = Field(default="", description="why the region is known to be safe, printed with it")
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -357,18 +436,23 @@ class StartRegion(_Strict):
 class Protocol(_Strict):
     """A validated study protocol."""
 
-    study: Study
-    factors: tuple[Factor, ...] = Field(min_length=1)
-    mixture: Mixture | None = None
-    constraints: tuple[Rule, ...] = ()
-    objective: Objective
-    limits: tuple[Limit, ...] = ()
-    screen: Screen
-    ranking: Ranking = Ranking()
-    batch: Batch = Batch()
-    model: ModelSettings = ModelSettings()
-    start: StartRegion | None = None
-    seed: int | None = Field(default=None, ge=0, lt=2**63)
+    study: Study = Field(description="the [study] table")
+    factors: tuple[Factor, ...] = Field(min_length=1, description="the [[factors]] tables, one per factor")
+    mixture: Mixture | None = Field(default=None, description="the [mixture] table; needed when a factor "
+                                    "is a component")
+    constraints: tuple[Rule, ...] = Field(default=(), description="the [[constraints]] tables: linear rules "
+                                          "the design space must meet")
+    objective: Objective = Field(description="the [objective] table")
+    limits: tuple[Limit, ...] = Field(default=(), description="the [[limits]] tables, one per limited response")
+    screen: Screen = Field(description="the [screen] table")
+    ranking: Ranking = Field(default=Ranking(), description="the [ranking] table")
+    batch: Batch = Field(default=Batch(), description="the [batch] table")
+    model: ModelSettings = Field(default=ModelSettings(), description="the [model] table")
+    start: StartRegion | None = Field(default=None, description="the [start] table: where a campaign "
+                                      "with no runs may start")
+    seed: int | None = Field(default=None, ge=0, lt=2**63, description="random seed of every step, a "
+                             "top-level key written before the first table (not set: `plan` draws one and records "
+                             "it, `start` uses 0)")
 
     @model_validator(mode="after")
     def _cross_checks(self):
@@ -388,7 +472,8 @@ class Protocol(_Strict):
         components = [f for f in self.factors if f.kind == "component"]
         if components and self.mixture is None:
             raise ValueError(
-                "factors of kind 'component' need a [mixture] table with the `total` they add up to"
+                "factors of kind 'component' need a [mixture] table with the `total` they add up to "
+                "(total = 1 for fractions, total = 100 for percentages)"
             )
         if self.mixture is not None and not components:
             raise ValueError("a [mixture] table was given but no factor has kind = \"component\"")
@@ -399,12 +484,12 @@ class Protocol(_Strict):
             if low > total + 1e-12:
                 raise ValueError(
                     f"mixture: the component lower bounds add up to {low:g}, more than the total "
-                    f"{total:g}; lower some bounds"
+                    f"{total:g}; lower some bounds{percent_total_hint(low, high, total)}"
                 )
             if high < total - 1e-12:
                 raise ValueError(
                     f"mixture: the component upper bounds add up to {high:g}, less than the total "
-                    f"{total:g}; raise some bounds"
+                    f"{total:g}; raise some bounds{percent_total_hint(low, high, total)}"
                 )
         return self
 
@@ -536,7 +621,8 @@ def _plain(err: dict) -> str:
     kind = err.get("type", "")
     msg = err.get("msg", "")
     if kind == "extra_forbidden":
-        return "unknown key; check its spelling (see the example protocols in protocols/)"
+        hint = unknown_key_hint(Protocol, tuple(err.get("loc", ())))
+        return "unknown key; " + (hint or "check its spelling (see docs/protocol-reference.md)")
     if kind == "missing":
         return "this field is required"
     if msg.startswith("Value error, "):
@@ -555,6 +641,22 @@ def _rule_fields(p: Protocol):
         yield f"screen.forbidden[{k}].rules", f, "parsed"
     if p.start is not None:
         yield "start.rules", p.start, "parsed"
+
+
+def _quoting_hint(holder, names) -> str:
+    """The rules of ``holder`` with the factor names that need backquotes quoted, if that reads."""
+    texts = (holder.rule,) if isinstance(holder, Rule) else holder.rules
+    suggested = [quoted_rule(t, names) or t for t in texts]
+    if suggested == list(texts):
+        return ""
+    try:
+        read = [r for t in suggested for r in parse_rule(t)]
+    except RuleSyntaxError:
+        return ""
+    if any(n not in names for r in read for n in r.names):
+        return ""
+    shown = "; ".join(f'"{t}"' for t, old in zip(suggested, texts) if t != old)
+    return f"a factor name with a space or sign goes in backquotes: write {shown}"
 
 
 def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
@@ -576,7 +678,9 @@ def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
         try:
             rules = getattr(holder, attr)
         except RuleSyntaxError as exc:
-            raise ProtocolError(f"{source}: {path}: cannot read the rule: {exc}") from None
+            hint = _quoting_hint(holder, names)
+            raise ProtocolError(f"{source}: {path}: cannot read the rule: "
+                                + (f"{exc.message}; {hint}" if hint else str(exc))) from None
         for rule in rules:
             unknown = [n for n in rule.names if n not in names]
             if unknown:

@@ -684,10 +684,11 @@ def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
         for rule in rules:
             unknown = [n for n in rule.names if n not in names]
             if unknown:
+                hint = _quoting_hint(holder, names)
                 raise ProtocolError(
                     f"{source}: {path}: rule {rule.text!r} names unknown factor(s) "
-                    f"{', '.join(repr(u) for u in unknown)}; known factors: "
-                    f"{', '.join(sorted(names))}"
+                    f"{', '.join(repr(u) for u in unknown)}; "
+                    + (hint if hint else f"known factors: {', '.join(sorted(names))}")
                 )
             for coefs, const in rule.divisors:
                 low = const + sum(

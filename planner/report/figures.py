@@ -232,6 +232,7 @@ def _slice_cards(geo: _Geometry, factors: Sequence[int], n_responses: int, n_han
             y = y_top + r * (strip_h + strip_gap)
             ax = fig.add_axes((x / W, 1 - (y + strip_h) / H, card_w / W, strip_h / H),
                               sharex=strips[0] if strips else None)
+            ax.set_facecolor("none")  # an arrow on a strip's edge stays visible over its neighbour
             strips.append(ax)
         strips[0].set_title(_factor_label(geo, j), loc="left", fontweight="bold", pad=6)
         if geo.moves_in_proportion([j]):

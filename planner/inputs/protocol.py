@@ -372,10 +372,11 @@ class Ranking(_Strict):
 
     rule: Literal["ei", "pi", "bound", "mean"] = Field(
         default="ei", description="ei: expected improvement; pi: probability of improvement; bound: the "
-        "optimistic confidence bound (mean + kappa sd); mean: the predicted value alone"
+        "optimistic confidence bound (mean + kappa sd when maximizing, mean - kappa sd when minimizing); "
+        "mean: the predicted value alone"
     )
-    kappa: float = Field(default=2.0, ge=0, description="how many predictive sds the bound rule adds "
-                         "to the mean", json_schema_extra=_unit("standard deviations"))
+    kappa: float = Field(default=2.0, ge=0, description="how many predictive sds the bound rule goes "
+                         "past the mean, towards better", json_schema_extra=_unit("standard deviations"))
     xi: float = Field(default=0.0, ge=0, description="the least gain over the best run that the pi rule "
                       "counts as an improvement", json_schema_extra=_unit("the objective's unit"))
 

@@ -228,6 +228,17 @@ def test_key_in_another_table_and_a_misspelling():
     assert "screen.treshold: unknown key; did you mean `threshold`?" in _message(data)
 
 
+def test_a_choice_in_capitals_or_cut_short_gets_the_choice_it_means():
+    data = _blend()
+    data["objective"]["direction"] = "max"
+    data["ranking"]["rule"] = "EI"
+    msg = _message(data)
+    assert 'objective.direction: Input should be \'maximize\' or \'minimize\'; did you mean "maximize"?' in msg
+    assert 'ranking.rule: Input should be \'ei\', \'pi\', \'bound\' or \'mean\'; did you mean "ei"?' in msg
+    data["objective"]["direction"], data["ranking"]["rule"] = "maximize", "ei"
+    assert parse_protocol(data).ranking.rule == "ei"
+
+
 def test_percent_bounds_get_one_hint_to_set_total_100():
     data = _blend()
     for f in data["factors"]:

@@ -15,7 +15,7 @@ import typing
 
 from pydantic import BaseModel
 
-__all__ = ["unknown_key_hint", "quoted_rule", "percent_total_hint", "PLAIN_NAME"]
+__all__ = ["unknown_key_hint", "choice_hint", "quoted_rule", "percent_total_hint", "PLAIN_NAME"]
 
 #: A name a rule can use without backquotes.
 PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
@@ -82,6 +82,23 @@ def unknown_key_hint(root: type[BaseModel], loc: tuple) -> str:
         return text
     close = difflib.get_close_matches(key, _settings(model), n=1, cutoff=0.75)
     return f"did you mean `{close[0]}`?" if close else ""
+
+
+def choice_hint(root: type[BaseModel], loc: tuple, value) -> str:
+    """For a value that is not one of a setting's choices: the choice it most likely means.
+
+    ``EI`` means ``ei`` (the choices are lower case), ``max`` means ``maximize``.
+    """
+    _, model = _table_at(root, loc[:-1])
+    field = model.model_fields.get(str(loc[-1]))
+    if field is None or not isinstance(value, str):
+        return ""
+    choices = [c for c in typing.get_args(field.annotation) if isinstance(c, str)]
+    text = value.strip().lower()
+    if text in choices:
+        return f'; did you mean "{text}"? the choices are written in lower case'
+    found = [c for c in choices if text and c.startswith(text)]
+    return f'; did you mean "{found[0]}"? write the choice in full' if len(found) == 1 else ""
 
 
 def quoted_rule(text: str, names) -> str | None:

@@ -24,7 +24,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from guardband.planner.errors import ProtocolError
-from guardband.planner.inputs.hints import percent_total_hint, quoted_rule, unknown_key_hint
+from guardband.planner.inputs.hints import choice_hint, percent_total_hint, quoted_rule, unknown_key_hint
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 
 __all__ = [
@@ -626,6 +626,8 @@ def _plain(err: dict) -> str:
         return "unknown key; " + (hint or "check its spelling (see docs/protocol-reference.md)")
     if kind == "missing":
         return "this field is required"
+    if kind == "literal_error":
+        return msg + choice_hint(Protocol, tuple(err.get("loc", ())), err.get("input"))
     if msg.startswith("Value error, "):
         msg = msg[len("Value error, ") :]
     inp = err.get("input")

@@ -130,7 +130,7 @@ def check(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
-    """Check a protocol: validity, empty design space, real factor ranges, centre, fingerprint."""
+    """Check a protocol: validity, empty design space, reachable factor ranges, centre, fingerprint."""
     from guardband.planner.app.workflow import check_protocol
 
     report = check_protocol(protocol)
@@ -559,6 +559,32 @@ def simulate(
     n = sum(len(v) for k, v in result.histories.items() if k not in result.same_as)
     _err(f"simulated {n} campaigns in {time.perf_counter() - began:.1f} s with {result.workers} worker(s)"
          + (f"; wrote {out}" if out is not None else ""))
+
+
+# --------------------------------------------------------------- reference
+class RefFormat(str, Enum):
+    markdown = "markdown"
+    json_schema = "json-schema"
+
+
+@app.command()
+@_guarded
+def reference(
+    format: RefFormat = typer.Option(RefFormat.markdown, "--format", "-f",
+                                     help="markdown (every setting: type, default, unit, allowed values) "
+                                          "or json-schema (for editors)."),
+    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
+                                      help="Write to this file instead of stdout."),
+) -> None:
+    """Write the protocol reference or the protocol's JSON Schema, made from the schema itself."""
+    from guardband.planner.inputs.reference import protocol_json_schema_text, protocol_reference_markdown
+
+    text = protocol_reference_markdown() if format is RefFormat.markdown else protocol_json_schema_text()
+    if out is None:
+        typer.echo(text, nl=False)
+    else:
+        atomic_write_text(out, text)
+        _err(f"wrote {out}")
 
 
 # -------------------------------------------------------------------- demo

@@ -16,7 +16,7 @@ MIXTURE_SUM_TOL = 2e-3
 #: Relative tolerance (times max(1, |upper bound|)) when a measured run's
 #: factor value is compared with its bounds and discrete levels.
 FACTOR_VALUE_RTOL = 1e-9
-#: A factor whose real range is narrower than this share of its declared
+#: A factor whose reachable range is narrower than this share of its declared
 #: span (its magnitude when fixed by its bounds) is treated as fixed.
 FIXED_RANGE_TOL = 1e-9
 #: Initial Cholesky jitter, relative to the mean diagonal of the kernel matrix.

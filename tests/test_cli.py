@@ -46,7 +46,7 @@ def test_check_every_example_protocol(protocol):
     assert len(data["protocol"]["fingerprint"]) == 64
     assert data["cautions"]
     for f in data["factors"]:
-        assert f["real_low"] <= f["centre"] + 1e-9 and f["centre"] <= f["real_high"] + 1e-9
+        assert f["reach_low"] <= f["centre"] + 1e-9 and f["centre"] <= f["reach_high"] + 1e-9
 
 
 def test_check_empty_design_space(tmp_path):

@@ -39,7 +39,8 @@ body's ``n_pending`` became ``n_in_progress`` (runs in progress now shape
 the batch), every plan record gained ``warm_start_from``, and each proposal
 its values given the earlier picks and a one-line reason (``given_earlier``,
 ``reason``; "# why rank k" lines in the plan table): both plan tables and
-record bodies changed, their numbers did not.
+record bodies changed, their numbers did not. Then every protocol field
+gained a description for the generated reference (fingerprints unchanged).
 """
 
 from __future__ import annotations
@@ -61,14 +62,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "a80752d02476a676afb15bb760e89bf5e1fd55426fe397243ed586c8ffa54bfd",
+        "5ea35bea03df055ce6da187e4009ad969f62d09597875eaded74f51a4934ef37",
         "fe0ff00e144b823fce403d530d841024effd0e4b891f64c1c7c101d333424d9a",
-        "411eb7f8efda560c450da07a7f824615c22739fda2722156e087887b8a63faef",
+        "1f1cc5899041436859fb93763a4ebcfcfa4161ed2ec954e297dfe9f11ac17a91",
     ),
     "dose_combination": (
-        "3e616e475fa1ec3a05c336411a96f609f5dd234e9a440eca1a8589e91279bc33",
+        "4618c829109a9d52c83eca162389807bb11b0fb69a100bcbbc72f42abfa1d759",
         "4c2482cfdf29c028b103f08fec5d1595079456a4391717ebff1dfa2d1cb86e4a",
-        "46ccf2a79bf88dc874232ab4cb2c9cd284c7b311e740231f07eb2038b6b6591b",
+        "6d615f22eac4ee40f4adfa95cce011b065f64bab016b3d229985f3f12f34717c",
     ),
 }
 

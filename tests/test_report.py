@@ -355,6 +355,58 @@ def test_mixture_slices_keep_the_total_and_pass_through_the_proposal(tablet_reru
             assert np.all(sl.X[:, still] == prop.x[still])
 
 
+@pytest.mark.parametrize("which,runs_file", [("dose_campaign", "dose_combination_runs.csv"),
+                                             ("tablet_campaign", "tablet_blend_runs.csv")], ids=["dose", "tablet"])
+def test_slice_cards_show_every_response_against_every_moved_factor(which, runs_file, request):
+    """One card per moved factor, a strip per response sharing its axis; the proposal on each curve."""
+    from matplotlib.collections import PathCollection, PolyCollection
+    from matplotlib.lines import Line2D
+
+    from guardband.planner.inputs.runs import read_runs
+    from guardband.planner.report.data import _Geometry
+    from guardband.planner.report.figures import draw_slices
+    from guardband.planner.step import safe_runs_mask
+
+    folder = request.getfixturevalue(which)
+    result, _ = rerun_record(folder / LOG_NAME, _only_plan(folder)["index"])
+    p = result.protocol
+    runs = read_runs(PROTOCOLS / runs_file, p)
+    geo = _Geometry(result)
+    prop = result.proposals[0]
+    fig, cards = draw_slices(geo, runs, safe_runs_mask(p, runs), prop, "P-01")
+    moved = [int(j) for j in geo.free_idx if geo.can_move([j])]
+    assert list(cards) == moved and len(moved) >= 2
+    responses = p.response_names
+    for j, strips in cards.items():
+        assert len(strips) == len(responses)
+        assert all(s.get_shared_x_axes().joined(strips[0], s) for s in strips)
+        sl = slice_data(result, prop.x, j)
+        at = float(np.interp(prop.x[j], sl.t, np.arange(sl.t.size))) if sl.discrete else prop.x[j]
+        for ax, name in zip(strips, responses):
+            lines = [ln for ln in ax.get_lines() if isinstance(ln, Line2D)]
+            # no vertical line marks the setting: every line is the curve, a limit or a marker
+            assert not any(len(ln.get_xdata()) == 2 and ln.get_xdata()[0] == ln.get_xdata()[1]
+                           and ln.get_transform() is not ax.transData for ln in lines if ln.get_marker() in ("None", None, ""))
+            stars = [ln for ln in lines if ln.get_marker() == "*"]
+            assert len(stars) == 1, (p.factor_names[j], name)
+            k = int(np.argmin(np.abs(sl.t - prop.x[j])))
+            np.testing.assert_allclose(stars[0].get_xydata()[0], [at, sl.mean[name][k]], rtol=1e-9, atol=1e-12)
+            if name == p.objective.name:  # on the curve, where the plan table says
+                np.testing.assert_allclose(sl.mean[name][k], prop.mean, rtol=1e-9, atol=1e-9)
+            texts = " ".join(t.get_text() for t in ax.texts)
+            assert name in texts
+            lim = next((x for x in p.limits if x.name == name), None)
+            if lim is not None:
+                levels = {float(ln.get_ydata()[0]) for ln in lines if ln.get_linestyle() == "--"}
+                assert {v for v in (lim.lower, lim.upper) if v is not None} <= levels
+            if not sl.discrete:
+                assert any(isinstance(c, PolyCollection) for c in ax.collections)  # the 95% band
+            shown = sum(len(c.get_offsets()) for c in ax.collections if isinstance(c, PathCollection))
+            assert shown == int(np.sum(~runs.pending & np.isfinite(runs.Y[name])))  # every run, projected
+    for r in range(len(responses)):
+        assert len({tuple(strips[r].get_ylim()) for strips in cards.values()}) == 1  # one scale per response
+
+
 def test_mixture_map_keeps_the_total_and_masks_the_outside(tablet_rerun):
     result, _ = tablet_rerun
     p = result.protocol

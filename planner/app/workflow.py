@@ -95,8 +95,8 @@ class CheckReport:
                     "unit": f.unit,
                     "declared_low": f.low,
                     "declared_high": f.high,
-                    "real_low": float(self.ranges[k, 0]) if not self.empty else None,
-                    "real_high": float(self.ranges[k, 1]) if not self.empty else None,
+                    "reach_low": float(self.ranges[k, 0]) if not self.empty else None,
+                    "reach_high": float(self.ranges[k, 1]) if not self.empty else None,
                     "centre": float(self.centre[k]) if self.centre is not None else None,
                 }
             )

@@ -27,6 +27,7 @@ from guardband.planner import settings
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.names import check_visible, name_key, normal_text, shown
 from guardband.planner.inputs.reading import read_input
+from guardband.planner.inputs.hints import choice_hint, percent_total_hint, quoted_rule, unknown_key_hint
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 
 __all__ = [
@@ -57,6 +58,11 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+def _unit(text: str) -> dict:
+    """The unit of a setting, carried into the JSON Schema and the protocol reference."""
+    return {"x-unit": text}
+
+
 def _check_name(value: str, what: str) -> str:
     if not isinstance(value, str) or not value.strip():
         raise ValueError(f"{what} must be a non-empty text")
@@ -71,11 +77,13 @@ def _check_name(value: str, what: str) -> str:
 class Study(_Strict):
     """Who wrote the protocol, and what kind of study it is."""
 
-    title: str = Field(min_length=1)
-    version: str = Field(min_length=1)
-    author: str = Field(min_length=1)
-    kind: Literal["formulation", "dose"] = "formulation"
-    description: str = ""
+    title: str = Field(min_length=1, description="the study's title, printed on every output")
+    version: str = Field(min_length=1, description="the protocol's own version, as text (e.g. \"1.0\")")
+    author: str = Field(min_length=1, description="who wrote the protocol")
+    kind: Literal["formulation", "dose"] = Field(
+        default="formulation", description="the kind of study; it chooses the cautions every output carries"
+    )
+    description: str = Field(default="", description="free text about the study")
 
 
 class Factor(_Strict):
@@ -85,15 +93,36 @@ class Factor(_Strict):
     example an active ingredient at a fixed fraction).
     """
 
-    name: str
-    kind: Literal["continuous", "component", "discrete"]
-    lower: float | None = None
-    upper: float | None = None
-    levels: tuple[float, ...] | None = None
-    unit: str = ""
-    #: The smallest step the lab can set or weigh (0.001 of a fraction, 0.5 kN);
-    #: proposals are rounded to its multiples. Not for discrete factors.
-    resolution: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    name: str = Field(
+        description="the factor's name, as in the runs file's header and in rules (quote a name "
+        "with spaces in a rule with backquotes: `name with spaces`)"
+    )
+    kind: Literal["continuous", "component", "discrete"] = Field(
+        description="continuous: any value between lower and upper; component: a mixture component "
+        "(the components add up to [mixture] total); discrete: one of `levels`"
+    )
+    lower: float | None = Field(
+        default=None, description="lowest value (continuous and component factors)",
+        json_schema_extra=_unit("the factor's unit"),
+    )
+    upper: float | None = Field(
+        default=None, description="highest value (continuous and component factors); equal to lower "
+        "fixes the factor", json_schema_extra=_unit("the factor's unit"),
+    )
+    levels: tuple[float, ...] | None = Field(
+        default=None, description="the values a discrete factor can take (e.g. the dose strengths that "
+        "exist), in increasing order", json_schema_extra=_unit("the factor's unit"),
+    )
+    unit: str = Field(
+        default="", description="the factor's unit (e.g. \"kN\", \"mg/kg\", \"fraction\"); a runs file "
+        "may give another unit of the same kind in its header, which is converted",
+    )
+    resolution: float | None = Field(
+        default=None, gt=0, allow_inf_nan=False,
+        description="the smallest step the lab can set or weigh (0.001 of a fraction, 0.5 kN); proposals "
+        "are rounded to its multiples and screened again; not for discrete factors",
+        json_schema_extra=_unit("the factor's unit"),
+    )
 
     @model_validator(mode="after")
     def _check(self):
@@ -178,17 +207,25 @@ def _check_mixture_resolution(components, total: float) -> None:
 class Mixture(_Strict):
     """The total that the component factors add up to."""
 
-    total: float = Field(default=1.0, gt=0)
+    total: float = Field(
+        default=1.0, gt=0,
+        description="what the components add up to: 1 for fractions, 100 for percentages",
+        json_schema_extra=_unit("the components' unit"),
+    )
     tolerance: float = Field(
-        default=2e-3, gt=0, description="how far a measured run's components may miss the total"
+        default=2e-3, gt=0, description="how far a measured run's components may miss the total",
+        json_schema_extra=_unit("the components' unit"),
     )
 
 
 class Rule(_Strict):
     """A named linear rule over factor names, e.g. ``mcc >= 2 * lactose``."""
 
-    name: str = ""
-    rule: str
+    name: str = Field(default="", description="a name for the rule, used in messages")
+    rule: str = Field(
+        description="a linear rule over factor names, e.g. \"mcc >= 2 * lactose\", \"a / b <= 3\" or "
+        "\"0.02 <= x + y <= 0.04\"; quote a name with spaces in backquotes"
+    )
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -198,6 +235,7 @@ class Rule(_Strict):
 #: Known repeatability of a response's measurement (objective and limits alike).
 MeasurementSd = Annotated[float | None, Field(
     ge=0,
+    json_schema_extra=_unit("the response's unit"),
     description=(
         "known repeatability of the measurement (sd, in the response's unit), e.g. from "
         "method validation; fixes the model's noise instead of estimating it"
@@ -208,9 +246,11 @@ MeasurementSd = Annotated[float | None, Field(
 class Objective(_Strict):
     """The performance response to improve."""
 
-    name: str
-    direction: Literal["maximize", "minimize"]
-    unit: str = ""
+    name: str = Field(description="the response's name, as in the runs file's header")
+    direction: Literal["maximize", "minimize"] = Field(
+        description="whether a larger (maximize) or a smaller (minimize) value is better"
+    )
+    unit: str = Field(default="", description="the response's unit, shown in tables and figures")
     measurement_sd: MeasurementSd = None
 
     @model_validator(mode="after")
@@ -231,8 +271,10 @@ class Limit(_Strict):
     a dose study).
     """
 
-    name: str
-    kind: Literal["continuous", "binomial"] = "continuous"
+    name: str = Field(description="the limited response's name, as in the runs file's header")
+    kind: Literal["continuous", "binomial"] = Field(
+        default="continuous", description="continuous: a measured value; binomial: a rate given as a "
+        "count of events among subjects (columns `events` and `subjects`), modelled on the logit scale")
     events: str | None = Field(default=None, description="binomial: runs-file column with the number of events")
     subjects: str | None = Field(default=None, description="binomial: runs-file column with the number of subjects")
     broken_after: int | None = Field(
@@ -251,12 +293,26 @@ class Limit(_Strict):
             "default on in a dose study"
         ),
     )
-    unit: str = ""
-    lower: float | None = None
-    upper: float | None = None
-    probability: float = Field(gt=0, lt=1)
-    min_runs: int | None = Field(default=None, ge=1)
-    source: str = ""
+    unit: str = Field(default="", description="the response's unit, shown in tables and figures")
+    lower: float | None = Field(
+        default=None, description="the least value allowed (give lower, upper or both)",
+        json_schema_extra=_unit("the response's unit"),
+    )
+    upper: float | None = Field(
+        default=None, description="the largest value allowed (give lower, upper or both)",
+        json_schema_extra=_unit("the response's unit"),
+    )
+    probability: float = Field(
+        gt=0, lt=1, description="the probability with which a proposed run must meet this limit",
+        json_schema_extra=_unit("probability"),
+    )
+    min_runs: int | None = Field(
+        default=None, ge=1, description="measured runs this limit's model needs before it is fitted "
+        "(default: [screen] min_runs); until then no candidate passes this limit",
+        json_schema_extra=_unit("runs"),
+    )
+    source: str = Field(default="", description="where the limit comes from (regulation, monograph, "
+                        "quality unit), printed with it")
     judged_on: Literal["measurement", "true-value"] = Field(
         default="measurement",
         description=(
@@ -353,8 +409,11 @@ _LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None,
 class Forbidden(_Strict):
     """A region the protocol forbids: every point meeting all its rules is excluded."""
 
-    name: str
-    rules: tuple[str, ...] = Field(min_length=1)
+    name: str = Field(description="a name for the region, used in the exclusion table")
+    rules: tuple[str, ...] = Field(
+        min_length=1, description="linear rules that together describe the region (a point meeting "
+        "every one is excluded), e.g. [\"dose_a >= 40\", \"dose_b >= 8\"]"
+    )
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -364,30 +423,42 @@ class Forbidden(_Strict):
 class Screen(_Strict):
     """Safety-screen settings."""
 
-    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach")
-    joint: Literal["bound", "independent"] = "bound"
-    min_runs: int = Field(default=5, ge=1)
+    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach",
+                             json_schema_extra=_unit("probability"))
+    joint: Literal["bound", "independent"] = Field(
+        default="bound", description="how the limits' probabilities p_i combine into the joint figure: "
+        "bound = max(0, 1 - sum(1 - p_i)), true whatever the correlation; independent = prod(p_i)"
+    )
+    min_runs: int = Field(default=5, ge=1, description="measured runs a limit's model needs before it is "
+                          "fitted (a limit's own min_runs overrides it)", json_schema_extra=_unit("runs"))
     max_step: float | None = Field(
         default=None,
         gt=0,
-        description="largest distance (unit-scaled, per sqrt(factor)) from the nearest run that met every limit",
+        description="largest distance from the nearest run that met every limit (not set: no such rule)",
+        json_schema_extra=_unit("unit-scaled distance (each free factor's reachable range scaled to 0..1) "
+                                "per sqrt(number of free factors)"),
     )
     span_reach: float | None = Field(
         default=0.25,
         ge=0,
         description=(
             "a candidate must lie inside the box the runs that met every limit span (free continuous "
-            "factors, unit-scaled), each side pushed out by this share of its width; none turns the "
-            "rule off (factors with discrete levels step under max_step)"
+            "factors, unit-scaled), each side pushed out by this share of its width; None turns the "
+            "rule off, from Python only (TOML has no empty value); factors with discrete levels step "
+            "under max_step"
         ),
+        json_schema_extra=_unit("share of the box's width"),
     )
     span_floor: float = Field(
         default=0.05,
         ge=0,
         le=1,
         description="the least push of each side of that box (unit-scaled), so a tight cluster can grow",
+        json_schema_extra=_unit("unit-scaled (each factor's reachable range is 0..1)"),
     )
-    forbidden: tuple[Forbidden, ...] = ()
+    forbidden: tuple[Forbidden, ...] = Field(
+        default=(), description="regions no candidate may enter ([[screen.forbidden]] tables)"
+    )
     short_model: bool = Field(
         default=True,
         description=(
@@ -421,23 +492,33 @@ class Screen(_Strict):
 class Ranking(_Strict):
     """Which ranking rule orders the survivors."""
 
-    rule: Literal["ei", "pi", "bound", "mean"] = "ei"
-    kappa: float = Field(default=2.0, ge=0, le=100, description="sds added to the mean by the bound rule")
-    xi: float = Field(default=0.0, ge=0)
+    rule: Literal["ei", "pi", "bound", "mean"] = Field(
+        default="ei", description="ei: expected improvement; pi: probability of improvement; bound: the "
+        "optimistic confidence bound (mean + kappa sd when maximizing, mean - kappa sd when minimizing); "
+        "mean: the predicted value alone"
+    )
+    kappa: float = Field(default=2.0, ge=0, le=100, description="how many predictive sds the bound rule goes "
+                         "past the mean, towards better", json_schema_extra=_unit("standard deviations"))
+    xi: float = Field(default=0.0, ge=0, description="the least gain over the best run that the pi rule "
+                      "counts as an improvement", json_schema_extra=_unit("the objective's unit"))
 
 
 class Batch(_Strict):
     """Batch and search settings."""
 
-    size: int = Field(default=4, ge=1, le=100)
-    pool: int = Field(default=4000, ge=50, le=500_000)
-    refine: int = Field(default=4, ge=0, le=50)
+    size: int = Field(default=4, ge=1, le=100, description="runs proposed per planning step (the batch "
+                      "may come out smaller; the plan says so)", json_schema_extra=_unit("runs"))
+    pool: int = Field(default=4000, ge=50, le=500_000, description="random candidates drawn from the design "
+                      "space at each step", json_schema_extra=_unit("candidates"))
+    refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
+                        "(0: none)", json_schema_extra=_unit("candidates"))
 
 
 class ModelSettings(_Strict):
     """Gaussian-process fitting settings."""
 
-    restarts: int = Field(default=4, ge=1, le=50)
+    restarts: int = Field(default=4, ge=1, le=50, description="starts of each model's hyperparameter "
+                          "search", json_schema_extra=_unit("starts"))
     ml_runs_per_hyperparameter: float = Field(
         default=12.0,
         ge=0,
@@ -447,6 +528,7 @@ class ModelSettings(_Strict):
             "measured runs per hyperparameter (number of free factors + 2); maximum likelihood "
             "from then on"
         ),
+        json_schema_extra=_unit("runs per hyperparameter"),
     )
     limit_length_scale_max: float = Field(
         default=0.4,
@@ -457,6 +539,7 @@ class ModelSettings(_Strict):
             "unit-scaled design space (the unit of max_step), so that far from the runs the "
             "model returns to the limit instead of extrapolating a flat response"
         ),
+        json_schema_extra=_unit("unit-scaled distance per sqrt(number of free factors), as max_step"),
     )
 
 
@@ -479,8 +562,10 @@ class Escalation(_Strict):
 class StartRegion(_Strict):
     """A region known to be safe where a campaign with no runs may start."""
 
-    rules: tuple[str, ...] = Field(min_length=1)
-    note: str = ""
+    rules: tuple[str, ...] = Field(
+        min_length=1, description="linear rules that describe the region, e.g. [\"dose_a <= 10\"]"
+    )
+    note: str = Field(default="", description="why the region is known to be safe, printed with it")
 
     @cached_property
     def parsed(self) -> tuple[LinearRule, ...]:
@@ -490,19 +575,25 @@ class StartRegion(_Strict):
 class Protocol(_Strict):
     """A validated study protocol."""
 
-    study: Study
-    factors: tuple[Factor, ...] = Field(min_length=1)
-    mixture: Mixture | None = None
-    constraints: tuple[Rule, ...] = ()
-    objective: Objective
-    limits: tuple[Limit, ...] = ()
-    screen: Screen
-    ranking: Ranking = Ranking()
-    batch: Batch = Batch()
-    model: ModelSettings = ModelSettings()
-    start: StartRegion | None = None
-    escalation: Escalation | None = None
-    seed: int | None = Field(default=None, ge=0, lt=2**63)
+    study: Study = Field(description="the [study] table")
+    factors: tuple[Factor, ...] = Field(min_length=1, description="the [[factors]] tables, one per factor")
+    mixture: Mixture | None = Field(default=None, description="the [mixture] table; needed when a factor "
+                                    "is a component")
+    constraints: tuple[Rule, ...] = Field(default=(), description="the [[constraints]] tables: linear rules "
+                                          "the design space must meet")
+    objective: Objective = Field(description="the [objective] table")
+    limits: tuple[Limit, ...] = Field(default=(), description="the [[limits]] tables, one per limited response")
+    screen: Screen = Field(description="the [screen] table")
+    ranking: Ranking = Field(default=Ranking(), description="the [ranking] table")
+    batch: Batch = Field(default=Batch(), description="the [batch] table")
+    model: ModelSettings = Field(default=ModelSettings(), description="the [model] table")
+    start: StartRegion | None = Field(default=None, description="the [start] table: where a campaign "
+                                      "with no runs may start")
+    escalation: Escalation | None = Field(default=None, description="the [escalation] table: dose "
+                                          "escalation rules (no skipping of untried levels, cohort size)")
+    seed: int | None = Field(default=None, ge=0, lt=2**63, description="random seed of every step, a "
+                             "top-level key written before the first table (not set: `plan` draws one and records "
+                             "it, `start` uses 0)")
 
     @model_validator(mode="after")
     def _cross_checks(self):
@@ -524,7 +615,8 @@ class Protocol(_Strict):
         components = [f for f in self.factors if f.kind == "component"]
         if components and self.mixture is None:
             raise ValueError(
-                "factors of kind 'component' need a [mixture] table with the `total` they add up to"
+                "factors of kind 'component' need a [mixture] table with the `total` they add up to "
+                "(total = 1 for fractions, total = 100 for percentages)"
             )
         if self.escalation is not None and self.escalation.no_skipping and not any(
                 f.kind == "discrete" for f in self.factors):
@@ -538,12 +630,12 @@ class Protocol(_Strict):
             if low > total + 1e-12:
                 raise ValueError(
                     f"mixture: the component lower bounds add up to {low:g}, more than the total "
-                    f"{total:g}; lower some bounds"
+                    f"{total:g}; lower some bounds{percent_total_hint(low, high, total)}"
                 )
             if high < total - 1e-12:
                 raise ValueError(
                     f"mixture: the component upper bounds add up to {high:g}, less than the total "
-                    f"{total:g}; raise some bounds"
+                    f"{total:g}; raise some bounds{percent_total_hint(low, high, total)}"
                 )
             _check_mixture_resolution(components, total)
         return self
@@ -740,9 +832,12 @@ def _plain(err: dict) -> str:
     kind = err.get("type", "")
     msg = err.get("msg", "")
     if kind == "extra_forbidden":
-        return "unknown key; check its spelling (see the example protocols in protocols/)"
+        hint = unknown_key_hint(Protocol, tuple(err.get("loc", ())))
+        return "unknown key; " + (hint or "check its spelling (see docs/protocol-reference.md)")
     if kind == "missing":
         return "this field is required"
+    if kind == "literal_error":
+        return msg + choice_hint(Protocol, tuple(err.get("loc", ())), err.get("input"))
     if msg.startswith("Value error, "):
         msg = msg[len("Value error, ") :]
     inp = err.get("input")
@@ -759,6 +854,22 @@ def _rule_fields(p: Protocol):
         yield f"screen.forbidden[{k}].rules", f, "parsed"
     if p.start is not None:
         yield "start.rules", p.start, "parsed"
+
+
+def _quoting_hint(holder, names) -> str:
+    """The rules of ``holder`` with the factor names that need backquotes quoted, if that reads."""
+    texts = (holder.rule,) if isinstance(holder, Rule) else holder.rules
+    suggested = [quoted_rule(t, names) or t for t in texts]
+    if suggested == list(texts):
+        return ""
+    try:
+        read = [r for t in suggested for r in parse_rule(t)]
+    except RuleSyntaxError:
+        return ""
+    if any(n not in names for r in read for n in r.names):
+        return ""
+    shown = "; ".join(f'"{t}"' for t, old in zip(suggested, texts) if t != old)
+    return f"a factor name with a space or sign goes in backquotes: write {shown}"
 
 
 def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
@@ -781,14 +892,17 @@ def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
         try:
             rules = getattr(holder, attr)
         except RuleSyntaxError as exc:
-            raise ProtocolError(f"{source}: {path}: cannot read the rule: {exc}") from None
+            hint = _quoting_hint(holder, names)
+            raise ProtocolError(f"{source}: {path}: cannot read the rule: "
+                                + (f"{exc.message}; {hint}" if hint else str(exc))) from None
         for rule in rules:
             unknown = [n for n in rule.names if n not in names]
             if unknown:
+                hint = _quoting_hint(holder, names)
                 raise ProtocolError(
                     f"{source}: {path}: rule {rule.text!r} names unknown factor(s) "
-                    f"{', '.join(repr(u) for u in unknown)}; known factors: "
-                    f"{', '.join(sorted(names))}"
+                    f"{', '.join(repr(u) for u in unknown)}; "
+                    + (hint if hint else f"known factors: {', '.join(sorted(names))}")
                 )
             for coefs, const in rule.divisors:
                 low = const + sum(

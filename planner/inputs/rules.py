@@ -40,10 +40,16 @@ __all__ = ["RuleSyntaxError", "LinearRule", "parse_rule"]
 
 
 class RuleSyntaxError(ValueError):
-    """A rule could not be parsed; ``position`` is a 0-based character offset."""
+    """A rule could not be parsed; ``position`` is a 0-based character offset.
 
-    def __init__(self, message: str, position: int | None = None):
-        super().__init__(message)
+    ``message`` says what is wrong, ``hint`` (possibly empty) how it is
+    usually put right; the text of the error is both.
+    """
+
+    def __init__(self, message: str, position: int | None = None, hint: str = ""):
+        super().__init__(message + (f"; {hint}" if hint else ""))
+        self.message = message
+        self.hint = hint
         self.position = position
 
 
@@ -168,7 +174,8 @@ def _tokenize(text: str) -> list[tuple[str, str, int]]:
         m = _TOKEN.match(text, pos)
         if m is None:
             raise RuleSyntaxError(
-                f"unexpected character {text[pos]!r} at position {pos + 1}", pos
+                f"unexpected character {text[pos]!r} at position {pos + 1}", pos,
+                hint="a name with characters other than letters, digits and _ goes in backquotes",
             )
         kind = m.lastgroup
         value = m.group()
@@ -346,6 +353,11 @@ def parse_rule(text: str) -> tuple[LinearRule, ...]:
         sides.append(parser.expr())
     kind, value, pos = parser.peek()
     if kind != "end":
+        before = parser.tokens[parser.i - 1] if parser.i else None
+        if kind == "name" and before is not None and before[0] == "name":
+            raise RuleSyntaxError(
+                f"unexpected {value!r} at position {pos + 1}", pos,
+                hint=f"a name with a space goes in backquotes: `{text[before[2]:pos + len(value)].strip('`')}`")
         parser.fail(f"unexpected {value!r}", pos)
     if not senses:
         raise RuleSyntaxError("the rule has no comparison (use <=, >= or ==)")

@@ -142,16 +142,22 @@ def mixture_total_problems(protocol: Protocol, X: np.ndarray, wheres: list[str],
     comp = [q for q, f in enumerate(protocol.factors) if f.kind == "component"]
     if mixture is None or not comp or any(_unconvertible(convert, protocol.factors[q].name) for q in comp):
         return []
-    problems = []
+    problems, missed = [], []
     for k, where in enumerate(wheres):
         if not np.all(np.isfinite(X[k, comp])):
             continue
         total = float(X[k, comp].sum())
         if abs(total - mixture.total) > mixture.tolerance:
+            missed.append((where, total))
             problems.append(
                 f"{where}: the components add up to {total:.6g}, not {mixture.total:g} "
                 f"(tolerance {mixture.tolerance:g})"
             )
+    scaled = _scale_mistake(mixture.total, [t for _, t in missed])
+    if len(missed) > 1 and scaled:
+        first, last = missed[0][0], missed[-1][0]
+        return [f"{len(missed)} runs ({first} to {last}): the components add up to about "
+                f"{scaled[0]:g}, not {mixture.total:g}; {scaled[1]}"]
     return problems
 
 
@@ -207,3 +213,14 @@ def rate_column_problem(limit, label: str) -> str:
     return (f"{label}: {limit.name!r} is a binomial response and a rate alone cannot be used: give the "
             f"number of events in column {limit.events!r} and the number of subjects in column "
             f"{limit.subjects!r} (for example 1 and 6, not 0.1667)")
+def _scale_mistake(total: float, sums: list[float]) -> tuple[float, str] | None:
+    """(the total the runs use, what to do) when every run's components fit percent against fractions."""
+    for factor, hint in ((100.0, "the runs are in percent and the protocol in fractions: give the runs "
+                          "as fractions, or write the protocol in percent (`total = 100` in its [mixture] "
+                          "table and the component bounds in percent)"),
+                         (0.01, "the runs are in fractions and the protocol in percent: give the runs in "
+                          "percent, or set `total = 1` in the protocol's [mixture] table")):
+        target = total * factor
+        if sums and all(abs(s - target) <= 0.01 * target for s in sums):
+            return target, hint
+    return None

@@ -30,10 +30,8 @@ from guardband.planner.report.style import (
     legend_top, limit_handle, new_figure, runs_style,
 )
 
-__all__ = ["slice_figure", "map_figure", "loo_figure", "history_figure"]
+__all__ = ["slice_figure", "draw_slices", "map_figure", "loo_figure", "history_figure"]
 
-#: Columns of a slice figure before it wraps to a new block of rows.
-SLICE_MAX_COLUMNS = 6
 #: Cells of an all-discrete map that get their value written in.
 MAP_ANNOTATE_MAX = 80
 
@@ -49,20 +47,6 @@ def _factor_label(geo: _Geometry, j: int, *, proportion: bool = False) -> str:
     if proportion and geo.moves_in_proportion([j]):
         text += "\n(others in proportion)"
     return text
-
-
-def _response_label(geo: _Geometry, name: str) -> str:
-    p = geo.protocol
-    short = name if len(name) <= 24 else name[:22] + "..."
-    if name == p.objective.name:
-        return f"{short}\n(objective, {p.objective.direction[:3]}.)"
-    lim = geo.limit_rule(name)
-    sides = []
-    if lim.lower is not None:
-        sides.append(f">= {lim.lower:g}")
-    if lim.upper is not None:
-        sides.append(f"<= {lim.upper:g}")
-    return f"{short}\n(limit {' and '.join(sides)})"
 
 
 def _limit_values(geo: _Geometry, name: str) -> list[float]:
@@ -120,9 +104,25 @@ def _held_note(geo: _Geometry, x0: np.ndarray, moved: Sequence[int]) -> str:
 
 
 # ---------------------------------------------------------------- slices
+#: Factor cards side by side before the figure wraps to a new row of cards.
+SLICE_CARD_COLUMNS = 3
+#: How far right of its level a run is drawn on a discrete slice (beside the model's bar, not on it).
+_RUNS_SHIFT = 0.2
+#: Shade of the side of a limit that breaks it.
+_BEYOND_LIMIT = dict(color=OKABE_ITO["vermillion"], alpha=0.09, lw=0, zorder=0)
+#: A band reaching further than this many spans of the runs, limits and mean past them is cut at the strip's edge.
+_BAND_REACH = 1.0
+#: Share of a strip's height kept free at the top for its label.
+_LABEL_ROOM = 0.3
+
+
 def slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id: str,
                  salt: str) -> tuple[ReportFigure, str] | None:
     """One-factor slices of every model through one proposal, and the text that introduces them.
+
+    One card per factor that can move; in each card the responses are
+    stacked strips sharing the factor's axis, and the proposal is a marker
+    on each curve with its predicted value.
 
     Parameters
     ----------
@@ -141,98 +141,117 @@ def slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id
     (ReportFigure, str) or None
         None when no factor can move.
     """
-    factors = [int(j) for j in geo.free_idx if geo.can_move([j])]
-    if not factors:
+    drawn = draw_slices(geo, runs, safe, prop, run_id)
+    if drawn is None:
         return None
-    responses = list(geo.protocol.response_names)
-    ncols = min(len(factors), SLICE_MAX_COLUMNS)
-    blocks = -(-len(factors) // ncols)
-    handles = _slice_handles(geo, factors, runs, safe, run_id)
-    fig, axes, legend_ncol = _slice_axes(len(responses), ncols, blocks, len(handles))
-    ylims: dict[str, list[float]] = {name: [] for name in responses}
-    for k, j in enumerate(factors):
-        block, c = divmod(k, ncols)
-        sl = slice_at(geo, prop.x, j, SLICE_POINTS)
-        for r, name in enumerate(responses):
-            ax = axes[block * len(responses) + r, c]
-            ylims[name] += _slice_panel(ax, geo, runs, safe, sl, name, prop.x[j])
-            ax.xaxis.set_major_locator(MaxNLocator(4 if ncols <= 3 else 3))
-            ax.yaxis.set_major_locator(MaxNLocator(5))
-            if sl.discrete:
-                pos = _positions(geo, j, sl.t)
-                _level_ticks(ax.xaxis, pos, sl.t)
-                ax.set_xlim(-0.5, pos.size - 0.5 + _RUNS_SHIFT)
-            if r == len(responses) - 1:
-                ax.set_xlabel(_factor_label(geo, j, proportion=True))
-            else:
-                ax.tick_params(labelbottom=False)
-            if c == 0:
-                ax.set_ylabel(_response_label(geo, name))
-            else:
-                ax.tick_params(labelleft=False)
-    for r, name in enumerate(responses):
-        _share_ylim(axes[r::len(responses)].ravel(), ylims[name])
-    for k in range(len(factors), blocks * ncols):
-        block, c = divmod(k, ncols)
-        for r in range(len(responses)):
-            axes[block * len(responses) + r, c].set_visible(False)
-    legend_top(fig, handles, legend_ncol)
+    fig, cards = drawn
+    factors = list(cards)
     title = f"Slices through proposal {run_id}"
     figure = finish_figure(fig, f"slices-{prop.rank}", title, _held_note(geo, prop.x, []), salt)
     return figure, _slice_intro(geo, factors)
 
 
-#: How far right of its level a run is drawn on a discrete slice (beside the model's bar, not on it).
-_RUNS_SHIFT = 0.2
+def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id: str):
+    """The slice figure (a matplotlib Figure) and its cards, or None when no factor can move.
+
+    The cards map each moved factor to its strips: one axes per response,
+    in the protocol's order (objective first), sharing the factor's axis.
+    """
+    factors = [int(j) for j in geo.free_idx if geo.can_move([j])]
+    if not factors:
+        return None
+    responses = list(geo.protocol.response_names)
+    most = len(_slice_handles(geo, factors, runs, safe, run_id, cut=True))
+    fig, cards, legend_ncol = _slice_cards(geo, factors, len(responses), most)
+    ranges: dict[str, tuple[list[float], list[float]]] = {name: ([], []) for name in responses}
+    bands = {}
+    for j, strips in cards.items():
+        sl = slice_at(geo, prop.x, j, SLICE_POINTS)
+        for r, (ax, name) in enumerate(zip(strips, responses)):
+            core, bands[ax] = _slice_strip(ax, geo, runs, safe, sl, name, prop.x[j])
+            ranges[name][0].extend(core)
+            if bands[ax] is not None:
+                ranges[name][1].extend([float(np.min(bands[ax][1])), float(np.max(bands[ax][2]))])
+            _strip_axes(ax, geo, sl, j, last=r == len(responses) - 1)
+        _proposal_caret(strips[-1], float(_positions(geo, j, [prop.x[j]])[0]))
+    cut = False
+    for r, name in enumerate(responses):
+        lo, hi = _strip_range(*ranges[name])
+        for strips in cards.values():
+            cut = _finish_strip(strips[r], geo, name, lo, hi, bands[strips[r]]) or cut
+    legend_top(fig, _slice_handles(geo, factors, runs, safe, run_id, cut=cut), legend_ncol)
+    return fig, cards
 
 
 def _slice_handles(geo: _Geometry, factors: Sequence[int], runs: RunsTable, safe: np.ndarray,
-                   run_id: str) -> list:
-    """The legend entries a slice figure needs."""
+                   run_id: str, *, cut: bool) -> list:
+    """The legend entries a slice figure needs (``cut``: some band goes on past a strip's edge)."""
     discrete = [j in geo.levels for j in factors]
     entries = [
         (Line2D([], [], color=OKABE_ITO["blue"], lw=1.6, label="posterior mean"), not all(discrete)),
         (Patch(facecolor=OKABE_ITO["sky"], alpha=0.35, label=band_label(geo.result)),
          not all(discrete)),
+        (Line2D([], [], marker="^", color=OKABE_ITO["sky"], mec=OKABE_ITO["blue"], ls="none",
+                label="band goes on past the edge"), cut),
         (Line2D([], [], color=OKABE_ITO["blue"], marker="s", ls="none", label="discrete level, 95% bar"),
          any(discrete)),
-        (limit_handle(), True),
+        (limit_handle(), bool(geo.protocol.limits)),
+        (Patch(**{k: v for k, v in _BEYOND_LIMIT.items() if k != "zorder"}, label="beyond the limit"),
+         bool(geo.protocol.limits)),
         (Line2D([], [], marker="o", color=OKABE_ITO["black"], ls="none", label=RUN_MET), True),
         (Line2D([], [], marker="^", mfc="white", mec=OKABE_ITO["vermillion"], mew=1.3, ls="none",
                 label=RUN_MISSED), not np.all(safe | runs.pending)),
-        (Line2D([], [], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], ls=":",
-                label=f"proposal {run_id}"), True),
+        (Line2D([], [], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], ls="none",
+                label=f"proposal {run_id} (predicted value)"), True),
     ]
     return [h for h, shown in entries if shown]
 
 
-def _slice_axes(n_responses: int, ncols: int, blocks: int, n_handles: int):
-    """The slice figure, its axes and the legend's number of columns.
+def _slice_cards(geo: _Geometry, factors: Sequence[int], n_responses: int, n_handles: int):
+    """The figure, one card of stacked strips per factor, and the legend's number of columns.
 
-    The axes are an array of shape (blocks * n_responses, ncols): one row
-    per response, and a new block of rows when the factors wrap. The
-    legend of ``n_handles`` entries sits on top.
+    Returns ``(fig, cards, legend_ncol)`` where ``cards`` maps a factor to
+    its strips, top to bottom. Sizes are in inches.
     """
-    left, right, wgap, hgap, ph, xlab = 1.05, 0.2, 0.14, 0.14, 1.5, 0.72
-    pw = min(2.9 if ncols <= 2 else 2.3, (11.0 - left - right - (ncols - 1) * wgap) / ncols)
-    W = left + right + ncols * pw + (ncols - 1) * wgap
-    legend_ncol = max(2, min(n_handles, int(W // 2.4)))
-    top = legend_rows(n_handles, legend_ncol) + 0.1
-    block_h = n_responses * ph + (n_responses - 1) * hgap + xlab
-    fig = new_figure(W, top + blocks * block_h)
+    ncols = min(len(factors), SLICE_CARD_COLUMNS)
+    rows = -(-len(factors) // ncols)
+    yaxis, card_w, card_gap, side = 0.62, 3.05, 0.3, 0.15
+    strip_h = 1.0 if n_responses <= 3 else 0.82
+    strip_gap, head, foot, row_gap = 0.05, 0.38, 0.55, 0.2
+    W = 2 * side + ncols * (yaxis + card_w) + (ncols - 1) * card_gap
+    legend_ncol = max(2, min(n_handles, int(W // 2.5)))
+    top = legend_rows(n_handles, legend_ncol) + 0.05
+    card_h = head + n_responses * strip_h + (n_responses - 1) * strip_gap + foot
+    fig = new_figure(W, top + rows * card_h + (rows - 1) * row_gap)
     H = fig.get_figheight()
-    axes = np.empty((blocks * n_responses, ncols), dtype=object)
-    for block in range(blocks):
-        y_top = top + block * block_h
-        sub = axes_grid(fig, n_responses, ncols, left=left, right=right, top=y_top,
-                        bottom=H - y_top - block_h + xlab, wgap=wgap, hgap=hgap)
-        axes[block * n_responses:(block + 1) * n_responses] = sub
-    return fig, axes, legend_ncol
+    cards = {}
+    for k, j in enumerate(factors):
+        row, col = divmod(k, ncols)
+        x = side + col * (yaxis + card_w + card_gap) + yaxis
+        y_top = top + row * (card_h + row_gap) + head
+        strips = []
+        for r in range(n_responses):
+            y = y_top + r * (strip_h + strip_gap)
+            ax = fig.add_axes((x / W, 1 - (y + strip_h) / H, card_w / W, strip_h / H),
+                              sharex=strips[0] if strips else None)
+            ax.set_facecolor("none")  # an arrow on a strip's edge stays visible over its neighbour
+            strips.append(ax)
+        strips[0].set_title(_factor_label(geo, j), loc="left", fontweight="bold", pad=6)
+        if geo.moves_in_proportion([j]):
+            strips[-1].set_xlabel("the other free components in proportion", fontsize=7.5, color="#555555",
+                                  labelpad=2)
+        cards[j] = strips
+    return fig, cards, legend_ncol
 
 
-def _slice_panel(ax, geo: _Geometry, runs: RunsTable, safe: np.ndarray, sl: SliceData, name: str,
-                 x0: float) -> list[float]:
-    """Draw one model along one slice through x0; return the values its row's y range must hold."""
+def _slice_strip(ax, geo: _Geometry, runs: RunsTable, safe: np.ndarray, sl: SliceData, name: str,
+                 x0: float) -> tuple[list[float], tuple | None]:
+    """Draw one model along one slice through x0.
+
+    Returns the values the strip must show (runs, limits, mean) and the
+    band as (positions, lower, upper), or None without a model; the strip
+    shows the band as far as it stays near those values.
+    """
     j = sl.factor
     pos = _positions(geo, j, sl.t)
     at = float(_positions(geo, j, [x0])[0])
@@ -240,53 +259,127 @@ def _slice_panel(ax, geo: _Geometry, runs: RunsTable, safe: np.ndarray, sl: Slic
     y = runs.Y[name]
     ok = ~runs.pending & np.isfinite(y)
     measured_ok, measured_bad = runs_style()
-    ax.scatter(_positions(geo, j, runs.X[ok & safe, j]) + shift, y[ok & safe], **measured_ok)
-    ax.scatter(_positions(geo, j, runs.X[ok & ~safe, j]) + shift, y[ok & ~safe], **measured_bad)
-    values = list(y[ok])
-    mean = sl.mean[name]
-    if mean is None:
-        ax.text(0.5, 0.5, "no model\n(fails closed)", transform=ax.transAxes,
-                ha="center", va="center", fontsize=8.5, color="#444444")
-    else:
-        mean, lo, hi = sl.band(name)
-    if mean is None:
-        pass
-    elif sl.discrete:
-        ax.errorbar(pos, mean, yerr=np.vstack([mean - lo, hi - mean]), fmt="s", ms=4.5, color=OKABE_ITO["blue"],
-                    ecolor=OKABE_ITO["blue"], elinewidth=1.2, capsize=3, zorder=3)
+    ax.scatter(_positions(geo, j, runs.X[ok & safe, j]) + shift, y[ok & safe], **dict(measured_ok, s=16))
+    ax.scatter(_positions(geo, j, runs.X[ok & ~safe, j]) + shift, y[ok & ~safe], **dict(measured_bad, s=22))
+    core = list(y[ok]) + _limit_values(geo, name)
+    if sl.mean[name] is None or not sl.t.size:
+        ax.text(0.5, 0.5, "no model (fails closed)", transform=ax.transAxes,
+                ha="center", va="center", fontsize=8, color="#444444")
+        return core, None
+    # the centre and 95% interval in the response's own units (a binomial rate: its median
+    # and interval, inside [0, 1])
+    mean, lo, hi = sl.band(name)
+    if sl.discrete:
+        ax.errorbar(pos, mean, yerr=np.vstack([mean - lo, hi - mean]), fmt="s", ms=4, color=OKABE_ITO["blue"],
+                    ecolor=OKABE_ITO["blue"], elinewidth=1.1, capsize=2.5, zorder=3)
     else:
         ax.fill_between(pos, lo, hi, color=OKABE_ITO["sky"], alpha=0.35, lw=0, zorder=1)
         ax.plot(pos, mean, color=OKABE_ITO["blue"], lw=1.6, zorder=2)
-    if mean is not None:
-        values += [float(np.min(lo)), float(np.max(hi))]
-    values += _limit_values(geo, name)
+    core += [float(np.min(mean)), float(np.max(mean))]
+    band = (pos, lo, hi)
+    k = int(np.argmin(np.abs(sl.t - x0)))
+    ax.plot([at], [mean[k]], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"],
+            mew=0.7, ls="none", zorder=6)
+    ax.annotate(format_cell(float(mean[k]), digits=3), (at, mean[k]), xytext=(7, 5),
+                textcoords="offset points", fontsize=7.5, color=OKABE_ITO["black"], zorder=7,
+                bbox=dict(boxstyle="round,pad=0.12", fc="white", ec="none", alpha=0.8))
+    return core, band
+
+
+def _strip_axes(ax, geo: _Geometry, sl: SliceData, j: int, *, last: bool) -> None:
+    """Ticks of one strip: the factor's values under the last strip of a card only."""
+    ax.yaxis.set_major_locator(MaxNLocator(3))
+    ax.tick_params(axis="y", labelsize=7.5)
+    ax.xaxis.set_major_locator(MaxNLocator(5))
+    if sl.discrete:
+        pos = _positions(geo, j, sl.t)
+        _level_ticks(ax.xaxis, pos, sl.t)
+        ax.set_xlim(-0.5, pos.size - 0.5 + _RUNS_SHIFT)
+    if not last:
+        ax.tick_params(labelbottom=False)
+    ax.spines["bottom"].set_visible(last)
+
+
+def _proposal_caret(ax, at: float) -> None:
+    """A caret under the card at the proposal's setting, on the factor's axis."""
+    ax.plot([at], [0.0], marker="^", ms=7, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], mew=0.6,
+            ls="none", transform=ax.get_xaxis_transform(), clip_on=False, zorder=8)
+
+
+def _strip_range(core: Sequence[float], band: Sequence[float]) -> tuple[float, float]:
+    """One y range for a response's strips: every run, limit and mean, the band as far as it stays near.
+
+    The top keeps room for the strip's label.
+    """
+    core = np.asarray([v for v in core if np.isfinite(v)], dtype=float)
+    band = np.asarray([v for v in band if np.isfinite(v)], dtype=float)
+    if core.size == 0 and band.size == 0:
+        return 0.0, 1.0
+    if core.size == 0:
+        core = band
+    lo, hi = float(core.min()), float(core.max())
+    span = hi - lo if hi > lo else max(abs(hi), 1.0) * 0.1
+    reach_lo, reach_hi = lo - _BAND_REACH * span, hi + _BAND_REACH * span
+    if band.size:
+        lo = min(lo, max(float(band.min()), reach_lo))
+        hi = max(hi, min(float(band.max()), reach_hi))
+    pad = 0.07 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 0.1
+    return lo - pad, hi + pad + _LABEL_ROOM * (hi - lo + 2 * pad)
+
+
+def _finish_strip(ax, geo: _Geometry, name: str, lo: float, hi: float, band: tuple | None) -> bool:
+    """The strip's y range, its limit lines with the side beyond them shaded, its label, and a cut band's arrows."""
+    ax.set_ylim(lo, hi)
+    lim = geo.limit_rule(name)
+    if lim is not None:
+        if lim.upper is not None and lim.upper < hi:
+            ax.axhspan(lim.upper, hi, **_BEYOND_LIMIT)
+        if lim.lower is not None and lim.lower > lo:
+            ax.axhspan(lo, lim.lower, **_BEYOND_LIMIT)
     _limit_lines(ax, geo, name)
-    ax.axvline(at, color=OKABE_ITO["black"], ls=":", lw=1.0, zorder=2)
-    if mean is not None and sl.t.size:
-        k = int(np.argmin(np.abs(sl.t - x0)))
-        ax.plot([at], [mean[k]], marker="*", ms=11, color=OKABE_ITO["purple"],
-                mec=OKABE_ITO["black"], mew=0.7, ls="none", zorder=5)
-    return values
+    ax.text(0.012, 0.94, _strip_label(geo, name), transform=ax.transAxes, ha="left", va="top", fontsize=7.5,
+            zorder=9, bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="#c8c8c8", lw=0.5, alpha=0.85))
+    return band is not None and _band_cut_arrows(ax, *band, lo, hi)
 
 
-def _share_ylim(axes, values: Sequence[float]) -> None:
-    """One y range for a row of panels, holding every finite value with a small margin."""
-    values = np.asarray(values, dtype=float)
-    values = values[np.isfinite(values)]
-    if values.size == 0:
-        return
-    lo, hi = float(values.min()), float(values.max())
-    pad = 0.06 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 0.1
-    for ax in axes:
-        ax.set_ylim(lo - pad, hi + pad)
+def _band_cut_arrows(ax, pos: np.ndarray, lower: np.ndarray, upper: np.ndarray, lo: float, hi: float) -> bool:
+    """An arrow at the strip's edge where its band reaches furthest past it; True if there is one."""
+    cut = False
+    for values, edge, marker, beyond in ((upper, 1.0, "^", upper > hi), (lower, 0.0, "v", lower < lo)):
+        if np.any(beyond):
+            cut = True
+            k = int(np.argmax(values)) if edge == 1.0 else int(np.argmin(values))
+            ax.plot([pos[k]], [edge], marker=marker, ms=6, color=OKABE_ITO["sky"], mec=OKABE_ITO["blue"],
+                    mew=0.8, ls="none", transform=ax.get_xaxis_transform(), clip_on=False, zorder=9)
+    return cut
+
+
+def _strip_label(geo: _Geometry, name: str) -> str:
+    """A response's name, unit and role, written inside its strip."""
+    p = geo.protocol
+    short = name if len(name) <= 24 else name[:22] + "..."
+    if name == p.objective.name:
+        better = "higher" if p.maximize else "lower"
+        return f"{_with_unit(short, p.objective.unit)} · objective, {better} is better"
+    lim = geo.limit_rule(name)
+    unit = next((x.unit for x in p.limits if x.name == name), "")
+    sides = []
+    if lim.lower is not None:
+        sides.append(f">= {lim.lower:g}")
+    if lim.upper is not None:
+        sides.append(f"<= {lim.upper:g}")
+    return f"{_with_unit(short, unit)} · limit {' and '.join(sides)}"
 
 
 def _slice_intro(geo: _Geometry, factors: Sequence[int]) -> str:
-    parts = ["Each column moves one factor with the others held at the proposal's values (dotted "
-             "line); each row is one model. The band is the 95% interval (for a limit, of a new "
-             "measurement, as the screen uses it). Runs made so far are drawn at their own value of "
-             "the moved factor, whatever their other factors: they are projections, not points on "
-             "the curve."]
+    parts = ["Each card moves one factor with the others held at the proposal's values; its strips are the "
+             "models, one per response, on the same axis. The star on each curve is the proposal, with its "
+             "predicted value, and the caret under the card marks its setting. The band is the 95% "
+             "interval (for a limit, of a new measurement, as the screen uses it); the shaded side of a "
+             "limit line breaks the limit. A band that reaches far past the runs, the limits and the mean "
+             "is cut at the strip's edge, with an arrow where it reaches furthest. A response's strips share one scale "
+             "across the cards. Runs made so far are drawn at their own value of the moved factor, "
+             "whatever their other factors: they are projections, not points on the curve."]
     rates = [r.name for r in geo.rules.limits if r.binomial]
     if rates:
         parts.append(f"A rate of events among subjects ({', '.join(rates)}) is shown as the median and 95% "

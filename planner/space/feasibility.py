@@ -1,4 +1,4 @@
-"""Is the design space empty, and why; the real range of each factor; its centre.
+"""Is the design space empty, and why; the reachable range of each factor; its centre.
 
 Each answer is a cvxpy linear (or, with exact discrete levels, mixed-integer)
 programme. :func:`space_check` puts them together in a :class:`SpaceCheck`;
@@ -208,7 +208,7 @@ def geometry(space: DesignSpace) -> tuple[np.ndarray, Slice | None]:
 
 
 def space_check(space: DesignSpace) -> SpaceCheck:
-    """Is the space empty (and why), real factor ranges, and its Chebyshev centre."""
+    """Is the space empty (and why), reachable factor ranges, and its Chebyshev centre."""
     d = space.n_factors
     nan_ranges = read_only(np.full((d, 2), np.nan))
     nan_centre = read_only(np.full(d, np.nan))

@@ -38,7 +38,7 @@ class LevelCombinations:
     Parameters
     ----------
     space : DesignSpace
-        A space that is not empty; its real ranges and relaxed slice are
+        A space that is not empty; its reachable ranges and relaxed slice are
         used. :class:`DesignSpace` makes one of these on first use and keeps
         it, with every slice found so far.
     """
@@ -78,7 +78,7 @@ class LevelCombinations:
         return read_only(V[self.feasible(V)])
 
     def _candidates(self) -> list[np.ndarray]:
-        """Levels of each discrete factor that fall inside its real range."""
+        """Levels of each discrete factor that fall inside its reachable range."""
         ranges = self.space._geometry[0]
         out = []
         for j in self.columns:

@@ -7,7 +7,7 @@ rest it hands to the modules of this package, keeping their answers for the
 life of the space:
 
 - :mod:`~guardband.planner.space.feasibility`: emptiness and conflicting
-  constraints, the real range of each factor, the centre (cvxpy LPs);
+  constraints, the reachable range of each factor, the centre (cvxpy LPs);
 - :mod:`~guardband.planner.space.levels`: feasible combinations of discrete levels;
 - :mod:`~guardband.planner.space.sampler`: uniform candidates by hit-and-run
   (Smith 1984), which stays inside the polytope however thin it is;
@@ -219,7 +219,7 @@ class DesignSpace:
         )
 
     def _fixed(self, ranges: np.ndarray) -> np.ndarray:
-        """Factors whose real range is narrower than FIXED_RANGE_TOL of their declared span."""
+        """Factors whose reachable range is narrower than FIXED_RANGE_TOL of their declared span."""
         return (ranges[:, 1] - ranges[:, 0]) < FIXED_RANGE_TOL * self._scale
 
     # ------------------------------------------------------------------ basics
@@ -392,11 +392,11 @@ class DesignSpace:
     # --------------------------------------------------------------- scaling
     @property
     def free(self) -> np.ndarray:
-        """Boolean mask of shape (n_factors,): factors whose real range is not ~0."""
+        """Boolean mask of shape (n_factors,): factors whose reachable range is not ~0."""
         return ~self._fixed(self._require_nonempty().ranges)
 
     def to_unit(self, X) -> np.ndarray:
-        """Scale points to [0, 1] per factor by the real ranges; fixed factors map to 0.5.
+        """Scale points to [0, 1] per factor by the reachable ranges; fixed factors map to 0.5.
 
         Parameters
         ----------
@@ -430,7 +430,7 @@ class DesignSpace:
 
     # ------------------------------------------ answers from the other modules
     def check(self) -> SpaceCheck:
-        """Is the space empty (and why), real factor ranges, and its Chebyshev centre.
+        """Is the space empty (and why), reachable factor ranges, and its Chebyshev centre.
 
         Returns
         -------

@@ -1,13 +1,13 @@
 """Slices of the design space in walk coordinates, and their interior points.
 
 A slice is the polytope with some columns held at fixed values (factors
-whose real range is ~0, and discrete factors at one level combination).
+whose reachable range is ~0, and discrete factors at one level combination).
 :class:`SliceFamily` finds a slice's Chebyshev centre (the interior point
 every hit-and-run chain starts from), turns inequalities that hold with
 equality everywhere into equalities, and rounds a thin slice by its largest
 inscribed ellipsoid; :class:`Slice` maps walk coordinates back to factors.
 
-Coordinates. Every free factor is scaled by its real range to [0, 1]; the
+Coordinates. Every free factor is scaled by its reachable range to [0, 1]; the
 Chebyshev radius and the walk live in those unit-scaled coordinates,
 restricted to the affine hull of the equalities. A uniform distribution is
 preserved by this affine change of variables.

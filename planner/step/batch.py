@@ -82,11 +82,17 @@ class _Head:
     def condition(self, j: int, y_j: float) -> None:
         self._posterior.condition(j, y_j)
 
-    def __getattr__(self, name):  # the guarded posterior's parts, cut to the pool points
+    @property
+    def points(self):
+        return self._posterior.points[: self._n]
+
+    def __getattr__(self, name):  # the posterior's parts, cut to the pool points
         if name == "mean_sd_parts" and hasattr(self._posterior, name):
             def parts(*, include_noise: bool = False):
                 return tuple(a[: self._n] for a in self._posterior.mean_sd_parts(include_noise=include_noise))
             return parts
+        if name in ("runs_view", "lattice_prediction") and hasattr(self._posterior, name):
+            return getattr(self._posterior, name)  # the fitted model's, not point-wise
         raise AttributeError(name)
 
 

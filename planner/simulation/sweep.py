@@ -152,7 +152,11 @@ def _run_local(tasks, workers: int, progress) -> list:
 
 def _run_dask(tasks, scheduler, progress) -> list:
     """The tasks on a Dask distributed cluster: ``scheduler`` is an address or a ``Client``."""
-    from dask.distributed import Client, as_completed
+    try:
+        from dask.distributed import Client, as_completed
+    except ImportError:
+        raise ValueError("running on a Dask cluster needs the 'distributed' package: "
+                         "pip install 'guardband[cluster]'") from None
 
     own = not isinstance(scheduler, Client)
     client = Client(scheduler) if own else scheduler

@@ -8,6 +8,7 @@ from __future__ import annotations
 import math
 
 import matplotlib as mpl
+from matplotlib.transforms import offset_copy
 
 from guardband.planner import __version__
 from guardband.planner.report.style import (OKABE_ITO, REPORT_RC, axes_grid, finish_figure, legend_rows,
@@ -40,6 +41,7 @@ def tradeoff_figure(result):
         handles = []
         for i, name in enumerate(scenarios):
             ax = axes.flat[i]
+            most, tallest = 0.0, 0.0
             for j, label in enumerate(settings):
                 r = next((r for r in rows if r["scenario"] == name and r["setting"] == label), None)
                 if r is None:
@@ -49,20 +51,26 @@ def tradeoff_figure(result):
                     continue
                 lo = y - r[lo_k] if math.isfinite(r[lo_k]) else 0.0
                 hi = r[hi_k] - y if math.isfinite(r[hi_k]) else 0.0
+                # settings side by side (a few points apart on the page), so equal figures stay visible
+                shift = offset_copy(ax.transData, fig=fig, x=5.0 * (j - (len(settings) - 1) / 2), units="points")
                 h = ax.errorbar([x], [y], yerr=[[lo], [hi]], fmt=_MARKERS[j % len(_MARKERS)], ms=6,
-                                color=_COLOURS[j % len(_COLOURS)], capsize=3, lw=1.1, label=label)
+                                color=_COLOURS[j % len(_COLOURS)], capsize=3, lw=1.1, label=label,
+                                transform=shift)
+                most, tallest = max(most, x), max(tallest, y + hi)
                 if i == 0:
                     handles.append(h)
             ax.set_title(f"scenario {name}")
             ax.set_xlabel("planned runs that broke a limit (%)")
             ax.set_ylabel(("true gap" if noisy else "gap") + " at the end (median, quartiles)")
-            ax.set_xlim(left=-0.5)
-            ax.set_ylim(bottom=0)
+            ax.set_xlim(-0.05 * max(most, 5.0), 1.1 * max(most, 5.0))
+            # the shifted markers do not update the data limits: set both axes from the figures
+            ax.set_ylim(0, 1.1 * tallest if tallest > 0 else 1.0)
         for ax in axes.flat[len(scenarios):]:
             ax.set_visible(False)
         legend_top(fig, handles, 2)
     caption = ("Lower left is better: a small gap to the known optimum, few planned runs that broke a "
                "limit. Each marker is one setting; the bar spans the quartiles of the gap over the seeds. "
+               "Markers are drawn a few points apart on the page so that equal figures stay visible. "
                "A setting missing from a panel had no safe run in most campaigns (infinite gap).")
     return finish_figure(fig, "tradeoff", "Gap to the optimum against limit breaks", caption, "sweep")
 

@@ -11,6 +11,10 @@ independent and their results do not depend on where they run:
 - ``workers>1``: a local process pool (joblib);
 - ``scheduler="tcp://host:8786"``: an existing Dask distributed cluster
   (``dask.distributed.Client``); its workers need Guardband installed.
+  Workers should be processes with one thread each (``dask worker
+  --nthreads 1``): run in threads of one process, the same runs were
+  proposed but the joint figures differed in their last bits (seen with a
+  ``LocalCluster(processes=False)``; not explained yet).
 
 Seed i of a sweep uses the same starting design and campaign seed as seed i
 of :func:`~planner.simulation.runner.simulate` (its ``protocol`` strategy),

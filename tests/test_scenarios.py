@@ -148,3 +148,22 @@ def test_cli_simulates_the_protocols_own_limit_not_the_problems(tmp_path):
     same = CliRunner().invoke(app, ["simulate", "-", "--problem", "dose", "--seeds", "1", "--budget", "1",
                                     "--workers", "1", "--strategies", "random"])
     assert same.exit_code == 0 and "note:" not in same.output
+
+
+def test_optimum_search_does_not_stop_short_of_the_limits():
+    # regression: in the pessimistic tablet truth SLSQP stopped a hair outside a limit (a failed
+    # line search) and every polished point was dropped, leaving the best sample (29.6, neither
+    # limit binding) as the "optimum". Dissolution there rises with croscarmellose and falls with
+    # force, which the degradant and friability limits stop: both must bind at the optimum.
+    protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
+    found = load_scenarios(PROTOCOLS / "tablet_blend_scenarios.toml", protocol)
+    for sc in found.scenarios:
+        if sc.drawn:
+            continue
+        at = sc.problem.evaluate(np.array([sc.problem.optimum_x]))
+        assert at["degradant_b"][0] == pytest.approx(0.2, abs=1e-6), sc.name
+        assert at["friability"][0] == pytest.approx(1.0, abs=1e-6), sc.name
+        X = protocol.design_space().sample(20_000, rng=np.random.default_rng(99))
+        Y = sc.problem.evaluate(X)
+        ok = met_every_limit(protocol, Y)
+        assert np.max(Y["dissolution_30min"][ok]) <= sc.problem.optimum + 1e-9

@@ -208,6 +208,7 @@ class SweepCell:
             out[key] = final[key]
         half = self.result.summary_rows([self.result.budget // 2])[0]
         out["gap_median_halfway"] = half["gap_median"]
+        out["gap_true_median_halfway"] = half["gap_true_median"]
         out["within"] = self.within
         out.update(reached=int(np.isfinite(runs).sum()), runs_until_within_q25=q[0],
                    runs_until_within_median=q[1], runs_until_within_q75=q[2])
@@ -230,7 +231,8 @@ class SweepResult:
 
     CSV_COLUMNS = ("setting", "scenario") + SWEEP_KEYS + (
         "start_runs", "planned_runs", "seeds", "gap_q25", "gap_median", "gap_q75", "gap_true_q25",
-        "gap_true_median", "gap_true_q75", "gap_median_halfway", "broken_pooled", "runs_made", "no_safe_run",
+        "gap_true_median", "gap_true_q75", "gap_median_halfway", "gap_true_median_halfway", "broken_pooled",
+        "runs_made", "no_safe_run",
         "stalled", "within", "reached", "runs_until_within_q25", "runs_until_within_median",
         "runs_until_within_q75", "promised_joint_mean", "observed_met_share", "n_promised")
 
@@ -262,14 +264,14 @@ class SweepResult:
         """The readable table: one row per (setting, scenario)."""
         noisy = self.noise_scale > 0
         head = ["setting", "scenario", ("true gap at the chosen run" if noisy else "gap") + " (median [IQR])",
-                "gap halfway", "broke a limit", "runs until within (median [IQR], reached)", "stalled",
+                ("true gap" if noisy else "gap") + " halfway", "broke a limit", "runs until within (median [IQR], reached)", "stalled",
                 "promised / met"]
         rows = []
         for r in self.rows():
             g = ("gap_true_" if noisy else "gap_")
             rows.append([r["setting"], r["scenario"],
                          f"{_fmt(r[g + 'median'])} [{_fmt(r[g + 'q25'])}, {_fmt(r[g + 'q75'])}]",
-                         _fmt(r["gap_median_halfway"]), _pct(r["broken_pooled"]),
+                         _fmt(r[g + "median_halfway"]), _pct(r["broken_pooled"]),
                          f"{_fmt(r['runs_until_within_median'])} [{_fmt(r['runs_until_within_q25'])}, "
                          f"{_fmt(r['runs_until_within_q75'])}], {r['reached']}/{r['seeds']} (within "
                          f"{_fmt(r['within'])})",

@@ -91,7 +91,7 @@ def test_bad_scenario_files_name_the_field(data, message):
 def test_example_scenario_files_load_and_each_optimum_meets_every_limit():
     for stem in ("tablet_blend", "dose_combination"):
         protocol = load_protocol(PROTOCOLS / f"{stem}.toml")
-        found = load_scenarios(PROTOCOLS / f"{stem}_scenarios.toml", protocol)
+        found = load_scenarios(PROTOCOLS / "scenarios" / f"{stem}_scenarios.toml", protocol)
         assert len(found.scenarios) >= 3
         for sc in found.scenarios:
             if sc.drawn:
@@ -105,7 +105,7 @@ def test_example_scenario_files_load_and_each_optimum_meets_every_limit():
 
 def test_drawn_truths_are_one_per_seed_and_repeatable():
     protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
-    found = load_scenarios(PROTOCOLS / "tablet_blend_scenarios.toml", protocol)
+    found = load_scenarios(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml", protocol)
     drawn = next(sc for sc in found.scenarios if sc.drawn)
     a, b, a2 = drawn.problem_for(0, 0), drawn.problem_for(0, 1), drawn.problem_for(0, 0)
     X = protocol.design_space().sample(20, rng=np.random.default_rng(3))
@@ -133,8 +133,8 @@ def test_cli_simulates_the_protocols_own_limit_not_the_problems(tmp_path):
     # the reported bug: with the dose protocol, simulate printed the built-in problem's
     # limit (tox_rate <= 0.25 with probability >= 0.95) instead of the protocol's own
     dose = str(PROTOCOLS / "dose_combination.toml")
-    result = CliRunner().invoke(app, ["simulate", dose, "--scenarios",
-                                      str(PROTOCOLS / "dose_combination_scenarios.toml"), "--seeds", "1",
+    scenarios = str(PROTOCOLS / "scenarios" / "dose_combination_scenarios.toml")
+    result = CliRunner().invoke(app, ["simulate", dose, "--scenarios", scenarios, "--seeds", "1",
                                       "--budget", "2", "--workers", "1", "--pool", "200"])
     assert result.exit_code == 0, result.output
     assert "dlt_rate <= 0.25 fraction of cohort with probability >= 0.9" in result.stdout
@@ -156,7 +156,7 @@ def test_optimum_search_does_not_stop_short_of_the_limits():
     # limit binding) as the "optimum". Dissolution there rises with croscarmellose and falls with
     # force, which the degradant and friability limits stop: both must bind at the optimum.
     protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
-    found = load_scenarios(PROTOCOLS / "tablet_blend_scenarios.toml", protocol)
+    found = load_scenarios(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml", protocol)
     for sc in found.scenarios:
         if sc.drawn:
             continue

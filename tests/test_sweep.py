@@ -108,7 +108,7 @@ def test_runs_until_within_counts_planned_runs(local):
 @pytest.mark.slow
 def test_drawn_scenarios_measure_each_gap_from_their_own_optimum():
     protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
-    found = load_scenarios(PROTOCOLS / "tablet_blend_scenarios.toml", protocol)
+    found = load_scenarios(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml", protocol)
     drawn = [sc for sc in found.scenarios if sc.drawn]
     data = protocol.model_dump(mode="python")
     data["batch"].update(pool=200, refine=0)

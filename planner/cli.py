@@ -29,7 +29,7 @@ import typer
 
 from guardband.planner import __version__
 from guardband.planner.settings import MAX_RUNS_DEFAULT
-from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError
+from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text
 from guardband.planner.app.textable import render_table, wrap_text
 from guardband.planner.inputs.names import shown
@@ -486,44 +486,8 @@ def report(
 
 
 # ---------------------------------------------------------------- simulate
-@app.command()
-@_guarded
-def simulate(
-    protocol: Optional[str] = typer.Argument(
-        None, help="Protocol whose planner settings are simulated (threshold, joint, ranking, batch, "
-                   "pool); '-' uses the problem's own."),
-    problem: str = typer.Option(..., "--problem", "-p", help="Test problem: gramacy, tablet, dose or coating."),
-    budget: Optional[int] = typer.Option(None, "--budget", "-b", min=1, max=10000,
-                                         help="Planned runs per campaign (default: the problem's)."),
-    seeds: int = typer.Option(5, "--seeds", "-s", min=1, max=10000, help="Campaigns per strategy."),
-    start: Optional[int] = typer.Option(None, "--start", min=3, max=10000,
-                                        help="Starting runs per campaign (default: the problem's)."),
-    noise: list[str] = typer.Option([], "--noise", help="Measurement noise: a scale of the problem's "
-                                    "noise (0 off, 1 as stated) or NAME=SD; repeat for several."),
-    workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1, max=256,
-                                          help="Worker processes (default: min(2, CPUs))."),
-    strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
-                                   "bound, mean, random, classical, screen-off; or all."),
-    seed: int = typer.Option(0, "--seed", min=0, max=2**63 - 1, help="Base seed."),
-    pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000,
-                                       help="Candidate pool of every planning step (default: the settings')."),
-    settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
-                                               help="Use the problem's own planner settings (same as '-')."),
-    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
-                                      help="Also write the CSV to this file."),
-    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
-) -> None:
-    """Simulate campaigns on a test problem: what the protocol's settings cost and risk."""
-    import time
-
-    from guardband.planner.app.simulate_options import OptionError, simulate_from_options
-
-    if protocol is None and not settings_from_problem:
-        raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",
-                                 param_hint="PROTOCOL")
-    if protocol not in (None, "-") and settings_from_problem:
-        raise typer.BadParameter("give either a settings protocol or --settings-from-problem, not both",
-                                 param_hint="PROTOCOL")
+def _progress_bar(label: str):
+    """``(progress, close)``: a progress bar on stderr when both streams are a terminal, else nothing."""
     show = sys.stdout.isatty() and sys.stderr.isatty()
     bar: dict = {}
 
@@ -531,21 +495,96 @@ def simulate(
         if not show:
             return
         if "bar" not in bar:
-            bar["bar"] = typer.progressbar(length=total, label="simulating", file=sys.stderr)
+            bar["bar"] = typer.progressbar(length=total, label=label, file=sys.stderr)
             bar["bar"].__enter__()
         bar["bar"].update(1)
 
+    def close() -> None:
+        if "bar" in bar:
+            bar["bar"].__exit__(None, None, None)
+
+    return progress, close
+
+
+@app.command()
+@_guarded
+def simulate(
+    protocol: Optional[str] = typer.Argument(
+        None, help="With --scenarios: the protocol whose own factors, limits and settings are simulated. "
+                   "With --problem: the protocol whose planner settings are used; '-' uses the problem's own."),
+    problem: Optional[str] = typer.Option(None, "--problem", "-p",
+                                          help="Built-in test problem: gramacy, tablet, dose or coating."),
+    scenarios: Optional[Path] = typer.Option(None, "--scenarios", help="Scenario file (TOML): true responses "
+                                             "of the protocol's own factors (see the README)."),
+    vary: list[str] = typer.Option([], "--vary", help="Sweep a setting: KEY=V1,V2 with KEY threshold, rule, "
+                                   "batch, start, budget or max_step; repeat for several."),
+    budget: Optional[int] = typer.Option(None, "--budget", "-b", min=1, max=10000,
+                                         help="Planned runs per campaign (default: the problem's or the file's)."),
+    seeds: int = typer.Option(5, "--seeds", "-s", min=1, max=10000, help="Campaigns per strategy or setting."),
+    start: Optional[int] = typer.Option(None, "--start", min=3, max=10000,
+                                        help="Starting runs per campaign (default: the problem's or the file's)."),
+    noise: list[str] = typer.Option([], "--noise", help="Measurement noise: a scale of the stated noise "
+                                    "(0 off, 1 as stated) or, for a problem, NAME=SD; repeat for several."),
+    workers: Optional[int] = typer.Option(None, "--workers", "-w", min=1, max=256,
+                                          help="Worker processes (default: min(2, CPUs))."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Run a sweep's campaigns on this Dask "
+                                            "distributed scheduler (e.g. tcp://10.0.0.5:8786)."),
+    within: Optional[float] = typer.Option(None, "--within", min=0.0, help="Distance to the optimum "
+                                           "(objective units) for 'runs until within' (default 1% of it)."),
+    strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
+                                   "bound, mean, random, classical, screen-off; or all (--problem only)."),
+    seed: int = typer.Option(0, "--seed", min=0, max=2**63 - 1, help="Base seed."),
+    pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000,
+                                       help="Candidate pool of every planning step (default: the settings')."),
+    settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
+                                               help="Use the problem's own planner settings (same as '-')."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Also write the CSV to this file."),
+    out_dir: Optional[Path] = typer.Option(None, "--out-dir", help="Sweep: write the summary CSV, one CSV "
+                                           "per setting and scenario, and sweep.html into this folder."),
+    format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
+) -> None:
+    """Simulate campaigns: on a built-in problem, or on scenarios of your own protocol, over settings."""
+    import time
+
+    from guardband.planner.app.simulate_options import OptionError
+
+    if (problem is None) == (scenarios is None):
+        raise typer.BadParameter("give either --problem NAME or --scenarios FILE", param_hint="--problem")
+    sweep = scenarios is not None or bool(vary) or scheduler is not None or out_dir is not None
+    if sweep and strategies != "all":
+        raise typer.BadParameter("--strategies compares strategies on a built-in problem; a sweep varies "
+                                 "settings (--vary)", param_hint="--strategies")
+    if protocol is None and not settings_from_problem and scenarios is None:
+        raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",
+                                 param_hint="PROTOCOL")
+    if protocol not in (None, "-") and settings_from_problem:
+        raise typer.BadParameter("give either a settings protocol or --settings-from-problem, not both",
+                                 param_hint="PROTOCOL")
+    progress, close = _progress_bar("simulating")
     began = time.perf_counter()
     try:
-        result = simulate_from_options(problem, None if settings_from_problem else protocol,
-                                       budget=budget, seeds=seeds, start=start, noise_values=noise,
-                                       strategies=strategies, workers=workers, seed=seed,
-                                       pool_size=pool, progress=progress)
+        if sweep:
+            _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, seeds, seed, within,
+                            workers, scheduler, pool, out, out_dir, format, progress, close)
+        else:
+            _simulate_problem(None if settings_from_problem else protocol, problem, budget, seeds, start, noise,
+                              strategies, workers, seed, pool, out, format, progress, close)
     except OptionError as exc:
         raise typer.BadParameter(str(exc)) from None
     finally:
-        if "bar" in bar:
-            bar["bar"].__exit__(None, None, None)
+        close()
+    _err(f"simulated in {time.perf_counter() - began:.1f} s")
+
+
+def _simulate_problem(settings, problem, budget, seeds, start, noise, strategies, workers, seed, pool, out,
+                      format, progress, close) -> None:
+    from guardband.planner.app.simulate_options import OptionError, simulate_from_options, world_note
+    from guardband.planner.simulation import get_problem
+
+    result = simulate_from_options(problem, settings, budget=budget, seeds=seeds, start=start, noise_values=noise,
+                                   strategies=strategies, workers=workers, seed=seed, pool_size=pool,
+                                   progress=progress)
+    close()
     csv_text = result.csv_text()
     if out is not None:
         atomic_write_text(out, csv_text)
@@ -556,9 +595,53 @@ def simulate(
     else:
         _show(result.table_text())
         _show(_cautions_block(result.cautions()))
+    try:
+        note = world_note(get_problem(problem), settings)
+    except ValueError as exc:
+        raise OptionError(str(exc)) from None
+    if note:
+        _err(f"note: {note}")
     n = sum(len(v) for k, v in result.histories.items() if k not in result.same_as)
-    _err(f"simulated {n} campaigns in {time.perf_counter() - began:.1f} s with {result.workers} worker(s)"
-         + (f"; wrote {out}" if out is not None else ""))
+    _err(f"{n} campaigns with {result.workers} worker(s)" + (f"; wrote {out}" if out is not None else ""))
+
+
+def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, seeds, seed, within, workers,
+                    scheduler, pool, out, out_dir, format, progress, close) -> None:
+    from guardband.planner.app.fileio import atomic_write_many
+    from guardband.planner.app.simulate_options import sweep_from_options
+    from guardband.planner.models import default_workers
+    from guardband.planner.report.sweep import sweep_html
+
+    result, title, kind = sweep_from_options(
+        protocol, scenarios_path=scenarios, problem=problem, vary_values=vary, noise_values=noise, start=start,
+        budget=budget, seeds=seeds, seed=seed, within=within,
+        workers=default_workers() if workers is None else workers, scheduler=scheduler, pool_size=pool,
+        progress=progress)
+    close()
+    files: dict = {}
+    if out is not None:
+        files[out] = result.csv_text()
+    if out_dir is not None:
+        files.update({out_dir / name: text for name, text in result.files().items()})
+        files[out_dir / "sweep.html"] = sweep_html(result, title=title, kind=kind)
+    if files:
+        if out_dir is not None:
+            try:
+                out_dir.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise OutputError(f"{out_dir}: cannot make the folder ({exc.strerror})") from None
+        atomic_write_many(files)
+    if format is Format.json:
+        _echo(_json(result.to_dict()))
+    elif format is Format.csv:
+        _echo(result.csv_text(), nl=False)
+    else:
+        _show(result.table_text())
+        _show(_cautions_block(result.cautions()))
+    for note in result.notes:
+        _err(note)
+    _err(f"{len(result.cells) * result.seeds} campaigns on {result.runner}"
+         + (f"; wrote {len(files)} file(s)" + (f" into {out_dir}" if out_dir is not None else "") if files else ""))
 
 
 # --------------------------------------------------------------- reference
@@ -581,7 +664,7 @@ def reference(
 
     text = protocol_reference_markdown() if format is RefFormat.markdown else protocol_json_schema_text()
     if out is None:
-        typer.echo(text, nl=False)
+        _echo(text, nl=False)
     else:
         atomic_write_text(out, text)
         _err(f"wrote {out}")

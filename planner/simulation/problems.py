@@ -313,6 +313,26 @@ def limit_slack(protocol: Protocol, values: dict, *, margin: dict | None = None)
     return np.array(out)
 
 
+def _pulled_back(protocol: Protocol, evaluate, start: np.ndarray, x: np.ndarray, steps: int = 40) -> np.ndarray:
+    """``x`` if it meets every limit; else the feasible point nearest it on the segment from ``start``.
+
+    SLSQP can stop a hair outside a limit (a failed line search at the
+    boundary); bisection on the segment from a start that meets every limit
+    finds the last point of it that still does. The segment lies in the
+    design space (a convex polytope holding both ends).
+    """
+    def ok(t: float) -> bool:
+        return bool(met_every_limit(protocol, evaluate((start + t * (x - start))[None, :]))[0])
+
+    if ok(1.0):
+        return x
+    lo, hi = 0.0, 1.0
+    for _ in range(steps):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if ok(mid) else (lo, mid)
+    return start + lo * (x - start)
+
+
 def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int = 20,
                    seed: int = 0) -> OptimumResult:
     """The best objective among points meeting every limit.
@@ -369,8 +389,12 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     starts += list(rng.choice(idx, size=min(n_polish, idx.size), replace=False))
     best_x, best_v = X[order[0]].copy(), float(sign * Y[obj][order[0]])
 
+    # the objective in units of its sampled spread: SLSQP's tolerances then mean the same on
+    # every problem (a response in % and factors in fractions left its line search stranded)
+    spread = max(float(np.ptp(Y[obj][idx])), 1e-12)
+
     def f(x):
-        return sign * float(problem.evaluate(x[None, :])[obj][0])
+        return sign * float(problem.evaluate(x[None, :])[obj][0]) / spread
 
     margin = {name: OPTIMUM_MARGIN * s for name, s in scale.items()}
 
@@ -383,6 +407,7 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
         x = slsqp_in_space(space, X[i], f, g, maxiter=300, ftol=1e-12)
         if x is None:
             continue
+        x = _pulled_back(protocol, problem.evaluate, X[i], x)
         y = problem.evaluate(x[None, :])
         if met_every_limit(protocol, y)[0] and sign * float(y[obj][0]) < best_v:
             best_x, best_v = x, sign * float(y[obj][0])

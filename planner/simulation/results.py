@@ -71,6 +71,9 @@ class SimulationResult:
     noise_scale : float
     noise : dict
     workers : int
+    optima : tuple of float
+        The known optimum of each seed's campaign, when the truth differs
+        from seed to seed (drawn scenarios); empty: the problem's optimum.
     """
 
     problem: Problem
@@ -85,6 +88,11 @@ class SimulationResult:
     noise_scale: float
     noise: dict
     workers: int
+    optima: tuple = ()
+
+    def optimum_of(self, seed_index: int) -> float:
+        """The known optimum of one seed's campaign."""
+        return float(self.optima[seed_index]) if self.optima else float(self.problem.optimum)
 
     # -------------------------------------------------------- trajectories
     def trajectories(self, strategy: str) -> dict[str, np.ndarray]:
@@ -121,8 +129,9 @@ class SimulationResult:
                     chosen_true[s, k] = h.T[obj][chosen[last]]
                 if m:
                     broken[s, k] = float(np.mean(h.broke_limit[n_start:n_start + m]))
-        gap = np.where(np.isnan(best), np.inf, sign * (best - self.problem.optimum) + 0.0)  # no -0
-        gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - self.problem.optimum) + 0.0)
+        optimum = np.array([[self.optimum_of(s)] for s in range(S)]).reshape(S, 1)
+        gap = np.where(np.isnan(best), np.inf, sign * (best - optimum) + 0.0)  # no -0
+        gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - optimum) + 0.0)
         return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true}
 
     def checkpoints(self) -> list[int]:
@@ -218,8 +227,10 @@ class SimulationResult:
                f"{', '.join(str(v) for v in self.problem.cohort.values())}" if self.problem.cohort else ""))
         return [
             f"problem {self.problem.name}: {self.problem.source}",
-            f"known optimum {self.problem.optimum:.10g} ({p.objective.direction}) "
-            f"at {tuple(round(float(v), 6) for v in self.problem.optimum_x)}",
+            (f"known optimum of each seed's drawn truth ({p.objective.direction}): from "
+             f"{min(self.optima):.6g} to {max(self.optima):.6g}" if self.optima else
+             f"known optimum {self.problem.optimum:.10g} ({p.objective.direction}) "
+             f"at {tuple(round(float(v), 6) for v in self.problem.optimum_x)}"),
             f"{self.seeds} seeds (base seed {self.base_seed}); {self.n_start} starting runs + "
             f"{self.budget} planned runs; measurement noise {noise}",
             f"settings: threshold {p.screen.threshold:g} ({p.screen.joint}), rule {p.ranking.rule} "

@@ -1,0 +1,151 @@
+"""Sweeps: equal to today's simulator on a built-in problem, the same on a Dask cluster, their outputs."""
+
+from __future__ import annotations
+
+import csv
+import io
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from guardband.planner.app.simulate_options import OptionError, parse_vary
+from guardband.planner.cli import app
+from guardband.planner.inputs.protocol import load_protocol, parse_protocol
+from guardband.planner.simulation import combine_settings, get_problem, simulate
+from guardband.planner.simulation.problems import gramacy_protocol_dict
+from guardband.planner.simulation.scenarios import Scenario, load_scenarios
+from guardband.planner.simulation.sweep import Setting, run_sweep, settings_grid
+
+PROTOCOLS = __import__("pathlib").Path(__file__).resolve().parents[1] / "protocols"
+#: Small and fast planner settings (as in test_simulate).
+FAST = parse_protocol({**gramacy_protocol_dict(batch=2, rule="ei", threshold=0.9),
+                       "batch": {"size": 2, "pool": 200, "refine": 0}, "model": {"restarts": 1}})
+
+
+def _gramacy_sweep(**options):
+    problem = get_problem("gramacy")
+    combined = combine_settings(problem, FAST)
+    return run_sweep([Scenario(problem.name, "", problem)], lambda sc: combined, seeds=2, base_seed=7, n_start=6,
+                     budget=3, noise_scale=0.0, pool_size=200, **options)
+
+
+@pytest.fixture(scope="module")
+def local():
+    return _gramacy_sweep(workers=1)
+
+
+def test_settings_grid_and_labels():
+    grid = settings_grid({"threshold": [0.9, 0.95], "batch": [1, 4]})
+    assert [s.label for s in grid] == ["threshold=0.9,batch=1", "threshold=0.9,batch=4",
+                                       "threshold=0.95,batch=1", "threshold=0.95,batch=4"]
+    assert settings_grid(None) == [Setting()] and Setting().label == "as-written"
+    with pytest.raises(ValueError, match="cannot vary 'pool'"):
+        settings_grid({"pool": [1]})
+    data = Setting(threshold=0.8, rule="mean", batch=1, max_step=0.3).protocol_data(FAST)
+    assert (data["screen"]["threshold"], data["ranking"]["rule"], data["batch"]["size"],
+            data["screen"]["max_step"]) == (0.8, "mean", 1, 0.3)
+
+
+@pytest.mark.parametrize(("values", "message"), [
+    (["colour=1"], "KEY one of"), (["batch=1", "batch=2"], "varied twice"), (["batch="], "at least one value"),
+    (["batch=1.5"], "whole number"), (["threshold=x"], "a number"), (["start=2"], "at least 3"),
+])
+def test_parse_vary_refuses(values, message):
+    with pytest.raises(OptionError, match=message):
+        parse_vary(values)
+
+
+def test_parse_vary_reads_lists():
+    assert parse_vary(["threshold=0.9,0.95", "max-step=0.2", "rule=ei,mean"]) == {
+        "threshold": [0.9, 0.95], "max_step": [0.2], "rule": ["ei", "mean"]}
+
+
+@pytest.mark.slow
+def test_sweep_equals_todays_simulator_seed_for_seed(local):
+    today = simulate("gramacy", FAST, strategies=("protocol",), seeds=2, seed=7, n_start=6, budget=3,
+                     workers=1, pool_size=200)
+    mine = local.cells[0].result
+    for a, b in zip(today.histories["protocol"], mine.histories["protocol"]):
+        assert np.array_equal(a.X, b.X) and np.array_equal(a.promised, b.promised, equal_nan=True)
+    assert _differences(mine.final_rows(), today.final_rows()) == []
+    assert _differences(mine.summary_rows(), today.summary_rows()) == []
+
+
+@pytest.mark.slow
+def test_joblib_processes_and_dask_cluster_give_the_local_figures(local):
+    from dask.distributed import Client, LocalCluster
+
+    pooled = _gramacy_sweep(workers=2)
+    # one worker process, as `dask worker` runs them (in threads of this process the joint
+    # figures came out equal only to the last few bits)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        remote = _gramacy_sweep(scheduler=client)
+    assert remote.runner.startswith("dask") and pooled.runner.startswith("joblib")
+    for other in (pooled, remote):
+        for a, b in zip(local.cells[0].result.histories["protocol"], other.cells[0].result.histories["protocol"]):
+            assert np.array_equal(a.X, b.X)
+            assert all(np.array_equal(a.Y[r], b.Y[r]) for r in a.Y)
+        assert _differences(other.rows(), local.rows()) == []
+
+
+def _differences(a, b) -> list:
+    """(row, key, value, value) where two lists of rows differ; NaN equals NaN."""
+    return [(i, k, x[k], y.get(k)) for i, (x, y) in enumerate(zip(a, b)) for k in x
+            if not (x[k] == y.get(k) or (x[k] != x[k] and y.get(k) != y.get(k)))]
+
+
+def test_runs_until_within_counts_planned_runs(local):
+    cell = local.cells[0]
+    gap = cell.result.trajectories("protocol")["gap_true"]
+    runs = cell.runs_until_within()
+    for s in range(gap.shape[0]):
+        hits = np.flatnonzero(gap[s] <= cell.within)
+        assert (np.isnan(runs[s]) and hits.size == 0) or runs[s] == hits[0]
+
+
+@pytest.mark.slow
+def test_drawn_scenarios_measure_each_gap_from_their_own_optimum():
+    protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
+    found = load_scenarios(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml", protocol)
+    drawn = [sc for sc in found.scenarios if sc.drawn]
+    data = protocol.model_dump(mode="python")
+    data["batch"].update(pool=200, refine=0)
+    data["model"]["restarts"] = 1
+    fast = parse_protocol(data)
+    result = run_sweep(drawn, lambda sc: fast, seeds=2, n_start=8, budget=2, workers=1, pool_size=200)
+    res = result.cells[0].result
+    assert len(res.optima) == 2 and res.optima[0] != res.optima[1]
+    assert res.optima[0] == pytest.approx(drawn[0].problem_for(0, 0).optimum)
+    tr = res.trajectories("protocol")
+    for s in range(2):
+        if np.isfinite(tr["best"][s, -1]):
+            assert tr["gap"][s, -1] == pytest.approx(res.optima[s] - tr["best"][s, -1])
+
+
+@pytest.mark.slow
+def test_cli_sweep_writes_tables_csvs_and_a_page(tmp_path):
+    settings = tmp_path / "settings.toml"
+    settings.write_text(
+        '[study]\ntitle = "s"\nversion = "1"\nauthor = "t"\n[[factors]]\nname = "x"\nkind = "continuous"\n'
+        'lower = 0\nupper = 1\n[objective]\nname = "y"\ndirection = "maximize"\n'
+        '[screen]\nthreshold = 0.9\n[batch]\nsize = 2\npool = 200\nrefine = 0\n[model]\nrestarts = 1\n',
+        encoding="utf-8")
+    out = tmp_path / "sweep"
+    result = CliRunner().invoke(app, ["simulate", str(settings), "--problem", "gramacy", "--vary",
+                                      "threshold=0.8,0.95", "--seeds", "2", "--budget", "2", "--start", "6",
+                                      "--workers", "1", "--out-dir", str(out)])
+    assert result.exit_code == 0, result.output
+    assert "threshold=0.8" in result.stdout and "threshold=0.95" in result.stdout and "CAUTIONS" in result.stdout
+    assert "note: the built-in problem 'gramacy' is simulated on its own factors" in result.output
+    assert "simulating" not in result.output  # no progress bar when not on a terminal
+    rows = list(csv.DictReader(io.StringIO("\n".join(
+        line for line in (out / "sweep.csv").read_text(encoding="utf-8").splitlines() if not line.startswith("#")))))
+    assert [r["setting"] for r in rows] == ["threshold=0.8", "threshold=0.95"]
+    assert len(list(out.glob("cell-*.csv"))) == 2
+    page = (out / "sweep.html").read_text(encoding="utf-8")
+    assert "<svg" in page and "Cautions" in page and "Gap to the optimum against limit breaks" in page
+    bad = CliRunner().invoke(app, ["simulate", str(settings), "--problem", "gramacy", "--vary", "threshold=1.5",
+                                   "--seeds", "1", "--out-dir", str(tmp_path / "none")])
+    assert bad.exit_code == 2 and "screen.threshold" in bad.output and not (tmp_path / "none").exists()

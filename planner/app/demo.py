@@ -35,7 +35,8 @@ def examples_dir() -> Path:
 def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -> list[str]:
     """Run the demo into ``out``; return the summary lines (also written to SUMMARY.txt)."""
 
-    from guardband.planner.app.workflow import LOG_NAME, cautions_of, check_protocol, plan_table, replay_record, run_plan
+    from guardband.planner.app.plan_text import figures_table, settings_table
+    from guardband.planner.app.workflow import LOG_NAME, cautions_of, check_protocol, replay_record, run_plan
 
     from guardband.planner.app.audit import verify_campaign
 
@@ -71,14 +72,15 @@ def run_demo(out: str | Path, *, echo: Callable[[str], None] = lambda s: None) -
     say("== 2. plan the next batch")
     outcome = run_plan(protocol_path, runs_path, out)
     result = outcome.result
-    header, prow = plan_table(result, step_label=outcome.record["body"]["step_label"])
+    label = outcome.record["body"]["step_label"]
     inc = result.incumbent
     say(f"mode {result.mode}; incumbent "
         + (f"{inc['value']:.4g} (run {inc['run_id']})" if inc else "none"))
     say("candidates: " + ", ".join(f"{k} {v}" for k, v in result.counts().items() if v))
     for m in result.messages:
         say(f"note: {m}")
-    say(render_table(header, prow))
+    say(settings_table(result, label))
+    say(figures_table(result, label))
     say(f"plan table: {outcome.files['plan'].name}; exclusion table: {outcome.files['exclusions'].name}")
 
     say("")

@@ -387,7 +387,8 @@ def verify(
     else:
         if verdict.ok:
             files = f"; {verdict.files.checked} named files match their SHA-256" if verdict.files else ""
-            _show(f"ok: {result.count} records, head {result.head}{files}")
+            _show(f"ok: {result.count} records{files}")
+            _show(f"head: {result.head}")
         else:
             _show(f"FAILED: {verdict.problem}")
     for note in verdict.notes:
@@ -415,8 +416,9 @@ def supersede(
         _echo(_json(rec))
     else:
         op = rec["body"]["operator"]
-        _show(f"record {rec['index']} supersedes record {record}: {rec['body']['reason']} "
-                   f"(by {op['name']}, from {op['source']}); head {rec['hash']}")
+        _show(f"record {rec['index']} supersedes record {record} (by {op['name']}, from {op['source']})")
+        _show(f"reason: {rec['body']['reason']}")
+        _show(f"head: {rec['hash']}")
 
 
 # ------------------------------------------------------------------ replay

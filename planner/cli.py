@@ -540,8 +540,10 @@ def simulate(
                                        help="Candidate pool of every planning step (default: the settings')."),
     settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
                                                help="Use the problem's own planner settings (same as '-')."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Also write the CSV to this file."),
-    out_dir: Optional[Path] = typer.Option(None, "--out-dir", help="Sweep: write the summary CSV, one CSV "
+    out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
+                                      help="Also write the CSV to this file."),
+    out_dir: Optional[str] = typer.Option(None, "--out-dir", callback=_nonempty_out,
+                                          help="Sweep: write the summary CSV, one CSV "
                                            "per setting and scenario, and sweep.html into this folder."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
@@ -620,6 +622,8 @@ def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, se
         workers=default_workers() if workers is None else workers, scheduler=scheduler, pool_size=pool,
         progress=progress)
     close()
+    out = Path(out) if out is not None else None
+    out_dir = Path(out_dir) if out_dir is not None else None
     files: dict = {}
     if out is not None:
         files[out] = result.csv_text()

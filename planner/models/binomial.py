@@ -43,7 +43,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg, optimize
 from scipy.special import expit, gammaln, log_expit, roots_hermitenorm
-from scipy.stats import binom
 
 from guardband.planner.errors import ModelError
 from guardband.planner.models.arrays import check_points
@@ -283,6 +282,8 @@ class RateLeaveOneOut:
 
 
 def _count_predictive(mu, sd, events, subjects) -> RateLeaveOneOut:
+    from scipy.stats import binom  # here, not at import: a planning step must not load scipy.stats
+
     nodes, weights = roots_hermitenorm(QUADRATURE_NODES)
     weights = weights / weights.sum()
     n_runs = len(mu)

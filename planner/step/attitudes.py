@@ -31,7 +31,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 import numpy as np
-from scipy.stats import norm
+from scipy.special import ndtr, ndtri
 
 from guardband.planner.settings import Z95
 from guardband.planner.step.acquisition import expected_improvement, score as rule_score
@@ -68,12 +68,14 @@ def outcome_figures(mean, sd, incumbent, *, maximize: bool) -> dict[str, np.ndar
     """
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
+    # the normal's quantiles and tail from scipy.special (scipy.stats is slow to import and the
+    # planning step must not load it; its norm.ppf and norm.sf are these same functions)
     out = {"mean": mean, "sd": sd, "lo95": mean - Z95 * sd, "hi95": mean + Z95 * sd,
-           "q05": norm.ppf(0.05, loc=mean, scale=sd), "q95": norm.ppf(0.95, loc=mean, scale=sd)}
+           "q05": mean + sd * ndtri(0.05), "q95": mean + sd * ndtri(0.95)}
     if incumbent is None:
         nan = np.full(mean.shape, np.nan)
         return {**out, "p_better": nan, "p_worse": nan, "ei": nan, "shortfall": nan}
-    above = norm.sf(incumbent, loc=mean, scale=sd)
+    above = ndtr((mean - incumbent) / sd)
     out["p_better"] = above if maximize else 1.0 - above
     out["p_worse"] = 1.0 - out["p_better"]
     out["ei"] = expected_improvement(mean, sd, incumbent, maximize=maximize)

@@ -51,7 +51,6 @@ from guardband.planner.step.batch import Pool, greedy_batch
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
-from guardband.planner.space.rounding import rounding_of
 from guardband.planner.step.explain import pick_explanations
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
@@ -129,6 +128,8 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
     """Every candidate rounded to the factors' resolutions and screened again (when any is stated):
     the batch then chooses among rounded candidates only, so one that fails once rounded is
     replaced by the best rounded candidate that passes."""
+    from guardband.planner.space.rounding import rounding_of  # here: the space package loads cvxpy
+
     rnd = rounding_of(ctx.protocol)
     if not rnd.any:
         return pool, origin, []

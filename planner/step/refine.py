@@ -19,7 +19,6 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.errors import ModelError
-from guardband.planner.space.rounding import rounding_of
 from guardband.planner.step.acquisition import log_expected_improvement, score as rule_score
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.result import Mode
@@ -93,6 +92,8 @@ def _linear_constraints(space, x0, cont, lo, span) -> list[dict]:
 def _grid_bounds(protocol, space, cont) -> tuple[np.ndarray, np.ndarray]:
     """The bounds of the refined factors, pulled in to the nearest multiples of a stated
     resolution, so that rounding never has to jump a refined point back inside a bound."""
+    from guardband.planner.space.rounding import rounding_of  # here: the space package loads cvxpy
+
     rnd = rounding_of(protocol)
     lo, hi = space.lower[cont].copy(), space.upper[cont].copy()
     res = rnd.resolution[cont]

@@ -29,6 +29,17 @@ from guardband.planner.inputs.names import check_visible, name_key, normal_text,
 from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.hints import choice_hint, percent_total_hint, quoted_rule, unknown_key_hint
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
+from guardband.planner.inputs.protocol_tables import (  # noqa: F401 - re-exported
+    Batch,
+    Escalation,
+    Forbidden,
+    ModelSettings,
+    Ranking,
+    Screen,
+    StartRegion,
+    _Strict,
+    _unit,
+)
 
 __all__ = [
     "Protocol",
@@ -54,13 +65,6 @@ RANKING_RULES = ("ei", "pi", "bound", "mean")
 _SPACES: dict = {}  # fingerprint -> DesignSpace (see Protocol.design_space)
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-def _unit(text: str) -> dict:
-    """The unit of a setting, carried into the JSON Schema and the protocol reference."""
-    return {"x-unit": text}
 
 
 def _check_name(value: str, what: str) -> str:
@@ -404,172 +408,6 @@ class Limit(_Strict):
 #: Limit fields added after protocols were first fingerprinted, with their defaults.
 _LIMIT_LATER_DEFAULTS = {"kind": "continuous", "events": None, "subjects": None, "monotone": None,
                          "broken_after": None}
-
-
-class Forbidden(_Strict):
-    """A region the protocol forbids: every point meeting all its rules is excluded."""
-
-    name: str = Field(description="a name for the region, used in the exclusion table")
-    rules: tuple[str, ...] = Field(
-        min_length=1, description="linear rules that together describe the region (a point meeting "
-        "every one is excluded), e.g. [\"dose_a >= 40\", \"dose_b >= 8\"]"
-    )
-
-    @cached_property
-    def parsed(self) -> tuple[LinearRule, ...]:
-        return tuple(r for text in self.rules for r in parse_rule(text))
-
-
-class Screen(_Strict):
-    """Safety-screen settings."""
-
-    threshold: float = Field(gt=0, lt=1, description="the joint figure a candidate must reach",
-                             json_schema_extra=_unit("probability"))
-    joint: Literal["bound", "independent"] = Field(
-        default="bound", description="how the limits' probabilities p_i combine into the joint figure: "
-        "bound = max(0, 1 - sum(1 - p_i)), true whatever the correlation; independent = prod(p_i)"
-    )
-    min_runs: int = Field(default=5, ge=1, description="measured runs a limit's model needs before it is "
-                          "fitted (a limit's own min_runs overrides it)", json_schema_extra=_unit("runs"))
-    max_step: float | None = Field(
-        default=None,
-        gt=0,
-        description="largest distance from the nearest run that met every limit (not set: no such rule)",
-        json_schema_extra=_unit("unit-scaled distance (each free factor's reachable range scaled to 0..1) "
-                                "per sqrt(number of free factors)"),
-    )
-    span_reach: float | None = Field(
-        default=0.25,
-        ge=0,
-        description=(
-            "a candidate must lie inside the box the runs that met every limit span (free continuous "
-            "factors, unit-scaled), each side pushed out by this share of its width; None turns the "
-            "rule off, from Python only (TOML has no empty value); factors with discrete levels step "
-            "under max_step"
-        ),
-        json_schema_extra=_unit("share of the box's width"),
-    )
-    span_floor: float = Field(
-        default=0.05,
-        ge=0,
-        le=1,
-        description="the least push of each side of that box (unit-scaled), so a tight cluster can grow",
-        json_schema_extra=_unit("unit-scaled (each factor's reachable range is 0..1)"),
-    )
-    forbidden: tuple[Forbidden, ...] = Field(
-        default=(), description="regions no candidate may enter ([[screen.forbidden]] tables)"
-    )
-    short_model: bool = Field(
-        default=True,
-        description=(
-            "also screen with each limit model's shortest plausible length scales (within the "
-            "profile-likelihood 95% interval of one common multiplier) and take the lower probability"
-        ),
-    )
-    widen_from_loo: bool = Field(
-        default=True,
-        description=(
-            "widen a limit model's predictive sd when its own leave-one-out check says it is "
-            "overconfident (never narrowed)"
-        ),
-    )
-    widen_locally: bool = Field(
-        default=True,
-        description=(
-            "widen a limit model's predictive sd near the runs it predicted too hopefully "
-            "(its one-sided leave-one-out errors, weighted by closeness; never narrowed)"
-        ),
-    )
-    single_run_check: bool = Field(
-        default=True,
-        description=(
-            "judge each limit also with every run left out in turn and take the worst, so that "
-            "no candidate passes on the strength of a single run"
-        ),
-    )
-
-
-class Ranking(_Strict):
-    """Which ranking rule orders the survivors."""
-
-    rule: Literal["ei", "pi", "bound", "mean"] = Field(
-        default="ei", description="ei: expected improvement; pi: probability of improvement; bound: the "
-        "optimistic confidence bound (mean + kappa sd when maximizing, mean - kappa sd when minimizing); "
-        "mean: the predicted value alone"
-    )
-    kappa: float = Field(default=2.0, ge=0, le=100, description="how many predictive sds the bound rule goes "
-                         "past the mean, towards better", json_schema_extra=_unit("standard deviations"))
-    xi: float = Field(default=0.0, ge=0, description="the least gain over the best run that the pi rule "
-                      "counts as an improvement", json_schema_extra=_unit("the objective's unit"))
-
-
-class Batch(_Strict):
-    """Batch and search settings."""
-
-    size: int = Field(default=4, ge=1, le=100, description="runs proposed per planning step (the batch "
-                      "may come out smaller; the plan says so)", json_schema_extra=_unit("runs"))
-    pool: int = Field(default=4000, ge=50, le=500_000, description="random candidates drawn from the design "
-                      "space at each step", json_schema_extra=_unit("candidates"))
-    refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
-                        "(0: none)", json_schema_extra=_unit("candidates"))
-
-
-class ModelSettings(_Strict):
-    """Gaussian-process fitting settings."""
-
-    restarts: int = Field(default=4, ge=1, le=50, description="starts of each model's hyperparameter "
-                          "search", json_schema_extra=_unit("starts"))
-    ml_runs_per_hyperparameter: float = Field(
-        default=12.0,
-        ge=0,
-        le=1e6,
-        description=(
-            "weak priors on the hyperparameters while a response has fewer than this many "
-            "measured runs per hyperparameter (number of free factors + 2); maximum likelihood "
-            "from then on"
-        ),
-        json_schema_extra=_unit("runs per hyperparameter"),
-    )
-    limit_length_scale_max: float = Field(
-        default=0.4,
-        gt=0.01,
-        le=1000,
-        description=(
-            "largest length scale of a limit model, per sqrt(number of free factors) of the "
-            "unit-scaled design space (the unit of max_step), so that far from the runs the "
-            "model returns to the limit instead of extrapolating a flat response"
-        ),
-        json_schema_extra=_unit("unit-scaled distance per sqrt(number of free factors), as max_step"),
-    )
-
-
-class Escalation(_Strict):
-    """Dose escalation as the trade does it (factors with discrete levels)."""
-
-    no_skipping: bool = Field(
-        default=True,
-        description=(
-            "no untried level is skipped: a candidate may lie at most one level above the highest level "
-            "of each factor given in a run that met every limit, and above it in one factor only"
-        ),
-    )
-    cohort_size: int | None = Field(
-        default=None, ge=1, le=10_000,
-        description="subjects in each proposed cohort (the batch's unit); a binomial limit's batch fantasies use it",
-    )
-
-
-class StartRegion(_Strict):
-    """A region known to be safe where a campaign with no runs may start."""
-
-    rules: tuple[str, ...] = Field(
-        min_length=1, description="linear rules that describe the region, e.g. [\"dose_a <= 10\"]"
-    )
-    note: str = Field(default="", description="why the region is known to be safe, printed with it")
-
-    @cached_property
-    def parsed(self) -> tuple[LinearRule, ...]:
-        return tuple(r for text in self.rules for r in parse_rule(text))
 
 
 class Protocol(_Strict):

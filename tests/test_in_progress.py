@@ -83,3 +83,18 @@ def test_a_partly_measured_run_is_data_for_the_responses_present(tablet):
     for lim in p.limits:
         assert n_by_response[lim.name] == runs.n_runs
     assert result.n_in_progress == 0
+
+
+def test_no_rule_picks_a_run_already_in_progress(tablet):
+    """Each rule's first pick (the rule comparison) keeps the batch separation from runs in progress."""
+    p, runs = tablet
+    first = plan_step(p, runs, seed=3, pool_size=POOL, count=1)
+    busy = np.array([e["x"][n] for e in first.rule_picks if e["candidate"] is not None
+                     for n in p.factor_names]).reshape(-1, len(p.factor_names))
+    assert busy.shape[0] >= 1
+    again = plan_step(p, _with_rows(p, runs, busy), seed=3, pool_size=POOL, count=1)
+    picked = [e for e in again.rule_picks if e["candidate"] is not None]
+    assert picked
+    U_busy = again.unit(busy)
+    U_pick = again.unit(np.array([[e["x"][n] for n in p.factor_names] for e in picked]))
+    assert np.all(step_distance(U_pick, U_busy) >= MIN_SEPARATION)

@@ -84,15 +84,22 @@ def outcome_figures(mean, sd, incumbent, *, maximize: bool) -> dict[str, np.ndar
     return out
 
 
-def rule_picks(ctx, pool, origin, inc_value, rank_kw: dict) -> list[dict]:
+def rule_picks(ctx, pool, origin, inc_value, rank_kw: dict, U_busy=None) -> list[dict]:
     """The first pick of each rule among the pool's survivors, with its attitude figures.
 
     A rule that needs an incumbent has no pick before a run meets every
     limit (``candidate`` None, ``note`` says why); so has every rule when
-    nothing passed the screen.
+    nothing passed the screen. Survivors within the batch separation of a
+    run in progress (``U_busy``, unit-scaled) are not picks: that run is
+    already being made.
     """
+    from guardband.planner.step.batch import MIN_SEPARATION
+    from guardband.safety.screen import step_distance
+
     protocol = ctx.protocol
     survivors = np.flatnonzero(pool.result.survives)
+    if U_busy is not None and len(U_busy) and survivors.size:
+        survivors = survivors[step_distance(pool.U[survivors], np.asarray(U_busy, dtype=float)) >= MIN_SEPARATION]
     out = []
     for rule in RULE_ORDER:
         entry = {"rule": rule, "attitude": ATTITUDES[rule], "candidate": None, "same_as": []}

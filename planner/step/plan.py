@@ -287,9 +287,9 @@ def plan_step(
     pool, origin, more = _rounding_phase(ctx, pool, origin, scores_of, inc_value)
     messages += more
 
-    picks = rule_picks(ctx, pool, origin, inc_value, rank_kw) if explain else []
-    price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
     in_progress = runs.pending  # factors set, nothing measured yet: already chosen
+    picks = rule_picks(ctx, pool, origin, inc_value, rank_kw, U_busy=U_runs[in_progress]) if explain else []
+    price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
     chosen, more, given = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
                                        U_busy=U_runs[in_progress])
     why = pick_explanations(given, st.mode, protocol.ranking.rule, rank_kw)

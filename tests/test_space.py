@@ -468,3 +468,21 @@ def test_contains_agrees_with_violations(make):
                    X + rng.normal(scale=1e-9, size=X.shape)])
     via_table = np.array([space.describe_violation(x) == "" for x in X])
     np.testing.assert_array_equal(space.contains(X), via_table)
+
+
+def test_a_fixed_factor_does_not_set_a_rules_scale():
+    """Found by the random-polytope property: 2 x3 + 1e-8 x1 <= 1e-8 * 0.03125 with x3 fixed at 0
+    is the rule x1 <= 0.03125; the fixed factor's coefficient must not make it look too thin."""
+    lower = np.zeros(4)
+    upper = np.array([0.0, 0.125, 0.0, 0.0])
+    A_eq = np.array([[1.0, 0.0, 1.0, 0.0]])
+    a = np.array([0.0, 1e-8, 0.0, 2.0])
+    x_star = np.array([0.0, 0.03125, 0.0, 0.0])
+    space = DesignSpace(("x0", "x1", "x2", "x3"), lower, upper, A_eq=A_eq, b_eq=[0.0],
+                        A_ub=a[None, :], b_ub=[a @ x_star])
+    chk = space.check()
+    assert not chk.empty, chk.message
+    assert chk.ranges[1, 0] == pytest.approx(0.0, abs=1e-9)
+    assert chk.ranges[1, 1] == pytest.approx(0.03125, rel=1e-6)
+    X = space.sample(200, rng=0)
+    assert space.contains(X, tol=TOL).all() and X[:, 1].max() <= 0.03125 * (1 + 1e-6)

@@ -174,6 +174,14 @@ class DesignSpace:
         scale = np.where(width > 0, width, np.where(magnitude > 0, magnitude, 1.0))
         return read_only(lo), read_only(scale)
 
+    @cached_property
+    def _fixed_by_bounds(self) -> np.ndarray:
+        """Factors whose declared span (bounds joined with levels) is a single value."""
+        lo, hi = self.lower.copy(), self.upper.copy()
+        for j, lv in self.levels.items():
+            lo[j], hi[j] = min(lo[j], lv[0]), max(hi[j], lv[-1])
+        return read_only(hi - lo == 0)
+
     @property
     def _scale(self) -> np.ndarray:
         return self._frame[1]
@@ -199,10 +207,30 @@ class DesignSpace:
         tolerance on ``A x - b`` means the same at any scale. A row of
         zeros is left as it is.
         """
-        A = np.atleast_2d(np.asarray(A, dtype=float))
-        b = np.atleast_1d(np.asarray(b, dtype=float))
+        A = np.atleast_2d(np.asarray(A, dtype=float)).copy()
+        b = np.atleast_1d(np.asarray(b, dtype=float)).copy()
+        # a factor fixed by its declared bounds is a constant: in a row that also
+        # holds a free factor its term moves to the right-hand side, so that it
+        # cannot set the row's scale (2 x3 + 1e-8 x1 <= c with x3 fixed is a rule on x1)
+        # (only where the free terms stand above the rounding of the constants: below
+        # that, a double cannot tell what the row says about them, and the row keeps
+        # its fixed terms and their scale)
+        fixed = self._fixed_by_bounds
+        if np.any(fixed) and A.shape[0]:
+            const = A[:, fixed] @ self._frame[0][fixed]
+            free_norm = np.max(np.abs(A[:, ~fixed] * self._scale[~fixed]), axis=1, initial=0.0)
+            rounding = 64 * np.finfo(float).eps * (np.abs(b) + np.abs(const)
+                                                   + np.max(np.abs(A[:, fixed] * self._scale[fixed]), axis=1))
+            rows = free_norm > rounding
+            if np.any(rows):
+                b[rows] -= const[rows]
+                A[np.ix_(rows, fixed)] = 0.0
         norm = np.max(np.abs(A * self._scale), axis=1, initial=0.0)
-        norm = np.where(norm > 0, norm, 1.0)
+        # coefficients below the smallest normal double say nothing a double can hold:
+        # such a row is a row of zeros (0 <= b), not one divided into infinities
+        negligible = norm < np.finfo(float).tiny
+        A[negligible] = 0.0
+        norm = np.where(negligible, 1.0, norm)
         return A / norm[:, None], b / norm
 
     @cached_property

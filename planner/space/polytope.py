@@ -151,8 +151,8 @@ class DesignSpace:
         # Normalise every rule row to its own scale (its largest coefficient
         # times that factor's declared span) before any tolerance applies: a
         # rule and its multiples are the same rule (1e-13 * x1 <= 1e-14 is x1 <= 0.1).
-        for a_name, b_name in (("A_eq", "b_eq"), ("A_ub", "b_ub")):
-            A, b = self.normalise_rows(getattr(self, a_name), getattr(self, b_name))
+        for a_name, b_name, fold in (("A_eq", "b_eq", False), ("A_ub", "b_ub", True)):
+            A, b = self.normalise_rows(getattr(self, a_name), getattr(self, b_name), fold=fold)
             setattr_(self, a_name, read_only(A))
             setattr_(self, b_name, read_only(b))
 
@@ -199,7 +199,7 @@ class DesignSpace:
         offset, scale = self._frame
         return offset + np.asarray(U, dtype=float) * scale
 
-    def normalise_rows(self, A, b) -> tuple[np.ndarray, np.ndarray]:
+    def normalise_rows(self, A, b, *, fold: bool = True) -> tuple[np.ndarray, np.ndarray]:
         """Rows ``A x <= b`` (or ``==``) divided by their largest coefficient times a factor's span.
 
         The one home of the rule: the design space's own rows and the
@@ -215,8 +215,10 @@ class DesignSpace:
         # (only where the free terms stand above the rounding of the constants: below
         # that, a double cannot tell what the row says about them, and the row keeps
         # its fixed terms and their scale)
+        # Equality rows keep every term (``fold=False``): they name which factors
+        # form a mixture and its total.
         fixed = self._fixed_by_bounds
-        if np.any(fixed) and A.shape[0]:
+        if fold and np.any(fixed) and A.shape[0]:
             const = A[:, fixed] @ self._frame[0][fixed]
             free_norm = np.max(np.abs(A[:, ~fixed] * self._scale[~fixed]), axis=1, initial=0.0)
             rounding = 64 * np.finfo(float).eps * (np.abs(b) + np.abs(const)

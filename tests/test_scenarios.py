@@ -168,3 +168,24 @@ def test_optimum_search_does_not_stop_short_of_the_limits():
         Y = sc.problem.evaluate(X)
         ok = met_every_limit(protocol, Y)
         assert np.max(Y["dissolution_30min"][ok]) <= sc.problem.optimum + 1e-9
+
+
+@pytest.mark.skipif(not hasattr(__import__("os"), "mkfifo"), reason="no FIFOs on this system")
+def test_a_scenario_file_is_read_as_every_input_is(tmp_path):
+    """A FIFO is refused at once (never waited on), a deep table is a named refusal, not a crash:
+    the scenario file goes through the same reader as the protocol."""
+    import os
+
+    protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")
+    fifo = tmp_path / "scenarios.toml"
+    os.mkfifo(fifo)
+    with pytest.raises(ProtocolError, match="not a regular file|FIFO|fifo"):
+        load_scenarios(fifo, protocol)
+    deep = tmp_path / "deep.toml"
+    deep.write_text("x = " + "[" * 3000 + "]" * 3000 + "\n", encoding="utf-8")
+    with pytest.raises(ProtocolError, match="deep.toml"):
+        load_scenarios(deep, protocol)
+    latin = tmp_path / "latin.toml"
+    latin.write_bytes("note = \"d\xe9j\xe0\"\n".encode("latin-1"))
+    with pytest.raises(ProtocolError, match="latin.toml: the scenario is not UTF-8 text"):
+        load_scenarios(latin, protocol)

@@ -15,7 +15,6 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import tomllib
 from functools import cached_property
 from pathlib import Path
 from typing import Annotated, Literal
@@ -26,7 +25,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 from guardband.planner import settings
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.names import check_visible, name_key, normal_text, shown
-from guardband.planner.inputs.reading import read_input
+from guardband.planner.inputs.reading import read_toml
 from guardband.planner.inputs.hints import choice_hint, percent_total_hint, quoted_rule, unknown_key_hint
 from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
 from guardband.planner.inputs.protocol_tables import (  # noqa: F401 - re-exported
@@ -764,16 +763,6 @@ def load_protocol(path: str | Path) -> Protocol:
         When the file cannot be read, is not TOML, or is not a valid protocol.
     """
     path = Path(path)
-    raw = read_input(path, what="protocol", error=ProtocolError, max_bytes=settings.MAX_PROTOCOL_BYTES)
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise ProtocolError(f"{path}: the protocol is not UTF-8 text (byte {exc.start})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProtocolError(f"{path}: not valid TOML: {exc}") from None
-    except RecursionError:
-        raise ProtocolError(f"{path}: tables or arrays nest too deeply to read (more than "
-                            f"{settings.MAX_PROTOCOL_NESTING} levels are refused)") from None
+    data = read_toml(path, what="protocol", error=ProtocolError, max_bytes=settings.MAX_PROTOCOL_BYTES,
+                     max_nesting=settings.MAX_PROTOCOL_NESTING)
     return parse_protocol(data, source=str(path.name))

@@ -17,7 +17,7 @@ import stat
 
 from guardband.planner.errors import GuardbandError
 
-__all__ = ["read_input", "read_regular_bytes", "InputFileError", "file_kind"]
+__all__ = ["read_input", "read_toml", "read_regular_bytes", "InputFileError", "file_kind"]
 
 _CHUNK = 1 << 20
 
@@ -101,3 +101,24 @@ def read_input(path: str | os.PathLike, *, what: str, error: type[GuardbandError
         return read_regular_bytes(path, max_bytes)
     except OSError as exc:
         raise error(f"{os.fspath(path)}: cannot read the {what} file ({exc.strerror or exc})") from None
+
+
+def read_toml(path: str | os.PathLike, *, what: str, error: type[GuardbandError], max_bytes: int,
+              max_nesting: int) -> dict:
+    """A TOML input file (a protocol, a scenario file) read as :func:`read_input` reads any input,
+    decoded as UTF-8 and parsed; every failure is ``error`` naming the file."""
+    import tomllib
+
+    raw = read_input(path, what=what, error=error, max_bytes=max_bytes)
+    name = os.fspath(path)
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise error(f"{name}: the {what} is not UTF-8 text (byte {exc.start})") from None
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise error(f"{name}: not valid TOML: {exc}") from None
+    except RecursionError:
+        raise error(f"{name}: tables or arrays nest too deeply to read (more than "
+                    f"{max_nesting} levels are refused)") from None

@@ -41,14 +41,15 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
+from guardband.planner import settings
 from guardband.planner.errors import ProtocolError
+from guardband.planner.inputs.reading import read_toml
 from guardband.planner.inputs.protocol import Protocol, _format_loc, _plain
 from guardband.planner.simulation.formulas import FormulaError, parse_formula
 from guardband.planner.simulation.problems import Problem, locate_optimum
@@ -324,14 +325,6 @@ def parse_scenarios(data: dict, protocol: Protocol, *, source: str = "scenarios"
 def load_scenarios(path: str | Path, protocol: Protocol) -> ScenarioSet:
     """Read and validate a scenario file against its protocol (see :func:`parse_scenarios`)."""
     path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except OSError as exc:
-        raise ProtocolError(f"{path}: cannot read the scenario file ({exc.strerror})") from None
-    except UnicodeDecodeError as exc:
-        raise ProtocolError(f"{path}: the scenario file is not UTF-8 text (byte {exc.start})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProtocolError(f"{path}: not valid TOML: {exc}") from None
+    data = read_toml(path, what="scenario", error=ProtocolError, max_bytes=settings.MAX_PROTOCOL_BYTES,
+                     max_nesting=settings.MAX_PROTOCOL_NESTING)
     return parse_scenarios(data, protocol, source=path.name, folder=path.parent)

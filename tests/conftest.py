@@ -35,3 +35,14 @@ def unit_square_protocol(limit: dict, *, title: str = "unit square", **sections)
         "limits": [limit],
         **sections,
     }
+
+
+def with_sections(protocol, **sections):
+    """A copy of a validated protocol with some of its tables' keys replaced
+    (``with_sections(p, screen={"threshold": 0.9})``)."""
+    from guardband.planner.inputs.protocol import parse_protocol
+
+    data = protocol.model_dump(mode="python")
+    for key, update in sections.items():
+        data[key] = {**(data.get(key) or {}), **update}
+    return parse_protocol(data)

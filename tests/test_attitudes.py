@@ -25,16 +25,10 @@ from guardband.planner.step import plan_step
 from guardband.planner.step.acquisition import score as rule_score
 from guardband.planner.step.attitudes import RULE_ORDER, outcome_figures, threshold_binding
 
-from conftest import PROTOCOLS
+from conftest import PROTOCOLS, with_sections
 
 POOL = 500
 
-
-def _with(protocol, **sections):
-    data = protocol.model_dump(mode="python")
-    for key, update in sections.items():
-        data[key] = {**(data.get(key) or {}), **update}
-    return parse_protocol(data)
 
 
 @pytest.fixture(scope="module")
@@ -46,7 +40,7 @@ def tablet():
 @pytest.fixture(scope="module")
 def tablet_plan(tablet):
     p, runs = tablet
-    return plan_step(_with(p, screen={"threshold": 0.93}), runs, seed=4, pool_size=POOL)
+    return plan_step(with_sections(p, screen={"threshold": 0.93}), runs, seed=4, pool_size=POOL)
 
 
 @pytest.mark.parametrize("maximize", [True, False])
@@ -129,7 +123,7 @@ def test_the_price_of_a_threshold_never_falls_and_each_point_passes_there(tablet
 def test_a_rule_that_needs_an_incumbent_says_why_it_has_no_pick(tablet):
     p, runs = tablet
     # a degradant limit below every run: no run meets every limit, so feasibility first
-    data = _with(p, screen={"max_step": None}).model_dump(mode="python")
+    data = with_sections(p, screen={"max_step": None}).model_dump(mode="python")
     data["limits"][0]["upper"] = 0.05
     res = plan_step(parse_protocol(data), runs, seed=2, pool_size=POOL)
     assert res.mode == "feasibility-first"
@@ -140,15 +134,15 @@ def test_a_rule_that_needs_an_incumbent_says_why_it_has_no_pick(tablet):
 
 def test_threshold_warnings_follow_the_joint_figure_bounds(tablet):
     p, _ = tablet  # two limits at 0.95 each
-    loose = threshold_binding(_with(p, screen={"threshold": 0.9}))
+    loose = threshold_binding(with_sections(p, screen={"threshold": 0.9}))
     assert len(loose) == 1 and "never binds" in loose[0] and "at least 0.9 " in loose[0]
-    assert threshold_binding(_with(p, screen={"threshold": 0.92})) == []
-    tight = threshold_binding(_with(p, screen={"threshold": 0.97}))
+    assert threshold_binding(with_sections(p, screen={"threshold": 0.92})) == []
+    tight = threshold_binding(with_sections(p, screen={"threshold": 0.97}))
     assert len(tight) == 1 and "degradant_b (0.95)" in tight[0] and "friability (0.95)" in tight[0]
     # independence: the joint figure is at least 0.95 * 0.95 = 0.9025
-    product = threshold_binding(_with(p, screen={"threshold": 0.9, "joint": "independent"}))
+    product = threshold_binding(with_sections(p, screen={"threshold": 0.9, "joint": "independent"}))
     assert len(product) == 1 and "at least 0.9025" in product[0]
-    assert threshold_binding(_with(p, screen={"threshold": 0.91, "joint": "independent"})) == []
+    assert threshold_binding(with_sections(p, screen={"threshold": 0.91, "joint": "independent"})) == []
 
 
 def test_plan_output_check_and_log_show_the_comparison_and_the_price(tmp_path):

@@ -10,16 +10,10 @@ from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.inputs.runs import read_runs
 from guardband.planner.step import plan_step, safe_runs_mask
 
-from conftest import PROTOCOLS, unit_square_protocol
+from conftest import PROTOCOLS, unit_square_protocol, with_sections
 
 POOL = 600
 
-
-def _with(protocol, **sections):
-    data = protocol.model_dump(mode="python")
-    for key, update in sections.items():
-        data[key] = {**(data.get(key) or {}), **update}
-    return parse_protocol(data)
 
 
 @pytest.fixture(scope="module")
@@ -97,8 +91,8 @@ def test_near_misses_are_ranked_by_the_joint_figure(tablet_plan):
 
 def test_higher_threshold_never_admits(tablet):
     p, runs = tablet
-    low = plan_step(_with(p, screen={"threshold": 0.80}, batch={"refine": 0}), runs, seed=9, pool_size=POOL)
-    high = plan_step(_with(p, screen={"threshold": 0.97}, batch={"refine": 0}), runs, seed=9, pool_size=POOL)
+    low = plan_step(with_sections(p, screen={"threshold": 0.80}, batch={"refine": 0}), runs, seed=9, pool_size=POOL)
+    high = plan_step(with_sections(p, screen={"threshold": 0.97}, batch={"refine": 0}), runs, seed=9, pool_size=POOL)
     np.testing.assert_array_equal(low.pool, high.pool)
     assert not np.any(high.screen.survives & ~low.screen.survives)
     assert high.screen.survives.sum() < low.screen.survives.sum()
@@ -106,7 +100,7 @@ def test_higher_threshold_never_admits(tablet):
 
 def test_limit_with_too_few_runs_excludes_everything(tablet):
     p, runs = tablet
-    strict = _with(p, screen={"min_runs": 50, "max_step": None, "span_reach": None})
+    strict = with_sections(p, screen={"min_runs": 50, "max_step": None, "span_reach": None})
     result = plan_step(strict, runs, seed=1, pool_size=POOL)
     assert result.proposals == []
     assert set(result.screen.reason) == {"too-few-runs"}
@@ -116,7 +110,7 @@ def test_limit_with_too_few_runs_excludes_everything(tablet):
 
 def test_feasibility_first_when_no_run_meets_limits(tablet):
     p, runs = tablet
-    tight = _with(p, screen={"max_step": None})
+    tight = with_sections(p, screen={"max_step": None})
     data = tight.model_dump(mode="python")
     data["limits"][0]["upper"] = 0.05  # below every measured degradant value
     tight = parse_protocol(data)

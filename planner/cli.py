@@ -534,7 +534,8 @@ def simulate(
     within: Optional[float] = typer.Option(None, "--within", min=0.0, help="Distance to the optimum "
                                            "(objective units) for 'runs until within' (default 1% of it)."),
     strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
-                                   "bound, mean, random, classical, screen-off; or all (--problem only)."),
+                                   "bound, mean, random, classical, screen-off, textbook (EI times the limits' "
+                                   "probabilities, no screen); or all (--problem only)."),
     seed: int = typer.Option(0, "--seed", min=0, max=2**63 - 1, help="Base seed."),
     pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000,
                                        help="Candidate pool of every planning step (default: the settings')."),

@@ -47,7 +47,7 @@ def _noise_free(truth, rng):
 
 @pytest.fixture(scope="module")
 def small():
-    return simulate("gramacy", FAST, workers=1, **TINY)
+    return simulate("gramacy", FAST, workers=1, strategies=STRATEGIES, **TINY)
 
 
 # ------------------------------------------------------------ settings
@@ -226,7 +226,7 @@ def test_results_are_deterministic_for_a_fixed_seed(small):
 
 
 def test_parallel_and_serial_runs_agree(small):
-    par = simulate("gramacy", FAST, workers=2, **TINY)
+    par = simulate("gramacy", FAST, workers=2, strategies=STRATEGIES, **TINY)
     assert par.workers == 2
     for st in STRATEGIES:
         for a, b in zip(small.histories[st], par.histories[st]):
@@ -316,10 +316,10 @@ def test_outputs_carry_cautions_and_parse(small):
     text = small.table_text()
     assert "gap to optimum" in text and "calibration of the screen" in text
     rows = list(csv.reader(line for line in io.StringIO(small.csv_text()) if not line.startswith("#")))
-    assert rows[0][:3] == ["strategy", "planned_runs", "seeds"] and len(rows) == 1 + 8 * 4
+    assert rows[0][:3] == ["strategy", "planned_runs", "seeds"] and len(rows) == 1 + len(STRATEGIES) * 4
     assert any(line.startswith("# CAUTION: Simulated against a test problem") for line in small.csv_text().splitlines())
     data = json.loads(json.dumps(small.to_dict(), allow_nan=False))
-    assert data["problem"] == "gramacy" and len(data["final"]) == 8 and data["cautions"]
+    assert data["problem"] == "gramacy" and len(data["final"]) == len(STRATEGIES) and data["cautions"]
 
 
 # ------------------------------------------------------------ command line

@@ -183,6 +183,7 @@ def run_campaign(
     X_start: np.ndarray | None = None,
     measure=None,
     pool_size: int | None = None,
+    step_kw: dict | None = None,
 ) -> CampaignHistory:
     """Run one simulated campaign.
 
@@ -206,6 +207,9 @@ def run_campaign(
         :meth:`~guardband.planner.simulation.problems.Problem.measure`; default Gaussian ``noise``.
     pool_size : int, optional
         Candidate pool size of every step (default the protocol's).
+    step_kw : dict, optional
+        More keyword arguments of every :func:`~guardband.planner.step.plan_step`
+        (a strategy's :func:`~guardband.planner.simulation.strategies.step_options`).
 
     Returns
     -------
@@ -234,7 +238,7 @@ def run_campaign(
         k = min(protocol.batch.size, budget - sum(planned))
         try:
             result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k,
-                               warm_start=warm, pool_size=pool_size, explain=False)
+                               warm_start=warm, pool_size=pool_size, explain=False, **(step_kw or {}))
         except ModelError as exc:
             stalled, message = True, f"step {step + 1}: {exc}"
             break

@@ -33,8 +33,8 @@ from guardband.planner.simulation.loop import CampaignHistory, run_campaign, sta
 from guardband.planner.simulation.peers import CLASSICAL_POOL, run_classical, run_random
 from guardband.planner.simulation.problems import Problem, get_problem
 from guardband.planner.simulation.results import SimulationResult
-from guardband.planner.simulation.strategies import (STRATEGIES, check_strategy, combine_settings,
-                                                     strategy_protocol)
+from guardband.planner.simulation.strategies import (DEFAULT_STRATEGIES, check_strategy, combine_settings,
+                                                     step_options, strategy_protocol)
 
 __all__ = ["simulate", "run_in_workers"]
 
@@ -54,6 +54,7 @@ class _Task:
     noise: dict
     pool_size: int | None
     X_start: np.ndarray | None  # the seed's starting runs (None for classical)
+    step_kw: dict | None = None  # the strategy's step options (strategies.step_options)
 
 
 def _seeds(base_seed: int, seed_index: int) -> tuple[np.random.Generator, int]:
@@ -77,7 +78,8 @@ def _run_task(task: _Task) -> CampaignHistory:
                           measure=measure)
     protocol = parse_protocol(task.protocol_data, source=f"strategy {task.key}")
     return run_campaign(protocol, task.problem.evaluate, n_start=task.n_start, budget=task.budget,
-                        seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size)
+                        seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size,
+                        step_kw=task.step_kw)
 
 
 def run_in_workers(fn, jobs, *, workers: int, progress=None) -> list:
@@ -139,7 +141,7 @@ def simulate(
     budget: int | None = None,
     seeds: int = 5,
     n_start: int | None = None,
-    strategies=STRATEGIES,
+    strategies=DEFAULT_STRATEGIES,
     noise_scale: float = 0.0,
     noise: dict | None = None,
     workers: int | None = None,
@@ -164,7 +166,8 @@ def simulate(
     n_start : int, optional
         Starting runs (default: the problem's suggestion).
     strategies : sequence of str
-        From :data:`STRATEGIES`.
+        From :data:`~guardband.planner.simulation.strategies.STRATEGIES` (default
+        :data:`~guardband.planner.simulation.strategies.DEFAULT_STRATEGIES`: all but ``textbook``).
     noise_scale : float
         Multiplies the problem's measurement noise; 0 is noise-free.
     noise : dict of str to float, optional
@@ -217,7 +220,7 @@ def simulate(
         if p is None:
             runs_as[st] = (st, None)
             continue
-        key = p.fingerprint
+        key = (p.fingerprint, tuple(sorted(step_options(st).items())))
         if key in by_print:
             same_as[st] = by_print[key]
         else:
@@ -232,7 +235,8 @@ def simulate(
             # one starting design per seed, shared by every strategy but classical
             starts = {s: start_runs(protocol, n_start, rng=_seeds(int(seed), s)[0]) for s in range(seeds)}
     tasks = [_Task(owner, s, problem, data, base, n_start, budget, int(seed), float(noise_scale),
-                   noise, pool_size, None if owner == "classical" else starts[s])
+                   noise, pool_size, None if owner == "classical" else starts[s],
+                   step_options(owner))
              for owner, data in unique.items() for s in range(seeds)]
     results = run_in_workers(_run_task, tasks, workers=workers, progress=progress)
     done = {(t.key, t.seed_index): r for t, r in zip(tasks, results)}

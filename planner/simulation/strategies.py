@@ -31,6 +31,18 @@ Strategies (:data:`STRATEGIES`)
     :data:`SCREEN_OFF` (and the joint figure computed as a product, since
     the bound max(0, 1 - sum(1 - p_i)) is 0 for two limits at tiny p_i).
     The hard rules (design space, ``max_step``, forbidden regions) stay.
+``textbook``
+    The textbook constrained rule, for comparison: the same GP core (one
+    model per response, weak priors; a limit model's prior mean at the mean
+    of its data, as the textbook fits it, not at the limit), ranked by expected improvement times the product of the
+    limits' probabilities, and, while no run meets every limit, by that
+    product alone; no screen (threshold and limit probabilities at
+    :data:`SCREEN_OFF`), none of Guardband's guards on the limit models
+    (short model, leave-one-out and local widening, single-run check, the
+    length-scale cap, the signal-variance floor) and no step or span rule. The design space and
+    forbidden regions stay (they are the world's, not the planner's).
+    :func:`step_options` gives the planning step's ``weigh_by_joint`` and
+    ``textbook_limits``.
 """
 
 from __future__ import annotations
@@ -38,11 +50,15 @@ from __future__ import annotations
 from guardband.planner.inputs.protocol import RANKING_RULES, Protocol, parse_protocol
 from guardband.planner.simulation.problems import Problem
 
-__all__ = ["STRATEGIES", "PLANNER_STRATEGIES", "SCREEN_OFF", "combine_settings", "strategy_protocol",
-           "check_strategy"]
+__all__ = ["STRATEGIES", "DEFAULT_STRATEGIES", "PLANNER_STRATEGIES", "SCREEN_OFF", "combine_settings",
+           "strategy_protocol", "step_options", "check_strategy"]
 
-STRATEGIES = ("protocol", "ei", "pi", "bound", "mean", "random", "classical", "screen-off")
-PLANNER_STRATEGIES = ("protocol",) + RANKING_RULES + ("screen-off",)
+STRATEGIES = ("protocol", "ei", "pi", "bound", "mean", "random", "classical", "screen-off", "textbook")
+#: What :func:`~guardband.planner.simulation.runner.simulate` runs when no strategies are named.
+DEFAULT_STRATEGIES = STRATEGIES[:-1]
+PLANNER_STRATEGIES = ("protocol",) + RANKING_RULES + ("screen-off", "textbook")
+#: The textbook strategy's limit-model length-scale cap: the largest the protocol allows (no cap).
+NO_CAP = 1000.0
 #: Threshold and limit probability of the ``screen-off`` strategy.
 SCREEN_OFF = 1e-9
 
@@ -84,14 +100,26 @@ def strategy_protocol(protocol: Protocol, strategy: str) -> Protocol | None:
     if strategy == "protocol":
         return protocol
     data = protocol.model_dump(mode="python")
-    if strategy == "screen-off":
+    if strategy in ("screen-off", "textbook"):
         data["screen"]["threshold"] = SCREEN_OFF
         data["screen"]["joint"] = "independent"
         for lim in data["limits"]:
             lim["probability"] = SCREEN_OFF
-    else:
+    if strategy == "textbook":
+        data["screen"].update(short_model=False, widen_from_loo=False, widen_locally=False,
+                              single_run_check=False, span_reach=None, max_step=None)
+        data["model"]["limit_length_scale_max"] = NO_CAP
+        data["ranking"]["rule"] = "ei"
+    elif strategy != "screen-off":
         data["ranking"]["rule"] = strategy
     return parse_protocol(data, source=f"strategy {strategy}")
+
+
+def step_options(strategy: str) -> dict:
+    """Keyword arguments of :func:`~guardband.planner.step.plan_step` for a planner strategy
+    (``weigh_by_joint`` for ``textbook``, nothing for the others)."""
+    check_strategy(strategy)
+    return {"weigh_by_joint": True, "textbook_limits": True} if strategy == "textbook" else {}
 
 
 def check_strategy(strategy: str) -> None:

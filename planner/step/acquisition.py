@@ -54,6 +54,7 @@ __all__ = [
     "RULES",
     "score",
     "all_values",
+    "weighted_by_joint",
 ]
 
 #: Below this z the log of ``phi(z) + z Phi(z)`` uses its asymptotic series.
@@ -381,3 +382,29 @@ def all_values(
         else:
             out[name] = r.value(mean, sd, incumbent, maximize=maximize, kappa=kappa, xi=xi)
     return out
+
+
+def weighted_by_joint(log_score, joint) -> np.ndarray:
+    """A rule's log-scale score plus the log of the joint figure: the rule's value times the
+    probability of meeting every limit.
+
+    For ``ei`` this is the textbook constrained expected improvement, EI(x)
+    times the product of the limits' probabilities (Schonlau, Welch & Jones
+    1998; Gardner et al. 2014; from memory), which the simulator's
+    ``textbook`` strategy ranks by. The joint figure is floored at the
+    smallest normal double, so that a candidate that cannot meet the limits
+    ranks last rather than as NaN.
+
+    Parameters
+    ----------
+    log_score : array_like
+        :func:`score` values of a rule whose score is a log (``ei``, ``pi``).
+    joint : array_like
+        Joint figures in [0, 1], of the same shape.
+
+    Returns
+    -------
+    ndarray
+    """
+    joint = np.asarray(joint, dtype=float)
+    return np.asarray(log_score, dtype=float) + np.log(np.maximum(joint, np.finfo(float).tiny))

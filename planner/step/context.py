@@ -38,6 +38,9 @@ class StepContext:
     models: FittedModels
     anchors: np.ndarray  # unit-scaled runs the step is measured from
     step_basis: str
+    #: rank by the rule's value times the joint figure (the textbook constrained rule of the
+    #: simulator's ``textbook`` strategy; a planning step from a protocol never sets it)
+    weigh_by_joint: bool = False
     _hard: tuple = field(default=(None, None), repr=False)
 
     def limit_predictions(self, U=None, lim_models=None) -> list[LimitPrediction]:

@@ -70,7 +70,8 @@ def _fit_job(job: dict):
                           restarts=job["restarts"], warm=job["warm"], seed=job["seed"],
                           length_scale_max=job["length_scale_max"],
                           ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"], widen=job["widen"],
-                          short=job["short"], noise_sd=job["noise_sd"], local=job["local"])
+                          short=job["short"], noise_sd=job["noise_sd"], local=job["local"],
+                          floor=job.get("floor", True))
     if model is None and job.get("ids"):
         summary = dataclasses.replace(summary, message=summary.message + repeated_runs_note(job["U"], job["ids"]))
     return model, summary
@@ -89,7 +90,7 @@ def repeated_runs_note(U: np.ndarray, ids) -> str:
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,
-         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None, local=None):
+         ml_runs_per_hyperparameter=12.0, widen=False, short=None, noise_sd=None, local=None, floor=True):
     try:
         model = fit_gp(U, y, prior_mean=prior_mean, n_restarts=restarts, warm_start=warm, rng=seed,
                        length_scale_max=length_scale_max,
@@ -97,7 +98,7 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
     except ModelError as exc:
         return None, ModelSummary(response, role, int(len(y)), ModelStatus.NOT_FITTED, str(exc),
                                   prior_mean=prior_mean)
-    if role == "limit":
+    if role == "limit" and floor:
         model = _with_signal_floor(model, U, y, prior_mean)
     sd_factor = None
     used_priors = bool(model.used_priors)
@@ -184,8 +185,12 @@ def _seed_of(seq: np.random.SeedSequence) -> int:
 
 
 def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, warm_start, children,
-          n_free: int) -> tuple[list[dict], dict[int, ModelSummary]]:
-    """One fit job per response that has enough runs; a summary for each limit that has not."""
+          n_free: int, textbook: bool = False) -> tuple[list[dict], dict[int, ModelSummary]]:
+    """One fit job per response that has enough runs; a summary for each limit that has not.
+
+    ``textbook``: Gaussian limit models as the textbook fits them (prior mean
+    at the data's mean, no floor on the signal variance).
+    """
     obj = protocol.objective
     m_obj = used & runs.measured(obj.name)
     n_obj = int(m_obj.sum())
@@ -220,8 +225,8 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
             continue
         jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
                          ids=[runs.run_ids[i] for i in np.flatnonzero(mask)],
-                         prior_mean=rule.prior_mean, warm=_warm(warm_start, lim.name),
-                         seed=_seed_of(children[3 + k]), k=k, noise_sd=lim.measurement_sd,
+                         prior_mean=None if textbook else rule.prior_mean, warm=_warm(warm_start, lim.name),
+                         seed=_seed_of(children[3 + k]), k=k, noise_sd=lim.measurement_sd, floor=not textbook,
                          length_scale_max=cap, widen=protocol.screen.widen_from_loo,
                          short=(lim.lower, lim.upper) if protocol.screen.short_model else None,
                          local=dict(lower=lim.lower, upper=lim.upper, local=protocol.screen.widen_locally,
@@ -246,8 +251,12 @@ def _binomial_job(lim, rule, runs: RunsTable, U_runs, mask, warm_start, child, k
 
 
 def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, *, warm_start: dict,
-               children, n_free: int) -> FittedModels:
+               children, n_free: int, textbook: bool = False) -> FittedModels:
     """Fit every response's model (independent fits, on FIT_WORKERS processes when big).
+
+    ``textbook`` fits the Gaussian limit models as the textbook does (prior
+    mean at the data's mean, no signal-variance floor; the simulator's
+    ``textbook`` strategy only).
 
     BLAS stays on one thread, so each fit gives the same bits however it runs.
 
@@ -256,7 +265,7 @@ def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, 
     ModelError
         When the objective has too few runs or its model cannot be fitted.
     """
-    jobs, early = _jobs(protocol, rules, runs, U_runs, used, warm_start, children, n_free)
+    jobs, early = _jobs(protocol, rules, runs, U_runs, used, warm_start, children, n_free, textbook)
     # starting worker processes costs about 0.1 s, more than small fits take
     big = max(len(job["y"]) for job in jobs) >= PARALLEL_FIT_MIN_RUNS
     fitted = map_jobs(_fit_job, jobs, FIT_WORKERS if big else 1)

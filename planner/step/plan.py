@@ -45,7 +45,7 @@ from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.settings import Z95
-from guardband.planner.step.acquisition import all_values, score as rule_score
+from guardband.planner.step.acquisition import all_values, score as rule_score, weighted_by_joint
 from guardband.planner.step.attitudes import rule_picks, threshold_price
 from guardband.planner.step.batch import Pool, greedy_batch
 from guardband.planner.step.context import StepContext
@@ -81,13 +81,20 @@ def _incumbent(protocol: Protocol, runs: RunsTable, safe) -> tuple[dict | None, 
     return {"run_id": runs.run_ids[best], "value": float(y_obj[best])}, Mode.IMPROVE, []
 
 
-def _scorer(protocol: Protocol, mode: str, rank_kw: dict):
-    """``scores_of(mu, sd, result, incumbent)``: the rule's values, or the joint figure (feasibility first)."""
+def _scorer(protocol: Protocol, mode: str, rank_kw: dict, weigh_by_joint: bool = False):
+    """``scores_of(mu, sd, result, incumbent)``: the rule's values, or the joint figure (feasibility first).
+
+    With ``weigh_by_joint`` the rule's log value plus the log of the joint
+    figure (for ``ei``: EI times the probability of meeting every limit, the
+    textbook constrained rule; :func:`weighted_by_joint`).
+    """
     def scores_of(mu, sd, result, inc_value):
         if mode == Mode.FEASIBILITY_FIRST:
             return result.joint.astype(float)
-        return rule_score(protocol.ranking.rule, mu, sd, inc_value, **rank_kw)
+        score = rule_score(protocol.ranking.rule, mu, sd, inc_value, **rank_kw)
+        return weighted_by_joint(score, result.joint) if weigh_by_joint else score
     return scores_of
+
 
 
 def _screened(ctx: StepContext, X, scores_of, inc_value) -> Pool:
@@ -201,7 +208,8 @@ class PreparedStep:
     children: list
 
 
-def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: dict | None = None) -> PreparedStep:
+def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: dict | None = None,
+                 weigh_by_joint: bool = False, textbook_limits: bool = False) -> PreparedStep:
     """Fit the models and find the incumbent, as a planning step does (phases 1, 2 and 5).
 
     :func:`plan_step` and :func:`guardband.planner.step.judge.judge_points`
@@ -214,16 +222,16 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
     scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
     used, U_runs = ~runs.pending, scaler.unit(runs.X)
     models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
-                        n_free=int(scaler.free.sum()))
+                        n_free=int(scaler.free.sum()), textbook=textbook_limits)
     safe = safe_runs_mask(protocol, runs)
     incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
     anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
         U_runs[used], "measured run (none has met every limit yet)")
-    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis)
+    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis, weigh_by_joint=weigh_by_joint)
     rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
                         inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,
-                        scores_of=_scorer(protocol, mode, rank_kw), messages=models.warnings() + inc_messages,
+                        scores_of=_scorer(protocol, mode, rank_kw, weigh_by_joint), messages=models.warnings() + inc_messages,
                         warm_start=warm_start, children=children)
 
 
@@ -236,6 +244,8 @@ def plan_step(
     warm_start: dict | None = None,
     pool_size: int | None = None,
     explain: bool = True,
+    weigh_by_joint: bool = False,
+    textbook_limits: bool = False,
 ) -> PlanResult:
     """Run one planning step.
 
@@ -261,6 +271,14 @@ def plan_step(
     explain : bool
         Also find what each ranking rule would propose and what each
         threshold costs (:mod:`.attitudes`); the simulator turns it off.
+    weigh_by_joint : bool
+        Rank by the rule's value times the joint figure (the simulator's
+        ``textbook`` strategy, which also switches the screen off through its
+        protocol); never set by a protocol.
+    textbook_limits : bool
+        Fit the Gaussian limit models as the textbook does: prior mean at the
+        data's mean, not at the limit, and no signal-variance floor (the
+        ``textbook`` strategy only; never set by a protocol).
 
     Returns
     -------
@@ -277,7 +295,8 @@ def plan_step(
     """
     count = protocol.batch.size if count is None else int(count)
     pool_size = protocol.batch.pool if pool_size is None else int(pool_size)
-    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start)
+    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start, weigh_by_joint=weigh_by_joint,
+                      textbook_limits=textbook_limits)
     ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
     space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
     X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))

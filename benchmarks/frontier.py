@@ -38,7 +38,7 @@ campaign; rows of other ``--label`` values are kept, so runs can be added
 in parts), ``<stem>.png`` (the plots).
 
 Run:  python benchmarks/frontier.py [--builtin gramacy tablet dose coating] [--family 28]
-          [--seeds 5] [--budget 30] [--family-budget 20] [--thresholds 0.5 0.7 0.8 0.9 0.95]
+          [--seeds 5] [--family-seeds 1] [--budget 30] [--family-budget 20] [--thresholds 0.5 0.7 0.8 0.9 0.95]
           [--peers textbook random classical] [--ablations ...] [--ablation-threshold 0.8]
           [--pool 1000] [--refine 1] [--workers 2] [--label current]
           [--out benchmarks/results/frontier.csv]
@@ -71,10 +71,11 @@ from guardband.planner.simulation.family import family_problem, with_settings  #
 from guardband.planner.simulation.problems import Problem, get_problem  # noqa: E402
 from guardband.planner.simulation.runner import run_in_workers, simulate  # noqa: E402
 
-DEFAULTS = {"builtin": ["gramacy", "tablet", "dose", "coating"], "family": 28, "seeds": 5, "budget": 30,
+DEFAULTS = {"builtin": ["gramacy", "tablet", "dose", "coating"], "family": 28, "seeds": 5, "family_seeds": 1,
+            "budget": 30,
             "family_budget": 20, "thresholds": [0.5, 0.7, 0.8, 0.9, 0.95],
             "peers": ["textbook", "random", "classical"], "ablations": [], "pool": 1000, "refine": 1}
-QUICK = {"builtin": ["gramacy", "dose"], "family": 4, "seeds": 2, "budget": 10, "family_budget": 8,
+QUICK = {"builtin": ["gramacy", "dose"], "family": 4, "seeds": 2, "family_seeds": 1, "budget": 10, "family_budget": 8,
          "thresholds": [0.5, 0.95], "peers": ["textbook", "random"], "ablations": [], "pool": 300, "refine": 0}
 #: name -> what it switches off: {section: {key: value}} replaced in the protocol.
 ABLATIONS = {
@@ -156,10 +157,10 @@ def run_job(job: Job) -> dict:
             "wall_s": round(time.perf_counter() - began, 2)}
 
 
-def _jobs(problems: list[tuple[Problem, str, int]], opt: dict) -> list[Job]:
+def _jobs(problems: list[tuple[Problem, str, int, int]], opt: dict) -> list[Job]:
     """Every (problem, strategy, seed) campaign of the run."""
     jobs = []
-    for problem, group, budget in problems:
+    for problem, group, budget, seeds in problems:
         rng_ = objective_range(problem)
         variants = [(f"t={t:g}", "protocol", t, "") for t in opt["thresholds"]]
         variants += [(peer, peer, math.nan, "") for peer in opt["peers"]]
@@ -170,7 +171,7 @@ def _jobs(problems: list[tuple[Problem, str, int]], opt: dict) -> list[Job]:
                               pool=opt["pool"], refine=opt["refine"])
             if ablation:
                 p = with_ablation(p, ablation)
-            jobs += [Job(p, group, label, run_as, t, ablation, s, budget, rng_) for s in range(opt["seeds"])]
+            jobs += [Job(p, group, label, run_as, t, ablation, s, budget, rng_) for s in range(seeds)]
     return jobs
 
 
@@ -317,7 +318,7 @@ def _options(args) -> dict:
 def _command(args, opt: dict) -> str:
     lst = lambda v: " ".join(f"{x:g}" if isinstance(x, float) else str(x) for x in v)  # noqa: E731
     return (f"python benchmarks/frontier.py --builtin {lst(opt['builtin'])} --family {opt['family']} "
-            f"--seeds {opt['seeds']} --budget {opt['budget']} --family-budget {opt['family_budget']} "
+            f"--seeds {opt['seeds']} --family-seeds {opt['family_seeds']} --budget {opt['budget']} --family-budget {opt['family_budget']} "
             f"--thresholds {lst(opt['thresholds'])} --peers {lst(opt['peers'])} "
             + (f"--ablations {lst(opt['ablations'])} --ablation-threshold {opt['ablation_threshold']:g} "
                if opt["ablations"] else "")
@@ -329,7 +330,8 @@ def main(argv=None) -> int:
     ap.add_argument("--builtin", nargs="*", help="built-in problems (default all four)")
     ap.add_argument("--family", type=int, help="first N problems of the generated family (default 28)")
     ap.add_argument("--family-seed", type=int, default=0)
-    ap.add_argument("--seeds", type=int, help="campaigns per problem and strategy")
+    ap.add_argument("--seeds", type=int, help="campaigns per built-in problem and strategy")
+    ap.add_argument("--family-seeds", type=int, help="campaigns per family problem and strategy (default 1)")
     ap.add_argument("--budget", type=int, help="planned runs per campaign on the built-in problems")
     ap.add_argument("--family-budget", type=int, help="planned runs per campaign on the family")
     ap.add_argument("--thresholds", type=float, nargs="*")
@@ -345,10 +347,10 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     opt = _options(args)
     began = time.perf_counter()
-    problems = [(get_problem(n), n, opt["budget"]) for n in opt["builtin"]]
+    problems = [(get_problem(n), n, opt["budget"], opt["seeds"]) for n in opt["builtin"]]
     family = run_in_workers(cal._family_job, [(i, args.family_seed) for i in range(opt["family"])],
                             workers=args.workers)
-    problems += [(p, "family", opt["family_budget"]) for p in family]
+    problems += [(p, "family", opt["family_budget"], opt["family_seeds"]) for p in family]
     jobs = _jobs(problems, opt)
 
     def progress(done, total):

@@ -295,7 +295,7 @@ def frontier_plot(summary: list[dict], path: Path, label: str) -> None:
         ax.set_xlabel("planned runs that broke a limit (%)", fontsize=8)
         ax.set_ylabel("median gap (% of range)", fontsize=8)
         ax.grid(alpha=0.3)
-        ax.legend(fontsize=7, loc="upper right")
+        ax.legend(fontsize=7, loc="best")
     for ax in list(axes.flat)[len(groups):]:
         ax.axis("off")
     fig.suptitle("Gap against limit breaks (one run per step; threshold beside each Guardband point)", fontsize=10)

@@ -16,7 +16,9 @@ can see how near each near miss came.
    width (and at least ``span_floor``, unit-scaled). A model that has only
    seen a region reads alike everywhere in it; this rule keeps each step's
    extrapolation in proportion to what has been tested, so the region grows
-   only as far as runs at its edge come back within the limits.
+   only as far as runs at its edge come back within the limits. The push
+   doubles for each of the latest runs in a row (up to ``span_growth``)
+   that extended the span and met every limit (:func:`span_streak`).
 3c. ``skips-untried-level`` (protocol ``[escalation] no_skipping``): a
    discrete factor more than one level above the highest level given in a
    run that met every limit, or more than one factor above theirs at once.
@@ -74,6 +76,7 @@ __all__ = [
     "REASONS",
     "LimitPrediction",
     "MonotoneBasis",
+    "span_streak",
     "monotone_envelope",
     "above_broken",
     "HardRules",
@@ -411,6 +414,45 @@ def tested_span(anchors, reach: float, floor: float) -> tuple[np.ndarray, np.nda
     lo, hi = anchors.min(axis=0), anchors.max(axis=0)
     pad = np.maximum(reach * (hi - lo), floor)
     return lo - pad, hi + pad
+
+
+def span_streak(U, met, columns=None) -> int:
+    """How many of the latest runs in a row extended the tested span and met every limit.
+
+    Runs are taken in order. A run *extends* the span when it lies outside
+    the box of the earlier runs that met every limit (in ``columns``); each
+    such run that met every limit adds one, and any run that broke a limit
+    ends the streak (sets it to 0). This is the success count of a trust
+    region (Eriksson et al. 2019, "Scalable global optimization via local
+    Bayesian optimization", NeurIPS; from memory), read off the runs
+    themselves so that a plan stays a function of its inputs.
+
+    Parameters
+    ----------
+    U : array of shape (n_runs, k)
+        Measured runs, unit-scaled, in the order they were made.
+    met : bool array of shape (n_runs,)
+        Whether each run met every limit.
+    columns : bool array of shape (k,), optional
+        The columns the span rule applies to (default all).
+
+    Returns
+    -------
+    int
+    """
+    U = np.asarray(U, dtype=float)
+    cols = np.ones(U.shape[1], dtype=bool) if columns is None else np.asarray(columns, dtype=bool)
+    lo = hi = None
+    streak = 0
+    for u, ok in zip(U[:, cols], np.asarray(met, dtype=bool)):
+        if not ok:
+            streak = 0
+            continue
+        if lo is not None and np.any((u < lo - 1e-12) | (u > hi + 1e-12)):
+            streak += 1
+        lo = u.copy() if lo is None else np.minimum(lo, u)
+        hi = u.copy() if hi is None else np.maximum(hi, u)
+    return streak
 
 
 def _beyond_span(U, anchors, reach, floor, basis, columns=None):

@@ -76,6 +76,18 @@ class Screen(_Strict):
         description="the least push of each side of that box (unit-scaled), so a tight cluster can grow",
         json_schema_extra=_unit("unit-scaled (each factor's reachable range is 0..1)"),
     )
+    span_growth: int = Field(
+        default=3,
+        ge=0,
+        le=10,
+        description=(
+            "the push of that box doubles for each of the latest runs in a row, up to this many, that "
+            "lay beyond the box of the runs before them and met every limit (a run that broke a limit "
+            "ends the streak), so a region whose edge keeps coming back within the limits grows faster; "
+            "0: never"
+        ),
+        json_schema_extra=_unit("doublings"),
+    )
     forbidden: tuple[Forbidden, ...] = Field(
         default=(), description="regions no candidate may enter ([[screen.forbidden]] tables)"
     )

@@ -59,11 +59,11 @@ class StepContext:
         key, value = self._hard
         if key is not X:
             value = hard_rules(self.rules, self.space, X, U, self.anchors, step_basis=self.step_basis,
-                               span_columns=self._continuous_columns())
+                               span_columns=self.continuous_columns())
             self._hard = (X, value)
         return value
 
-    def _continuous_columns(self) -> np.ndarray:
+    def continuous_columns(self) -> np.ndarray:
         """Which free factors (the columns of U) have no discrete levels."""
         free = np.flatnonzero(self.scaler.free)
         return np.array([int(j) not in self.space.levels for j in free], dtype=bool)

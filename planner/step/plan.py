@@ -37,6 +37,7 @@ The flow (see DESIGN.md):
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -55,6 +56,7 @@ from guardband.planner.step.explain import pick_explanations
 from guardband.planner.step.refine import refine
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
+from guardband.safety.screen import span_streak
 
 __all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
@@ -190,6 +192,20 @@ def _space_of(protocol: Protocol):
     return space
 
 
+def _grow_span(ctx: StepContext, U_measured, met) -> list[str]:
+    """Double the tested span's push for each of the latest runs in a row that extended the span and
+    met every limit (up to ``screen.span_growth``); the step's rules change, and the plan says so."""
+    reach, growth = ctx.rules.span_reach, ctx.protocol.screen.span_growth
+    if reach is None or growth <= 0:
+        return []
+    k = min(span_streak(U_measured, met, ctx.continuous_columns()), growth)
+    if k == 0:
+        return []
+    ctx.rules = dataclasses.replace(ctx.rules, span_reach=reach * 2.0**k)
+    return [f"the tested span is pushed out by {reach * 2.0**k:g} of its width (span_reach {reach:g} doubled "
+            f"{k} time(s)): the latest {k} run(s) in a row that lay beyond it met every limit"]
+
+
 @dataclass(frozen=True)
 class PreparedStep:
     """What a step knows before it looks at any candidate: the models, the incumbent, the ranking."""
@@ -228,6 +244,7 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
     anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
         U_runs[used], "measured run (none has met every limit yet)")
     ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis, weigh_by_joint=weigh_by_joint)
+    inc_messages = inc_messages + _grow_span(ctx, U_runs[used], safe[used])
     rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
                         inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,

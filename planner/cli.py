@@ -1,7 +1,10 @@
 """The ``guardband`` command line: parse, call one function, print.
 
 Data goes to stdout in the format asked for (``table``, ``csv``, ``json``);
-messages go to stderr. Exit codes (see :mod:`planner.errors`):
+messages go to stderr. A ``csv`` table on stdout is a plain table (see
+:mod:`planner.app.fileio`); its notes and cautions go to stderr, as a
+written table's go to its ``.notes.txt`` file. Exit codes (see
+:mod:`planner.errors`):
 
 ====  ==========================================================
 0     ok
@@ -30,7 +33,8 @@ import typer
 from guardband.planner import __version__
 from guardband.planner.settings import MAX_RUNS_DEFAULT
 from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError
-from guardband.planner.app.fileio import atomic_write_text, write_csv_text
+from guardband.planner.app.fileio import (atomic_write_many, atomic_write_text, notes_path, notes_text,
+                                         split_comment_lines, table_with_notes, write_csv_text)
 from guardband.planner.app.textable import render_table, wrap_text
 from guardband.planner.inputs.names import shown
 
@@ -90,6 +94,18 @@ def _err(text: str = "") -> None:
     _echo(text, err=True)
 
 
+def _err_notes(text: str) -> None:
+    """The notes and cautions of a CSV table printed on stdout: to stderr, line by line."""
+    for line in text.rstrip("\n").split("\n"):
+        _err(line)
+
+
+def _table_and_notes_files(path, text: str) -> dict:
+    """A CSV text that begins with ``#`` lines, as two files: the plain table and its notes file."""
+    notes, table = split_comment_lines(text)
+    return {path: table, notes_path(path): notes_text(notes, ())}
+
+
 def _cautions_block(cautions) -> str:
     return "CAUTIONS:\n" + "\n".join(f"  - {c}" for c in cautions)
 
@@ -139,10 +155,8 @@ def check(
     if format is Format.json:
         _echo(_json(data))
     elif format is Format.csv:
-        header = list(rows[0].keys())
-        _echo(write_csv_text([list(r.values()) for r in rows], header,
-                                  comment_lines=[f"fingerprint {report.protocol.fingerprint}"]
-                                  + [f"CAUTION: {c}" for c in data["cautions"]]), nl=False)
+        _echo(write_csv_text([list(r.values()) for r in rows], list(rows[0].keys())), nl=False)
+        _err_notes(notes_text([f"fingerprint {report.protocol.fingerprint}"], data["cautions"]))
     else:
         p = report.protocol
         _show(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
@@ -173,7 +187,8 @@ def start(
     protocol: Path = typer.Argument(..., help="The protocol TOML file."),
     runs: int = typer.Option(..., "--runs", "-n", min=1, max=10000, help="How many starting runs."),
     out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
-                                      help="Write the design as CSV to this file."),
+                                      help="Write the design as CSV to this file (its notes and cautions "
+                                           "to the same name with .notes.txt)."),
     seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's)."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
@@ -188,16 +203,17 @@ def start(
     comments = [f"Guardband starting design - {p.study.title}",
                 f"protocol fingerprint {p.fingerprint}; seed {seed_used}; tool version {__version__}",
                 "fill in the response columns as runs are measured; leave a cell empty if not measured",
-                *notes, "CAUTIONS:", *[f"- {c}" for c in cautions]]
-    text = write_csv_text(rows, header, comment_lines=comments, float_format=".6g")
+                *notes]
+    table, notes_bytes = table_with_notes(header, rows, comments, cautions, float_format=".6g")
     if out is not None:
-        atomic_write_text(out, text)
-        _err(f"wrote {len(rows)} starting runs to {out}")
+        atomic_write_many({out: table, notes_path(out): notes_bytes})
+        _err(f"wrote {len(rows)} starting runs to {out} (notes and cautions: {notes_path(out)})")
     if format is Format.json:
         _echo(_json({"header": header, "rows": rows, "seed": seed_used, "notes": notes,
                           "cautions": list(cautions)}))
     elif format is Format.csv:
-        _echo(text, nl=False)
+        _echo(table.decode("utf-8"), nl=False)
+        _err_notes(notes_bytes.decode("utf-8"))
     else:
         _show(render_table(header, rows))
         for n in notes:
@@ -244,6 +260,7 @@ def plan(
         _echo(_json(body))
     elif format is Format.csv:
         _echo(outcome.files["plan"].read_text(encoding="utf-8"), nl=False)
+        _err_notes(outcome.files["plan_notes"].read_text(encoding="utf-8"))
     else:
         p = result.protocol
         inc = result.incumbent
@@ -277,7 +294,8 @@ def plan(
         _err(f"warning: {f}")
     if outcome.calibration is not None and outcome.calibration.contradicts:
         _err("warning: " + outcome.calibration.sentence())
-    _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}")
+    _err(f"wrote {outcome.files['plan']} and {outcome.files['exclusions']}, each with its notes and cautions "
+         f"in a .notes.txt file of the same name")
     if report:
         from guardband.planner.report import report_plan
 
@@ -316,6 +334,7 @@ def judge(
         _echo(_json(dict(outcome.record["body"])))
     elif format is Format.csv:
         _echo(outcome.files["judge"].read_text(encoding="utf-8"), nl=False)
+        _err_notes(outcome.files["judge_notes"].read_text(encoding="utf-8"))
     else:
         res, p = outcome.result, outcome.protocol
         inc = res.incumbent
@@ -328,7 +347,7 @@ def judge(
         _show(_cautions_block(cautions_of(p)))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
-    _err(f"wrote {outcome.files['judge']}")
+    _err(f"wrote {outcome.files['judge']} and {outcome.files['judge_notes'].name}")
 
 
 def _echo_attitudes(result) -> None:
@@ -375,8 +394,11 @@ def verify(
     if summary and verdict.ok:
         from guardband.planner.app.review import summarize_log
 
-        text = summarize_log(log).render(format.value)
+        review = summarize_log(log)
+        text = review.render(format.value)
         _show(text.rstrip("\n")) if format is Format.table else _echo(text, nl=False)
+        if format is Format.csv:
+            _err_notes(review.csv_notes())
     elif format is Format.json:
         _echo(_json(verdict.to_dict()))
     elif format is Format.csv:
@@ -542,7 +564,8 @@ def simulate(
     settings_from_problem: bool = typer.Option(False, "--settings-from-problem",
                                                help="Use the problem's own planner settings (same as '-')."),
     out: Optional[str] = typer.Option(None, "--out", "-o", callback=_nonempty_out,
-                                      help="Also write the CSV to this file."),
+                                      help="Also write the CSV to this file (its notes and cautions to the "
+                                           "same name with .notes.txt)."),
     out_dir: Optional[str] = typer.Option(None, "--out-dir", callback=_nonempty_out,
                                           help="Sweep: write the summary CSV, one CSV "
                                            "per setting and scenario, and sweep.html into this folder."),
@@ -591,12 +614,14 @@ def _simulate_problem(settings, problem, budget, seeds, start, noise, strategies
                                    progress=progress)
     close()
     csv_text = result.csv_text()
+    notes, table = split_comment_lines(csv_text)
     if out is not None:
-        atomic_write_text(out, csv_text)
+        atomic_write_many(_table_and_notes_files(out, csv_text))
     if format is Format.json:
         _echo(_json(result.to_dict()))
     elif format is Format.csv:
-        _echo(csv_text, nl=False)
+        _echo(table, nl=False)
+        _err_notes(notes_text(notes, ()))
     else:
         _show(result.table_text())
         _show(_cautions_block(result.cautions()))
@@ -612,7 +637,6 @@ def _simulate_problem(settings, problem, budget, seeds, start, noise, strategies
 
 def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, seeds, seed, within, workers,
                     scheduler, pool, out, out_dir, format, progress, close) -> None:
-    from guardband.planner.app.fileio import atomic_write_many
     from guardband.planner.app.simulate_options import sweep_from_options
     from guardband.planner.models import default_workers
     from guardband.planner.report.sweep import sweep_html
@@ -627,9 +651,10 @@ def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, se
     out_dir = Path(out_dir) if out_dir is not None else None
     files: dict = {}
     if out is not None:
-        files[out] = result.csv_text()
+        files.update(_table_and_notes_files(out, result.csv_text()))
     if out_dir is not None:
-        files.update({out_dir / name: text for name, text in result.files().items()})
+        for name, text in result.files().items():
+            files.update(_table_and_notes_files(out_dir / name, text))
         files[out_dir / "sweep.html"] = sweep_html(result, title=title, kind=kind)
     if files:
         if out_dir is not None:
@@ -641,7 +666,9 @@ def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, se
     if format is Format.json:
         _echo(_json(result.to_dict()))
     elif format is Format.csv:
-        _echo(result.csv_text(), nl=False)
+        notes, table = split_comment_lines(result.csv_text())
+        _echo(table, nl=False)
+        _err_notes(notes_text(notes, ()))
     else:
         _show(result.table_text())
         _show(_cautions_block(result.cautions()))

@@ -1,7 +1,8 @@
 """Caution texts that go with every output a person reads.
 
-The terminal output, the plan table (as ``# `` comment lines), the report
-and the JSON output all carry these sentences. The wording keeps the roles
+The terminal output, every CSV table of runs or recipes (a ``cautions``
+column in every row, and the table's ``.notes.txt`` file), the report and
+the JSON output all carry these sentences. The wording keeps the roles
 clear: the tool proposes and estimates; qualified people decide.
 """
 

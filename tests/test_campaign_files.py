@@ -96,7 +96,7 @@ def verify_fails_naming(folder: Path, name: str, words: str):
 def test_an_untouched_campaign_verifies_with_every_file_checked(campaign):
     res = run("verify", campaign / "decisions.jsonl")
     assert res.exit_code == 0, res.output
-    assert "4 named files match their SHA-256" in res.stdout
+    assert "6 named files match their SHA-256" in res.stdout  # two tables, their notes, two input copies
 
 
 @pytest.mark.parametrize("kind", KINDS)
@@ -286,13 +286,14 @@ def test_a_step_interrupted_after_its_record_is_put_in_place_by_the_next_writer(
     assert run("plan", PROTOCOL, RUNS, "--out", campaign, *FAST, "--seed", 80).exit_code == 0
     res = run("verify", campaign / "decisions.jsonl", "--expect-count", 3)
     assert res.exit_code == 0, res.stderr
-    assert "8 named files match" in res.stdout  # 3 plans, 3 exclusion tables, 1 protocol and 1 runs copy
+    # 3 plans, 3 exclusion tables, the notes file of each, 1 protocol and 1 runs copy
+    assert "14 named files match" in res.stdout
     assert not [p for p in campaign.rglob(".*") if p.name.endswith(".tmp")]
 
 
 # ---------------------------------------------------------- real SIGKILLs
 def _trial_inputs(folder: Path, trial: int) -> tuple[Path, Path]:
-    """Inputs of one trial, outside the campaign: new bytes each time, so all four files are new."""
+    """Inputs of one trial, outside the campaign: new bytes each time, so all six files are new."""
     protocol = folder.parent / f"protocol-{trial}.toml"
     protocol.write_text(PROTOCOL.read_text().replace('title = "Corpus blend (invented)"',
                                                      f'title = "Corpus blend (invented), trial {trial}"'))
@@ -346,8 +347,9 @@ def drive(folder: Path, trials: int, seed: int) -> dict:  # pragma: no cover - r
     log = folder / "decisions.jsonl"
     problems: list[str] = []
     outcomes = {"appended": 0, "not_appended": 0, "rolled_forward": 0, "survived": 0}
-    # 4 pending tables + the log + 4 renames into place = 9 renames in a write
-    points = [(k, after) for k in range(1, 10) for after in (False, True)]
+    # 6 pending files (two input copies, two tables, their notes) + the log + 6 renames into
+    # place = 13 renames in a write
+    points = [(k, after) for k in range(1, 14) for after in (False, True)]
     rng.shuffle(points)
     for trial in range(trials):
         k, after = points[trial % len(points)]

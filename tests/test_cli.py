@@ -76,8 +76,8 @@ def test_start_writes_fillable_design(tmp_path, protocol):
     res = run("start", protocol, "--runs", 7, "--out", out, "--format", "csv")
     assert res.exit_code == 0, res.output
     rows = data_rows(out.read_text())
-    assert rows[0][0] == "run_id" and len(rows) == 8
-    assert out.read_text().startswith("# Guardband starting design")
+    assert rows[0][0] == "run_id" and rows[0][-1] == "cautions" and len(rows) == 8
+    assert (tmp_path / "start.notes.txt").read_text().startswith("Guardband starting design")
     # the written file reads back as a runs table with every run pending
     from guardband.planner.inputs.protocol import load_protocol
     from guardband.planner.inputs.runs import read_runs
@@ -107,7 +107,8 @@ def test_plan_writes_table_log_and_cautions(campaign):
     plans = list(out.glob("plan-*.csv"))
     assert len(plans) == 1
     text = plans[0].read_text()
-    assert "# CAUTIONS:" in text
+    assert "qualified person reviews every proposed run" in text  # the cautions column
+    assert "CAUTIONS:" in (out / plans[0].name.replace(".csv", ".notes.txt")).read_text()
     rows = data_rows(text)
     assert rows[0][:3] == ["rank", "run_id", "active"] and len(rows) == 4
     assert {"p_degradant_b", "p_friability", "joint", "ei", "pi", "bound", "mean"} <= set(rows[0])

@@ -54,8 +54,8 @@ def test_same_seed_in_two_processes_gives_identical_bytes(tmp_path):
     (a, _), (b, _) = procs
     files_a, files_b = _files(a), _files(b)
     logs = files_a.pop("decisions.jsonl"), files_b.pop("decisions.jsonl")
-    assert files_a == files_b  # plan-*.csv, exclusions-*.csv and inputs/*: same names, same bytes
-    assert len([n for n in files_a if n.startswith("plan-")]) == 1
+    assert files_a == files_b  # the tables, their notes and inputs/*: same names, same bytes
+    assert len([n for n in files_a if n.startswith("plan-") and n.endswith(".csv")]) == 1
     rec_a, rec_b = (json.loads(log) for log in logs)
     assert rec_a["body"] == rec_b["body"]
     assert _without_time(rec_a) == _without_time(rec_b)
@@ -92,7 +92,7 @@ def test_without_a_seed_one_is_drawn_printed_recorded_and_replayed(tmp_path):
         assert m, res.stderr
         body = ledger.read_records(out / "decisions.jsonl")[0]["body"]
         assert body["seed"] == int(m.group(1)) and body["seed_drawn"] is True
-        assert f"seed {body['seed']};" in next(out.glob("plan-*.csv")).read_text()
+        assert f"seed {body['seed']};" in next(out.glob("plan-*.notes.txt")).read_text()
         seeds.append(body["seed"])
         rep = runner.invoke(app, ["replay", str(out / "decisions.jsonl"), "--record", "0"])
         assert rep.exit_code == 0 and "identical" in rep.stdout, rep.output

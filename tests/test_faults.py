@@ -68,6 +68,23 @@ def _csv_problem(path: Path) -> str | None:
     return None
 
 
+def _named_bytes(folder: Path, path: Path) -> tuple[Path, bytes | None]:
+    """The file whose name carries the digest, and the bytes it is of (None: part of them is missing).
+
+    An input copy's name carries its own digest; a table's and its notes file's, that of the
+    table's bytes followed by the notes' bytes.
+    """
+    from guardband.planner.app.fileio import NOTES_SUFFIX, notes_path
+
+    if path.parent != folder:
+        return path, path.read_bytes()
+    table = path.with_name(path.name[:-len(NOTES_SUFFIX)] + ".csv") if path.name.endswith(NOTES_SUFFIX) else path
+    notes = Path(notes_path(table))
+    if not (table.exists() and notes.exists()):
+        return table, None
+    return table, table.read_bytes() + notes.read_bytes()
+
+
 def check_campaign(folder: Path, previous_log: bytes) -> tuple[list[str], dict]:
     """Problems found in a campaign folder, and what it holds."""
     from guardband.safety import ledger
@@ -84,7 +101,7 @@ def check_campaign(folder: Path, previous_log: bytes) -> tuple[list[str], dict]:
     recorded = {}
     for rec in records:
         body = rec["body"]
-        for key in ("plan_table", "exclusion_table"):
+        for key in ("plan_table", "plan_notes", "exclusion_table", "exclusion_notes"):
             recorded[folder / body[key]["file"]] = body[key]["sha256"]
         for key in ("protocol_file", "runs_file"):
             recorded[folder / body[key]["copy"]] = body[key]["sha256"]
@@ -101,8 +118,9 @@ def check_campaign(folder: Path, previous_log: bytes) -> tuple[list[str], dict]:
             temps.append(path)
             continue
         outputs.append(path)
-        stem = path.stem.rsplit("-", 1)
-        if len(stem) != 2 or _digest(path.read_bytes())[:12] != stem[1]:
+        named, named_data = _named_bytes(folder, path)
+        stem = named.stem.rsplit("-", 1)
+        if named_data is None or len(stem) != 2 or _digest(named_data)[:12] != stem[1]:
             problems.append(f"{path.relative_to(folder)} is partial or altered (its name's digest differs)")
         elif path.suffix == ".csv" and path.parent == folder:
             problem = _csv_problem(path)

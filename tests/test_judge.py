@@ -69,7 +69,8 @@ def test_the_judgement_is_its_own_record_and_the_folder_verifies(fed_back):
     assert records[1]["body"]["verdicts"] == judged["verdicts"]
     res = run("verify", camp / "decisions.jsonl")
     assert res.exit_code == 0, res.output
-    assert "6 named files" in res.output  # plan, exclusions, judge table, three input copies
+    # plan, exclusions, judge table, the notes file of each, three input copies
+    assert "9 named files" in res.output
 
 
 def test_a_recipe_that_fails_gets_the_screens_reason(fed_back):
@@ -107,9 +108,10 @@ def test_the_csv_output_carries_the_cautions(tmp_path):
     _recipes_csv(tmp_path / "r.csv", names, [("A", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 13.0])])
     res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "csv")
     assert res.exit_code == 0
-    assert "CAUTIONS" in res.stdout and "qualified person" in res.stdout
-    rows = [r for r in csv.reader(io.StringIO(res.stdout)) if r and not r[0].startswith("#")]
-    assert rows[0][0] == "recipe" and rows[1][0] == "A"
+    assert "CAUTIONS" in res.stderr and "qualified person" in res.stderr
+    rows = list(csv.reader(io.StringIO(res.stdout)))
+    assert rows[0][0] == "recipe" and rows[1][0] == "A" and len(rows) == 2
+    assert rows[0][-1] == "cautions" and "qualified person" in rows[1][-1]
 
 
 def test_a_recipe_that_repeats_a_run_in_progress_is_named(tmp_path):

@@ -91,7 +91,8 @@ def test_start_still_replaces_a_writable_regular_file(tmp_path):
     out = tmp_path / "design.csv"
     out.write_text("old\n")
     assert _start(out).exit_code == 0
-    assert out.read_text().startswith("# Guardband starting design")
+    assert out.read_text().startswith("run_id,")
+    assert (tmp_path / "design.notes.txt").read_text().startswith("Guardband starting design")
 
 
 @pytest.mark.parametrize("command", [
@@ -167,10 +168,10 @@ def test_a_table_path_taken_by_a_link_refuses_the_whole_step(campaign, monkeypat
     names = {}
 
     def render(*args, **kwargs):
-        plan, excl, label = real_render(*args, **kwargs)
-        names["plan"] = f"plan-{workflow._short(plan)}.csv"
+        tables = real_render(*args, **kwargs)
+        names["plan"] = workflow.table_file_names("plan", tables.plan, tables.plan_notes)[0]
         os.symlink("/dev/null", campaign / names["plan"])
-        return plan, excl, label
+        return tables
 
     monkeypatch.setattr(workflow, "render_tables", render)
     before_log = (campaign / "decisions.jsonl").read_bytes()

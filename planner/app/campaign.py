@@ -1,8 +1,10 @@
 """The files of a campaign folder: which a record names, checking them, and writing a step's.
 
-A plan record names four files by path (relative to the folder that holds
-the log) and SHA-256: the plan table, the exclusion table and the copies of
-the protocol and runs files under ``inputs/``. This module
+A plan record names six files by path (relative to the folder that holds
+the log) and SHA-256: the plan table, the exclusion table, the notes file of
+each (``plan_notes``, ``exclusion_notes``) and the copies of the protocol
+and runs files under ``inputs/``; a judge record its table, the table's
+notes and its three input copies. This module
 
 - lists them (:func:`named_files`) and checks every one against its hash,
   and lists the files in the folder that no record names
@@ -62,7 +64,8 @@ class NamedFile:
     field: str
 
 
-_FIELDS = (("plan_table", "file"), ("exclusion_table", "file"), ("judge_table", "file"),
+_FIELDS = (("plan_table", "file"), ("plan_notes", "file"), ("exclusion_table", "file"),
+           ("exclusion_notes", "file"), ("judge_table", "file"), ("judge_notes", "file"),
            ("protocol_file", "copy"), ("runs_file", "copy"), ("recipes_file", "copy"))
 
 

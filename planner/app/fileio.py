@@ -5,6 +5,32 @@ of its wrappers): the data go to a temporary file in the target's folder,
 are flushed and synced to disk, and the temporary file is then renamed over
 the target with :func:`os.replace`. A reader, or a crash, sees either the
 whole old file or the whole new one, never a mixture.
+
+How a table carries its notes and cautions
+------------------------------------------
+Every CSV table the command line writes for people is a plain table: one
+header line, then one line per row, the same number of cells in each
+(RFC 4180 knows no comment lines), so that ``pandas.read_csv(path)`` with
+its default settings and a spreadsheet both open it as it is. What used to
+be ``# ...`` lines above the header goes elsewhere:
+
+- the notes (title, fingerprints, seed, tool version, the step's notes) and
+  the cautions go to a companion text file named after the table
+  (:func:`notes_path`: ``plan-<hash>.csv`` -> ``plan-<hash>.notes.txt``),
+  written by :func:`notes_text`; on standard output, where there is no
+  companion, they go to standard error;
+- a table whose rows are runs or recipes someone might make (a starting
+  design, a plan, the candidates of a step, judged recipes) also carries
+  the cautions in its last column, ``cautions``, in every row
+  (:func:`with_cautions_column`), so that the file sent on its own, or a
+  row copied out of it, still carries them.
+
+A companion file rather than header lines, because a reader with default
+settings fails on the lines (pandas: "Expected 2 fields in line 8, saw 3")
+or, in a spreadsheet, shows them as broken rows; a column as well, because
+a companion file can be left behind. :func:`write_csv_text` still writes
+comment lines when asked (the simulation and benchmark files use them);
+:func:`split_comment_lines` takes such lines off a text for its companion.
 """
 
 from __future__ import annotations
@@ -34,6 +60,13 @@ __all__ = [
     "sha256_file",
     "csv_safe_cell",
     "write_csv_text",
+    "CAUTIONS_COLUMN",
+    "NOTES_SUFFIX",
+    "notes_path",
+    "notes_text",
+    "with_cautions_column",
+    "table_with_notes",
+    "split_comment_lines",
 ]
 
 PathLike = Union[str, "os.PathLike[str]"]
@@ -482,9 +515,11 @@ def write_csv_text(
 
     Notes
     -----
-    Readers must skip the comment lines (``pandas.read_csv(...,
-    comment="#")``, or drop lines starting with ``#``). Every cell, header
-    included, goes through :func:`csv_safe_cell`.
+    With ``comment_lines`` the text is no longer a plain table: readers must
+    skip those lines (``pandas.read_csv(..., comment="#")``). The tables the
+    command line writes for people carry none (see the module notes); their
+    notes go to a companion file. Every cell, header included, goes through
+    :func:`csv_safe_cell`.
     """
     header = [str(name) for name in header]
     buffer = io.StringIO()
@@ -525,3 +560,131 @@ def write_csv_text(
                 )
         write_row([_format_cell(cell, float_format) for cell in cells])
     return buffer.getvalue()
+
+
+#: The last column of a table whose rows are runs or recipes: the cautions, in every row.
+CAUTIONS_COLUMN = "cautions"
+#: What replaces a table's last suffix in the name of its companion notes file.
+NOTES_SUFFIX = ".notes.txt"
+
+
+def notes_path(path: PathLike) -> str:
+    """The companion notes file of a table: its last suffix replaced by ``.notes.txt``.
+
+    ``plan-1a2b.csv`` -> ``plan-1a2b.notes.txt``; a name without a suffix
+    gets ``.notes.txt`` appended. The result always differs from ``path``.
+
+    Parameters
+    ----------
+    path : str or path-like
+
+    Returns
+    -------
+    str
+        In the same folder as ``path``.
+    """
+    path = os.fspath(path)
+    folder, name = os.path.split(path)
+    stem, dot, _ = name.rpartition(".")
+    base = stem if dot and stem else name
+    return os.path.join(folder, base + NOTES_SUFFIX)
+
+
+def notes_text(lines: Iterable[str], cautions: Sequence[str]) -> str:
+    """The text of a companion notes file: the notes, then the cautions.
+
+    Parameters
+    ----------
+    lines : iterable of str
+        The notes, in order (a title first). A note holding line breaks
+        becomes several lines.
+    cautions : sequence of str
+        Written under a ``CAUTIONS:`` line, one ``- `` item each; no such
+        line when empty (the notes then already hold their cautions).
+
+    Returns
+    -------
+    str
+        Lines ending in ``"\\n"``. Text is kept as given: a text file is
+        not read as formulas, so no cell escaping applies.
+    """
+    out = [part.rstrip() for line in lines for part in (str(line).splitlines() or [""])]
+    if cautions:
+        out += ["CAUTIONS:", *[f"- {c}" for c in cautions]]
+    return "\n".join(out) + "\n"
+
+
+def with_cautions_column(header: Sequence[str], rows: Iterable[Sequence[object]],
+                         cautions: Sequence[str]) -> tuple[list[str], list[list[object]]]:
+    """A table with the cautions appended as its last column, in every row.
+
+    Parameters
+    ----------
+    header : sequence of str
+        Must not already hold :data:`CAUTIONS_COLUMN`.
+    rows : iterable of sequences
+    cautions : sequence of str
+        Joined with spaces into one cell (each caution is a sentence).
+
+    Returns
+    -------
+    header, rows
+        New lists; the inputs are not modified.
+
+    Raises
+    ------
+    ValueError
+        The header already has a ``cautions`` column.
+    """
+    if CAUTIONS_COLUMN in header:
+        raise ValueError(f"the table already has a column {CAUTIONS_COLUMN!r}: {list(header)}")
+    cell = " ".join(cautions)
+    return [*header, CAUTIONS_COLUMN], [[*row, cell] for row in rows]
+
+
+def table_with_notes(header: Sequence[str], rows: Iterable[Sequence[object]], notes: Iterable[str],
+                     cautions: Sequence[str], *, float_format: str | None = None) -> tuple[bytes, bytes]:
+    """A table of runs or recipes as written for people: the CSV's bytes and its notes file's bytes.
+
+    Parameters
+    ----------
+    header : sequence of str
+    rows : iterable of sequences
+    notes : iterable of str
+        The lines that describe the table (a title first).
+    cautions : sequence of str
+        In the table's last column, in every row (:func:`with_cautions_column`),
+        and at the end of the notes (:func:`notes_text`).
+    float_format : str, optional
+        As :func:`write_csv_text`.
+
+    Returns
+    -------
+    table, notes : bytes
+        UTF-8; the table is a plain CSV table, header and rows only.
+    """
+    header, rows = with_cautions_column(header, rows, cautions)
+    table = write_csv_text(rows, header, float_format=float_format)
+    return table.encode("utf-8"), notes_text(notes, cautions).encode("utf-8")
+
+
+def split_comment_lines(text: str) -> tuple[list[str], str]:
+    """Take the leading ``# ...`` lines off a CSV text written by :func:`write_csv_text`.
+
+    Parameters
+    ----------
+    text : str
+        CSV text that may begin with comment lines.
+
+    Returns
+    -------
+    notes, table
+        The comment lines without their ``#`` and one following space, and
+        the plain table that follows them.
+    """
+    lines = text.split("\n")
+    k = 0
+    while k < len(lines) and lines[k].startswith("#"):
+        k += 1
+    notes = [line[2:] if line.startswith("# ") else line[1:] for line in lines[:k]]
+    return notes, "\n".join(lines[k:])

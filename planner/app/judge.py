@@ -21,9 +21,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from guardband.planner.app.campaign import commit_step
-from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.app.fileio import table_with_notes
 from guardband.planner.app.workflow import (LOG_NAME, _RUNS_SUFFIXES, _read_input, _short, cautions_of,
-                                            warm_start_for)
+                                            table_file_names, warm_start_for)
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.inputs.runs import read_runs_bytes
@@ -115,11 +115,12 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
     lines = [f"Guardband judgement of given recipes - {protocol.study.title}",
              f"protocol fingerprint {protocol.fingerprint}; runs file sha256 {runs.sha256}; recipes file "
              f"sha256 {recipes.sha256}; seed {seed}; tool version {_version()}",
-             *[f"note: {m}" for m in result.messages], *[f"warning: {f}" for f in recipes.flags],
-             "CAUTIONS:", *[f"- {c}" for c in cautions_of(protocol)]]
-    table_bytes = write_csv_text(rows, header, comment_lines=lines, float_format=_FLOAT).encode("utf-8")
+             *[f"note: {m}" for m in result.messages], *[f"warning: {f}" for f in recipes.flags]]
+    table_bytes, notes_bytes = table_with_notes(header, rows, lines, cautions_of(protocol), float_format=_FLOAT)
+    table_name, notes_name = table_file_names("judge", table_bytes, notes_bytes)
     files = {
-        "judge": out_dir / f"judge-{_short(table_bytes)}.csv",
+        "judge": out_dir / table_name,
+        "judge_notes": out_dir / notes_name,
         "protocol_copy": out_dir / "inputs" / f"protocol-{_short(protocol_bytes)}.toml",
         "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}{_suffix(runs_path)}",
         "recipes_copy": out_dir / "inputs" / f"recipes-{_short(recipes_bytes)}{_suffix(recipes_path)}",
@@ -136,11 +137,13 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
         "recipes_file": {**_entry(recipes_path, recipes_bytes, files["recipes_copy"], out_dir),
                          "read_options": recipe_options},
         "judge_table": {"file": files["judge"].name, "sha256": hashlib.sha256(table_bytes).hexdigest()},
+        "judge_notes": {"file": files["judge_notes"].name, "sha256": hashlib.sha256(notes_bytes).hexdigest()},
         "cautions": list(cautions_of(protocol)),
         "operator": operator,
     }
     contents = {files["protocol_copy"]: protocol_bytes, files["runs_copy"]: runs_bytes,
-                files["recipes_copy"]: recipes_bytes, files["judge"]: table_bytes}
+                files["recipes_copy"]: recipes_bytes, files["judge"]: table_bytes,
+                files["judge_notes"]: notes_bytes}
     created = not out_dir.exists()
     try:
         (out_dir / "inputs").mkdir(parents=True, exist_ok=True)

@@ -19,7 +19,7 @@ from pathlib import Path
 
 from guardband.planner.errors import GuardbandError
 from guardband.planner.app.campaign import read_input_copy
-from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.app.fileio import notes_text, write_csv_text
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.app.textable import render_table
 
@@ -125,7 +125,7 @@ class ReviewSummary:
     )
 
     def csv_text(self) -> str:
-        """One row per planning step and per correction, in log order."""
+        """One row per planning step and per correction, in log order (notes: :meth:`csv_notes`)."""
         rows = []
         for s in self.steps:
             row = {
@@ -152,10 +152,12 @@ class ReviewSummary:
                 "superseded_by": c.superseded_by, "reason": c.reason, "operator": c.operator,
             }))
         rows.sort(key=lambda item: item[0])
-        comments = [f"Guardband decision-log summary - {self.log}",
-                    f"verified: {self.count} records, head {self.head}",
-                    *(["CAUTIONS:"] + [f"- {c}" for c in self.cautions] if self.cautions else [])]
-        return write_csv_text([r for _, r in rows], list(self.CSV_HEADER), comment_lines=comments)
+        return write_csv_text([r for _, r in rows], list(self.CSV_HEADER))
+
+    def csv_notes(self) -> str:
+        """What goes with :meth:`csv_text` (a plain table): the log, its head and the cautions."""
+        return notes_text([f"Guardband decision-log summary - {self.log}",
+                           f"verified: {self.count} records, head {self.head}"], self.cautions)
 
     def table_text(self) -> str:
         """A readable summary for the terminal."""

@@ -8,13 +8,22 @@ Output folder layout of ``plan`` (one folder per campaign)::
 
     decisions.jsonl            the decision log (hash chain)
     plan-<hash12>.csv          the proposed runs of one planning step
+    plan-<hash12>.notes.txt    its notes (fingerprints, seed, mode, why each
+                               pick) and cautions
     exclusions-<hash12>.csv    every candidate of that step and its fate
+    exclusions-<hash12>.notes.txt
     inputs/protocol-<hash12>.toml, inputs/runs-<hash12>.csv
                                exact copies of the inputs, for replay
 
-File names carry the first 12 hex digits of the file's own SHA-256, so two
-planning steps never overwrite each other's files and identical inputs
-write identical files.
+The tables are plain CSV (``pandas.read_csv`` reads them with its default
+settings) whose last column, ``cautions``, holds the cautions in every row;
+the notes that used to be ``#`` lines above the header are in the
+companion ``.notes.txt`` file (see :mod:`planner.app.fileio` for why).
+An input copy's name carries the first 12 hex digits of its own SHA-256; a
+table and its notes file carry those of the table's bytes followed by the
+notes' bytes, so two planning steps never overwrite each other's files
+(not even two whose tables agree but whose notes differ) and identical
+inputs write identical files.
 """
 
 from __future__ import annotations
@@ -23,13 +32,14 @@ import hashlib
 import secrets
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
 from guardband.planner import __version__, settings
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError, VerificationError
 from guardband.planner.app.campaign import commit_step, read_input_copy
-from guardband.planner.app.fileio import write_csv_text
+from guardband.planner.app.fileio import notes_path, table_with_notes
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs_bytes
@@ -53,6 +63,9 @@ __all__ = [
     "warm_start_for",
     "plan_table",
     "exclusion_table",
+    "StepTables",
+    "render_tables",
+    "table_file_names",
     "ReplayOutcome",
     "rerun_record",
     "replay_record",
@@ -246,15 +259,12 @@ def _cell(v):
 
 def _header_lines(result: PlanResult, what: str, extra: list[str] = ()) -> list[str]:
     p = result.protocol
-    lines = [
+    return [
         f"Guardband {what} - {p.study.title}",
         f"protocol fingerprint {p.fingerprint}; runs file sha256 {result.runs_sha256}; "
         f"seed {result.seed}; tool version {result.version}",
         *extra,
-        "CAUTIONS:",
-        *[f"- {c}" for c in cautions_of(p)],
     ]
-    return lines
 
 
 @dataclass(frozen=True)
@@ -367,8 +377,18 @@ def _read_input(path: Path, error, what: str) -> bytes:
 _RUNS_SUFFIXES = (".csv", ".tsv", ".txt", ".xlsx", ".xlsm")
 
 
-def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, bytes, str]:
-    """The plan table and exclusion table bytes of a step, and its step label."""
+class StepTables(NamedTuple):
+    """The files of one planning step's tables, as bytes, and its step label."""
+
+    plan: bytes
+    plan_notes: bytes
+    exclusions: bytes
+    exclusion_notes: bytes
+    step_label: str
+
+
+def render_tables(result: PlanResult, count_asked: int | None) -> StepTables:
+    """The plan table, the exclusion table and their notes files of a step, and its step label."""
     body_id = _short(canonical_json({"p": result.proposal_dicts(), "s": result.seed,
                                      "f": result.protocol.fingerprint, "r": result.runs_sha256}))
     step_label = f"P{body_id[:6]}"
@@ -380,19 +400,26 @@ def render_tables(result: PlanResult, count_asked: int | None) -> tuple[bytes, b
     extra.append("rank is the order of the greedy batch choice: after each pick its fantasised "
                  "results are added to the models, so a later rank may show a larger single-run value")
     extra += [f"why rank {prop.rank}: {prop.reason}" for prop in result.proposals if prop.reason]
-    plan_text = write_csv_text(rows, header, comment_lines=_header_lines(result, "plan", extra),
-                               float_format=_FLOAT)
+    cautions = cautions_of(result.protocol)
+    plan, plan_notes = table_with_notes(header, rows, _header_lines(result, "plan", extra), cautions,
+                                        float_format=_FLOAT)
     eh, er = exclusion_table(result)
-    excl_text = write_csv_text(er, eh, comment_lines=_header_lines(result, "exclusion table"),
-                               float_format=_FLOAT)
-    return plan_text.encode("utf-8"), excl_text.encode("utf-8"), step_label
+    excl, excl_notes = table_with_notes(eh, er, _header_lines(result, "exclusion table"), cautions,
+                                        float_format=_FLOAT)
+    return StepTables(plan, plan_notes, excl, excl_notes, step_label)
+
+
+def table_file_names(prefix: str, table: bytes, notes: bytes) -> tuple[str, str]:
+    """``<prefix>-<hash12>.csv`` and its notes file; the hash is of the table's bytes, then the notes'."""
+    name = f"{prefix}-{_short(table + notes)}.csv"
+    return name, notes_path(name)
 
 
 def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
                 count, pool_size, protocol_path, runs_path, *, read_options=None,
                 calibration: EarnedCalibration | None = None, operator: dict | None = None,
                 warm_from: int | None = None) -> PlanOutcome:
-    plan_bytes, excl_bytes, step_label = render_tables(result, count)
+    tables = render_tables(result, count)
     created = not out_dir.exists()
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
@@ -401,8 +428,8 @@ def _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
         raise OutputError(f"cannot create the campaign folder {out_dir}: {exc.strerror or exc}") from None
     try:
         return _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed,
-                            seed_drawn, count, pool_size, protocol_path, runs_path, plan_bytes,
-                            excl_bytes, step_label, read_options=read_options,
+                            seed_drawn, count, pool_size, protocol_path, runs_path, tables,
+                            read_options=read_options,
                             calibration=calibration, operator=operator, warm_from=warm_from)
     except BaseException:
         if created:
@@ -423,20 +450,25 @@ def _remove_new_campaign(out_dir: Path, log_path: Path) -> None:
 
 
 def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path, seed, seed_drawn,
-                 count, pool_size, protocol_path, runs_path, plan_bytes, excl_bytes, step_label, *,
+                 count, pool_size, protocol_path, runs_path, tables: StepTables, *,
                  read_options, calibration, operator, warm_from=None) -> PlanOutcome:
     runs_suffix = runs_path.suffix.lower() if runs_path.suffix.lower() in _RUNS_SUFFIXES else ".csv"
+    plan_name, plan_notes_name = table_file_names("plan", tables.plan, tables.plan_notes)
+    excl_name, excl_notes_name = table_file_names("exclusions", tables.exclusions, tables.exclusion_notes)
     files = {
-        "plan": out_dir / f"plan-{_short(plan_bytes)}.csv",
-        "exclusions": out_dir / f"exclusions-{_short(excl_bytes)}.csv",
+        "plan": out_dir / plan_name,
+        "plan_notes": out_dir / plan_notes_name,
+        "exclusions": out_dir / excl_name,
+        "exclusion_notes": out_dir / excl_notes_name,
         "protocol_copy": out_dir / "inputs" / f"protocol-{_short(protocol_bytes)}.toml",
         "runs_copy": out_dir / "inputs" / f"runs-{_short(runs_bytes)}{runs_suffix}",
     }
     contents = {files["protocol_copy"]: protocol_bytes, files["runs_copy"]: runs_bytes,
-                files["exclusions"]: excl_bytes, files["plan"]: plan_bytes}
+                files["exclusions"]: tables.exclusions, files["exclusion_notes"]: tables.exclusion_notes,
+                files["plan"]: tables.plan, files["plan_notes"]: tables.plan_notes}
     body = result.record_body()
     body.update({
-        "step_label": step_label,
+        "step_label": tables.step_label,
         "count_requested": count,
         "pool_size_requested": pool_size,
         "seed_drawn": seed_drawn,
@@ -447,9 +479,10 @@ def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path
         "runs_file": {"name": runs_path.name, "sha256": result.runs_sha256,
                       "copy": files["runs_copy"].relative_to(out_dir).as_posix(),
                       "read_options": dict(read_options or {})},
-        "plan_table": {"file": files["plan"].name, "sha256": hashlib.sha256(plan_bytes).hexdigest()},
-        "exclusion_table": {"file": files["exclusions"].name,
-                            "sha256": hashlib.sha256(excl_bytes).hexdigest()},
+        "plan_table": _file_entry(files["plan"], tables.plan),
+        "plan_notes": _file_entry(files["plan_notes"], tables.plan_notes),
+        "exclusion_table": _file_entry(files["exclusions"], tables.exclusions),
+        "exclusion_notes": _file_entry(files["exclusion_notes"], tables.exclusion_notes),
         "cautions": list(cautions_of(protocol)),
     })
     if calibration is not None:
@@ -460,6 +493,11 @@ def _record_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path
     head, n = ledger.head_and_count(log_path)
     return PlanOutcome(result=result, seed=int(seed), seed_drawn=seed_drawn, record=record,
                        log_path=log_path, files=files, head=head, count=n, calibration=calibration)
+
+
+def _file_entry(path: Path, data: bytes) -> dict:
+    """A record's entry for a file the step writes: its name and SHA-256."""
+    return {"file": path.name, "sha256": hashlib.sha256(data).hexdigest()}
 
 
 # ----------------------------------------------------------------- replay
@@ -541,12 +579,17 @@ def compare_with_record(result: PlanResult, rec: dict) -> ReplayOutcome:
         differences.append("the protocol fingerprint differs")
     if body.get("tool_version") != __version__:
         differences.append(f"recorded with tool version {body.get('tool_version')}, replayed with {__version__}")
-    plan_bytes, excl_bytes, label = render_tables(result, body.get("count_requested"))
-    replayed = hashlib.sha256(plan_bytes).hexdigest()
+    tables = render_tables(result, body.get("count_requested"))
+    replayed = hashlib.sha256(tables.plan).hexdigest()
     recorded = body["plan_table"]["sha256"]
     if replayed != recorded:
         differences.append("the regenerated plan table differs from the recorded one")
-    if hashlib.sha256(excl_bytes).hexdigest() != body["exclusion_table"]["sha256"]:
+    if hashlib.sha256(tables.exclusions).hexdigest() != body["exclusion_table"]["sha256"]:
         differences.append("the regenerated exclusion table differs from the recorded one")
+    for key, data, what in (("plan_notes", tables.plan_notes, "plan table's notes"),
+                            ("exclusion_notes", tables.exclusion_notes, "exclusion table's notes")):
+        entry = body.get(key)  # records from before the notes files name none
+        if entry is not None and hashlib.sha256(data).hexdigest() != entry.get("sha256"):
+            differences.append(f"the regenerated {what} differ from the recorded ones")
     return ReplayOutcome(index=rec["index"], identical=not differences, differences=tuple(differences),
-                         recorded_sha256=recorded, replayed_sha256=replayed, step_label=label)
+                         recorded_sha256=recorded, replayed_sha256=replayed, step_label=tables.step_label)

@@ -447,8 +447,9 @@ class Protocol(_Strict):
                 raise ValueError(_twice(f"name {r!r} is used for a factor and a response (or twice)",
                                         r, seen[name_key(r)]))
             seen[name_key(r)] = r
-        if name_key("run_id") in seen or name_key("notes") in seen:
-            raise ValueError("`run_id` and `notes` are reserved column names; rename that factor or response")
+        if any(name_key(n) in seen for n in ("run_id", "notes", "cautions")):
+            raise ValueError("`run_id`, `notes` and `cautions` are reserved column names; rename that factor "
+                             "or response")
         components = [f for f in self.factors if f.kind == "component"]
         if components and self.mixture is None:
             raise ValueError(

@@ -2,7 +2,8 @@
 
 A runs file is CSV (or tab-separated text) or an ``.xlsx`` workbook with a
 header row: ``run_id``, one column per factor, one per response (objective
-and limits), and an optional ``notes`` column. A response cell left empty
+and limits), and an optional ``notes`` column (and an optional ``cautions``
+column, which our own starting designs carry and which is not read). A response cell left empty
 means "not measured yet": a run with every response empty is *pending* and
 is not used as data.
 
@@ -70,12 +71,15 @@ __all__ = [
     "parse_runs_text",
     "RUN_ID",
     "NOTES",
+    "CAUTIONS",
     "DELIMITERS",
     "DECIMALS",
 ]
 
 RUN_ID = "run_id"
 NOTES = "notes"
+#: The column of cautions our own tables of runs carry (a starting design); read and ignored.
+CAUTIONS = "cautions"
 #: Field separators a runs text file may use, by the names an option takes.
 DELIMITERS = {",": ",", ";": ";", "tab": "\t", "\t": "\t"}
 DECIMALS = (".", ",")
@@ -662,7 +666,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
     """Find each known column, appending a problem for each unknown, repeated or missing one
     (``optional`` columns may be missing)."""
     factor_names, responses = list(protocol.factor_names), list(protocol.runs_columns)
-    known_list = [RUN_ID, *factor_names, *responses, NOTES]
+    known_list = [RUN_ID, *factor_names, *responses, NOTES, CAUTIONS]
     known = set(known_list)
     rates = {lim.name: lim for lim in protocol.limits if lim.kind == "binomial"}
     columns = _Columns()
@@ -682,11 +686,11 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
             problems.append(
                 f"column {letter}{grid.ref(0, j)}: unknown column {name!r}{_suggest(name, known_list)}; "
                 f"expected {RUN_ID}, the factors ({', '.join(factor_names)}), the responses "
-                f"({', '.join(responses)}) or {NOTES}"
+                f"({', '.join(responses)}), {NOTES} or {CAUTIONS}"
             )
         else:
             columns.at[name] = j
-            if unit and name in (RUN_ID, NOTES):
+            if unit and name in (RUN_ID, NOTES, CAUTIONS):
                 problems.append(f"column {letter} ({name}): a unit [{unit}] makes no sense here; remove it")
             elif unit and name not in protocol.response_names and name in responses:
                 problems.append(f"column {letter} ({name}): a count takes no unit [{unit}]; remove it")
@@ -694,7 +698,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
                 check_unit(columns.convert, f"column {letter} ({name})", name, unit, protocol,
                            problems, flags)
     for name in known_list:
-        if name != NOTES and name not in optional and name not in columns.at and name not in twice:
+        if name not in (NOTES, CAUTIONS) and name not in optional and name not in columns.at and name not in twice:
             problems.append(f"missing column {name!r}")
     return columns
 

@@ -240,8 +240,9 @@ def fingerprint_rows(result: PlanResult, record, log_head, log_count) -> list[tu
         op = body.get("operator")
         rows.append(("recorded by", f"{op.get('name')} (from {op.get('source')})" if isinstance(op, dict)
                      else "not recorded (the record predates operator names)"))
-        if body.get("plan_table"):
-            rows.append(("plan table", f"{body['plan_table']['file']} (sha256 {body['plan_table']['sha256']})"))
+        for key, label in (("plan_table", "plan table"), ("plan_notes", "its notes and cautions")):
+            if body.get(key):
+                rows.append((label, f"{body[key]['file']} (sha256 {body[key]['sha256']})"))
     if log_head is not None:
         rows.append(("decision log", f"head {log_head}, {log_count} record{'s' * (log_count != 1)} "
                                      "(check with guardband verify --expect-head ... --expect-count ...)"))

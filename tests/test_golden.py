@@ -56,8 +56,9 @@ Both tables and both bodies changed; their numbers did not: for both
 examples every cell of the new tables but the ``cautions`` column, and
 every line of the notes files, equal the old tables' cells and ``# `` lines
 (compared file against file before these hashes were recorded).
-Then the tested span's push grew with its edge's record (``span_growth``),
-which changed the plan messages and so the run ids.
+Then the tested span's push grew with its edge's record (``span_growth``):
+the new setting entered every protocol's fingerprint, which changed the run
+ids; no number of either plan changed.
 """
 
 from __future__ import annotations

@@ -305,6 +305,16 @@ def frontier_plot(summary: list[dict], path: Path, label: str) -> None:
     plt.close(fig)
 
 
+def _with_peers(campaigns: list[dict], label: str, peers_from: str | None) -> list[dict]:
+    """The campaigns of ``label``, plus the peers' campaigns of ``peers_from`` it lacks."""
+    own = [c for c in campaigns if str(c["label"]) == label]
+    if not peers_from or peers_from == label:
+        return own
+    have = {c["strategy"] for c in own}
+    return own + [c for c in campaigns if str(c["label"]) == peers_from and not str(c["strategy"]).startswith("t=")
+                  and c["strategy"] not in have]
+
+
 def _options(args) -> dict:
     base = QUICK if args.quick else DEFAULTS
     opt = {k: getattr(args, k) if getattr(args, k) is not None else v for k, v in base.items()}
@@ -325,6 +335,23 @@ def _command(args, opt: dict) -> str:
             + f"--pool {opt['pool']} --refine {opt['refine']} --workers {args.workers} --label {args.label}")
 
 
+def _run(opt: dict, args, began: float) -> list[dict]:
+    """Every campaign of this run, labelled."""
+    problems = [(get_problem(n), n, opt["budget"], opt["seeds"]) for n in opt["builtin"]]
+    family = run_in_workers(cal._family_job, [(i, args.family_seed) for i in range(opt["family"])],
+                            workers=args.workers)
+    problems += [(p, "family", opt["family_budget"], opt["family_seeds"]) for p in family]
+    jobs = _jobs(problems, opt)
+
+    def progress(done, total):
+        if sys.stderr.isatty() or done == total or done % 20 == 0:
+            print(f"\r{done}/{total} campaigns, {time.perf_counter() - began:.0f} s", end="", file=sys.stderr)
+
+    out = run_in_workers(run_job, jobs, workers=args.workers, progress=progress)
+    print(file=sys.stderr)
+    return [{**c, "label": args.label} for c in out]
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--builtin", nargs="*", help="built-in problems (default all four)")
@@ -343,33 +370,28 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1))
     ap.add_argument("--label", default="current")
+    ap.add_argument("--summarize-only", action="store_true",
+                    help="run nothing: summarise the --label campaigns already in <out stem>_campaigns.csv")
+    ap.add_argument("--peers-from", help="summarise this run with the peers' campaigns of another label "
+                    "(same problems and seeds; the peers do not depend on Guardband's code)")
     ap.add_argument("--out", type=Path, default=Path("benchmarks/results/frontier.csv"))
     args = ap.parse_args(argv)
     opt = _options(args)
     began = time.perf_counter()
-    problems = [(get_problem(n), n, opt["budget"], opt["seeds"]) for n in opt["builtin"]]
-    family = run_in_workers(cal._family_job, [(i, args.family_seed) for i in range(opt["family"])],
-                            workers=args.workers)
-    problems += [(p, "family", opt["family_budget"], opt["family_seeds"]) for p in family]
-    jobs = _jobs(problems, opt)
-
-    def progress(done, total):
-        if sys.stderr.isatty() or done == total or done % 20 == 0:
-            print(f"\r{done}/{total} campaigns, {time.perf_counter() - began:.0f} s", end="", file=sys.stderr)
-
-    campaigns = [{**c, "label": args.label} for c in run_in_workers(run_job, jobs, workers=args.workers,
-                                                                    progress=progress)]
+    campaigns = [] if args.summarize_only else _run(opt, args, began)
     wall = time.perf_counter() - began
-    print(file=sys.stderr)
     camp_path = args.out.with_name(args.out.stem + "_campaigns.csv")
-    all_campaigns = cal._merge(camp_path, campaigns, args.label)
+    all_campaigns = (cal._read_rows(camp_path) if args.summarize_only
+                     else cal._merge(camp_path, campaigns, args.label))
     summary = [row for lab in dict.fromkeys(str(c["label"]) for c in all_campaigns)
-               for row in summarize([c for c in all_campaigns if str(c["label"]) == lab], lab)]
+               for row in summarize(_with_peers(all_campaigns, lab, args.peers_from), lab)]
     command = _command(args, opt)
     print(markdown([r for r in summary if r["label"] == args.label], command, wall))
     comments = [f"[{args.label}] {command}", f"[{args.label}] wall time {wall:.0f} s on {os.cpu_count()} CPU(s)",
                 "gap: best TRUE objective among runs that truly met every limit, from the optimum, % of range"]
-    comments = [c for c in cal._comments(args.out) if not c.startswith(f"[{args.label}] ")] + comments
+    old = cal._comments(args.out)
+    comments = old if args.summarize_only and old else [
+        c for c in old if not c.startswith(f"[{args.label}] ")] + comments
     args.out.parent.mkdir(parents=True, exist_ok=True)
     atomic_write_text(camp_path, write_csv_text([{k: c.get(k) for k in CAMPAIGN_COLUMNS} for c in all_campaigns],
                                                 CAMPAIGN_COLUMNS, comment_lines=comments, float_format=".6g"))

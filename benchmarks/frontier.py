@@ -258,8 +258,9 @@ def markdown(summary: list[dict], command: str, wall: float) -> str:
     return "\n".join(lines)
 
 
-def frontier_plot(summary: list[dict], path: Path, label: str) -> None:
-    """Median gap against break share: Guardband's thresholds joined, the others as single points."""
+def frontier_plot(summary: list[dict], path: Path, label: str, before: str | None = None) -> None:
+    """Median gap against break share: Guardband's thresholds joined, the others as single points
+    (and, dashed, Guardband's curve of the ``before`` label)."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -275,10 +276,16 @@ def frontier_plot(summary: list[dict], path: Path, label: str) -> None:
         ours = sorted((r for r in rows if str(r["strategy"]).startswith("t=") and not r["ablation"]),
                       key=lambda r: float(r["threshold"]))
         finite = lambda v: float(v) if math.isfinite(float(v)) else np.nan  # noqa: E731
+        if before:
+            old = sorted((r for r in summary if r["group"] == group and r["label"] == before
+                          and str(r["strategy"]).startswith("t=") and not r["ablation"]),
+                         key=lambda r: float(r["threshold"]))
+            ax.plot([100 * float(r["broken_share"]) for r in old], [finite(r["median_gap_pct"]) for r in old],
+                    "--o", color="#92c5de", lw=1, ms=3, label=f"Guardband ({before})")
         if ours:
             xs = [100 * float(r["broken_share"]) for r in ours]
             ys = [finite(r["median_gap_pct"]) for r in ours]
-            ax.plot(xs, ys, "-o", color="#2166ac", lw=1.5, ms=5, label="Guardband")
+            ax.plot(xs, ys, "-o", color="#2166ac", lw=1.5, ms=5, label=f"Guardband ({label})")
             for r, x, y in zip(ours, xs, ys):
                 ax.annotate(f"{float(r['threshold']):g}", (x, y), textcoords="offset points", xytext=(4, 4),
                             fontsize=7, color="#2166ac")
@@ -397,7 +404,7 @@ def main(argv=None) -> int:
                                                 CAMPAIGN_COLUMNS, comment_lines=comments, float_format=".6g"))
     atomic_write_text(args.out, write_csv_text(summary, SUMMARY_COLUMNS, comment_lines=comments,
                                                float_format=".6g"))
-    frontier_plot(summary, args.out.with_suffix(".png"), args.label)
+    frontier_plot(summary, args.out.with_suffix(".png"), args.label, args.peers_from)
     print(f"\nwrote {args.out}, {camp_path} and {args.out.with_suffix('.png')}", file=sys.stderr)
     return 0
 

@@ -85,15 +85,19 @@ def example(request, tmp_path_factory):
     return out
 
 
+def assert_printed_alike(res, table, kind):
+    """A command's ``--format csv`` stdout is the written table; its notes and cautions go to stderr."""
+    assert read(res.stdout).equals(table)
+    assert_cautions_in(res.stderr, kind)
+
+
 def test_the_starting_design_file_and_stdout(example):
     kind, tmp = example["kind"], example["tmp"]
     written = read(tmp / "start.csv")
     assert list(written["run_id"]) == ["S01", "S02", "S03"]
     assert_cautions_column(written, kind)
     assert "fill in the response columns" in assert_notes_file(tmp / "start.csv", kind)
-    res = example["start"]
-    assert read(res.stdout).equals(written)
-    assert_cautions_in(res.stderr, kind)
+    assert_printed_alike(example["start"], written, kind)
 
 
 def test_the_plan_and_exclusion_tables_and_their_notes(example):
@@ -110,9 +114,7 @@ def test_the_plan_and_exclusion_tables_and_their_notes(example):
     assert len(excl) == sum(body["counts"].values())
     assert_cautions_column(excl, kind)
     assert_notes_file(camp / body["exclusion_table"]["file"], kind)
-    res = example["plan"]
-    assert read(res.stdout).equals(plan)
-    assert_cautions_in(res.stderr, kind)
+    assert_printed_alike(example["plan"], plan, kind)
 
 
 def test_the_judge_table_and_its_notes(example):
@@ -122,9 +124,7 @@ def test_the_judge_table_and_its_notes(example):
     assert list(table["recipe"]) == list(read(example["tmp"] / "start.csv")["run_id"])
     assert_cautions_column(table, kind)
     assert_notes_file(camp / body["judge_table"]["file"], kind)
-    res = example["judge"]
-    assert read(res.stdout).equals(table)
-    assert_cautions_in(res.stderr, kind)
+    assert_printed_alike(example["judge"], table, kind)
 
 
 def test_the_log_tables_on_stdout(example):

@@ -64,7 +64,7 @@ def test_textbook_protocol_has_no_screen_no_guards_no_step_rules():
     assert tb.screen.max_step is None and tb.screen.span_reach is None
     assert tb.model.limit_length_scale_max == NO_CAP and tb.ranking.rule == "ei"
     assert tb.screen.forbidden == dose.screen.forbidden and tb.limits[0].upper == dose.limits[0].upper
-    assert step_options("textbook") == {"weigh_by_joint": True, "textbook_limits": True}
+    assert step_options("textbook") == {"textbook": True}
     assert step_options("screen-off") == {} and step_options("protocol") == {}
     assert "textbook" in STRATEGIES and "textbook" not in DEFAULT_STRATEGIES
 
@@ -72,7 +72,7 @@ def test_textbook_protocol_has_no_screen_no_guards_no_step_rules():
 def test_textbook_step_picks_the_largest_ei_times_probability_of_its_pool():
     protocol = _textbook_gramacy()
     runs = _runs(protocol)
-    res = plan_step(protocol, runs, seed=11, explain=False, weigh_by_joint=True, textbook_limits=True)
+    res = plan_step(protocol, runs, seed=11, explain=False, textbook=True)
     assert res.mode == "improve" and len(res.proposals) == 1
     inc = res.incumbent["value"]
     # the score the step ranked by is log EI + log(product of the limits' probabilities)
@@ -88,7 +88,7 @@ def test_textbook_step_picks_the_largest_ei_times_probability_of_its_pool():
 def test_textbook_limit_models_centre_on_the_data_not_the_limit():
     protocol = _textbook_gramacy()
     runs = _runs(protocol)
-    tb = plan_step(protocol, runs, seed=11, explain=False, weigh_by_joint=True, textbook_limits=True)
+    tb = plan_step(protocol, runs, seed=11, explain=False, textbook=True)
     ours = plan_step(protocol, runs, seed=11, explain=False)
     for lim in protocol.limits:
         y = runs.Y[lim.name]
@@ -99,7 +99,7 @@ def test_textbook_limit_models_centre_on_the_data_not_the_limit():
 def test_upper_limit_probability_is_the_normal_cdf_of_the_margin():
     protocol = _textbook_gramacy()
     runs = _runs(protocol)
-    res = plan_step(protocol, runs, seed=11, explain=False, weigh_by_joint=True, textbook_limits=True)
+    res = plan_step(protocol, runs, seed=11, explain=False, textbook=True)
     p = res.proposals[0]
     for lim, rule in zip(protocol.limits, ScreenRules.from_protocol(protocol).limits):
         model = res.fitted[lim.name]

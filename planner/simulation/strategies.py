@@ -34,15 +34,15 @@ Strategies (:data:`STRATEGIES`)
 ``textbook``
     The textbook constrained rule, for comparison: the same GP core (one
     model per response, weak priors; a limit model's prior mean at the mean
-    of its data, as the textbook fits it, not at the limit), ranked by expected improvement times the product of the
-    limits' probabilities, and, while no run meets every limit, by that
+    of its data, as the textbook fits it, not at the limit),
+    ranked by expected improvement times the product of the limits'
+    probabilities, and, while no run meets every limit, by that
     product alone; no screen (threshold and limit probabilities at
     :data:`SCREEN_OFF`), none of Guardband's guards on the limit models
     (short model, leave-one-out and local widening, single-run check, the
-    length-scale cap, the signal-variance floor) and no step or span rule. The design space and
-    forbidden regions stay (they are the world's, not the planner's).
-    :func:`step_options` gives the planning step's ``weigh_by_joint`` and
-    ``textbook_limits``.
+    length-scale cap, the signal-variance floor) and no step or span rule.
+    The design space and forbidden regions stay (they are the world's, not the planner's).
+    :func:`step_options` gives the planning step's ``textbook`` switch.
 """
 
 from __future__ import annotations
@@ -117,9 +117,9 @@ def strategy_protocol(protocol: Protocol, strategy: str) -> Protocol | None:
 
 def step_options(strategy: str) -> dict:
     """Keyword arguments of :func:`~guardband.planner.step.plan_step` for a planner strategy
-    (``weigh_by_joint`` for ``textbook``, nothing for the others)."""
+    (``textbook`` for ``textbook``, nothing for the others)."""
     check_strategy(strategy)
-    return {"weigh_by_joint": True, "textbook_limits": True} if strategy == "textbook" else {}
+    return {"textbook": True} if strategy == "textbook" else {}
 
 
 def check_strategy(strategy: str) -> None:

@@ -98,7 +98,6 @@ def _scorer(protocol: Protocol, mode: str, rank_kw: dict, weigh_by_joint: bool =
     return scores_of
 
 
-
 def _screened(ctx: StepContext, X, scores_of, inc_value) -> Pool:
     U, mu, sd, lims = ctx.predict(X)
     result = ctx.screen(X, U, lims)
@@ -225,7 +224,7 @@ class PreparedStep:
 
 
 def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: dict | None = None,
-                 weigh_by_joint: bool = False, textbook_limits: bool = False) -> PreparedStep:
+                 textbook: bool = False) -> PreparedStep:
     """Fit the models and find the incumbent, as a planning step does (phases 1, 2 and 5).
 
     :func:`plan_step` and :func:`guardband.planner.step.judge.judge_points`
@@ -238,17 +237,17 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
     scaler, rules = Scaler(space), ScreenRules.from_protocol(protocol)
     used, U_runs = ~runs.pending, scaler.unit(runs.X)
     models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
-                        n_free=int(scaler.free.sum()), textbook=textbook_limits)
+                        n_free=int(scaler.free.sum()), textbook=textbook)
     safe = safe_runs_mask(protocol, runs)
     incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
     anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
         U_runs[used], "measured run (none has met every limit yet)")
-    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis, weigh_by_joint=weigh_by_joint)
+    ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis, weigh_by_joint=textbook)
     inc_messages = inc_messages + _grow_span(ctx, U_runs[used], safe[used])
     rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
                         inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,
-                        scores_of=_scorer(protocol, mode, rank_kw, weigh_by_joint), messages=models.warnings() + inc_messages,
+                        scores_of=_scorer(protocol, mode, rank_kw, textbook), messages=models.warnings() + inc_messages,
                         warm_start=warm_start, children=children)
 
 
@@ -261,8 +260,7 @@ def plan_step(
     warm_start: dict | None = None,
     pool_size: int | None = None,
     explain: bool = True,
-    weigh_by_joint: bool = False,
-    textbook_limits: bool = False,
+    textbook: bool = False,
 ) -> PlanResult:
     """Run one planning step.
 
@@ -288,14 +286,12 @@ def plan_step(
     explain : bool
         Also find what each ranking rule would propose and what each
         threshold costs (:mod:`.attitudes`); the simulator turns it off.
-    weigh_by_joint : bool
-        Rank by the rule's value times the joint figure (the simulator's
-        ``textbook`` strategy, which also switches the screen off through its
-        protocol); never set by a protocol.
-    textbook_limits : bool
-        Fit the Gaussian limit models as the textbook does: prior mean at the
-        data's mean, not at the limit, and no signal-variance floor (the
-        ``textbook`` strategy only; never set by a protocol).
+    textbook : bool
+        The textbook constrained rule, for the simulator's ``textbook``
+        strategy (whose protocol also switches the screen off): rank by the
+        rule's value times the joint figure, and fit the Gaussian limit
+        models with their prior mean at the data's mean and no
+        signal-variance floor. Never set by a protocol.
 
     Returns
     -------
@@ -312,8 +308,7 @@ def plan_step(
     """
     count = protocol.batch.size if count is None else int(count)
     pool_size = protocol.batch.pool if pool_size is None else int(pool_size)
-    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start, weigh_by_joint=weigh_by_joint,
-                      textbook_limits=textbook_limits)
+    st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start, textbook=textbook)
     ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
     space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
     X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))

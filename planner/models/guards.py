@@ -43,7 +43,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from guardband.safety.screen import limit_probability
+from guardband.safety.screen import limit_probability, met_probability
 
 __all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions"]
 
@@ -83,9 +83,13 @@ class _Deletion:
         g = self.gp.kernel(Xs, self.gp.X) @ self.C
         return g * (self.alpha / self.diag), g**2 / self.diag
 
-    def nearness(self, Xs) -> np.ndarray:
-        """rho(x, x_i)^2 at the short length scales, shape (n_points, n_runs)."""
-        return np.clip(self.near.kernel(Xs, self.gp.X) / self.var0, 0.0, 1.0) ** 2
+    def rho(self, Xs) -> np.ndarray:
+        """rho(x, x_i) at the short length scales, shape (n_points, n_runs)."""
+        return self.near.kernel(Xs, self.gp.X) / self.var0
+
+    def nearness(self, Xs, rho=None) -> np.ndarray:
+        """rho(x, x_i)^2 at the short length scales (from ``rho`` when given), shape (n_points, n_runs)."""
+        return np.clip(self.rho(Xs) if rho is None else rho, 0.0, 1.0) ** 2
 
 
 def deletion_predictions(gp, Xs) -> tuple[np.ndarray, np.ndarray]:
@@ -135,12 +139,17 @@ class GuardedLimitModel:
             raise AttributeError(name)
         return getattr(self.model, name)
 
-    def local_factor(self, Xs) -> np.ndarray:
-        """The local sd multiplier at points Xs (unit-scaled), shape (n,)."""
+    def local_factor(self, Xs, rho=None) -> np.ndarray:
+        """The local sd multiplier at points Xs (unit-scaled), shape (n,).
+
+        ``rho``: the correlations with the runs at the short length scales,
+        when the caller has them already (the single-run check weighs by the same).
+        """
         Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
         if self._weights is None:
             return np.ones(Xs.shape[0])
-        rho = self._weights.kernel(Xs, self._base.X) / self._var0
+        if rho is None:
+            rho = self._weights.kernel(Xs, self._base.X) / self._var0
         c2 = (1.0 + rho @ self._errors) / (1.0 + rho.sum(axis=1))
         return np.sqrt(np.maximum(c2, 1.0))
 
@@ -148,7 +157,10 @@ class GuardedLimitModel:
         Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
         if self._deletion is None:
             return None, self.local_factor(Xs)
-        return (*self._deletion.shifts(Xs), self._deletion.nearness(Xs)), self.local_factor(Xs)
+        # both guards weigh by the same correlations (the short model's, with the runs): once
+        rho = self._deletion.rho(Xs)
+        shared = rho if self._weights is self._deletion.near else None
+        return (*self._deletion.shifts(Xs), self._deletion.nearness(Xs, rho)), self.local_factor(Xs, shared)
 
     def summary_factors(self) -> float:
         """The largest local multiplier at the runs, for the model summary."""
@@ -195,17 +207,20 @@ class GuardedLimitModel:
         names = self.labels if self.labels is not None else tuple(f"row {i + 1}" for i in range(blend.shape[1]))
         leaning[lowered] = [names[i] for i in worst[lowered]]
         p_guard = np.minimum(p_full, p_worst)
-        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper), sd, leaning
+        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper, p=p_full), sd, leaning
 
 
-def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
+def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40, p=None) -> np.ndarray:
     """The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target (bisection on log sd').
 
     Where the mean lies outside the limit, or the target is not below the
     current probability, sd is returned as it is (the probability there is
-    already at most 1/2, or needs no change).
+    already at most 1/2, or needs no change). ``p``, when given, is that
+    current probability (the caller's own ``limit_probability(mean, sd)``).
+    ``target`` holds probabilities, in [0, 1].
     """
-    p = limit_probability(mean, sd, lower=lower, upper=upper)
+    if p is None:
+        p = limit_probability(mean, sd, lower=lower, upper=upper)
     inside = np.ones_like(mean, dtype=bool)
     if upper is not None:
         inside &= mean < upper
@@ -218,9 +233,20 @@ def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
     lo = np.log(sd[todo])
     hi = lo + np.log(1e6)
     m, tg = mean[todo], target[todo]
+    # the distances to the limits do not change with the sd: computed once (the same
+    # numbers limit_probability computes). Every sd tried lies in [sd, 1e6 sd], so with
+    # sd above the smallest normal double each is positive and met_probability gives
+    # limit_probability's numbers; unclipped, as the figure is only compared with a
+    # target in [0, 1) (a clip to [0, 1] changes no such comparison)
+    du = None if upper is None else upper - m
+    dl = None if lower is None else lower - m
+    fast = float(np.min(sd[todo])) > 1e-300
     for _ in range(steps):
         mid = 0.5 * (lo + hi)
-        too_high = limit_probability(m, np.exp(mid), lower=lower, upper=upper) > tg
+        s = np.exp(mid)
+        p_mid = (met_probability(du, dl, s, clip=False) if fast
+                 else limit_probability(m, s, lower=lower, upper=upper))
+        too_high = p_mid > tg
         lo = np.where(too_high, mid, lo)
         hi = np.where(too_high, hi, mid)
     out[todo] = np.exp(hi)

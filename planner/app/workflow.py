@@ -23,6 +23,7 @@ import hashlib
 import secrets
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -33,8 +34,6 @@ from guardband.planner.app.fileio import write_csv_text
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs_bytes
-from guardband.planner.models import blas_limit
-from guardband.planner.step import PlanResult, plan_step
 from guardband.planner.app.history import campaign_calibration
 from guardband.planner.step.attitudes import rule_guidance, threshold_binding
 from guardband.safety.calibration import EarnedCalibration
@@ -42,6 +41,9 @@ from guardband.safety.calibration import EarnedCalibration
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
 from guardband.safety.canonical import canonical_json
+
+if TYPE_CHECKING:
+    from guardband.planner.step import PlanResult
 
 __all__ = [
     "LOG_NAME",
@@ -323,6 +325,8 @@ def run_plan(
     name came from.
     """
     from guardband.planner.app.audit import resolve_operator
+    from guardband.planner.models import blas_limit  # the models and the step: only where a step runs
+    from guardband.planner.step import plan_step
 
     operator = resolve_operator(by)
     protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
@@ -498,6 +502,8 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
         not a regular file.
     """
     from guardband.planner.app.audit import verify_campaign
+    from guardband.planner.models import blas_limit
+    from guardband.planner.step import plan_step
 
     log_path = Path(log_path)
     verdict = verify_campaign(log_path, accept_empty=True)

@@ -78,6 +78,7 @@ __all__ = [
     "above_broken",
     "HardRules",
     "ScreenResult",
+    "Texts",
     "limit_probability",
     "met_probability",
     "limit_predictions",
@@ -395,6 +396,46 @@ def forbidden_mask(regions: Sequence[ForbiddenRegion], X) -> tuple[np.ndarray, l
     return mask, detail
 
 
+class Texts(Sequence):
+    """One sentence per candidate, each written when it is first read.
+
+    A step screens thousands of candidates several times (the pool, the
+    refined pool, each threshold of the price) and reads the sentences of
+    one screen only; writing each on first use saves most of that work and
+    gives the same text. A copy or a pickle is a plain list.
+    """
+
+    def __init__(self, n: int):
+        self._make = np.full(n, None, dtype=object)
+        self._text: dict[int, str] = {}
+
+    def set(self, idx, make) -> None:
+        """The sentence of each candidate i in ``idx`` (an index or an index array) is ``make(i)``;
+        set before the first read."""
+        self._make[idx] = make
+
+    def __len__(self) -> int:
+        return len(self._make)
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        i = range(len(self))[i]  # negative indices, and IndexError when out of range
+        if i not in self._text:
+            make = self._make[i]
+            self._text[i] = "" if make is None else make(i)  # i a plain int
+        return self._text[i]
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, Sequence) and list(self) == list(other)
+
+    def __repr__(self) -> str:
+        return repr(list(self))
+
+    def __reduce__(self):
+        return list, (list(self),)
+
+
 @dataclass(frozen=True)
 class HardRules:
     """The rules that need no model, at a set of points (see :func:`hard_rules`)."""
@@ -452,11 +493,14 @@ def _beyond_span(U, anchors, reach, floor, basis, columns=None):
     lo, hi = tested_span(anchors, reach, floor)
     lo, hi = np.where(cols, lo, -np.inf), np.where(cols, hi, np.inf)
     out = np.any((U < lo - 1e-12) | (U > hi + 1e-12), axis=1)
-    detail = [""] * n
-    for i in np.flatnonzero(out):
+
+    def text(i):
         j = int(np.argmax(np.maximum(lo - U[i], U[i] - hi)))
-        detail[i] = (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
-                     f"{basis.replace('run', 'runs', 1)} [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+        return (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
+                f"{basis.replace('run', 'runs', 1)} [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+
+    detail = Texts(n)
+    detail.set(out, text)
     return out, detail
 
 
@@ -549,8 +593,8 @@ class ScreenResult:
     survives : bool array (n,)
     reason : array of str (n,)
         "" for survivors, else one of :data:`REASONS`.
-    detail : list of str (n,)
-        A plain sentence for each excluded candidate.
+    detail : sequence of str (n,)
+        A plain sentence for each excluded candidate (:class:`Texts`).
     P : array (n, n_limits)
         Per-limit probabilities (NaN where the limit could not vouch).
     joint : array (n,)
@@ -564,7 +608,7 @@ class ScreenResult:
 
     survives: np.ndarray
     reason: np.ndarray
-    detail: list[str]
+    detail: Sequence[str]
     P: np.ndarray
     joint: np.ndarray
     step: np.ndarray
@@ -652,13 +696,12 @@ def run_screen(
     if step is None:
         step = np.full(n, np.nan)
     reason = np.full(n, "", dtype=object)
-    detail = [""] * n
+    detail = Texts(n)  # each sentence written when read
 
     def mark(mask, code, text_of):
         idx = np.flatnonzero(mask & (reason == ""))
-        for i in idx:
-            reason[i] = code
-            detail[i] = text_of(i)
+        reason[idx] = code
+        detail.set(idx, text_of)
 
     mark(~inside, "outside-design-space",
          lambda i: (outside_detail[i] if outside_detail else "outside the design space"))

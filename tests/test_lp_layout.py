@@ -125,3 +125,25 @@ def test_emptiness_lps_match_cvxpy(seed):
 def test_statuses_are_cvxpys():
     assert lp.FEASIBLE == (cp.OPTIMAL, cp.OPTIMAL_INACCURATE)
     assert lp.INFEASIBLE == (cp.INFEASIBLE, cp.INFEASIBLE_INACCURATE)
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_level_checks_match_cvxpy(seed):
+    # discrete factors at one of their levels: cvxpy's boolean picks, solved by scipy's milp
+    rng = np.random.default_rng(300 + seed)
+    d = int(rng.integers(2, 4))
+    levels = {0: np.array([0.0, 0.2, 1.0]), d - 1: np.array([0.25]) if seed % 2 else np.array([-0.0, 0.5])}
+    A_ub = np.vstack([np.r_[1.0, 1.0, np.zeros(d - 2)], np.r_[-1.0, np.zeros(d - 1)]])
+    space = DesignSpace(tuple(f"x{i}" for i in range(d)), np.zeros(d), np.ones(d), None, None, A_ub,
+                        [0.5, -rng.uniform(0.0, 0.4)], levels=levels)
+    for active in (np.ones(len(space.groups), bool), rng.random(len(space.groups)) < 0.7):
+        if not any(on and g.kind == feasibility.GroupKind.LEVELS for g, on in zip(space.groups, active)):
+            continue
+        problem = feasibility._feasibility_problem(space, active, exact_levels=True)
+        built = feasibility._feasibility_milp(space, active)
+        _assert_layout(problem, built)
+        theirs = problem.get_problem_data(cp.SCIPY)[0]
+        assert _same(theirs["lower_bounds"], built.lower_bounds()) and theirs["upper_bounds"] is None
+        assert theirs["bool_vars_idx"] == list(range(built.first_boolean, built.c.size))
+        problem.solve(solver="SCIPY")
+        assert lp.solve_milp(built, what="a test problem").status == problem.status

@@ -6,8 +6,10 @@ import ast
 import subprocess
 import sys
 
+import pytest
 from scipy import stats
 
+from conftest import PROTOCOLS
 from guardband.planner.models.limitmodel import PLAUSIBLE_NATS
 
 
@@ -46,9 +48,10 @@ def test_packages_load_their_modules_on_first_use():
     assert _imported_after(code) == ["pydantic"]  # the protocol's models, which every command reads
 
 
-def test_check_imports_only_what_it_uses(tablet_path):
-    # a design space without discrete levels needs scipy's LP solver and linear algebra, nothing else
+@pytest.mark.parametrize("example", ["tablet_blend", "dose_combination"])
+def test_check_imports_only_what_it_uses(example):
+    # the design space needs scipy's LP solver (and its milp, for discrete doses) and linear algebra
     code = ("import sys\nfrom guardband.planner.cli import main\n"
-            f"sys.argv = ['guardband', 'check', {str(tablet_path)!r}]\n"
+            f"sys.argv = ['guardband', 'check', {str(PROTOCOLS / (example + '.toml'))!r}]\n"
             "try:\n    main()\nexcept SystemExit:\n    pass")
     assert _imported_after(code) == ["pydantic", "scipy.linalg", "scipy.optimize", "scipy.special"]

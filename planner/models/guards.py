@@ -47,6 +47,11 @@ from guardband.safety.screen import limit_probability, met_probability
 
 __all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions"]
 
+#: A guarded model keeps its answers at the last RECENT_SETS point sets of at
+#: most RECENT_POINTS points (a local refinement's batches of k + 1 points).
+RECENT_POINTS = 64
+RECENT_SETS = 64
+
 
 def optimistic_errors(u: np.ndarray, lower, upper) -> np.ndarray:
     """``e_i``: the squared standardised errors that made the model too hopeful, scaled to mean 1."""
@@ -121,6 +126,7 @@ class GuardedLimitModel:
         self.model = model
         self.lower, self.upper = lower, upper
         self.labels = tuple(str(v) for v in labels) if labels is not None else None
+        self._recent: dict = {}  # see predict_parts
         base = getattr(model, "fitted", model)
         self._base = base
         # the noise variance of a new measurement, in response units (the
@@ -170,10 +176,28 @@ class GuardedLimitModel:
         return self.predict_parts(Xs, include_noise=include_noise, **kwargs)[:2]
 
     def predict_parts(self, Xs, *, include_noise: bool = False, **kwargs):
-        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`."""
+        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`.
+
+        The answers at the last few small point sets are kept (a prediction is a
+        pure function of the points): a local refinement asks again at points it
+        has seen, and the price of the threshold retraces the same refinement at
+        every threshold where the joint figure does not bind.
+        """
+        Xs = np.asarray(Xs, dtype=float)
+        key = None
+        if Xs.ndim == 2 and Xs.shape[0] <= RECENT_POINTS and not kwargs:
+            key = (Xs.shape, Xs.tobytes(), bool(include_noise))
+            kept = self._recent.get(key)
+            if kept is not None:
+                return tuple(a.copy() for a in kept)
         mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
         noise_var = self._noise_var if include_noise else 0.0
-        return self._worst(mean, sd_f, noise_var, *self._guards(Xs))
+        out = self._worst(mean, sd_f, noise_var, *self._guards(Xs))
+        if key is not None:
+            if len(self._recent) >= RECENT_SETS:
+                self._recent.pop(next(iter(self._recent)))
+            self._recent[key] = tuple(a.copy() for a in out)
+        return out
 
     def posterior_at(self, Xs) -> _GuardedPosterior:
         return _GuardedPosterior(self, self.model.posterior_at(Xs), *self._guards(Xs))

@@ -1,7 +1,7 @@
 """Is the design space empty, and why; the reachable range of each factor; its centre.
 
-Each answer is a linear programme (:mod:`.lp`: scipy's HiGHS, in cvxpy's
-layout) or, with exact discrete levels, a cvxpy mixed-integer programme. :func:`space_check` puts them together in a :class:`SpaceCheck`;
+Each answer is a linear (or, with exact discrete levels, mixed-integer)
+programme, handed to scipy's HiGHS in the layout cvxpy gave it (:mod:`.lp`). :func:`space_check` puts them together in a :class:`SpaceCheck`;
 :class:`~guardband.planner.space.polytope.DesignSpace` computes it once, on
 first use, and keeps it, as it keeps :func:`geometry`.
 """
@@ -17,7 +17,7 @@ from guardband.planner.settings import FEASIBILITY_TOL, FIXED_RANGE_TOL
 from guardband.planner.space.arrays import nan_to_none, read_only
 from guardband.planner.space.levels import MAX_ENUMERATED_COMBINATIONS
 from guardband.planner.space.slices import Slice, SliceFamily
-from guardband.planner.space.lp import FEASIBLE, LP, box_rows, ranges_lp, solve_lp
+from guardband.planner.space.lp import FEASIBLE, LP, MILP, box_rows, ranges_lp, solve_lp, solve_milp
 
 if TYPE_CHECKING:
     from guardband.planner.space.polytope import DesignSpace
@@ -135,14 +135,51 @@ def _feasibility_lp(space: DesignSpace, active: np.ndarray) -> LP | None:
 
 
 def _feasible_exact(space: DesignSpace, active: np.ndarray) -> bool:
-    """With each discrete factor at one of its levels: a mixed-integer programme (cvxpy)."""
-    from guardband.planner.space.solvers import solve
+    """With each discrete factor at one of its levels: a mixed-integer programme."""
+    milp = _feasibility_milp(space, active)
+    fallback = lambda: (_feasibility_problem(space, active, exact_levels=True), lambda: None)
+    return solve_milp(milp, what="whether the design space is empty", fallback=fallback).status in FEASIBLE
 
-    prob = _feasibility_problem(space, active, exact_levels=True)
-    if prob is None:
-        return True
-    solve(prob, what="whether the design space is empty")
-    return prob.status in FEASIBLE
+
+def _feasibility_milp(space: DesignSpace, active: np.ndarray) -> MILP:
+    """:func:`_feasibility_problem` with exact levels, in cvxpy's layout: the factors, then one
+    block of 0/1 picks per discrete factor with several levels (its level is ``levels @ pick``)."""
+    d = space.n_factors
+    blocks = [space.levels[g.index] for g, on in zip(space.groups, active)
+              if on and g.kind == GroupKind.LEVELS and space.levels[g.index].size > 1]
+    n = d + sum(lv.size for lv in blocks)
+    eq_rows, eq_rhs, ub_rows, ub_rhs = [], [], [], []
+    start = d
+    for g, on in zip(space.groups, active):
+        if not on:
+            continue
+        j = g.index
+        if g.kind == GroupKind.BOUNDS:
+            rows, rhs = box_rows(d, j, space.lower[j], space.upper[j])
+            ub_rows.append(np.hstack([rows, np.zeros((2, n - d))]))
+            ub_rhs.append(rhs)
+        elif g.kind == GroupKind.LEVELS:
+            lv = space.levels[j]
+            row = np.zeros((2, n)) if lv.size > 1 else np.zeros((1, n))
+            if lv.size > 1:  # sum(pick) == 1, then x_j - levels @ pick == 0
+                row[0, start:start + lv.size] = 1.0
+                row[1, j] = 1.0
+                row[1, start:start + lv.size] = -lv
+                eq_rows.append(row)
+                eq_rhs.append(np.array([1.0, 0.0]))
+                start += lv.size
+            else:  # x_j == its one level
+                row[0, j] = 1.0
+                eq_rows.append(row)
+                eq_rhs.append(lv[:1])
+        elif g.kind == GroupKind.EQUALITY:
+            eq_rows.append(np.hstack([space.A_eq[j], np.zeros(n - d)])[None, :])
+            eq_rhs.append(space.b_eq[j:j + 1])
+        else:
+            ub_rows.append(np.hstack([space.A_ub[j], np.zeros(n - d)])[None, :])
+            ub_rhs.append(space.b_ub[j:j + 1])
+    stack = lambda parts, rhs: (np.vstack(parts), np.concatenate(rhs)) if parts else (None, None)
+    return MILP(np.zeros(n), *stack(ub_rows, ub_rhs), *stack(eq_rows, eq_rhs), first_boolean=d)
 
 
 def _feasibility_problem(space: DesignSpace, active: np.ndarray, *, exact_levels: bool):

@@ -17,8 +17,9 @@ before inequality rows (its nonnegative cone), each in the order of the
 constraints; ``a @ x >= b`` becomes the row ``-a``, ``-b``; a maximisation
 is the minimisation of the negated objective. A status other than optimal or
 infeasible leaves the problem to cvxpy's ``CLARABEL``, as before
-(:func:`solve_lp`); the mixed-integer level checks, the inscribed ellipsoid
-and the projection QP stay cvxpy problems.
+(:func:`solve_lp`). The mixed-integer level checks go to scipy's ``milp`` in
+the same way (:func:`solve_milp`); the inscribed ellipsoid and the
+projection QP stay cvxpy problems.
 """
 
 from __future__ import annotations
@@ -30,7 +31,7 @@ import numpy as np
 
 from guardband.planner.errors import ProtocolError
 
-__all__ = ["LP", "LPSolution", "FEASIBLE", "INFEASIBLE", "solve_lp", "box_rows", "ranges_lp", "chebyshev_lp", "nearest_centre_lp",
+__all__ = ["LP", "MILP", "LPSolution", "FEASIBLE", "INFEASIBLE", "solve_lp", "solve_milp", "box_rows", "ranges_lp", "chebyshev_lp", "nearest_centre_lp",
            "support_lp"]
 
 #: cvxpy's status names (``cvxpy.OPTIMAL``, ...): callers compare with them.
@@ -78,6 +79,22 @@ class LP:
 
 
 @dataclass(frozen=True)
+class MILP(LP):
+    """An :class:`LP` whose variables from ``first_boolean`` on are 0 or 1 (cvxpy's boolean variables)."""
+
+    first_boolean: int = 0
+
+    def lower_bounds(self) -> np.ndarray | None:
+        """cvxpy's variable bounds: none on the continuous variables, 0 under the booleans
+        (None without booleans)."""
+        if self.first_boolean >= self.c.size:
+            return None
+        lb = np.full(self.c.size, -np.inf)
+        lb[self.first_boolean:] = 0.0
+        return lb
+
+
+@dataclass(frozen=True)
 class LPSolution:
     """What cvxpy's ``Problem.solve`` would leave: status, variable values (None unless solved) and value."""
 
@@ -116,6 +133,41 @@ def solve_lp(lp: LP, *, what: str, fallback: Callable[[], tuple] | None = None) 
         return LPSolution(status, np.asarray(res.x), lp.sense * (res.fun + 0.0))
     if status in INFEASIBLE:
         return LPSolution(status, None, lp.sense * np.inf)
+    return _clarabel(fallback, what, status)
+
+
+def solve_milp(problem: MILP, *, what: str, fallback: Callable[[], tuple] | None = None) -> LPSolution:
+    """Solve with scipy's ``milp`` (HiGHS) as cvxpy's SCIPY interface does for a problem with
+    boolean variables; an unsettled problem goes to cvxpy, as :func:`solve_lp`. Without
+    booleans (a discrete factor with one level) cvxpy solves an LP, and so does this."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+
+    if problem.lower_bounds() is None:
+        return solve_lp(problem, what=what, fallback=fallback)
+    data = problem.data()
+    n = data["c"].shape[0]
+    lb = problem.lower_bounds()
+    bounds = [(lb[i], None) for i in range(n)]
+    for i in range(problem.first_boolean, n):  # cvxpy: a boolean lies in [max(0, lb), 1]
+        bounds[i] = (max(0, bounds[i][0]), 1)
+    constraints = []
+    if data["G"] is not None:
+        ineq = LinearConstraint(data["G"], ub=data["h"])
+        ineq.A.indptr = ineq.A.indptr.astype(np.int32)
+        ineq.A.indices = ineq.A.indices.astype(np.int32)
+        constraints.append(ineq)
+    if data["A"] is not None:
+        constraints.append(LinearConstraint(data["A"], data["b"], data["b"]))
+    res = milp(data["c"], constraints=constraints, options={},
+               integrality=[0] * problem.first_boolean + [1] * (n - problem.first_boolean),
+               bounds=Bounds([t[0] for t in bounds], [t[1] if t[1] is not None else np.inf for t in bounds]))
+    status = _STATUS.get(res.status, "solver_error")
+    if status == "optimal_inaccurate" and res.x is None:
+        status = "solver_error"
+    if status in FEASIBLE:
+        return LPSolution(status, np.asarray(res.x), problem.sense * (res.fun + 0.0))
+    if status in INFEASIBLE:
+        return LPSolution(status, None, problem.sense * np.inf)
     return _clarabel(fallback, what, status)
 
 

@@ -1,12 +1,12 @@
-"""The cvxpy solvers the design space still uses, and one way to call them.
+"""The cvxpy problems the design space still has, and one way to solve them.
 
-The linear programmes go to scipy's HiGHS directly (:mod:`.lp`). The
-mixed-integer level checks go through cvxpy's ``SCIPY`` interface (scipy's
+The linear and mixed-integer programmes go to scipy's HiGHS directly
+(:mod:`.lp`), in the layout cvxpy's ``SCIPY`` interface gave them (scipy's
 bundled HiGHS: vertex-exact solutions, and silent; cvxpy's ``HIGHS``
 interface makes the installed highspy print a banner on stdout, which would
 corrupt machine-readable output). The projection QP and the inscribed
-ellipsoid use ``CLARABEL``. Both ship with cvxpy, which is imported only
-when one of these problems is solved (it takes about a second to import).
+ellipsoid use ``CLARABEL``, which ships with cvxpy; cvxpy is imported only
+when one of these is solved (it takes about a second to import).
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ from guardband.planner.space.lp import FEASIBLE, INFEASIBLE
 
 __all__ = ["LP_SOLVER", "QP_SOLVER", "FEASIBLE", "INFEASIBLE", "solve"]
 
-#: cvxpy solver for mixed-integer feasibility problems.
+#: cvxpy solver tried first for a linear or mixed-integer problem.
 LP_SOLVER = "SCIPY"
 #: cvxpy solver for the projection quadratic programme.
 QP_SOLVER = "CLARABEL"

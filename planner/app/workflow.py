@@ -74,6 +74,14 @@ def _short(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()[:12]
 
 
+def plan_step(*args, **kwargs) -> PlanResult:
+    """:func:`guardband.planner.step.plan_step`, imported when a step runs (the models
+    import scipy's optimisers, which ``check`` does not need)."""
+    from guardband.planner.step import plan_step as step
+
+    return step(*args, **kwargs)
+
+
 # ------------------------------------------------------------------ check
 @dataclass(frozen=True)
 class CheckReport:
@@ -325,8 +333,7 @@ def run_plan(
     name came from.
     """
     from guardband.planner.app.audit import resolve_operator
-    from guardband.planner.models import blas_limit  # the models and the step: only where a step runs
-    from guardband.planner.step import plan_step
+    from guardband.planner.models import blas_limit  # the models: only where a step runs
 
     operator = resolve_operator(by)
     protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
@@ -482,12 +489,14 @@ class ReplayOutcome:
         return dict(self.__dict__)
 
 
-def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
+def rerun_record(log_path: str | Path, index: int, *, explain: bool = True) -> tuple[PlanResult, dict]:
     """Re-run the planning step of plan record ``index`` from its recorded inputs.
 
     The inputs are the copies the plan kept under ``inputs/``; their hashes
     must match the record. The step runs with the recorded seed, warm start,
-    batch size and pool size.
+    batch size and pool size; ``explain=False`` leaves out the rule
+    comparison and the price of the threshold (:func:`plan_step`), which
+    change neither table.
 
     Returns
     -------
@@ -503,7 +512,6 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
     """
     from guardband.planner.app.audit import verify_campaign
     from guardband.planner.models import blas_limit
-    from guardband.planner.step import plan_step
 
     log_path = Path(log_path)
     verdict = verify_campaign(log_path, accept_empty=True)
@@ -524,7 +532,8 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
                                       **(body["runs_file"].get("read_options") or {}))
     with blas_limit():
         result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
-                           warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
+                           warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"),
+                           explain=explain)
     return result, rec
 
 
@@ -536,7 +545,7 @@ def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
     VerificationError
         As :func:`rerun_record`.
     """
-    return compare_with_record(*rerun_record(log_path, index))
+    return compare_with_record(*rerun_record(log_path, index, explain=False))  # the tables only
 
 
 def compare_with_record(result: PlanResult, rec: dict) -> ReplayOutcome:

@@ -48,7 +48,8 @@ from guardband.safety.screen import limit_probability, met_probability
 __all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions"]
 
 #: A guarded model keeps its answers at the last RECENT_SETS point sets of at
-#: most RECENT_POINTS points (a local refinement's batches of k + 1 points).
+#: most RECENT_POINTS points (a local refinement's batches of k + 1 points),
+#: and at the last larger one (a candidate pool).
 RECENT_POINTS = 64
 RECENT_SETS = 64
 
@@ -127,6 +128,7 @@ class GuardedLimitModel:
         self.lower, self.upper = lower, upper
         self.labels = tuple(str(v) for v in labels) if labels is not None else None
         self._recent: dict = {}  # see predict_parts
+        self._last_guards = (None, None)
         base = getattr(model, "fitted", model)
         self._base = base
         # the noise variance of a new measurement, in response units (the
@@ -145,6 +147,12 @@ class GuardedLimitModel:
             raise AttributeError(name)
         return getattr(self.model, name)
 
+    def __getstate__(self) -> dict:  # the kept answers stay in this process
+        return {k: v for k, v in self.__dict__.items() if k not in ("_recent", "_last_guards")}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state, _recent={}, _last_guards=(None, None))
+
     def local_factor(self, Xs, rho=None) -> np.ndarray:
         """The local sd multiplier at points Xs (unit-scaled), shape (n,).
 
@@ -161,12 +169,21 @@ class GuardedLimitModel:
 
     def _guards(self, Xs):
         Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
+        key = (Xs.shape, Xs.tobytes())
+        if self._last_guards[0] == key:  # the pool's, again: for the batch's posterior
+            return self._last_guards[1]
         if self._deletion is None:
-            return None, self.local_factor(Xs)
-        # both guards weigh by the same correlations (the short model's, with the runs): once
-        rho = self._deletion.rho(Xs)
-        shared = rho if self._weights is self._deletion.near else None
-        return (*self._deletion.shifts(Xs), self._deletion.nearness(Xs, rho)), self.local_factor(Xs, shared)
+            out = None, self.local_factor(Xs)
+        else:
+            # both guards weigh by the same correlations (the short model's, with the runs): once
+            rho = self._deletion.rho(Xs)
+            shared = rho if self._weights is self._deletion.near else None
+            out = (*self._deletion.shifts(Xs), self._deletion.nearness(Xs, rho)), self.local_factor(Xs, shared)
+        for a in (out[0] or ()) + (out[1],):
+            a.setflags(write=False)  # kept, and shared with the posterior
+        if Xs.shape[0] > RECENT_POINTS:
+            self._last_guards = (key, out)
+        return out
 
     def summary_factors(self) -> float:
         """The largest local multiplier at the runs, for the model summary."""
@@ -178,24 +195,25 @@ class GuardedLimitModel:
     def predict_parts(self, Xs, *, include_noise: bool = False, **kwargs):
         """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`.
 
-        The answers at the last few small point sets are kept (a prediction is a
-        pure function of the points): a local refinement asks again at points it
-        has seen, and the price of the threshold retraces the same refinement at
-        every threshold where the joint figure does not bind.
+        A prediction is a pure function of the points, so the answers at the
+        last few small point sets and at the last large one are kept: a local
+        refinement asks again at points it has seen, the price of the
+        threshold retraces the same refinement at every threshold where the
+        joint figure does not bind, and it screens the pool the plan screened.
         """
         Xs = np.asarray(Xs, dtype=float)
-        key = None
-        if Xs.ndim == 2 and Xs.shape[0] <= RECENT_POINTS and not kwargs:
-            key = (Xs.shape, Xs.tobytes(), bool(include_noise))
-            kept = self._recent.get(key)
-            if kept is not None:
-                return tuple(a.copy() for a in kept)
+        key = (Xs.shape, Xs.tobytes(), bool(include_noise)) if Xs.ndim == 2 and not kwargs else None
+        kept = self._recent.get(key) if key is not None else None
+        if kept is not None:
+            return tuple(a.copy() for a in kept)
         mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
         noise_var = self._noise_var if include_noise else 0.0
         out = self._worst(mean, sd_f, noise_var, *self._guards(Xs))
         if key is not None:
-            if len(self._recent) >= RECENT_SETS:
-                self._recent.pop(next(iter(self._recent)))
+            if Xs.shape[0] > RECENT_POINTS:  # one large set: forget the last one
+                self._recent = {k: v for k, v in self._recent.items() if k[0][0] <= RECENT_POINTS}
+            elif len(self._recent) >= RECENT_SETS:
+                self._recent.pop(next(k for k in self._recent if k[0][0] <= RECENT_POINTS))
             self._recent[key] = tuple(a.copy() for a in out)
         return out
 

@@ -294,6 +294,24 @@ def _mean_sd(model, U, with_noise: bool):
     return (*model.predict(U, include_noise=with_noise), None, None)
 
 
+def _predicted_together(limits, models, U) -> dict:
+    """``{k: (mean, sd, sd_all, leaning)}`` of the models at U that predict in one go with others
+    of their kind (a model class's ``predict_parts_together``: the same numbers, fewer calls)."""
+    if U is None:
+        return {}
+    groups: dict = {}
+    for k, model in enumerate(models):
+        together = getattr(type(model), "predict_parts_together", None) if model is not None else None
+        if together is not None:
+            groups.setdefault(together, []).append(k)
+    out = {}
+    for together, ks in groups.items():
+        if len(ks) > 1:
+            answers = together([models[k] for k in ks], U, [limits[k].with_noise for k in ks])
+            out.update(zip(ks, answers))
+    return out
+
+
 def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailable=None) -> list[LimitPrediction]:
     """What each limit's model says at the points, as the screen judges it.
 
@@ -317,6 +335,7 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
         The predictive distribution of the next measurement (latent plus
         noise) or of the true value, as each limit is judged.
     """
+    together = _predicted_together(limits, models, U)
     out = []
     for k, (lim, model) in enumerate(zip(limits, models)):
         if model is None:
@@ -325,7 +344,7 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                        status=status, message=message))
         else:
-            mean, sd, sd_all, leaning = _mean_sd(model, U, lim.with_noise)
+            mean, sd, sd_all, leaning = together[k] if k in together else _mean_sd(model, U, lim.with_noise)
             basis = _monotone_basis(lim, model, U) if lim.monotone else None
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
                                        sd_all=sd_all, leaning=leaning, scale=lim.scale, monotone=basis))

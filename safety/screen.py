@@ -544,7 +544,9 @@ def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str, spa
         factor with discrete levels steps level by level under ``max_step``).
     """
     inside = np.asarray(space.contains(X))
-    outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
+    outside_detail = [""] * len(inside)
+    for i in np.flatnonzero(~inside):
+        outside_detail[i] = space.describe_violation(np.asarray(X)[i])
     forb, forb_detail = forbidden_mask(rules.forbidden, X)
     beyond, beyond_detail = _beyond_span(np.asarray(U, float), np.asarray(anchors, float), rules.span_reach,
                                          rules.span_floor, step_basis, span_columns)

@@ -1,9 +1,11 @@
 """Is the design space empty, and why; the reachable range of each factor; its centre.
 
 Each answer is a linear (or, with exact discrete levels, mixed-integer)
-programme, handed to scipy's HiGHS in the layout cvxpy gave it (:mod:`.lp`). :func:`space_check` puts them together in a :class:`SpaceCheck`;
-:class:`~guardband.planner.space.polytope.DesignSpace` computes it once, on
-first use, and keeps it, as it keeps :func:`geometry`.
+programme, handed to scipy's HiGHS in the layout cvxpy gave it (:mod:`.lp`);
+the cvxpy problems themselves stay here, as the fallback and the tests'
+reference. :func:`space_check` puts the answers together in a
+:class:`SpaceCheck`; :class:`~guardband.planner.space.polytope.DesignSpace`
+computes it once, on first use, and keeps it, as it keeps :func:`geometry`.
 """
 
 from __future__ import annotations

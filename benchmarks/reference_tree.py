@@ -16,7 +16,9 @@ with the libraries of the current environment.
 
 from __future__ import annotations
 
+import atexit
 import os
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -27,11 +29,12 @@ _FOLDERS = {"planner": "planner", "safety": "safety", "protocols": "protocols"}
 
 
 def import_root(checkout: Path) -> Path:
-    """A temporary folder whose ``guardband`` package is the checkout's code."""
+    """A temporary folder whose ``guardband`` package is the checkout's code (removed at exit)."""
     checkout = Path(checkout).resolve()
     if not (checkout / "guardband" / "__init__.py").is_file() or not (checkout / "planner").is_dir():
         raise SystemExit(f"{checkout} is not a Guardband checkout (no guardband/__init__.py or planner/)")
     root = Path(tempfile.mkdtemp(prefix="guardband-reference-"))
+    atexit.register(shutil.rmtree, root, ignore_errors=True)  # links only: rmtree does not follow them
     pkg = root / "guardband"
     pkg.mkdir()
     for item in (checkout / "guardband").iterdir():

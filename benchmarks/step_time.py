@@ -5,24 +5,88 @@ mixture; coating: 6 factors) and each run count, a starting design is
 measured without noise and one planning step is timed twice: cold (no warm
 start) and warm (the hyperparameters of the first step as its warm start,
 as every step of a campaign after the first has). The protocols are the
-problems' own; BLAS on one thread, as in a sweep.
+problems' own; BLAS on one thread, as in a sweep. ``--explain off`` times
+the step as the simulator runs it (without the rule comparison and the price
+of the threshold); ``on`` (the default) as ``guardband plan`` does.
 
-    python benchmarks/step_time.py [--runs 10 25 40] [--repeat 3] [--out FILE.csv]
+With ``--reference DIR`` (a checkout of the code to compare with; see
+``reference_tree.py``) each case runs in both trees in the same run, one
+after the other, in two worker processes, so that the machine's load hits
+both alike; the table gives each tree's median and the ratio.
+
+    python benchmarks/step_time.py [--runs 10 25 40] [--repeat 3] [--explain on|off|both]
+                                   [--reference DIR] [--out FILE.csv]
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import statistics
+import subprocess
+import sys
 import time
 from pathlib import Path
 
-import numpy as np
+from reference_tree import environment, import_root
 
-from guardband.planner.models import blas_limit
-from guardband.planner.simulation import get_problem, runs_table_from_arrays
-from guardband.planner.simulation.loop import start_runs
-from guardband.planner.step import plan_step
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run_case(name: str, n: int, repeat: int, explain: bool) -> dict:
+    """Cold and warm step times (s) of one case, ``repeat`` of each (in this process)."""
+    import numpy as np
+
+    from guardband.planner.models import blas_limit
+    from guardband.planner.simulation import get_problem, runs_table_from_arrays
+    from guardband.planner.simulation.loop import start_runs
+    from guardband.planner.step import plan_step
+
+    problem = get_problem(name)
+    protocol = problem.protocol
+    cold, warm = [], []
+    with blas_limit():
+        X = start_runs(protocol, n, rng=np.random.default_rng(n))
+        runs = runs_table_from_arrays(protocol, X, problem.evaluate(X))
+        for r in range(repeat):
+            t = time.perf_counter()
+            first = plan_step(protocol, runs, seed=r, count=protocol.batch.size, explain=explain)
+            cold.append(time.perf_counter() - t)
+            t = time.perf_counter()
+            plan_step(protocol, runs, seed=r + 100, count=protocol.batch.size,
+                      warm_start=first.hyperparameters(), explain=explain)
+            warm.append(time.perf_counter() - t)
+    return {"factors": protocol.design_space().n_factors, "cold": cold, "warm": warm}
+
+
+def worker() -> None:
+    """Answer one case per line of stdin (JSON) with one line of JSON on stdout."""
+    for line in sys.stdin:
+        job = json.loads(line)
+        print(json.dumps(run_case(job["name"], job["n"], job["repeat"], job["explain"])), flush=True)
+
+
+class Tree:
+    """A worker process that imports one tree's code."""
+
+    def __init__(self, label: str, checkout: Path | None):
+        self.label = label
+        root = import_root(checkout) if checkout is not None else None
+        self.proc = subprocess.Popen([sys.executable, str(Path(__file__).resolve()), "--worker"],
+                                     stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+                                     env=environment(root), cwd=root or ROOT)
+
+    def run(self, **job) -> dict:
+        self.proc.stdin.write(json.dumps(job) + "\n")
+        self.proc.stdin.flush()
+        line = self.proc.stdout.readline()
+        if not line:
+            raise SystemExit(f"the {self.label} worker stopped (see its error above)")
+        return json.loads(line)
+
+    def close(self) -> None:
+        self.proc.stdin.close()
+        self.proc.wait()
 
 
 def main() -> None:
@@ -30,35 +94,51 @@ def main() -> None:
     ap.add_argument("--runs", type=int, nargs="+", default=[10, 25, 40])
     ap.add_argument("--problems", nargs="+", default=["gramacy", "tablet", "coating"])
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--explain", choices=["on", "off", "both"], default="on")
+    ap.add_argument("--reference", type=Path, default=None, help="a checkout to compare with, side by side")
     ap.add_argument("--out", type=Path, default=None)
+    ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
-    rows, warm_all = [], []
-    with blas_limit():
-        for name in args.problems:
-            problem = get_problem(name)
-            protocol = problem.protocol
-            for n in args.runs:
-                X = start_runs(protocol, n, rng=np.random.default_rng(n))
-                runs = runs_table_from_arrays(protocol, X, problem.evaluate(X))
-                cold, warm = [], []
-                for r in range(args.repeat):
-                    t = time.perf_counter()
-                    first = plan_step(protocol, runs, seed=r, count=protocol.batch.size)
-                    cold.append(time.perf_counter() - t)
-                    t = time.perf_counter()
-                    plan_step(protocol, runs, seed=r + 100, count=protocol.batch.size,
-                              warm_start=first.hyperparameters())
-                    warm.append(time.perf_counter() - t)
-                warm_all += warm
-                rows.append((name, protocol.design_space().n_factors, n, statistics.median(cold),
-                             statistics.median(warm)))
-                print(f"{name:8s} {rows[-1][1]} factors {n:3d} runs: cold {rows[-1][3]:.3f} s, "
-                      f"warm {rows[-1][4]:.3f} s (median of {args.repeat})", flush=True)
-    print(f"median warm step over every case: {statistics.median(warm_all):.3f} s")
+    if args.worker:
+        return worker()
+    trees = [Tree("this tree", None)]
+    if args.reference is not None:
+        trees.insert(0, Tree("reference", args.reference))
+    modes = {"on": [True], "off": [False], "both": [True, False]}[args.explain]
+    rows, warm_all = [], {(t.label, e): [] for t in trees for e in modes}
+    k = 0
+    for name in args.problems:
+        for n in args.runs:
+            for explain in modes:
+                k += 1
+                # alternate which tree goes first, so that neither always meets the same load
+                order = trees if k % 2 else trees[::-1]
+                got = {t.label: t.run(name=name, n=n, repeat=args.repeat, explain=explain) for t in order}
+                cells = []
+                for t in trees:
+                    res = got[t.label]
+                    cold, warm = statistics.median(res["cold"]), statistics.median(res["warm"])
+                    warm_all[(t.label, explain)] += res["warm"]
+                    rows.append((name, res["factors"], n, t.label, explain, cold, warm))
+                    cells.append(f"{t.label}: cold {cold:7.3f} s, warm {warm:7.3f} s")
+                ratio = ""
+                if len(trees) == 2:
+                    ratio = f"  warm ratio {rows[-1][6] / rows[-2][6]:.2f}"
+                print(f"{name:8s} {rows[-1][1]} factors {n:3d} runs explain {'on ' if explain else 'off'}| "
+                      + " | ".join(cells) + ratio, flush=True)
+    for explain in modes:
+        meds = {t.label: statistics.median(warm_all[(t.label, explain)]) for t in trees}
+        line = ", ".join(f"{label} {m:.3f} s" for label, m in meds.items())
+        if len(trees) == 2:
+            line += f" (ratio {meds['this tree'] / meds['reference']:.2f})"
+        print(f"median warm step over every case, explain {'on' if explain else 'off'}: {line}")
+    for t in trees:
+        t.close()
     if args.out:
         args.out.parent.mkdir(parents=True, exist_ok=True)
-        args.out.write_text("problem,factors,runs,cold_median_s,warm_median_s\n"
-                            + "".join(f"{a},{b},{c},{d:.4f},{e:.4f}\n" for a, b, c, d, e in rows), encoding="utf-8")
+        args.out.write_text("problem,factors,runs,tree,explain,cold_median_s,warm_median_s\n"
+                            + "".join(f"{a},{b},{c},{d},{e},{f:.4f},{g:.4f}\n" for a, b, c, d, e, f, g in rows),
+                            encoding="utf-8")
 
 
 if __name__ == "__main__":

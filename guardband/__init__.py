@@ -13,9 +13,8 @@ the applicable regulations, pharmacopoeia and local codes decide the limits.
 
 from __future__ import annotations
 
-import importlib
-
 from guardband.planner import __version__
+from guardband.planner.lazy import lazy_names
 
 #: public name -> module that defines it
 _PUBLIC = {
@@ -42,15 +41,4 @@ _PUBLIC = {
 __all__ = ["__version__", *sorted(_PUBLIC)]
 
 
-def __getattr__(name: str):
-    target = _PUBLIC.get(name)
-    if target is None:
-        raise AttributeError(f"module 'guardband' has no attribute {name!r}")
-    module, attr = target if isinstance(target, tuple) else (target, name)
-    value = getattr(importlib.import_module(module), attr)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(__all__)
+__getattr__, __dir__ = lazy_names(__name__, _PUBLIC)

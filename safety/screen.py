@@ -81,7 +81,9 @@ __all__ = [
     "above_broken",
     "HardRules",
     "ScreenResult",
+    "Texts",
     "limit_probability",
+    "met_probability",
     "limit_predictions",
     "probabilities_at",
     "joint_at",
@@ -213,6 +215,12 @@ def limit_probability(mean, sd, *, lower=None, upper=None, scale: str = "respons
         lower, upper = _logit_bound(lower), _logit_bound(upper)
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
+    if mean.ndim and mean.shape == sd.shape and (sd > 0).all():
+        # the usual case, every sd positive: the same numbers with fewer array passes
+        # (this runs tens of thousands of times in a step's local refinement)
+        du = None if upper is None else upper - mean
+        dl = None if lower is None else lower - mean
+        return met_probability(du, dl, sd)
     safe_sd = np.where(sd > 0, sd, 1.0)
     p_up = np.ones_like(mean)
     p_low = np.zeros_like(mean)
@@ -221,6 +229,29 @@ def limit_probability(mean, sd, *, lower=None, upper=None, scale: str = "respons
     if lower is not None:
         p_low = np.where(sd > 0, ndtr((lower - mean) / safe_sd), (mean < lower).astype(float))
     return np.clip(p_up - p_low, 0.0, 1.0)
+
+
+def met_probability(du, dl, sd, *, clip: bool = True) -> np.ndarray:
+    """:func:`limit_probability` from the distances to the limits, for sd > 0 everywhere.
+
+    ``du = upper - mean`` and ``dl = lower - mean`` (None for a side
+    without a limit), arrays of the shape of ``sd``. Callers that ask
+    about one mean at many sds (the widening's bisection) compute the
+    distances once. The result is bit for bit that of
+    :func:`limit_probability`: ``p - 0`` and the clip to [0, 1] of a
+    one-sided figure change no value of ``ndtr``, which lies in [0, 1].
+    ``clip=False`` leaves out the clip of a two-sided figure too (for a
+    caller that only compares the figure with a probability below 1).
+    """
+    if du is not None:
+        p = ndtr(du / sd)
+        if dl is None:
+            return p
+        p -= ndtr(dl / sd)
+        return np.clip(p, 0.0, 1.0) if clip else p
+    if dl is not None:
+        return 1.0 - ndtr(dl / sd)
+    return np.ones_like(sd)
 
 
 def _fmt_p(p: float, required: float) -> str:
@@ -266,6 +297,24 @@ def _mean_sd(model, U, with_noise: bool):
     return (*model.predict(U, include_noise=with_noise), None, None)
 
 
+def _predicted_together(limits, models, U) -> dict:
+    """``{k: (mean, sd, sd_all, leaning)}`` of the models at U that predict in one go with others
+    of their kind (a model class's ``predict_parts_together``: the same numbers, fewer calls)."""
+    if U is None:
+        return {}
+    groups: dict = {}
+    for k, model in enumerate(models):
+        together = getattr(type(model), "predict_parts_together", None) if model is not None else None
+        if together is not None:
+            groups.setdefault(together, []).append(k)
+    out = {}
+    for together, ks in groups.items():
+        if len(ks) > 1:
+            answers = together([models[k] for k in ks], U, [limits[k].with_noise for k in ks])
+            out.update(zip(ks, answers))
+    return out
+
+
 def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailable=None) -> list[LimitPrediction]:
     """What each limit's model says at the points, as the screen judges it.
 
@@ -289,6 +338,7 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
         The predictive distribution of the next measurement (latent plus
         noise) or of the true value, as each limit is judged.
     """
+    together = _predicted_together(limits, models, U)
     out = []
     for k, (lim, model) in enumerate(zip(limits, models)):
         if model is None:
@@ -297,7 +347,7 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                        status=status, message=message))
         else:
-            mean, sd, sd_all, leaning = _mean_sd(model, U, lim.with_noise)
+            mean, sd, sd_all, leaning = together[k] if k in together else _mean_sd(model, U, lim.with_noise)
             basis = _monotone_basis(lim, model, U) if lim.monotone else None
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
                                        sd_all=sd_all, leaning=leaning, scale=lim.scale, monotone=basis))
@@ -345,7 +395,8 @@ def figures_at(predictions: Sequence[LimitPrediction], n: int, *,
     """Per-limit probabilities (NaN where a limit cannot vouch) and the joint figure
     (0 where a limit cannot vouch: fail closed) at n points."""
     P, vouch = probabilities_at(predictions, n)
-    return P, np.where(vouch, joint_figure(np.nan_to_num(P, nan=0.0), method=method), 0.0)
+    filled = P if np.isfinite(P).all() else np.nan_to_num(P, nan=0.0)  # nan_to_num changes no finite value
+    return P, np.where(vouch, joint_figure(filled, method=method), 0.0)
 
 
 def joint_at(predictions: Sequence[LimitPrediction], n: int, *, method: str = "bound") -> np.ndarray:
@@ -365,6 +416,46 @@ def forbidden_mask(regions: Sequence[ForbiddenRegion], X) -> tuple[np.ndarray, l
             detail[i] = region.describe()
         mask |= inside
     return mask, detail
+
+
+class Texts(Sequence):
+    """One sentence per candidate, each written when it is first read.
+
+    A step screens thousands of candidates several times (the pool, the
+    refined pool, each threshold of the price) and reads the sentences of
+    one screen only; writing each on first use saves most of that work and
+    gives the same text. A copy or a pickle is a plain list.
+    """
+
+    def __init__(self, n: int):
+        self._make = np.full(n, None, dtype=object)
+        self._text: dict[int, str] = {}
+
+    def set(self, idx, make) -> None:
+        """The sentence of each candidate i in ``idx`` (an index or an index array) is ``make(i)``;
+        set before the first read."""
+        self._make[idx] = make
+
+    def __len__(self) -> int:
+        return len(self._make)
+
+    def __getitem__(self, i):
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        i = range(len(self))[i]  # negative indices, and IndexError when out of range
+        if i not in self._text:
+            make = self._make[i]
+            self._text[i] = "" if make is None else make(i)  # i a plain int
+        return self._text[i]
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, Sequence) and list(self) == list(other)
+
+    def __repr__(self) -> str:
+        return repr(list(self))
+
+    def __reduce__(self):
+        return list, (list(self),)
 
 
 @dataclass(frozen=True)
@@ -463,11 +554,14 @@ def _beyond_span(U, anchors, reach, floor, basis, columns=None):
     lo, hi = tested_span(anchors, reach, floor)
     lo, hi = np.where(cols, lo, -np.inf), np.where(cols, hi, np.inf)
     out = np.any((U < lo - 1e-12) | (U > hi + 1e-12), axis=1)
-    detail = [""] * n
-    for i in np.flatnonzero(out):
+
+    def text(i):
         j = int(np.argmax(np.maximum(lo - U[i], U[i] - hi)))
-        detail[i] = (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
-                     f"{basis.replace('run', 'runs', 1)} [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+        return (f"free factor {j + 1} at {U[i, j]:.3f} (unit-scaled) lies outside the span of the "
+                f"{basis.replace('run', 'runs', 1)} [{lo[j]:.3f}, {hi[j]:.3f}] (span_reach {reach:g})")
+
+    detail = Texts(n)
+    detail.set(out, text)
     return out, detail
 
 
@@ -492,7 +586,9 @@ def hard_rules(rules: ScreenRules, space, X, U, anchors, *, step_basis: str, spa
         factor with discrete levels steps level by level under ``max_step``).
     """
     inside = np.asarray(space.contains(X))
-    outside_detail = [space.describe_violation(x) if not ok else "" for x, ok in zip(X, inside)]
+    outside_detail = [""] * len(inside)
+    for i in np.flatnonzero(~inside):
+        outside_detail[i] = space.describe_violation(np.asarray(X)[i])
     forb, forb_detail = forbidden_mask(rules.forbidden, X)
     beyond, beyond_detail = _beyond_span(np.asarray(U, float), np.asarray(anchors, float), rules.span_reach,
                                          rules.span_floor, step_basis, span_columns)
@@ -560,8 +656,8 @@ class ScreenResult:
     survives : bool array (n,)
     reason : array of str (n,)
         "" for survivors, else one of :data:`REASONS`.
-    detail : list of str (n,)
-        A plain sentence for each excluded candidate.
+    detail : sequence of str (n,)
+        A plain sentence for each excluded candidate (:class:`Texts`).
     P : array (n, n_limits)
         Per-limit probabilities (NaN where the limit could not vouch).
     joint : array (n,)
@@ -575,7 +671,7 @@ class ScreenResult:
 
     survives: np.ndarray
     reason: np.ndarray
-    detail: list[str]
+    detail: Sequence[str]
     P: np.ndarray
     joint: np.ndarray
     step: np.ndarray
@@ -663,13 +759,12 @@ def run_screen(
     if step is None:
         step = np.full(n, np.nan)
     reason = np.full(n, "", dtype=object)
-    detail = [""] * n
+    detail = Texts(n)  # each sentence written when read
 
     def mark(mask, code, text_of):
         idx = np.flatnonzero(mask & (reason == ""))
-        for i in idx:
-            reason[i] = code
-            detail[i] = text_of(i)
+        reason[idx] = code
+        detail.set(idx, text_of)
 
     mark(~inside, "outside-design-space",
          lambda i: (outside_detail[i] if outside_detail else "outside the design space"))

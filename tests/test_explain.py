@@ -49,3 +49,18 @@ def test_every_pick_has_a_reason_in_the_record(tablet_batch):
     _, result = tablet_batch
     for d in result.proposal_dicts():
         assert d["reason"] and set(d["given_earlier"]) == {"ei", "pi", "bound", "mean"}
+
+
+@pytest.mark.parametrize("example", ["tablet_blend", "dose_combination"])
+def test_the_extras_change_neither_table(example):
+    # the rule comparison and the price of the threshold only read the step (replay leaves them out)
+    p = load_protocol(PROTOCOLS / f"{example}.toml")
+    runs = read_runs(PROTOCOLS / f"{example}_runs.csv", p)
+    with_extras = plan_step(p, runs, seed=5, pool_size=400, count=2)
+    without = plan_step(p, runs, seed=5, pool_size=400, count=2, explain=False)
+    assert with_extras.threshold_price and not without.threshold_price
+    assert with_extras.proposal_dicts() == without.proposal_dicts()
+    assert with_extras.pool.tobytes() == without.pool.tobytes()
+    assert list(with_extras.screen.detail) == list(without.screen.detail)
+    assert with_extras.screen.P.tobytes() == without.screen.P.tobytes()
+    assert with_extras.messages == without.messages

@@ -240,3 +240,23 @@ def test_a_new_measurement_adds_the_models_own_noise_variance_everywhere():
     _, sd_m = guarded.predict(Xs, include_noise=True)
     noise = gp.scale**2 * gp.hyperparameters.noise_variance
     np.testing.assert_allclose(sd_m**2 - sd_f**2, noise, rtol=1e-9)
+
+
+def test_models_predicted_together_give_each_models_own_numbers():
+    # the screen predicts several guarded limit models at once, their widenings in one bisection
+    # (a side without a limit laid out as an infinite distance): the same bits as one at a time
+    from guardband.planner.models.guards import predict_parts_together
+
+    X, y = _data(n=14, seed=3)
+    gp = fit_gp(X, y, prior_mean=0.5, hyperparameters=HP)
+    sides = [(None, 0.6), (0.2, None), (0.1, 0.9)]
+    Xs = np.random.default_rng(4).random((9, 2))
+    for noise in (False, True):
+        fresh = [GuardedLimitModel(gp, lower=lo, upper=up) for lo, up in sides]
+        together = predict_parts_together(fresh, Xs, [noise] * len(fresh))
+        for model, got in zip([GuardedLimitModel(gp, lower=lo, upper=up) for lo, up in sides], together):
+            alone = model.predict_parts(Xs, include_noise=noise)
+            assert [a.tobytes() for a in alone[:3]] == [a.tobytes() for a in got[:3]]
+            assert list(alone[3]) == list(got[3])
+        widened = [float(np.max(got[1] - got[2])) for got in together]
+        assert max(widened) > 0  # some point was widened, so the bisection ran

@@ -32,7 +32,7 @@ import hashlib
 import secrets
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import NamedTuple
+from typing import TYPE_CHECKING, NamedTuple
 
 import numpy as np
 
@@ -43,8 +43,6 @@ from guardband.planner.app.fileio import notes_path, table_with_notes
 from guardband.planner.inputs.protocol import Protocol, load_protocol
 from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.runs import RUN_ID, RunsTable, read_runs_bytes
-from guardband.planner.models import blas_limit
-from guardband.planner.step import PlanResult, plan_step
 from guardband.planner.app.history import campaign_calibration
 from guardband.planner.step.attitudes import rule_guidance, threshold_binding
 from guardband.safety.calibration import EarnedCalibration
@@ -52,6 +50,9 @@ from guardband.safety.calibration import EarnedCalibration
 from guardband.safety import cautions as _cautions
 from guardband.safety import ledger
 from guardband.safety.canonical import canonical_json
+
+if TYPE_CHECKING:
+    from guardband.planner.step import PlanResult
 
 __all__ = [
     "LOG_NAME",
@@ -83,6 +84,14 @@ def cautions_of(protocol: Protocol) -> tuple[str, ...]:
 
 def _short(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()[:12]
+
+
+def plan_step(*args, **kwargs) -> PlanResult:
+    """:func:`guardband.planner.step.plan_step`, imported when a step runs (the models
+    import scipy's optimisers, which ``check`` does not need)."""
+    from guardband.planner.step import plan_step as step
+
+    return step(*args, **kwargs)
 
 
 # ------------------------------------------------------------------ check
@@ -333,6 +342,7 @@ def run_plan(
     name came from.
     """
     from guardband.planner.app.audit import resolve_operator
+    from guardband.planner.models import blas_limit  # the models: only where a step runs
 
     operator = resolve_operator(by)
     protocol_path, runs_path, out_dir = Path(protocol_path), Path(runs_path), Path(out_dir)
@@ -516,12 +526,14 @@ class ReplayOutcome:
         return dict(self.__dict__)
 
 
-def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
+def rerun_record(log_path: str | Path, index: int, *, explain: bool = True) -> tuple[PlanResult, dict]:
     """Re-run the planning step of plan record ``index`` from its recorded inputs.
 
     The inputs are the copies the plan kept under ``inputs/``; their hashes
     must match the record. The step runs with the recorded seed, warm start,
-    batch size and pool size.
+    batch size and pool size; ``explain=False`` leaves out the rule
+    comparison and the price of the threshold (:func:`plan_step`), which
+    change neither table.
 
     Returns
     -------
@@ -536,6 +548,7 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
         not a regular file.
     """
     from guardband.planner.app.audit import verify_campaign
+    from guardband.planner.models import blas_limit
 
     log_path = Path(log_path)
     verdict = verify_campaign(log_path, accept_empty=True)
@@ -556,7 +569,8 @@ def rerun_record(log_path: str | Path, index: int) -> tuple[PlanResult, dict]:
                                       **(body["runs_file"].get("read_options") or {}))
     with blas_limit():
         result = plan_step(protocol, runs, seed=body["seed"], count=body.get("count_requested"),
-                           warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"))
+                           warm_start=body.get("warm_start") or {}, pool_size=body.get("pool_size_requested"),
+                           explain=explain)
     return result, rec
 
 
@@ -568,7 +582,7 @@ def replay_record(log_path: str | Path, index: int) -> ReplayOutcome:
     VerificationError
         As :func:`rerun_record`.
     """
-    return compare_with_record(*rerun_record(log_path, index))
+    return compare_with_record(*rerun_record(log_path, index, explain=False))  # the tables only
 
 
 def compare_with_record(result: PlanResult, rec: dict) -> ReplayOutcome:

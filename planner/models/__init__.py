@@ -8,16 +8,30 @@ arrays), :mod:`.checks` (leave-one-out coverage and widening),
 single-run check and the local one-sided widening), :mod:`.binomial` (a GP
 on the logit of a rate, Laplace approximation), :mod:`.parallel` (jobs
 on worker processes) and :mod:`.blas` (BLAS held to one thread).
-Other packages import the names below from here.
+Other packages import the names below from here; each loads its module
+on first use (the model modules import scipy's optimisers).
 """
 
-from guardband.planner.models.binomial import BinomialGP, fit_binomial_gp
-from guardband.planner.models.blas import blas_limit, hold_blas_limit, limited_blas
-from guardband.planner.models.gp import GaussianProcess, LeaveOneOut, PosteriorAt, fit_gp
-from guardband.planner.models.hyperparameters import Hyperparameters, log_marginal_likelihood
-from guardband.planner.models.kernel import matern52
-from guardband.planner.models.limitmodel import PessimisticLimitModel
-from guardband.planner.models.parallel import default_workers, map_jobs
+from guardband.planner.lazy import lazy_names
+
+#: public name -> the module that defines it (loaded on first use)
+_NAMES = {
+    "fit_gp": "guardband.planner.models.gp",
+    "fit_binomial_gp": "guardband.planner.models.binomial",
+    "BinomialGP": "guardband.planner.models.binomial",
+    "GaussianProcess": "guardband.planner.models.gp",
+    "Hyperparameters": "guardband.planner.models.hyperparameters",
+    "LeaveOneOut": "guardband.planner.models.gp",
+    "PosteriorAt": "guardband.planner.models.gp",
+    "log_marginal_likelihood": "guardband.planner.models.hyperparameters",
+    "matern52": "guardband.planner.models.kernel",
+    "PessimisticLimitModel": "guardband.planner.models.limitmodel",
+    "map_jobs": "guardband.planner.models.parallel",
+    "default_workers": "guardband.planner.models.parallel",
+    "blas_limit": "guardband.planner.models.blas",
+    "limited_blas": "guardband.planner.models.blas",
+    "hold_blas_limit": "guardband.planner.models.blas",
+}
 
 __all__ = [
     "fit_gp",
@@ -36,3 +50,5 @@ __all__ = [
     "limited_blas",
     "hold_blas_limit",
 ]
+
+__getattr__, __dir__ = lazy_names(__name__, _NAMES)

@@ -57,7 +57,7 @@ def check_points(Xs, n_factors: int, name: str = "Xs") -> np.ndarray:
         raise ModelError(f"{name} must be a numeric array: {exc}") from None
     if Xs.ndim != 2 or Xs.shape[1] != n_factors:
         raise ModelError(f"{name} must have shape (n_points, {n_factors}); got shape {Xs.shape}")
-    if not np.all(np.isfinite(Xs)):
+    if not np.isfinite(Xs).all():
         rows = np.flatnonzero(~np.all(np.isfinite(Xs), axis=1)).tolist()
         raise ModelError(f"{name} contains NaN or infinite values in rows {_first(rows)}")
     return Xs

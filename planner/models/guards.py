@@ -43,9 +43,15 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from guardband.safety.screen import limit_probability
+from guardband.safety.screen import limit_probability, met_probability
 
-__all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions"]
+__all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions", "predict_parts_together"]
+
+#: A guarded model keeps its answers at the last RECENT_SETS point sets of at
+#: most RECENT_POINTS points (a local refinement's batches of k + 1 points),
+#: and at the last larger one (a candidate pool).
+RECENT_POINTS = 64
+RECENT_SETS = 64
 
 
 def optimistic_errors(u: np.ndarray, lower, upper) -> np.ndarray:
@@ -83,9 +89,13 @@ class _Deletion:
         g = self.gp.kernel(Xs, self.gp.X) @ self.C
         return g * (self.alpha / self.diag), g**2 / self.diag
 
-    def nearness(self, Xs) -> np.ndarray:
-        """rho(x, x_i)^2 at the short length scales, shape (n_points, n_runs)."""
-        return np.clip(self.near.kernel(Xs, self.gp.X) / self.var0, 0.0, 1.0) ** 2
+    def rho(self, Xs) -> np.ndarray:
+        """rho(x, x_i) at the short length scales, shape (n_points, n_runs)."""
+        return self.near.kernel(Xs, self.gp.X) / self.var0
+
+    def nearness(self, Xs, rho=None) -> np.ndarray:
+        """rho(x, x_i)^2 at the short length scales (from ``rho`` when given), shape (n_points, n_runs)."""
+        return np.clip(self.rho(Xs) if rho is None else rho, 0.0, 1.0) ** 2
 
 
 def deletion_predictions(gp, Xs) -> tuple[np.ndarray, np.ndarray]:
@@ -117,6 +127,8 @@ class GuardedLimitModel:
         self.model = model
         self.lower, self.upper = lower, upper
         self.labels = tuple(str(v) for v in labels) if labels is not None else None
+        self._recent: dict = {}  # see predict_parts
+        self._last_guards = (None, None)
         base = getattr(model, "fitted", model)
         self._base = base
         # the noise variance of a new measurement, in response units (the
@@ -135,20 +147,48 @@ class GuardedLimitModel:
             raise AttributeError(name)
         return getattr(self.model, name)
 
-    def local_factor(self, Xs) -> np.ndarray:
-        """The local sd multiplier at points Xs (unit-scaled), shape (n,)."""
+    #: several such models at the same points in one go (:func:`limit_predictions` of the screen)
+    @staticmethod
+    def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
+        return predict_parts_together(models, Xs, include_noise)
+
+    def __getstate__(self) -> dict:  # the kept answers stay in this process
+        return {k: v for k, v in self.__dict__.items() if k not in ("_recent", "_last_guards")}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state, _recent={}, _last_guards=(None, None))
+
+    def local_factor(self, Xs, rho=None) -> np.ndarray:
+        """The local sd multiplier at points Xs (unit-scaled), shape (n,).
+
+        ``rho``: the correlations with the runs at the short length scales,
+        when the caller has them already (the single-run check weighs by the same).
+        """
         Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
         if self._weights is None:
             return np.ones(Xs.shape[0])
-        rho = self._weights.kernel(Xs, self._base.X) / self._var0
+        if rho is None:
+            rho = self._weights.kernel(Xs, self._base.X) / self._var0
         c2 = (1.0 + rho @ self._errors) / (1.0 + rho.sum(axis=1))
         return np.sqrt(np.maximum(c2, 1.0))
 
     def _guards(self, Xs):
         Xs = np.atleast_2d(np.asarray(Xs, dtype=float))
+        key = (Xs.shape, Xs.tobytes())
+        if self._last_guards[0] == key:  # the pool's, again: for the batch's posterior
+            return self._last_guards[1]
         if self._deletion is None:
-            return None, self.local_factor(Xs)
-        return (*self._deletion.shifts(Xs), self._deletion.nearness(Xs)), self.local_factor(Xs)
+            out = None, self.local_factor(Xs)
+        else:
+            # both guards weigh by the same correlations (the short model's, with the runs): once
+            rho = self._deletion.rho(Xs)
+            shared = rho if self._weights is self._deletion.near else None
+            out = (*self._deletion.shifts(Xs), self._deletion.nearness(Xs, rho)), self.local_factor(Xs, shared)
+        for a in (out[0] or ()) + (out[1],):
+            a.setflags(write=False)  # kept, and shared with the posterior
+        if Xs.shape[0] > RECENT_POINTS:
+            self._last_guards = (key, out)
+        return out
 
     def summary_factors(self) -> float:
         """The largest local multiplier at the runs, for the model summary."""
@@ -158,16 +198,38 @@ class GuardedLimitModel:
         return self.predict_parts(Xs, include_noise=include_noise, **kwargs)[:2]
 
     def predict_parts(self, Xs, *, include_noise: bool = False, **kwargs):
-        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`."""
-        mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
-        noise_var = self._noise_var if include_noise else 0.0
-        return self._worst(mean, sd_f, noise_var, *self._guards(Xs))
+        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`.
+
+        A prediction is a pure function of the points, so the answers at the
+        last few small point sets and at the last large one are kept: a local
+        refinement asks again at points it has seen, the price of the
+        threshold retraces the same refinement at every threshold where the
+        joint figure does not bind, and it screens the pool the plan screened.
+        """
+        if kwargs:
+            mean, sd_f = self.model.predict(Xs, include_noise=False, **kwargs)
+            return self._worst(mean, sd_f, self._noise_var if include_noise else 0.0, *self._guards(Xs))
+        return predict_parts_together([self], Xs, [include_noise])[0]
+
+    def _kept(self, Xs: np.ndarray, include_noise: bool):
+        """The kept answer at these points, or None; and its key."""
+        key = (Xs.shape, Xs.tobytes(), bool(include_noise))
+        kept = self._recent.get(key)
+        return (None if kept is None else tuple(a.copy() for a in kept)), key
+
+    def _keep(self, key, answer) -> None:
+        if key[0][0] > RECENT_POINTS:  # one large set: forget the last one
+            self._recent = {k: v for k, v in self._recent.items() if k[0][0] <= RECENT_POINTS}
+        elif len(self._recent) >= RECENT_SETS:
+            self._recent.pop(next(k for k in self._recent if k[0][0] <= RECENT_POINTS))
+        self._recent[key] = tuple(a.copy() for a in answer)
 
     def posterior_at(self, Xs) -> _GuardedPosterior:
         return _GuardedPosterior(self, self.model.posterior_at(Xs), *self._guards(Xs))
 
-    def _worst(self, mean, sd_f, noise_var, shifts, factor):
-        """Per point, the (mean, sd) whose probability is the guarded one, and why.
+    def _unwidened(self, mean, sd_f, noise_var, shifts, factor):
+        """Per point, the (mean, sd) whose probability is the guarded one, and why,
+        the sd's widening still to be made (a :class:`_Widening`; see :func:`_bisect`).
 
         For each run i the probability without it, ``p_-i``, is blended with
         the full model's ``p`` by how near the point is to run i:
@@ -183,7 +245,7 @@ class GuardedLimitModel:
         sd = factor * np.sqrt(sd_f**2 + noise_var)
         leaning = np.full(mean.shape[0], "", dtype=object)
         if shifts is None or shifts[0].shape[1] == 0:
-            return mean, sd, sd, leaning
+            return mean, _Widening(mean, sd), sd, leaning
         dmu, dvar, near = shifts
         p_full = limit_probability(mean, sd, lower=self.lower, upper=self.upper)
         sd_del = factor[:, None] * np.sqrt(sd_f[:, None] ** 2 + dvar + np.reshape(noise_var, (-1, 1)))
@@ -195,36 +257,131 @@ class GuardedLimitModel:
         names = self.labels if self.labels is not None else tuple(f"row {i + 1}" for i in range(blend.shape[1]))
         leaning[lowered] = [names[i] for i in worst[lowered]]
         p_guard = np.minimum(p_full, p_worst)
-        return mean, _widen_to(mean, sd, p_guard, self.lower, self.upper), sd, leaning
+        return mean, _Widening(mean, sd, p_guard, self.lower, self.upper, p_full), sd, leaning
+
+    def _worst(self, mean, sd_f, noise_var, shifts, factor):
+        """Per point, the (mean, sd) whose probability is the guarded one, and why: see :meth:`_unwidened`."""
+        mean, widening, sd_all, leaning = self._unwidened(mean, sd_f, noise_var, shifts, factor)
+        return mean, _bisect([widening])[0], sd_all, leaning
 
 
-def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40) -> np.ndarray:
-    """The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target (bisection on log sd').
+def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
+    """:meth:`GuardedLimitModel.predict_parts` of several guarded models at the same points.
 
-    Where the mean lies outside the limit, or the target is not below the
-    current probability, sd is returned as it is (the probability there is
-    already at most 1/2, or needs no change).
+    The widenings' bisections run as one (:func:`_bisect`): each point's
+    steps are its own, so every number is the one the models give apart,
+    with a fraction of the numpy calls (a local refinement predicts a few
+    points thousands of times). Kept answers are used and kept as by each model.
     """
-    p = limit_probability(mean, sd, lower=lower, upper=upper)
-    inside = np.ones_like(mean, dtype=bool)
-    if upper is not None:
-        inside &= mean < upper
-    if lower is not None:
-        inside &= mean > lower
-    todo = inside & (target < p) & (sd > 0)
-    out = sd.copy()
-    if not np.any(todo):
-        return out
-    lo = np.log(sd[todo])
-    hi = lo + np.log(1e6)
-    m, tg = mean[todo], target[todo]
-    for _ in range(steps):
-        mid = 0.5 * (lo + hi)
-        too_high = limit_probability(m, np.exp(mid), lower=lower, upper=upper) > tg
-        lo = np.where(too_high, mid, lo)
-        hi = np.where(too_high, hi, mid)
-    out[todo] = np.exp(hi)
+    Xs = np.asarray(Xs, dtype=float)
+    out, pending = [None] * len(models), []
+    for k, (model, noise) in enumerate(zip(models, include_noise)):
+        kept, key = model._kept(Xs, noise)
+        if kept is not None:
+            out[k] = kept
+            continue
+        mean, sd_f = model.model.predict(Xs, include_noise=False)
+        noise_var = model._noise_var if noise else 0.0
+        pending.append((k, key, *model._unwidened(mean, sd_f, noise_var, *model._guards(Xs))))
+    widened = _bisect([p[3] for p in pending])
+    for (k, key, mean, _, sd_all, leaning), sd in zip(pending, widened):
+        out[k] = (mean, sd, sd_all, leaning)
+        models[k]._keep(key, out[k])
     return out
+
+
+class _Widening:
+    """What :func:`_widen_to` does for one set of points, ready for :func:`_bisect`.
+
+    The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target,
+    by bisection on log sd'. Where the mean lies outside the limit, or the
+    target is not below the current probability ``p`` (the caller's own
+    ``limit_probability(mean, sd)``), sd stays as it is (the probability
+    there is already at most 1/2, or needs no change). ``target`` holds
+    probabilities, in [0, 1]; None: nothing to widen.
+    """
+
+    def __init__(self, mean, sd, target=None, lower=None, upper=None, p=None):
+        self.sd, self.lower, self.upper = sd, lower, upper
+        self.todo = np.zeros(sd.shape, dtype=bool)
+        if target is None:
+            return
+        if p is None:
+            p = limit_probability(mean, sd, lower=lower, upper=upper)
+        inside = np.ones_like(mean, dtype=bool)
+        if upper is not None:
+            inside &= mean < upper
+        if lower is not None:
+            inside &= mean > lower
+        self.todo = inside & (target < p) & (sd > 0)
+        if not np.any(self.todo):
+            return
+        self.lo = np.log(sd[self.todo])
+        self.m, self.tg = mean[self.todo], target[self.todo]
+        # the distances to the limits do not change with the sd: computed once (the same
+        # numbers limit_probability computes). Every sd tried lies in [sd, 1e6 sd], so with
+        # sd between the smallest normal double and 1e290 each is positive and finite, and
+        # met_probability gives limit_probability's numbers; unclipped, as the figure is only
+        # compared with a target in [0, 1) (a clip to [0, 1] changes no such comparison)
+        self.du = None if upper is None else upper - self.m
+        self.dl = None if lower is None else lower - self.m
+        sd_todo = sd[self.todo]
+        self.fast = float(np.min(sd_todo)) > 1e-300 and float(np.max(sd_todo)) < 1e290
+
+    def result(self, hi) -> np.ndarray:
+        out = self.sd.copy()
+        if hi is not None:
+            out[self.todo] = np.exp(hi)
+        return out
+
+
+def _bisect(widenings, *, steps: int = 40) -> list[np.ndarray]:
+    """The widened sds of several :class:`_Widening`, the fast ones in one bisection.
+
+    The points are laid end to end; a side without a limit becomes an
+    infinite distance (``ndtr(inf) = 1``, ``ndtr(-inf) = 0``, so ``p - 0``
+    and ``1 - p`` come out as before, exactly). Numpy's elementwise
+    functions give each element the same number wherever it lies in an
+    array (a test compares with the models one at a time).
+    """
+    live = [w for w in widenings if w.todo.any()]
+    fast = [w for w in live if w.fast]
+    his = {}
+    if fast:
+        lo = np.concatenate([w.lo for w in fast]) if len(fast) > 1 else fast[0].lo
+        tg = np.concatenate([w.tg for w in fast]) if len(fast) > 1 else fast[0].tg
+        if len(fast) == 1:
+            du, dl = fast[0].du, fast[0].dl
+        else:
+            fill = lambda d, w, v: d if d is not None else np.full(w.lo.shape, v)
+            du = (np.concatenate([fill(w.du, w, np.inf) for w in fast])
+                  if any(w.du is not None for w in fast) else None)
+            dl = (np.concatenate([fill(w.dl, w, -np.inf) for w in fast])
+                  if any(w.dl is not None for w in fast) else None)
+        hi = lo + np.log(1e6)
+        for _ in range(steps):
+            mid = 0.5 * (lo + hi)
+            too_high = met_probability(du, dl, np.exp(mid), clip=False) > tg
+            lo = np.where(too_high, mid, lo)
+            hi = np.where(too_high, hi, mid)
+        for w, part in zip(fast, np.split(hi, np.cumsum([w.lo.size for w in fast])[:-1])):
+            his[id(w)] = part
+    for w in live:
+        if not w.fast:  # pragma: no cover - an sd beyond the doubles' normal range
+            lo = w.lo
+            hi = lo + np.log(1e6)
+            for _ in range(steps):
+                mid = 0.5 * (lo + hi)
+                too_high = limit_probability(w.m, np.exp(mid), lower=w.lower, upper=w.upper) > w.tg
+                lo = np.where(too_high, mid, lo)
+                hi = np.where(too_high, hi, mid)
+            his[id(w)] = hi
+    return [w.result(his.get(id(w))) for w in widenings]
+
+
+def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40, p=None) -> np.ndarray:
+    """The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target: see :class:`_Widening`."""
+    return _bisect([_Widening(mean, sd, target, lower, upper, p)], steps=steps)[0]
 
 
 class _GuardedPosterior:

@@ -2,25 +2,29 @@
 
 The public names are those in ``__all__``; import them from here
 (``from guardband.planner.space import DesignSpace``). The modules behind
-them: ``polytope`` (the :class:`DesignSpace` data), ``feasibility`` (the
-cvxpy checks), ``levels``, ``slices``, ``sampler``, ``projection`` and
-``designs`` (starting designs).
+them: ``polytope`` (the :class:`DesignSpace` data), ``feasibility``
+(emptiness, ranges, centre), ``lp`` (its linear programmes), ``levels``,
+``slices``, ``sampler``, ``projection`` and ``designs`` (starting designs).
+Each name loads its module on first use.
 """
 
-from guardband.planner.space.designs import (
-    MixtureDesign,
-    MixtureKind,
-    maximin,
-    mixture_design,
-    mixture_rows,
-    pseudo_to_real,
-    real_to_pseudo,
-    simplex_centroid,
-    simplex_lattice,
-    starting_design,
-)
-from guardband.planner.space.feasibility import SpaceCheck
-from guardband.planner.space.polytope import DesignSpace
+from guardband.planner.lazy import lazy_names
+
+#: public name -> the module that defines it (loaded on first use)
+_NAMES = {
+    "DesignSpace": "guardband.planner.space.polytope",
+    "SpaceCheck": "guardband.planner.space.feasibility",
+    "starting_design": "guardband.planner.space.designs",
+    "maximin": "guardband.planner.space.designs",
+    "mixture_design": "guardband.planner.space.designs",
+    "MixtureDesign": "guardband.planner.space.designs",
+    "MixtureKind": "guardband.planner.space.designs",
+    "mixture_rows": "guardband.planner.space.designs",
+    "simplex_lattice": "guardband.planner.space.designs",
+    "simplex_centroid": "guardband.planner.space.designs",
+    "pseudo_to_real": "guardband.planner.space.designs",
+    "real_to_pseudo": "guardband.planner.space.designs",
+}
 
 __all__ = [
     "DesignSpace",
@@ -36,3 +40,5 @@ __all__ = [
     "pseudo_to_real",
     "real_to_pseudo",
 ]
+
+__getattr__, __dir__ = lazy_names(__name__, _NAMES)

@@ -1,9 +1,11 @@
 """Is the design space empty, and why; the reachable range of each factor; its centre.
 
-Each answer is a cvxpy linear (or, with exact discrete levels, mixed-integer)
-programme. :func:`space_check` puts them together in a :class:`SpaceCheck`;
-:class:`~guardband.planner.space.polytope.DesignSpace` computes it once, on
-first use, and keeps it, as it keeps :func:`geometry`.
+Each answer is a linear (or, with exact discrete levels, mixed-integer)
+programme, handed to scipy's HiGHS in the layout cvxpy gave it (:mod:`.lp`);
+the cvxpy problems themselves stay here, as the fallback and the tests'
+reference. :func:`space_check` puts the answers together in a
+:class:`SpaceCheck`; :class:`~guardband.planner.space.polytope.DesignSpace`
+computes it once, on first use, and keeps it, as it keeps :func:`geometry`.
 """
 
 from __future__ import annotations
@@ -11,14 +13,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-import cvxpy as cp
 import numpy as np
 
 from guardband.planner.settings import FEASIBILITY_TOL, FIXED_RANGE_TOL
 from guardband.planner.space.arrays import nan_to_none, read_only
 from guardband.planner.space.levels import MAX_ENUMERATED_COMBINATIONS
 from guardband.planner.space.slices import Slice, SliceFamily
-from guardband.planner.space.solvers import FEASIBLE, solve
+from guardband.planner.space.lp import FEASIBLE, LP, MILP, box_rows, ranges_lp, solve_lp, solve_milp
 
 if TYPE_CHECKING:
     from guardband.planner.space.polytope import DesignSpace
@@ -100,6 +101,93 @@ class Group:
 
 def _feasible(space: DesignSpace, active: np.ndarray, *, exact_levels: bool) -> bool:
     """Whether the constraint groups flagged in ``active`` can all hold at once."""
+    if exact_levels and any(on and g.kind == GroupKind.LEVELS for g, on in zip(space.groups, active)):
+        return _feasible_exact(space, active)
+    lp = _feasibility_lp(space, active)
+    if lp is None:
+        return True
+    fallback = lambda: (_feasibility_problem(space, active, exact_levels=False), lambda: None)
+    return solve_lp(lp, what="whether the design space is empty", fallback=fallback).status in FEASIBLE
+
+
+def _feasibility_lp(space: DesignSpace, active: np.ndarray) -> LP | None:
+    """:func:`_feasibility_problem` (levels relaxed) in cvxpy's layout; None without constraints."""
+    d = space.n_factors
+    eq_rows, eq_rhs, ub_rows, ub_rhs = [], [], [], []
+    for g, on in zip(space.groups, active):
+        if not on:
+            continue
+        j = g.index
+        if g.kind in (GroupKind.BOUNDS, GroupKind.LEVELS):
+            lo, hi = ((space.lower[j], space.upper[j]) if g.kind == GroupKind.BOUNDS
+                      else (space.levels[j][0], space.levels[j][-1]))
+            rows, rhs = box_rows(d, j, lo, hi)
+            ub_rows.append(rows)
+            ub_rhs.append(rhs)
+        elif g.kind == GroupKind.EQUALITY:
+            eq_rows.append(space.A_eq[j][None, :])
+            eq_rhs.append(space.b_eq[j:j + 1])
+        else:
+            ub_rows.append(space.A_ub[j][None, :])
+            ub_rhs.append(space.b_ub[j:j + 1])
+    if not eq_rows and not ub_rows:
+        return None
+    stack = lambda parts, rhs: (np.vstack(parts), np.concatenate(rhs)) if parts else (None, None)
+    return LP(np.zeros(d), *stack(ub_rows, ub_rhs), *stack(eq_rows, eq_rhs))
+
+
+def _feasible_exact(space: DesignSpace, active: np.ndarray) -> bool:
+    """With each discrete factor at one of its levels: a mixed-integer programme."""
+    milp = _feasibility_milp(space, active)
+    fallback = lambda: (_feasibility_problem(space, active, exact_levels=True), lambda: None)
+    return solve_milp(milp, what="whether the design space is empty", fallback=fallback).status in FEASIBLE
+
+
+def _feasibility_milp(space: DesignSpace, active: np.ndarray) -> MILP:
+    """:func:`_feasibility_problem` with exact levels, in cvxpy's layout: the factors, then one
+    block of 0/1 picks per discrete factor with several levels (its level is ``levels @ pick``)."""
+    d = space.n_factors
+    blocks = [space.levels[g.index] for g, on in zip(space.groups, active)
+              if on and g.kind == GroupKind.LEVELS and space.levels[g.index].size > 1]
+    n = d + sum(lv.size for lv in blocks)
+    eq_rows, eq_rhs, ub_rows, ub_rhs = [], [], [], []
+    start = d
+    for g, on in zip(space.groups, active):
+        if not on:
+            continue
+        j = g.index
+        if g.kind == GroupKind.BOUNDS:
+            rows, rhs = box_rows(d, j, space.lower[j], space.upper[j])
+            ub_rows.append(np.hstack([rows, np.zeros((2, n - d))]))
+            ub_rhs.append(rhs)
+        elif g.kind == GroupKind.LEVELS:
+            lv = space.levels[j]
+            row = np.zeros((2, n)) if lv.size > 1 else np.zeros((1, n))
+            if lv.size > 1:  # sum(pick) == 1, then x_j - levels @ pick == 0
+                row[0, start:start + lv.size] = 1.0
+                row[1, j] = 1.0
+                row[1, start:start + lv.size] = -lv
+                eq_rows.append(row)
+                eq_rhs.append(np.array([1.0, 0.0]))
+                start += lv.size
+            else:  # x_j == its one level
+                row[0, j] = 1.0
+                eq_rows.append(row)
+                eq_rhs.append(lv[:1])
+        elif g.kind == GroupKind.EQUALITY:
+            eq_rows.append(np.hstack([space.A_eq[j], np.zeros(n - d)])[None, :])
+            eq_rhs.append(space.b_eq[j:j + 1])
+        else:
+            ub_rows.append(np.hstack([space.A_ub[j], np.zeros(n - d)])[None, :])
+            ub_rhs.append(space.b_ub[j:j + 1])
+    stack = lambda parts, rhs: (np.vstack(parts), np.concatenate(rhs)) if parts else (None, None)
+    return MILP(np.zeros(n), *stack(ub_rows, ub_rhs), *stack(eq_rows, eq_rhs), first_boolean=d)
+
+
+def _feasibility_problem(space: DesignSpace, active: np.ndarray, *, exact_levels: bool):
+    """The cvxpy problem of :func:`_feasible` (None without constraints)."""
+    import cvxpy as cp
+
     d = space.n_factors
     x = cp.Variable(d)
     cons = []
@@ -123,10 +211,8 @@ def _feasible(space: DesignSpace, active: np.ndarray, *, exact_levels: bool) -> 
         else:
             cons.append(space.A_ub[j] @ x <= space.b_ub[j])
     if not cons:
-        return True
-    prob = cp.Problem(cp.Minimize(0), cons)
-    solve(prob, what="whether the design space is empty")
-    return prob.status in FEASIBLE
+        return None
+    return cp.Problem(cp.Minimize(0), cons)
 
 
 def _conflicts(space: DesignSpace, *, exact_levels: bool) -> tuple[tuple[str, ...], str]:
@@ -176,25 +262,34 @@ def _lp_ranges(space: DesignSpace) -> np.ndarray:
     """Minimum and maximum of every factor: two LPs each (discrete relaxed)."""
     d = space.n_factors
     lo, hi = space._relaxed_bounds
-    x, c = cp.Variable(d), cp.Parameter(d)
-    cons = [x >= lo, x <= hi]
-    if space.A_eq.shape[0]:
-        cons.append(space.A_eq @ x == space.b_eq)
-    if space.A_ub.shape[0]:
-        cons.append(space.A_ub @ x <= space.b_ub)
-    prob = cp.Problem(cp.Minimize(c @ x), cons)
     ranges = np.empty((d, 2))
     for j in range(d):
         if hi[j] - lo[j] < FIXED_RANGE_TOL:
             ranges[j] = lo[j], hi[j]
             continue
         for side, sign in ((0, 1.0), (1, -1.0)):
-            c.value = sign * np.eye(d)[j]
-            solve(prob, what=f"the range of {space.names[j]}")
-            ranges[j, side] = x.value[j]
+            c = sign * np.eye(d)[j]
+            lp = ranges_lp(c, lo, hi, space.A_eq, space.b_eq, space.A_ub, space.b_ub)
+            found = solve_lp(lp, what=f"the range of {space.names[j]}",
+                             fallback=lambda c=c: _ranges_problem(space, c))
+            ranges[j, side] = found.x[j]
     ranges = np.clip(ranges, lo[:, None], hi[:, None])
     ranges[:, 1] = np.maximum(ranges[:, 1], ranges[:, 0])
     return ranges
+
+
+def _ranges_problem(space: DesignSpace, c: np.ndarray):
+    """The cvxpy problem of one range LP, and how to read its solution."""
+    import cvxpy as cp
+
+    lo, hi = space._relaxed_bounds
+    x = cp.Variable(space.n_factors)
+    cons = [x >= lo, x <= hi]
+    if space.A_eq.shape[0]:
+        cons.append(space.A_eq @ x == space.b_eq)
+    if space.A_ub.shape[0]:
+        cons.append(space.A_ub @ x <= space.b_ub)
+    return cp.Problem(cp.Minimize(c @ x), cons), lambda: np.asarray(x.value, dtype=float)
 
 
 def geometry(space: DesignSpace) -> tuple[np.ndarray, Slice | None]:

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
-import cvxpy as cp
 import numpy as np
 
 from guardband.planner.errors import ProtocolError
@@ -67,6 +66,8 @@ def project(space: DesignSpace, x) -> np.ndarray:
 
 def _qp(space: DesignSpace, x, w, lo, hi) -> np.ndarray:
     """Point within bounds lo, hi and every row, nearest x in coordinates scaled by w."""
+    import cvxpy as cp  # here: it takes about a second to import
+
     d = space.n_factors
     y = cp.Variable(d)
     cons = [y >= lo, y <= hi]

@@ -18,13 +18,12 @@ from __future__ import annotations
 import warnings
 from typing import TYPE_CHECKING
 
-import cvxpy as cp
 import numpy as np
 from scipy.linalg import null_space
 
 from guardband.planner.settings import FEASIBILITY_TOL
 from guardband.planner.space.arrays import read_only
-from guardband.planner.space.solvers import FEASIBLE, solve
+from guardband.planner.space.lp import FEASIBLE, chebyshev_lp, nearest_centre_lp, solve_lp, support_lp
 
 if TYPE_CHECKING:
     from guardband.planner.space.polytope import DesignSpace
@@ -100,6 +99,8 @@ def _inscribed_ellipsoid(G: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.n
     maximise log det B subject to ||B g_i|| + g_i^T c <= h_i.
     Returns (B, c) or None if the solver fails.
     """
+    import cvxpy as cp  # here: only a thin slice needs it
+
     k = G.shape[1]
     B, c = cp.Variable((k, k), PSD=True), cp.Variable(k)
     prob = cp.Problem(cp.Maximize(cp.log_det(B)),
@@ -121,8 +122,8 @@ def _inscribed_ellipsoid(G: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.n
 class SliceFamily:
     """Slices that share free columns and differ only by the values of the fixed ones.
 
-    The Chebyshev LP is compiled once (cvxpy DPP) with the right-hand side as a
-    parameter, so each slice costs one re-solve.
+    The constraint matrices are built once; each slice changes only the
+    right-hand sides, and costs two small LPs (:mod:`.lp`).
     """
 
     def __init__(self, space: DesignSpace, fixed: np.ndarray, lo: np.ndarray,
@@ -155,7 +156,6 @@ class SliceFamily:
         self.keep = norms > 1e-12 * max(1.0, float(norms.max(initial=0.0)))
         self.G = G[self.keep]
         self.gnorm = norms[self.keep]
-        self._lp = None
 
     def _rhs(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Right-hand sides (e, d) of E z = e and C z <= d for fixed values ``v``."""
@@ -167,7 +167,7 @@ class SliceFamily:
         d_ub = b_ub - A_ub[:, F] @ self.lo - A_ub[:, nf] @ v[nf]
         return e, np.concatenate([d_ub, self._d_box])
 
-    def _chebyshev(self, G, gnorm, h, t_mid, *, cached: bool) -> tuple[np.ndarray, float]:
+    def _chebyshev(self, G, gnorm, h, t_mid) -> tuple[np.ndarray, float]:
         """Chebyshev centre of {t : G t <= h}: maximise r s.t. G t + r ||g|| <= h, r <= 1.
 
         The problem is feasible for any h (r may be negative: the slice is
@@ -175,31 +175,20 @@ class SliceFamily:
         among centres of balls of (almost) the largest radius, the one
         nearest (L1) to ``t_mid``, the middle of the factor ranges.
         """
-        k, m = G.shape[1], G.shape[0]
-        if cached and self._lp is not None:
-            first, second = self._lp
-        else:
-            t, r, hp = cp.Variable(k), cp.Variable(), cp.Parameter(m)
-            first = (cp.Problem(cp.Maximize(r), [G @ t + r * gnorm <= hp, r <= 1.0]), t, r, hp)
-            t2, hh, tm = cp.Variable(k), cp.Parameter(m), cp.Parameter(k)
-            second = (cp.Problem(cp.Minimize(cp.norm1(t2 - tm)), [G @ t2 <= hh]), t2, hh, tm)
-            if cached:
-                self._lp = (first, second)
-        prob, t, r, hp = first
-        hp.value = h
-        solve(prob, what="the centre of the design space")
-        if prob.status not in FEASIBLE:
+        k = G.shape[1]
+        what = "the centre of the design space"
+        found = solve_lp(chebyshev_lp(G, gnorm, h), what=what, fallback=lambda: _chebyshev_problem(G, gnorm, h))
+        if found.status not in FEASIBLE:
             return np.zeros(k), -np.inf
-        t_c, radius = np.asarray(t.value, dtype=float).reshape(k), float(r.value)
+        t_c, radius = np.asarray(found.x[1:], dtype=float).reshape(k), float(found.x[0])
         if radius <= FLAT_RADIUS_TOL:
             return t_c, radius
-        prob, t2, hh, tm = second
         r_use = radius * (1.0 - 1e-6)
-        hh.value = h - r_use * gnorm
-        tm.value = t_mid
-        solve(prob, what="the centre of the design space")
-        if prob.status in FEASIBLE:
-            t_c = np.asarray(t2.value, dtype=float).reshape(k)
+        hh = h - r_use * gnorm
+        found = solve_lp(nearest_centre_lp(G, hh, t_mid), what=what,
+                         fallback=lambda: _nearest_centre_problem(G, hh, t_mid))
+        if found.status in FEASIBLE:
+            t_c = np.asarray(found.x[k:], dtype=float).reshape(k)
             with np.errstate(over="ignore"):  # a huge slack over a tiny norm is +inf: no bound
                 radius = min(radius, float(np.min((h - G @ t_c) / gnorm)))
         return t_c, radius
@@ -209,7 +198,7 @@ class SliceFamily:
         e, dvec = self._rhs(v)
         E, C, N = self.E, self.C, self.N
         G, gnorm, keep = self.G, self.gnorm, self.keep
-        cached, rtol = True, FEASIBILITY_TOL
+        rtol = FEASIBILITY_TOL
         n_rounds = 4  # rounds of implicit-equality detection for flat polytopes
         for attempt in range(n_rounds):
             if E.shape[0] and E.shape[1]:
@@ -227,7 +216,7 @@ class SliceFamily:
                 t_c, radius = np.zeros(0), 0.0
                 break
             t_mid = N.T @ (0.5 - z0)  # middle of the unit-scaled ranges, in t
-            t_c, radius = self._chebyshev(G, gnorm, h, t_mid, cached=cached)
+            t_c, radius = self._chebyshev(G, gnorm, h, t_mid)
             if radius < -FEASIBILITY_TOL:
                 return None
             if radius >= FLAT_RADIUS_TOL or attempt == n_rounds - 1:
@@ -245,7 +234,7 @@ class SliceFamily:
             norms = np.linalg.norm(G_all, axis=1)
             keep = norms > 1e-12 * max(1.0, float(norms.max(initial=0.0)))
             G, gnorm = G_all[keep], norms[keep]
-            cached, rtol = False, 10 * FEASIBILITY_TOL
+            rtol = 10 * FEASIBILITY_TOL
         k = N.shape[1]
         z_c = z0 + N @ t_c if k else z0
         slack = np.maximum(h - G @ t_c, 0.0) if k else h
@@ -266,17 +255,46 @@ class SliceFamily:
 
 def _tight_rows(G: np.ndarray, h: np.ndarray) -> np.ndarray:
     """Rows i of G t <= h whose largest slack over the (slightly relaxed) polytope is ~0."""
-    k = G.shape[1]
-    t, c = cp.Variable(k), cp.Parameter(k)
-    prob = cp.Problem(cp.Minimize(c @ t), [G @ t <= h + FEASIBILITY_TOL])
     tight = np.zeros(G.shape[0], dtype=bool)
+    h_relaxed = h + FEASIBILITY_TOL
     for i in range(G.shape[0]):
-        c.value = G[i]
-        solve(prob, what="the flat directions of the design space")
-        if prob.status in FEASIBLE:
-            tight[i] = h[i] - prob.value <= 2 * FEASIBILITY_TOL
+        found = solve_lp(support_lp(G[i], G, h_relaxed), what="the flat directions of the design space",
+                         fallback=lambda i=i: _support_problem(G[i], G, h_relaxed))
+        if found.status in FEASIBLE:
+            tight[i] = h[i] - found.value <= 2 * FEASIBILITY_TOL
     return tight
 
+
+# The cvxpy problems whose layouts :mod:`.lp` reproduces (written as they were solved
+# before, right-hand sides as parameters): CLARABEL solves them when HiGHS cannot
+# settle an LP, and the tests compare the layouts with them. Each returns the
+# problem and how to read its solution in the LP's variable order.
+def _chebyshev_problem(G, gnorm, h):
+    import cvxpy as cp
+
+    t, r, hp = cp.Variable(G.shape[1]), cp.Variable(), cp.Parameter(G.shape[0])
+    prob = cp.Problem(cp.Maximize(r), [G @ t + r * gnorm <= hp, r <= 1.0])
+    hp.value = h
+    return prob, lambda: np.concatenate([np.reshape(r.value, 1), t.value])
+
+
+def _nearest_centre_problem(G, hh, t_mid):
+    import cvxpy as cp
+
+    t2, hhp, tm = cp.Variable(G.shape[1]), cp.Parameter(G.shape[0]), cp.Parameter(G.shape[1])
+    prob = cp.Problem(cp.Minimize(cp.norm1(t2 - tm)), [G @ t2 <= hhp])
+    hhp.value, tm.value = hh, t_mid
+    # the norm's auxiliary variables are |t - t_mid| at the optimum
+    return prob, lambda: np.concatenate([np.abs(t2.value - t_mid), t2.value])
+
+
+def _support_problem(c, G, h):
+    import cvxpy as cp
+
+    t, cp_c = cp.Variable(G.shape[1]), cp.Parameter(G.shape[1])
+    prob = cp.Problem(cp.Minimize(cp_c @ t), [G @ t <= h])
+    cp_c.value = c
+    return prob, lambda: np.asarray(t.value, dtype=float)
 
 
 def finish(space: DesignSpace, sl: Slice, X: np.ndarray,

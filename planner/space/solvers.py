@@ -1,33 +1,31 @@
-"""The cvxpy solvers the design space uses, and one way to call them.
+"""The cvxpy problems the design space still has, and one way to solve them.
 
-Linear and mixed-integer programs go through cvxpy's ``SCIPY`` interface
-(scipy's bundled HiGHS: vertex-exact simplex solutions, and silent; cvxpy's
-``HIGHS`` interface makes the installed highspy print a banner on stdout,
-which would corrupt machine-readable output). The projection QP uses
-``CLARABEL``. Both ship with cvxpy.
+The linear and mixed-integer programmes go to scipy's HiGHS directly
+(:mod:`.lp`), in the layout cvxpy's ``SCIPY`` interface gave them (scipy's
+bundled HiGHS: vertex-exact solutions, and silent; cvxpy's ``HIGHS``
+interface makes the installed highspy print a banner on stdout, which would
+corrupt machine-readable output). The projection QP and the inscribed
+ellipsoid use ``CLARABEL``, which ships with cvxpy; cvxpy is imported only
+when one of these is solved (it takes about a second to import).
 """
 
 from __future__ import annotations
 
-import cvxpy as cp
-
 from guardband.planner.errors import ProtocolError
+from guardband.planner.space.lp import FEASIBLE, INFEASIBLE
 
 __all__ = ["LP_SOLVER", "QP_SOLVER", "FEASIBLE", "INFEASIBLE", "solve"]
 
-#: cvxpy solver for linear and mixed-integer feasibility problems.
+#: cvxpy solver tried first for a linear or mixed-integer problem.
 LP_SOLVER = "SCIPY"
 #: cvxpy solver for the projection quadratic programme.
 QP_SOLVER = "CLARABEL"
 
-#: cvxpy statuses of a solved problem with a solution.
-FEASIBLE = (cp.OPTIMAL, cp.OPTIMAL_INACCURATE)
-#: cvxpy statuses of a problem shown to have no solution.
-INFEASIBLE = (cp.INFEASIBLE, cp.INFEASIBLE_INACCURATE)
 
+def solve(prob, *, what: str, solver: str = LP_SOLVER) -> None:
+    """Solve a cvxpy problem with the named solver, falling back to CLARABEL; raise if undecided."""
+    import cvxpy as cp
 
-def solve(prob: cp.Problem, *, what: str, solver: str = LP_SOLVER) -> None:
-    """Solve with the named solver, falling back to CLARABEL; raise if undecided."""
     for name in (solver, "CLARABEL"):
         try:
             prob.solve(solver=name)

@@ -31,10 +31,8 @@ from __future__ import annotations
 from dataclasses import replace
 
 import numpy as np
-from scipy.special import ndtr, ndtri
 
 from guardband.planner.settings import Z95
-from guardband.planner.step.acquisition import expected_improvement, score as rule_score
 from guardband.planner.step.result import Mode
 
 __all__ = ["RULE_ORDER", "ATTITUDES", "PRICE_THRESHOLDS", "outcome_figures", "rule_picks",
@@ -66,6 +64,10 @@ def outcome_figures(mean, sd, incumbent, *, maximize: bool) -> dict[str, np.ndar
     ``ei`` = E[gain over y*] and ``shortfall`` = E[loss below y*] (NaN
     without an incumbent).
     """
+    from scipy.special import ndtr, ndtri  # here: the words of this module need no scipy
+
+    from guardband.planner.step.acquisition import expected_improvement
+
     mean = np.asarray(mean, dtype=float)
     sd = np.asarray(sd, dtype=float)
     # the normal's quantiles and tail from scipy.special (scipy.stats is slow to import and the
@@ -93,6 +95,7 @@ def rule_picks(ctx, pool, origin, inc_value, rank_kw: dict, U_busy=None) -> list
     run in progress (``U_busy``, unit-scaled) are not picks: that run is
     already being made.
     """
+    from guardband.planner.step.acquisition import score as rule_score
     from guardband.planner.step.batch import MIN_SEPARATION
     from guardband.safety.screen import step_distance
 

@@ -7,6 +7,7 @@ is what the decision log keeps of it.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -14,7 +15,9 @@ from guardband.planner import __version__
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.settings import NEAR_MISS_COUNT
 from guardband.safety.limits import ScreenRules
-from guardband.safety.screen import ScreenResult, figures_at, limit_predictions
+
+if TYPE_CHECKING:
+    from guardband.safety.screen import ScreenResult
 
 __all__ = ["ModelSummary", "Proposal", "PlanResult", "Scaler", "Mode", "ModelStatus"]
 
@@ -136,6 +139,8 @@ class PlanResult:
         on the models fitted to real data: NaN and 0 (fail closed) where a
         limit has no model.
         """
+        from guardband.safety.screen import figures_at, limit_predictions  # scipy.special: on use
+
         X = np.atleast_2d(np.asarray(X, dtype=float))
         rules = ScreenRules.from_protocol(self.protocol)
         models = [self.fitted.get(lim.name) for lim in rules.limits]

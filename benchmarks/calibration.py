@@ -7,7 +7,7 @@ in batches, at several thresholds, and records for every planned run the
 joint figure the screen promised and whether the run met every limit by
 its TRUE (noise-free) values. It reports the share that broke a limit with
 its exact binomial 95% interval (Clopper & Pearson 1934, Biometrika
-26:404-413; ``scipy.stats.binomtest(...).proportion_ci(method="exact")``),
+26:404-413; ``guardband.safety.calibration.clopper_pearson``),
 overall and per shape class, dimension, domain, noise level and
 ``judged_on``; the median gap to the optimum as a share of the objective's
 range (the gap of quality.py: the true objective at the run the lab would
@@ -45,7 +45,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from scipy.stats import binomtest
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
@@ -53,6 +52,7 @@ from guardband.planner.app.fileio import atomic_write_text, write_csv_text  # no
 from guardband.planner.simulation.family import family_problem, with_settings  # noqa: E402
 from guardband.planner.simulation.problems import Problem  # noqa: E402
 from guardband.planner.simulation.runner import run_in_workers, simulate  # noqa: E402
+from guardband.safety.calibration import clopper_pearson as _clopper_pearson  # noqa: E402
 from guardband.safety.limits import within_limit  # noqa: E402
 
 #: Defaults of a full run: about 40 minutes on 2 cores (see the README).
@@ -125,10 +125,7 @@ def _family_job(args: tuple[int, int]) -> Problem:
 # ------------------------------------------------------------- summary
 def clopper_pearson(k: int, n: int) -> tuple[float, float]:
     """Exact binomial 95% interval of k successes out of n (Clopper & Pearson 1934); NaN for n = 0."""
-    if n == 0:
-        return float("nan"), float("nan")
-    ci = binomtest(int(k), int(n)).proportion_ci(confidence_level=CONFIDENCE, method="exact")
-    return float(ci.low), float(ci.high)
+    return _clopper_pearson(k, n, CONFIDENCE)
 
 
 def _group_values(tags: dict, group: str) -> list:

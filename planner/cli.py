@@ -558,6 +558,9 @@ def simulate(
     strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
                                    "bound, mean, random, classical, screen-off, textbook (EI times the limits' "
                                    "probabilities, no screen); or all (--problem only)."),
+    peers: Optional[str] = typer.Option(None, "--peers", help="Sweep: also run the planner's peers on the "
+                                        "same starting runs and truths: random, classical (comma-separated) "
+                                        "or all."),
     seed: int = typer.Option(0, "--seed", min=0, max=2**63 - 1, help="Base seed."),
     pool: Optional[int] = typer.Option(None, "--pool", min=50, max=500000,
                                        help="Candidate pool of every planning step (default: the settings')."),
@@ -578,10 +581,11 @@ def simulate(
 
     if (problem is None) == (scenarios is None):
         raise typer.BadParameter("give either --problem NAME or --scenarios FILE", param_hint="--problem")
-    sweep = scenarios is not None or bool(vary) or scheduler is not None or out_dir is not None
+    sweep = (scenarios is not None or bool(vary) or scheduler is not None or out_dir is not None
+             or peers is not None)
     if sweep and strategies != "all":
         raise typer.BadParameter("--strategies compares strategies on a built-in problem; a sweep varies "
-                                 "settings (--vary)", param_hint="--strategies")
+                                 "settings (--vary) and runs peers with --peers", param_hint="--strategies")
     if protocol is None and not settings_from_problem and scenarios is None:
         raise typer.BadParameter("give a settings protocol (a TOML file), '-' or --settings-from-problem",
                                  param_hint="PROTOCOL")
@@ -593,7 +597,7 @@ def simulate(
     try:
         if sweep:
             _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, seeds, seed, within,
-                            workers, scheduler, pool, out, out_dir, format, progress, close)
+                            workers, scheduler, pool, out, out_dir, format, progress, close, peers)
         else:
             _simulate_problem(None if settings_from_problem else protocol, problem, budget, seeds, start, noise,
                               strategies, workers, seed, pool, out, format, progress, close)
@@ -636,14 +640,14 @@ def _simulate_problem(settings, problem, budget, seeds, start, noise, strategies
 
 
 def _simulate_sweep(protocol, scenarios, problem, vary, noise, start, budget, seeds, seed, within, workers,
-                    scheduler, pool, out, out_dir, format, progress, close) -> None:
+                    scheduler, pool, out, out_dir, format, progress, close, peers=None) -> None:
     from guardband.planner.app.simulate_options import sweep_from_options
     from guardband.planner.models import default_workers
     from guardband.planner.report.sweep import sweep_html
 
     result, title, kind = sweep_from_options(
         protocol, scenarios_path=scenarios, problem=problem, vary_values=vary, noise_values=noise, start=start,
-        budget=budget, seeds=seeds, seed=seed, within=within,
+        budget=budget, peers=peers, seeds=seeds, seed=seed, within=within,
         workers=default_workers() if workers is None else workers, scheduler=scheduler, pool_size=pool,
         progress=progress)
     close()

@@ -11,6 +11,11 @@ tail probability means the history contradicts the promise.
 
 Runs in a batch are not independent (they share the models), so the tail
 probability is a plain-words alarm, not a formal test; the warning says so.
+
+For simulated campaigns, where every planned run's truth is known,
+:func:`binned_calibration` bins the promised figures (a reliability table:
+mean promise against the share that met every limit in each bin) with the
+exact binomial interval of each share (:func:`clopper_pearson`).
 """
 
 from __future__ import annotations
@@ -19,10 +24,84 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["EarnedCalibration", "earned_calibration", "poisson_binomial_tail", "CONTRADICTION_LEVEL"]
+__all__ = ["EarnedCalibration", "earned_calibration", "poisson_binomial_tail", "CONTRADICTION_LEVEL",
+           "clopper_pearson", "binned_calibration", "RELIABILITY_EDGES"]
 
 #: Below this tail probability the history is said to contradict the promise.
 CONTRADICTION_LEVEL = 0.05
+#: Inner edges of the bins of promised joint figures above a threshold t:
+#: [t, 0.9), [0.9, 0.95), [0.95, 0.99), [0.99, 1] (edges at or below t are dropped).
+RELIABILITY_EDGES = (0.9, 0.95, 0.99)
+
+
+def clopper_pearson(k: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
+    """The exact (Clopper-Pearson) interval of a binomial share, k successes out of n; NaN for n = 0.
+
+    Clopper & Pearson (1934), Biometrika 26:404-413: the ends are quantiles
+    of beta distributions, Beta(k, n - k + 1) at alpha/2 and
+    Beta(k + 1, n - k) at 1 - alpha/2, with 0 for k = 0 and 1 for k = n.
+    """
+    from scipy.stats import beta
+
+    k, n = int(k), int(n)
+    if n == 0:
+        return float("nan"), float("nan")
+    if not 0 <= k <= n:
+        raise ValueError(f"need 0 <= k <= n, got k={k}, n={n}")
+    alpha = 1.0 - float(confidence)
+    low = 0.0 if k == 0 else float(beta.ppf(alpha / 2, k, n - k + 1))
+    high = 1.0 if k == n else float(beta.ppf(1 - alpha / 2, k + 1, n - k))
+    return low, high
+
+
+def _bin_edges(threshold: float) -> list[float]:
+    inner = [e for e in RELIABILITY_EDGES if e > threshold]
+    return [float(threshold), *inner, 1.0]
+
+
+def binned_calibration(promised, met, threshold: float, *, confidence: float = 0.95) -> list[dict]:
+    """Promised joint figures binned, against the share of those runs that met every limit.
+
+    Parameters
+    ----------
+    promised : array of float
+        The joint figure each run was proposed with (NaN: no promise; left out).
+    met : array of bool
+        Whether each run met every limit (by its true values).
+    threshold : float
+        The screen's threshold t: the bins are [t, 0.9), [0.9, 0.95),
+        [0.95, 0.99) and [0.99, 1] (:data:`RELIABILITY_EDGES` above t), and
+        [0, t) in front when a promise fell below t.
+    confidence : float
+        Of the exact interval (:func:`clopper_pearson`).
+
+    Returns
+    -------
+    list of dict
+        One per bin, empty bins included: ``low``, ``high`` (the bin's
+        ends; the last bin includes 1), ``runs``, ``met``, ``met_share``,
+        ``mean_promised``, ``ci_low``, ``ci_high`` (NaN for an empty bin).
+    """
+    p = np.asarray(promised, dtype=float).ravel()
+    m = np.asarray(met, dtype=bool).ravel()
+    if p.shape != m.shape:
+        raise ValueError(f"promised and met differ in length ({p.size} and {m.size})")
+    has = np.isfinite(p)
+    p, m = p[has], m[has]
+    edges = _bin_edges(threshold)
+    if np.any(p < edges[0]):
+        edges = [0.0, *edges]
+    out = []
+    for i, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])):
+        last = i == len(edges) - 2
+        inside = (p >= lo) & ((p <= hi) if last else (p < hi))
+        n, k = int(inside.sum()), int(m[inside].sum())
+        ci = clopper_pearson(k, n, confidence)
+        out.append({"low": lo, "high": hi, "runs": n, "met": k,
+                    "met_share": k / n if n else float("nan"),
+                    "mean_promised": float(np.mean(p[inside])) if n else float("nan"),
+                    "ci_low": ci[0], "ci_high": ci[1]})
+    return out
 
 
 def poisson_binomial_tail(rates, k: int) -> float:

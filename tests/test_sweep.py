@@ -23,16 +23,16 @@ FAST = parse_protocol({**gramacy_protocol_dict(batch=2, rule="ei", threshold=0.9
                        "batch": {"size": 2, "pool": 200, "refine": 0}, "model": {"restarts": 1}})
 
 
-def _gramacy_sweep(**options):
+def _gramacy_sweep(base_seed=7, **options):
     problem = get_problem("gramacy")
     combined = combine_settings(problem, FAST)
-    return run_sweep([Scenario(problem.name, "", problem)], lambda sc: combined, seeds=2, base_seed=7, n_start=6,
-                     budget=3, noise_scale=0.0, pool_size=200, **options)
+    return run_sweep([Scenario(problem.name, "", problem)], lambda sc: combined, seeds=2, base_seed=base_seed,
+                     n_start=6, budget=3, noise_scale=0.0, pool_size=200, **options)
 
 
 @pytest.fixture(scope="module")
 def local():
-    return _gramacy_sweep(workers=1)
+    return _gramacy_sweep(workers=1, peers=("random", "classical"))
 
 
 def test_settings_grid_and_labels():
@@ -63,13 +63,40 @@ def test_parse_vary_reads_lists():
 
 @pytest.mark.slow
 def test_sweep_equals_todays_simulator_seed_for_seed(local):
-    today = simulate("gramacy", FAST, strategies=("protocol",), seeds=2, seed=7, n_start=6, budget=3,
-                     workers=1, pool_size=200)
-    mine = local.cells[0].result
-    for a, b in zip(today.histories["protocol"], mine.histories["protocol"]):
-        assert np.array_equal(a.X, b.X) and np.array_equal(a.promised, b.promised, equal_nan=True)
-    assert _differences(mine.final_rows(), today.final_rows()) == []
-    assert _differences(mine.summary_rows(), today.summary_rows()) == []
+    # the planner and both peers: seed i of the sweep is seed i of `simulate --strategies`
+    today = simulate("gramacy", FAST, strategies=("protocol", "random", "classical"), seeds=2, seed=7,
+                     n_start=6, budget=3, workers=1, pool_size=200)
+    assert [(c.strategy, c.label) for c in local.cells] == [
+        ("protocol", "as-written"), ("random", "random"), ("classical", "classical")]
+    for cell in local.cells:
+        st = cell.strategy
+        mine = cell.result
+        for a, b in zip(today.histories[st], mine.histories[st]):
+            assert np.array_equal(a.X, b.X) and np.array_equal(a.promised, b.promised, equal_nan=True)
+            assert all(np.array_equal(a.Y[r], b.Y[r]) for r in a.Y)
+        theirs = [r for r in today.final_rows() if r["strategy"] == st]
+        assert _differences(mine.final_rows(), theirs) == []
+        assert _differences(mine.summary_rows(), [r for r in today.summary_rows() if r["strategy"] == st]) == []
+
+
+@pytest.mark.slow
+def test_peers_run_once_per_start_and_budget_and_repeat_with_their_seed(local):
+    again = _gramacy_sweep(workers=1, peers=("random",), vary={"threshold": [0.8, 0.9], "budget": [3]})
+    labels = [(c.label, c.strategy) for c in again.cells]
+    assert labels == [("threshold=0.8,budget=3", "protocol"), ("threshold=0.9,budget=3", "protocol"),
+                      ("random,budget=3", "random")]
+    rows = again.rows()
+    assert rows[-1]["strategy"] == "random" and rows[-1]["threshold"] is None and rows[-1]["budget"] == 3
+    assert np.isnan(rows[-1]["promised_joint_mean"]) and rows[-1]["n_promised"] == 0
+    # the same seeds give the same random campaigns (another sweep, other settings beside them)
+    for a, b in zip(local.cells[1].result.histories["random"], again.cells[-1].result.histories["random"]):
+        assert np.array_equal(a.X, b.X) and all(np.array_equal(a.Y[r], b.Y[r]) for r in a.Y)
+    # and another base seed gives other ones
+    other = _gramacy_sweep(base_seed=8, workers=1, peers=("random",), vary={"threshold": [0.9]})
+    assert not np.array_equal(other.cells[-1].result.histories["random"][0].X,
+                              again.cells[-1].result.histories["random"][0].X)
+    with pytest.raises(ValueError, match="not a peer"):
+        _gramacy_sweep(workers=1, peers=("textbook",))
 
 
 @pytest.mark.slow
@@ -149,3 +176,39 @@ def test_cli_sweep_writes_tables_csvs_and_a_page(tmp_path):
     bad = CliRunner().invoke(app, ["simulate", str(settings), "--problem", "gramacy", "--vary", "threshold=1.5",
                                    "--seeds", "1", "--out-dir", str(tmp_path / "none")])
     assert bad.exit_code == 2 and "screen.threshold" in bad.output and not (tmp_path / "none").exists()
+
+
+def _csv_rows(path) -> list[dict]:
+    text = "\n".join(line for line in path.read_text(encoding="utf-8").splitlines() if not line.startswith("#"))
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+@pytest.mark.slow
+def test_cli_sweep_of_a_scenario_file_with_peers_gives_their_rows_and_the_promise_in_bins(tmp_path):
+    out = tmp_path / "sweep"
+    result = CliRunner().invoke(app, [
+        "simulate", str(PROTOCOLS / "tablet_blend.toml"), "--scenarios",
+        str(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml"), "--peers", "random,classical",
+        "--seeds", "2", "--budget", "2", "--pool", "100", "--workers", "1", "--out-dir", str(out)])
+    assert result.exit_code == 0, result.output
+    rows = _csv_rows(out / "sweep.csv")
+    scenarios = ["expected", "pessimistic", "like-the-runs"]
+    assert [(r["strategy"], r["scenario"]) for r in rows] == (
+        [("protocol", s) for s in scenarios] + [(p, s) for s in scenarios for p in ("random", "classical")])
+    assert all(r["setting"] == r["strategy"] and r["promised_joint_mean"] == "nan" for r in rows[3:])
+    assert len(list(out.glob("cell-*.csv"))) == 9
+    bins = _csv_rows(out / "sweep-calibration.csv")
+    assert {b["strategy"] for b in bins} == {"protocol"}  # peers promise nothing
+    for s in scenarios:
+        mine = [b for b in bins if b["scenario"] == s]
+        # the tablet protocol's threshold is 0.95: bins [0.95, 0.99) and [0.99, 1] (and [0, 0.95) only if needed)
+        assert [(b["low"], b["high"]) for b in mine][-2:] == [("0.95", "0.99"), ("0.99", "1")]
+        made = next(r for r in rows if r["scenario"] == s and r["strategy"] == "protocol")
+        assert sum(int(b["runs"]) for b in mine) == int(made["n_promised"])
+    page = (out / "sweep.html").read_text(encoding="utf-8")
+    assert "random (peer)" in page and "The promise in bins" in page and "Clopper-Pearson" in page
+    assert "random" in result.stdout and "the promise in bins" in result.stdout
+    bad = CliRunner().invoke(app, ["simulate", str(PROTOCOLS / "tablet_blend.toml"), "--scenarios",
+                                   str(PROTOCOLS / "scenarios" / "tablet_blend_scenarios.toml"), "--peers", "textbook",
+                                   "--out-dir", str(tmp_path / "none")])
+    assert bad.exit_code == 2 and "not a peer" in bad.output and not (tmp_path / "none").exists()

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from guardband.planner.simulation import STRATEGIES, Problem, SimulationResult, get_problem, simulate
 
-__all__ = ["OptionError", "parse_noise", "simulate_from_options"]
+__all__ = ["OptionError", "parse_noise", "parse_peers", "simulate_from_options"]
 
 
 class OptionError(ValueError):
@@ -158,6 +158,29 @@ def parse_vary(values) -> dict:
     return out
 
 
+def parse_peers(text: str | None) -> tuple[str, ...]:
+    """Read ``--peers``: ``random``, ``classical`` or both separated by a comma, or ``all``; None: none.
+
+    Raises
+    ------
+    OptionError
+        A name that is not a peer, or an empty list.
+    """
+    from guardband.planner.simulation.strategies import PEERS
+
+    if text is None:
+        return ()
+    if text.strip() == "all":
+        return PEERS
+    names = tuple(dict.fromkeys(n.strip() for n in text.split(",") if n.strip()))
+    if not names:
+        raise OptionError(f"--peers {text!r}: give {', '.join(PEERS)} or all")
+    for name in names:
+        if name not in PEERS:
+            raise OptionError(f"--peers {text!r}: {name!r} is not a peer; peers: {', '.join(PEERS)} (or all)")
+    return names
+
+
 def world_note(problem: Problem, settings) -> str | None:
     """A sentence when a settings protocol's factors or limits differ from the built-in problem's (None if alike).
 
@@ -183,7 +206,8 @@ def world_note(problem: Problem, settings) -> str | None:
 
 
 def sweep_from_options(protocol_path, *, scenarios_path=None, problem: str | None = None, vary_values=(),
-                       noise_values=(), start: int | None = None, budget: int | None = None, **options):
+                       noise_values=(), start: int | None = None, budget: int | None = None,
+                       peers: str | None = None, **options):
     """:func:`~guardband.planner.simulation.sweep.run_sweep` with options as the command line gives them.
 
     Parameters
@@ -200,6 +224,8 @@ def sweep_from_options(protocol_path, *, scenarios_path=None, problem: str | Non
         scenario's noise (default 1, as stated) for a scenario file.
     start, budget : int, optional
         Starting and planned runs (default the file's or the problem's).
+    peers : str, optional
+        ``--peers``: the peers run beside the planner (see :func:`parse_peers`).
     **options
         ``seeds``, ``seed`` (base seed), ``within``, ``workers``, ``scheduler``,
         ``pool_size``, ``progress``.
@@ -214,6 +240,7 @@ def sweep_from_options(protocol_path, *, scenarios_path=None, problem: str | Non
     from guardband.planner.simulation.sweep import run_sweep
 
     vary = parse_vary(vary_values)
+    options["peers"] = parse_peers(peers)
     if "seed" in options:
         options["base_seed"] = options.pop("seed")
     if scenarios_path is not None:

@@ -179,14 +179,24 @@ class SimulationResult:
             rows.append(row)
         return rows
 
+    def promised_and_met(self, strategy: str) -> tuple[np.ndarray, np.ndarray]:
+        """Every planned run's promised joint figure (NaN: none) and whether it met every limit (all seeds)."""
+        promised = [h.promised[h.planned] for h in self.histories[strategy]]
+        met = [~h.broke_limit[h.planned] for h in self.histories[strategy]]
+        return (np.concatenate(promised) if promised else np.zeros(0),
+                np.concatenate(met) if met else np.zeros(0, bool))
+
+    def calibration_bins(self, strategy: str) -> list[dict]:
+        """The promised joint figures of the planned runs binned against the share that met every
+        limit, with exact intervals (:func:`guardband.safety.calibration.binned_calibration`)."""
+        from guardband.safety.calibration import binned_calibration
+
+        p, m = self.promised_and_met(strategy)
+        return binned_calibration(p, m, self.protocol.screen.threshold)
+
     def calibration(self, strategy: str) -> dict:
         """Mean promised joint figure vs observed share meeting every limit (planned runs, all seeds)."""
-        promised, met = [], []
-        for h in self.histories[strategy]:
-            promised.append(h.promised[h.planned])
-            met.append(~h.broke_limit[h.planned])
-        p = np.concatenate(promised) if promised else np.zeros(0)
-        m = np.concatenate(met) if met else np.zeros(0, bool)
+        p, m = self.promised_and_met(strategy)
         has = np.isfinite(p)
         return {
             "promised_joint_mean": float(np.mean(p[has])) if np.any(has) else float("nan"),

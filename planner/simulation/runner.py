@@ -33,10 +33,10 @@ from guardband.planner.simulation.loop import CampaignHistory, run_campaign, sta
 from guardband.planner.simulation.peers import CLASSICAL_POOL, run_classical, run_random
 from guardband.planner.simulation.problems import Problem, get_problem
 from guardband.planner.simulation.results import SimulationResult
-from guardband.planner.simulation.strategies import (DEFAULT_STRATEGIES, check_strategy, combine_settings,
-                                                     step_options, strategy_protocol)
+from guardband.planner.simulation.strategies import (DEFAULT_STRATEGIES, PEERS, check_strategy,
+                                                     combine_settings, step_options, strategy_protocol)
 
-__all__ = ["simulate", "run_in_workers"]
+__all__ = ["simulate", "run_in_workers", "run_peer"]
 
 
 # ----------------------------------------------------------- the tasks
@@ -64,18 +64,30 @@ def _seeds(base_seed: int, seed_index: int) -> tuple[np.random.Generator, int]:
     return start, campaign
 
 
+def run_peer(strategy: str, problem: Problem, protocol: Protocol, *, X_start, n_start: int, budget: int,
+             seed: int, measure, pool_size: int | None) -> CampaignHistory:
+    """One campaign of a peer (``random`` or ``classical``), as :func:`simulate` and sweeps run it.
+
+    ``X_start`` is the seed's starting design (unused by ``classical``, which
+    makes its own design); ``pool_size`` None gives the classical route
+    :data:`~guardband.planner.simulation.peers.CLASSICAL_POOL`.
+    """
+    if strategy == "classical":
+        return run_classical(problem, protocol, n_runs=n_start + budget, n_start=n_start, seed=seed,
+                             measure=measure, pool_size=pool_size or CLASSICAL_POOL)
+    if strategy == "random":
+        return run_random(problem, protocol, X_start=X_start, budget=budget, seed=seed, measure=measure)
+    raise ValueError(f"{strategy!r} is not a peer; peers: {', '.join(PEERS)}")
+
+
 def _run_task(task: _Task) -> CampaignHistory:
     base = parse_protocol(task.base_protocol_data, source="simulation")
     measure = functools.partial(task.problem.measure, scale=task.noise_scale, noise=task.noise)
     _, seed = _seeds(task.base_seed, task.seed_index)
-    if task.key == "classical":
-        return run_classical(task.problem, base, n_runs=task.n_start + task.budget,
-                             n_start=task.n_start, seed=seed, measure=measure,
-                             pool_size=task.pool_size or CLASSICAL_POOL)
     X_start = task.X_start
-    if task.key == "random":
-        return run_random(task.problem, base, X_start=X_start, budget=task.budget, seed=seed,
-                          measure=measure)
+    if task.key in PEERS:
+        return run_peer(task.key, task.problem, base, X_start=X_start, n_start=task.n_start, budget=task.budget,
+                        seed=seed, measure=measure, pool_size=task.pool_size)
     protocol = parse_protocol(task.protocol_data, source=f"strategy {task.key}")
     return run_campaign(protocol, task.problem.evaluate, n_start=task.n_start, budget=task.budget,
                         seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size,

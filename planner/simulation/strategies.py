@@ -50,12 +50,14 @@ from __future__ import annotations
 from guardband.planner.inputs.protocol import RANKING_RULES, Protocol, parse_protocol
 from guardband.planner.simulation.problems import Problem
 
-__all__ = ["STRATEGIES", "DEFAULT_STRATEGIES", "PLANNER_STRATEGIES", "SCREEN_OFF", "combine_settings",
+__all__ = ["STRATEGIES", "DEFAULT_STRATEGIES", "PEERS", "PLANNER_STRATEGIES", "SCREEN_OFF", "combine_settings",
            "strategy_protocol", "step_options", "check_strategy"]
 
 STRATEGIES = ("protocol", "ei", "pi", "bound", "mean", "random", "classical", "screen-off", "textbook")
 #: What :func:`~guardband.planner.simulation.runner.simulate` runs when no strategies are named.
 DEFAULT_STRATEGIES = STRATEGIES[:-1]
+#: The planner's peers (:mod:`~guardband.planner.simulation.peers`): the strategies that do not plan.
+PEERS = ("random", "classical")
 PLANNER_STRATEGIES = ("protocol",) + RANKING_RULES + ("screen-off", "textbook")
 #: The textbook strategy's limit-model length-scale cap: the largest the protocol allows (no cap).
 NO_CAP = 1000.0
@@ -95,7 +97,7 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
 def strategy_protocol(protocol: Protocol, strategy: str) -> Protocol | None:
     """The protocol a planner strategy runs with (None for random and classical)."""
     check_strategy(strategy)
-    if strategy in ("random", "classical"):
+    if strategy in PEERS:
         return None
     if strategy == "protocol":
         return protocol

@@ -4,8 +4,11 @@ Settings are given as lists (:data:`SWEEP_KEYS`: the joint threshold, the
 ranking rule, the batch size, the starting runs, the planned-run budget and
 ``max_step``); every combination runs on every scenario (a scenario of the
 author's protocol, :mod:`planner.simulation.scenarios`, or a built-in
-problem) for every seed. One campaign is one task; the tasks are
-independent and their results do not depend on where they run:
+problem) for every seed. The planner's peers (random runs, the classical
+route; :mod:`planner.simulation.peers`) can run beside it: they do not
+read the planner's settings, so each runs once per scenario and per
+starting-run and budget pair of the grid. One campaign is one task; the
+tasks are independent and their results do not depend on where they run:
 
 - ``workers=1``: in this process;
 - ``workers>1``: a local process pool (joblib);
@@ -18,10 +21,13 @@ independent and their results do not depend on where they run:
 
 Seed i of a sweep uses the same starting design and campaign seed as seed i
 of :func:`~planner.simulation.runner.simulate` (its ``protocol`` strategy),
-so a sweep of one setting on a built-in problem gives the same campaigns.
+so a sweep of one setting on a built-in problem gives the same campaigns (a
+peer's seed i those of its strategy in :func:`simulate`).
 The figures of each (setting, scenario) cell are those of a
 :class:`~planner.simulation.results.SimulationResult`, plus the runs
-until the chosen run is within a stated distance of the optimum.
+until the chosen run is within a stated distance of the optimum, and the
+promised joint figures binned against the share that met every limit
+(:func:`guardband.safety.calibration.binned_calibration`).
 """
 
 from __future__ import annotations
@@ -41,13 +47,18 @@ from guardband.planner.inputs.protocol import Protocol, parse_protocol
 from guardband.planner.models import blas_limit
 from guardband.planner.simulation.loop import CampaignHistory, run_campaign, start_runs
 from guardband.planner.simulation.results import SimulationResult, _finite, _fmt, _pct, _quantiles
-from guardband.planner.simulation.runner import _seeds
+from guardband.planner.simulation.runner import _seeds, run_peer
+from guardband.planner.simulation.strategies import PEERS
 
 __all__ = ["SWEEP_KEYS", "Setting", "settings_grid", "SweepCell", "SweepResult", "run_sweep",
            "WITHIN_SHARE"]
 
 #: What a sweep can vary, in the order of a setting's label.
 SWEEP_KEYS = ("threshold", "rule", "batch", "start", "budget", "max_step")
+#: What each peer does, in one phrase (the sweep's description).
+PEER_NOTES = {"random": "random: the starting runs, then the budget drawn uniformly from the design space",
+              "classical": "classical: a space-filling design of start + budget - 1 runs, quadratic fits, "
+                           "one confirmation run at the fitted best point"}
 #: Default distance for "runs until within": this share of |optimum| (or of 1 when the optimum is 0).
 WITHIN_SHARE = 0.01
 
@@ -105,6 +116,7 @@ class _Task:
     base_seed: int
     noise_scale: float
     pool_size: int | None
+    strategy: str = "protocol"  # or a peer (random, classical)
 
 
 @contextlib.contextmanager
@@ -128,8 +140,13 @@ def _run_task(task: _Task) -> tuple[CampaignHistory, float]:
         problem = task.scenario.problem_for(task.base_seed, task.seed_index)
         protocol = parse_protocol(task.protocol_data, source=f"sweep cell {task.cell}")
         start_rng, seed = _seeds(task.base_seed, task.seed_index)
-        X_start = start_runs(protocol, task.n_start, rng=start_rng)
+        # the classical route makes its own design
+        X_start = None if task.strategy == "classical" else start_runs(protocol, task.n_start, rng=start_rng)
         measure = functools.partial(problem.measure, scale=task.noise_scale, noise={})
+        if task.strategy in PEERS:
+            history = run_peer(task.strategy, problem, protocol, X_start=X_start, n_start=task.n_start,
+                               budget=task.budget, seed=seed, measure=measure, pool_size=task.pool_size)
+            return history, float(problem.optimum)
         history = run_campaign(protocol, problem.evaluate, n_start=task.n_start, budget=task.budget, seed=seed,
                                X_start=X_start, measure=measure, pool_size=task.pool_size)
     return history, float(problem.optimum)
@@ -181,16 +198,27 @@ def _run_dask(tasks, scheduler, progress) -> list:
 # ----------------------------------------------------------------- results
 @dataclass(frozen=True)
 class SweepCell:
-    """The campaigns of one setting on one scenario, summarised as a :class:`SimulationResult`."""
+    """The campaigns of one setting (or one peer) on one scenario, summarised as a :class:`SimulationResult`.
+
+    A peer's setting holds only the starting runs and budget it ran with.
+    """
 
     setting: Setting
     scenario: str
     result: SimulationResult
     within: float
+    strategy: str = "protocol"
+
+    @property
+    def label(self) -> str:
+        """The setting's label; a peer's name, with its starting runs and budget when these are varied."""
+        if self.strategy == "protocol":
+            return self.setting.label
+        return self.strategy + ("" if self.setting.label == "as-written" else f",{self.setting.label}")
 
     def runs_until_within(self) -> np.ndarray:
         """Per seed, the planned runs until the chosen run's true gap was at most ``within`` (NaN: never)."""
-        gap = self.result.trajectories("protocol")["gap_true"]
+        gap = self.result.trajectories(self.strategy)["gap_true"]
         hit = gap <= self.within
         return np.where(hit.any(axis=1), hit.argmax(axis=1), np.nan).astype(float)
 
@@ -199,7 +227,7 @@ class SweepCell:
         final = self.result.final_rows()[0]
         runs = self.runs_until_within()
         q = _quantiles(runs[np.isfinite(runs)]) if np.any(np.isfinite(runs)) else [math.nan] * 3
-        out = {"setting": self.setting.label, "scenario": self.scenario}
+        out = {"setting": self.label, "strategy": self.strategy, "scenario": self.scenario}
         out.update({k: getattr(self.setting, k) for k in SWEEP_KEYS})
         out.update(start_runs=self.result.n_start, planned_runs=self.result.budget, seeds=self.result.seeds)
         for key in ("gap_q25", "gap_median", "gap_q75", "gap_true_q25", "gap_true_median", "gap_true_q75",
@@ -213,6 +241,15 @@ class SweepCell:
         out.update(reached=int(np.isfinite(runs).sum()), runs_until_within_q25=q[0],
                    runs_until_within_median=q[1], runs_until_within_q75=q[2])
         return out
+
+    def calibration_rows(self) -> list[dict]:
+        """The planned runs' promised joint figures, binned, against the share that met every limit
+        (none for a peer: it promises nothing)."""
+        if self.strategy != "protocol":
+            return []
+        head = {"setting": self.label, "strategy": self.strategy, "scenario": self.scenario,
+                "threshold": self.result.protocol.screen.threshold}
+        return [{**head, **b} for b in self.result.calibration_bins(self.strategy)]
 
 
 @dataclass(frozen=True)
@@ -229,25 +266,46 @@ class SweepResult:
     def rows(self) -> list[dict]:
         return [c.row() for c in self.cells]
 
-    CSV_COLUMNS = ("setting", "scenario") + SWEEP_KEYS + (
+    CSV_COLUMNS = ("setting", "strategy", "scenario") + SWEEP_KEYS + (
         "start_runs", "planned_runs", "seeds", "gap_q25", "gap_median", "gap_q75", "gap_true_q25",
         "gap_true_median", "gap_true_q75", "gap_median_halfway", "gap_true_median_halfway", "broken_pooled",
         "runs_made", "no_safe_run",
         "stalled", "within", "reached", "runs_until_within_q25", "runs_until_within_median",
         "runs_until_within_q75", "promised_joint_mean", "observed_met_share", "n_promised")
 
+    CALIBRATION_COLUMNS = ("setting", "strategy", "scenario", "threshold", "low", "high", "runs", "met",
+                           "met_share", "mean_promised", "ci_low", "ci_high")
+
+    def calibration_rows(self) -> list[dict]:
+        return [b for c in self.cells for b in c.calibration_rows()]
+
+    def calibration_csv_text(self) -> str:
+        """One row per (setting, scenario, bin of the promised joint figure), with comment lines."""
+        lines = ["the joint figure each planned run was proposed with, binned [low, high) (the last bin "
+                 "includes 1), against the share of those runs whose true values met every limit; "
+                 "ci_low, ci_high: exact 95% interval of that share (Clopper-Pearson)"]
+        return write_csv_text([[r[c] for c in self.CALIBRATION_COLUMNS] for r in self.calibration_rows()],
+                              list(self.CALIBRATION_COLUMNS),
+                              comment_lines=self.description() + lines + [f"CAUTION: {c}" for c in self.cautions()],
+                              float_format=".6g")
+
     def description(self) -> list[str]:
         """Lines saying what was swept (for comments, the terminal and the page)."""
         first = self.cells[0].result
         noise = "off" if self.noise_scale == 0 else (
             "as each scenario states" if self.noise_scale == 1 else f"{self.noise_scale:g} times each scenario's")
-        lines = [f"{len({c.setting for c in self.cells})} setting(s) x {len({c.scenario for c in self.cells})} "
+        planner = [c for c in self.cells if c.strategy == "protocol"]
+        peers = list(dict.fromkeys(c.strategy for c in self.cells if c.strategy != "protocol"))
+        lines = [f"{len({c.setting for c in planner})} setting(s) x {len({c.scenario for c in self.cells})} "
                  f"scenario(s) x {self.seeds} seeds (base seed {self.base_seed}); measurement noise {noise}; "
                  f"run on {self.runner}",
                  "limits: " + "; ".join(f"{lim.describe()} with probability >= {lim.probability:g}"
                                         for lim in first.protocol.limits)]
+        if peers:
+            lines.append("peers, on the same starting runs, seeds and truths: " + "; ".join(
+                PEER_NOTES[p] for p in peers))
         for c in self.cells:
-            if c.setting == self.cells[0].setting:
+            if c.setting == self.cells[0].setting and c.strategy == self.cells[0].strategy:
                 lines.append(f"scenario {c.scenario}: " + c.result.description()[1])
         return lines + list(self.notes)
 
@@ -277,19 +335,34 @@ class SweepResult:
                          f"{_fmt(r['within'])})",
                          f"{r['stalled']}/{r['seeds']}",
                          f"{_fmt(r['promised_joint_mean'])} / {_fmt(r['observed_met_share'])}"])
-        return "\n".join(self.description() + ["", render_table(head, rows, max_width=40)])
+        cal = [[r["setting"], r["scenario"], _bin_label(r), r["runs"], _fmt(r["mean_promised"]),
+                f"{_fmt(r['met_share'])} [{_fmt(r['ci_low'])}, {_fmt(r['ci_high'])}]"]
+               for r in self.calibration_rows() if r["runs"]]
+        parts = self.description() + ["", render_table(head, rows, max_width=40)]
+        if cal:
+            parts += ["", "the promise in bins (planned runs, all seeds; met: by the true values, exact 95% "
+                          "interval):",
+                      render_table(["setting", "scenario", "promised joint", "runs", "mean promised",
+                                    "met every limit"], cal, max_width=40)]
+        return "\n".join(parts)
 
     def to_dict(self) -> dict:
         return {"description": self.description(), "seeds": self.seeds, "base_seed": self.base_seed,
                 "noise_scale": self.noise_scale, "runner": self.runner,
-                "rows": [_finite(r) for r in self.rows()], "cautions": list(self.cautions())}
+                "rows": [_finite(r) for r in self.rows()],
+                "calibration": [_finite(r) for r in self.calibration_rows()], "cautions": list(self.cautions())}
 
     def files(self) -> dict[str, str]:
         """File name -> text: the summary CSV and one CSV per (setting, scenario) at every planned-run count."""
-        out = {"sweep.csv": self.csv_text()}
+        out = {"sweep.csv": self.csv_text(), "sweep-calibration.csv": self.calibration_csv_text()}
         for i, c in enumerate(self.cells, start=1):
-            out[f"cell-{i:03d}-{_safe(c.setting.label)}-{_safe(c.scenario)}.csv"] = c.result.csv_text()
+            out[f"cell-{i:03d}-{_safe(c.label)}-{_safe(c.scenario)}.csv"] = c.result.csv_text()
         return out
+
+
+def _bin_label(row: dict) -> str:
+    """A bin of promised figures as an interval, e.g. "[0.9, 0.95)" (the last bin is closed)."""
+    return f"[{row['low']:g}, {row['high']:g}" + ("]" if row["high"] >= 1.0 else ")")
 
 
 def _safe(text: str) -> str:
@@ -304,7 +377,8 @@ def _default_within(optima) -> float:
 
 def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int = 5, base_seed: int = 0,
               n_start: int = 10, budget: int = 30, noise_scale: float = 1.0, within: float | None = None,
-              workers: int = 1, scheduler=None, pool_size: int | None = None, progress=None) -> SweepResult:
+              workers: int = 1, scheduler=None, pool_size: int | None = None, peers=(),
+              progress=None) -> SweepResult:
     """Run every setting x scenario x seed campaign and summarise each (setting, scenario) cell.
 
     Parameters
@@ -330,7 +404,14 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
     scheduler : str or dask.distributed.Client, optional
         Run on this Dask cluster instead.
     pool_size : int, optional
-        Candidate pool of every planning step (default the protocol's).
+        Candidate pool of every planning step (default the protocol's) and
+        of the classical route (default
+        :data:`~guardband.planner.simulation.peers.CLASSICAL_POOL`).
+    peers : sequence of str
+        Peers (:data:`~guardband.planner.simulation.strategies.PEERS`) run
+        beside the planner on every scenario, once per distinct (starting
+        runs, budget) pair of the grid, on the protocol as written; their
+        cells follow the planner's.
     progress : callable, optional
         ``progress(done, total)`` after each campaign.
 
@@ -340,9 +421,21 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
     """
     grid = settings_grid(vary)
     scenarios = list(scenarios)
+    peers = tuple(dict.fromkeys(peers))
     if seeds < 1 or workers < 1 or not scenarios:
         raise ValueError("a sweep needs at least one scenario, one seed and one worker")
+    for peer in peers:
+        if peer not in PEERS:
+            raise ValueError(f"{peer!r} is not a peer; peers: {', '.join(PEERS)}")
     cells, tasks = [], []
+
+    def add(setting, sc, data, strategy):
+        start = n_start if setting.start is None else int(setting.start)
+        planned = budget if setting.budget is None else int(setting.budget)
+        cells.append((setting, sc, data, start, planned, strategy))
+        tasks.extend(_Task(len(cells) - 1, s, sc, data, start, planned, int(base_seed), float(noise_scale),
+                           pool_size, strategy) for s in range(seeds))
+
     for setting in grid:
         for sc in scenarios:
             data = setting.protocol_data(protocol_for(sc))
@@ -350,26 +443,28 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
                 parse_protocol(data, source=f"setting {setting.label}")
             except ProtocolError as exc:
                 raise ValueError(str(exc)) from None
-            start = n_start if setting.start is None else int(setting.start)
-            planned = budget if setting.budget is None else int(setting.budget)
-            cells.append((setting, sc, data, start, planned))
-            tasks += [_Task(len(cells) - 1, s, sc, data, start, planned, int(base_seed), float(noise_scale),
-                            pool_size) for s in range(seeds)]
+            add(setting, sc, data, "protocol")
+    sizes = list(dict.fromkeys(Setting(start=g.start, budget=g.budget) for g in grid)) if peers else []
+    for size in sizes:
+        for sc in scenarios:
+            for peer in peers:
+                add(size, sc, protocol_for(sc).model_dump(mode="python"), peer)
     if scheduler is not None:
         results, runner = _run_dask(tasks, scheduler, progress), f"dask ({scheduler})"
     else:
         results, runner = _run_local(tasks, workers, progress), (
             "this process" if workers == 1 else f"joblib, {workers} processes")
     out = []
-    for c, (setting, sc, data, start, planned) in enumerate(cells):
+    for c, (setting, sc, data, start, planned, strategy) in enumerate(cells):
         mine = [r for t, r in zip(tasks, results) if t.cell == c]
         protocol = parse_protocol(data, source=f"setting {setting.label}")
         optima = tuple(o for _, o in mine)
         result = SimulationResult(
-            problem=sc.problem, protocol=protocol, strategies=("protocol",), same_as={},
-            histories={"protocol": [h for h, _ in mine]}, n_start=start, budget=planned, seeds=seeds,
+            problem=sc.problem, protocol=protocol, strategies=(strategy,), same_as={},
+            histories={strategy: [h for h, _ in mine]}, n_start=start, budget=planned, seeds=seeds,
             base_seed=int(base_seed), noise_scale=float(noise_scale), noise={},
             workers=workers, optima=optima if sc.drawn else (),
         )
-        out.append(SweepCell(setting, sc.name, result, _default_within(optima) if within is None else float(within)))
+        out.append(SweepCell(setting, sc.name, result, _default_within(optima) if within is None else float(within),
+                             strategy))
     return SweepResult(tuple(out), seeds, int(base_seed), float(noise_scale), runner)

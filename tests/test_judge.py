@@ -126,3 +126,94 @@ def test_a_recipe_that_repeats_a_run_in_progress_is_named(tmp_path):
     assert res.exit_code == 0, res.output
     notes = json.loads(res.stdout)["messages"]
     assert any("recipe again" in m and "R99" in m for m in notes), notes
+
+
+def _gridded_protocol(path):
+    """The tablet protocol with resolutions: 0.001 of a fraction for each varying component, 0.5 kN of force."""
+    text = TABLET[0].read_text(encoding="utf-8")
+    for name in ("mcc", "lactose", "croscarmellose", "povidone", "mg_stearate"):
+        head = f'name = "{name}"'
+        at = text.index(head)
+        end = text.index('unit = "fraction"', at) + len('unit = "fraction"')
+        text = text[:end] + "\nresolution = 0.001" + text[end:]
+    at = text.index('name = "force"')
+    end = text.index("\n", text.index("unit =", at))
+    text = text[:end] + "\nresolution = 0.5" + text[end:]
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+@pytest.fixture(scope="module")
+def gridded(tmp_path_factory):
+    """A plan on a protocol with resolutions; its first proposal judged as given and nudged off the grid."""
+    tmp = tmp_path_factory.mktemp("grid")
+    protocol = _gridded_protocol(tmp / "gridded.toml")
+    camp = tmp / "camp"
+    res = run("plan", protocol, TABLET[1], "--out", camp, "--seed", 11, "--count", 1, "--pool", 300,
+              "--format", "json")
+    assert res.exit_code == 0, res.output
+    plan = json.loads(res.stdout)
+    prop = plan["proposals"][0]
+    names = list(prop["x"])
+    x = list(prop["x"].values())
+    nudged = list(x)
+    nudged[names.index("mcc")] += 0.0004  # 0.4 of a unit up
+    nudged[names.index("lactose")] -= 0.0004  # 0.4 of a unit down: the total holds
+    _recipes_csv(tmp / "recipes.csv", names, [("P1", x), ("nudged", nudged)])
+    res = run("judge", protocol, TABLET[1], tmp / "recipes.csv", "--out", camp, "--seed", 11, "--format", "json")
+    assert res.exit_code == 0, res.output
+    csv_res = run("judge", protocol, TABLET[1], tmp / "recipes.csv", "--out", tmp / "camp2", "--seed", 11,
+                  "--format", "csv")
+    assert csv_res.exit_code == 0, csv_res.output
+    return prop, json.loads(res.stdout), list(csv.DictReader(io.StringIO(csv_res.stdout))), protocol
+
+
+def _same_figures(v, prop):
+    for key in ("mean", "sd", "lo95", "hi95"):
+        assert v["objective"][key] == pytest.approx(prop["objective"][key], rel=0, abs=1e-12)
+    for name, p in prop["p"].items():
+        assert v["p"][name] == pytest.approx(p, rel=0, abs=1e-12)
+    assert v["joint"] == pytest.approx(prop["joint"], rel=0, abs=1e-12)
+
+
+def test_a_proposal_on_the_grid_is_judged_as_the_plan_judged_it(gridded):
+    prop, judged, rows, _ = gridded
+    v = judged["verdicts"][0]
+    assert "off_grid" not in v and v["passes"]
+    _same_figures(v, prop)
+    assert rows[0]["recipe"] == "P1" and rows[0]["grid"] == "on"
+
+
+def test_a_recipe_off_the_grid_is_judged_as_given_flagged_and_its_rounding_judged_too(gridded):
+    prop, judged, rows, protocol = gridded
+    v = judged["verdicts"][1]
+    assert v["off_grid"] == ["mcc", "lactose"]
+    # judged as given: the amounts are the recipe's own
+    assert v["x"]["mcc"] == pytest.approx(prop["x"]["mcc"] + 0.0004, abs=1e-15)
+    # rounded as proposals are (largest remainder: lactose's 0.6 of a unit beats mcc's 0.4), which
+    # brings back the plan's own proposal and so its own figures
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.planner.space.rounding import rounding_of
+
+    expected = rounding_of(load_protocol(protocol)).round([list(v["x"].values())])[0]
+    assert list(v["rounded"]["x"].values()) == pytest.approx(list(prop["x"].values()), abs=1e-15)
+    assert list(v["rounded"]["x"].values()) == list(expected)
+    assert v["rounded"]["recipe"] == "nudged (rounded)"
+    _same_figures(v["rounded"], prop)
+    assert v["joint"] != v["rounded"]["joint"]  # the given amounts were judged, not the rounded ones
+    assert [(r["recipe"], r["grid"]) for r in rows] == [
+        ("P1", "on"), ("nudged", "off: mcc, lactose"), ("nudged (rounded)", "rounded")]
+    notes = judged["messages"]
+    assert any("recipe nudged is off the resolution grid" in m and "mcc" in m and "judged as given" in m
+               for m in notes), notes
+
+
+def test_a_protocol_without_resolutions_keeps_its_judge_table(tmp_path):
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    _recipes_csv(tmp_path / "r.csv", names, [("A", [0.1, 0.4887512345, 0.3887487655, 0.01, 0.01, 0.0025, 13.0])])
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "csv")
+    assert res.exit_code == 0, res.output
+    rows = list(csv.reader(io.StringIO(res.stdout)))
+    assert "grid" not in rows[0] and len(rows) == 2
+    assert "off_grid" not in json.loads(run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "d",
+                                            "--seed", 1, "--format", "json").stdout)["verdicts"][0]

@@ -52,17 +52,28 @@ class JudgeOutcome:
 
 def judge_table(protocol, result: JudgeResult) -> tuple[list[str], list[list]]:
     """One row per recipe: inside?, the objective with its interval, each limit, the joint figure,
-    the four rule values, and pass or the screen's reason."""
+    the four rule values, and pass or the screen's reason.
+
+    When a factor states a resolution, a ``grid`` column says whether each
+    recipe is on the grid, and a recipe off it is followed by a row for its
+    rounding (``<name> (rounded)``, grid ``rounded``), judged by the same models.
+    """
     obj = protocol.objective.name
-    header = ["recipe", *protocol.factor_names, "inside_design_space", f"{obj}_mean", f"{obj}_lo95",
-              f"{obj}_hi95", *[f"p_{n}" for n in protocol.limit_names], "joint", "ei", "pi", "bound", "mean",
-              "verdict", "detail"]
+    grid = bool(result.resolution)
+    header = ["recipe", *protocol.factor_names, "inside_design_space", *(["grid"] if grid else []),
+              f"{obj}_mean", f"{obj}_lo95", f"{obj}_hi95", *[f"p_{n}" for n in protocol.limit_names], "joint",
+              "ei", "pi", "bound", "mean", "verdict", "detail"]
+
+    def row(v, where):
+        return [v.name, *[float(x) for x in v.x], "yes" if v.inside else "no", *([where] if grid else []),
+                v.mean, v.lo95, v.hi95, *[_cell(v.p[n]) for n in protocol.limit_names], v.joint,
+                *[_cell(v.values[k]) for k in ("ei", "pi", "bound", "mean")], v.reason, v.detail]
+
     rows = []
     for v in result.verdicts:
-        rows.append([v.name, *[float(x) for x in v.x], "yes" if v.inside else "no", v.mean, v.lo95, v.hi95,
-                     *[_cell(v.p[n]) for n in protocol.limit_names], v.joint,
-                     *[_cell(v.values[k]) for k in ("ei", "pi", "bound", "mean")],
-                     v.reason, v.detail])
+        rows.append(row(v, "off: " + ", ".join(v.off_grid) if v.off_grid else "on"))
+        if v.rounded is not None:
+            rows.append(row(v.rounded, "rounded"))
     return header, rows
 
 

@@ -13,7 +13,8 @@ moved between two components), so that a refined point whose rounding
 fails the screen can be replaced by a nearby one that passes. A rounded
 point that leaves the design
 space (a rule of the protocol, say) is reported as not roundable; the caller
-screens every rounded point again.
+screens every rounded point again. :func:`off_grid` says which values of
+given points (a chemist's own recipes) are not multiples of their resolution.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Rounding", "rounding_of", "on_grid"]
+__all__ = ["Rounding", "rounding_of", "on_grid", "off_grid"]
 
 #: Slack, in grid units, when a value or bound is read as a multiple of its resolution.
 GRID_EPS = 1e-9
@@ -129,10 +130,17 @@ def rounding_of(protocol) -> Rounding:
     return Rounding(res, mixture, share, lo_u, hi_u, protocol.factor_names)
 
 
-def on_grid(X, resolution) -> np.ndarray:
-    """Whether each row's values are multiples of their resolution (NaN: any value)."""
+def off_grid(X, resolution) -> np.ndarray:
+    """Which values are not multiples of their factor's resolution, shape (n, d) (NaN: any value)."""
     X = np.array(X, dtype=float, ndmin=2)
     r = np.asarray(resolution, dtype=float)
+    out = np.zeros(X.shape, dtype=bool)
     has = np.isfinite(r)
     q = X[:, has] / r[has]
-    return np.all(np.abs(q - np.round(q)) <= 1e-6, axis=1)
+    out[:, has] = np.abs(q - np.round(q)) > 1e-6
+    return out
+
+
+def on_grid(X, resolution) -> np.ndarray:
+    """Whether each row's values are multiples of their resolution (NaN: any value)."""
+    return ~np.any(off_grid(X, resolution), axis=1)

@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.inputs.runs import read_runs
-from guardband.planner.space.rounding import Rounding, on_grid, rounding_of
+from guardband.planner.space.rounding import Rounding, off_grid, on_grid, rounding_of
 from guardband.planner.space.sampler import sample
 from guardband.planner.step import plan_step
 
@@ -146,3 +146,11 @@ def test_grid_neighbours_are_on_the_grid_keep_the_total_and_bounds(tablet, point
         assert on_grid(N, rnd.resolution).all()
         assert np.all(N >= lo - 1e-12) and np.all(N <= hi + 1e-12)
         np.testing.assert_allclose(N[:, comp].sum(axis=1), 1.0, atol=1e-12)
+
+
+def test_off_grid_names_each_value_that_is_not_a_multiple():
+    # by hand: 0.337 = 337 x 0.001 (on), 0.3374 is not; 12.5 = 25 x 0.5 (on), 12.7 is not; NaN: no resolution
+    X = [[0.337, 12.5, 3.14159], [0.3374, 12.7, 2.0]]
+    off = off_grid(X, [0.001, 0.5, np.nan])
+    assert off.tolist() == [[False, False, False], [True, True, False]]
+    assert on_grid(X, [0.001, 0.5, np.nan]).tolist() == [True, False]

@@ -507,3 +507,66 @@ def test_model_warnings_follow_the_coverage_rule(coverage, n_runs, status, expec
     else:
         (text,) = warnings
         assert expected in text and "'impurity'" in text
+
+
+def _recipes(path: Path, names, rows) -> Path:
+    path.write_text("run_id," + ",".join(names) + "\n" + "".join(
+        name + "," + ",".join(repr(float(v)) for v in x) + "\n" for name, x in rows), encoding="utf-8")
+    return path
+
+
+def test_judged_recipes_are_drawn_on_the_report_of_the_step_with_their_protocol_and_runs(tmp_path):
+    from guardband.planner.report.folder import judged_recipes
+
+    protocol, runs = PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv"
+    camp = tmp_path / "camp"
+    _plan(protocol, runs, camp, "--count", "1", "--seed", "11")
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    mine = [("mine-A", [0.1, 0.45, 0.40, 0.03, 0.01, 0.01, 12.0]),
+            ("mine-B", [0.1, 0.40, 0.40, 0.04, 0.04, 0.02, 9.5])]
+    assert _invoke(["judge", protocol, runs, _recipes(tmp_path / "r.csv", names, mine), "--out", camp,
+                    "--seed", "11"]).exit_code == 0
+    # a judgement on other runs (one more run) belongs to no step of this folder
+    more = tmp_path / "more.csv"
+    more.write_text(runs.read_text(encoding="utf-8") + "R99,0.1,0.45,0.4,0.03,0.01,0.01,12,60,0.1,0.5,\n",
+                    encoding="utf-8")
+    assert _invoke(["judge", protocol, more, _recipes(tmp_path / "o.csv", names, [("other", mine[0][1])]),
+                    "--out", camp, "--seed", "11"]).exit_code == 0
+    records = ledger.read_records(camp / LOG_NAME)
+    assert [r["kind"] for r in records] == ["plan", "judge", "judge"]
+    shown = judged_recipes(records, records[0], names)
+    assert [(r.name, r.record) for r in shown] == [("mine-A", 1), ("mine-B", 1)]
+    # the amounts in the protocol's factor order (the log keeps JSON keys sorted)
+    for r, (_, x) in zip(shown, mine):
+        assert r.x.tolist() == x
+    verdicts = {v["recipe"]: v["passes"] for v in records[1]["body"]["verdicts"]}
+    assert [r.passes for r in shown] == [verdicts["mine-A"], verdicts["mine-B"]]
+    result = _invoke(["report", camp])
+    assert result.exit_code == 0, result.output
+    label = records[0]["body"]["step_label"]
+    page = (camp / f"report-{label}.html").read_text(encoding="utf-8")
+    sections = _sections(page)
+    assert "Green diamonds are recipes judged on this step's protocol and runs (judge record 1)" in \
+        sections.joined("map")
+    assert "judge record 2" not in page
+
+
+def test_judged_recipes_change_the_map_and_the_slices(tablet_campaign):
+    from guardband.planner.report.data import JudgedRecipe
+    from guardband.planner.report.page import build_report
+
+    rec = _only_plan(tablet_campaign)
+    result, rec = rerun_record(tablet_campaign / LOG_NAME, rec["index"])
+    from guardband.planner.report.folder import _recorded_runs
+
+    runs = _recorded_runs(tablet_campaign, rec["body"], result.protocol)
+    x = np.asarray(result.proposals[0].x, dtype=float).copy()
+    x[-1] = 9.0  # force
+    plain = build_report(result, runs, step_label="S")
+    judged = build_report(result, runs, step_label="S", judged=[JudgedRecipe("mine", x, False, 3)])
+    before = {f.name: f for f in plain.figures}
+    after = {f.name: f for f in judged.figures}
+    for name in ("map", "slices-1"):
+        assert after[name].png != before[name].png and "Green diamonds" in after[name].caption
+        assert "Green diamonds" not in before[name].caption
+    assert after["history"].png == before["history"].png  # drawn only where recipes belong

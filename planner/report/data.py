@@ -20,7 +20,7 @@ from guardband.planner.step import PlanResult
 from guardband.safety.limits import ScreenRules
 from guardband.safety.screen import forbidden_mask
 
-__all__ = ["SliceData", "MapData", "slice_data", "map_data", "default_map_factors", "check_map_factors",
+__all__ = ["SliceData", "MapData", "JudgedRecipe", "slice_data", "map_data", "default_map_factors", "check_map_factors",
            "check_factor_names", "slice_at", "map_at", "SLICE_POINTS", "MAP_POINTS"]
 
 #: Points along a slice of a continuous factor, and per axis of the map.
@@ -104,6 +104,27 @@ class MapData:
     forbidden: np.ndarray
     joint: np.ndarray
     objective: np.ndarray
+
+
+@dataclass(frozen=True)
+class JudgedRecipe:
+    """A chemist's own recipe judged by ``guardband judge``, to be shown on the report's figures.
+
+    Attributes
+    ----------
+    name : str
+    x : array of shape (n_factors,)
+        As given (protocol units).
+    passes : bool
+        The judge's verdict.
+    record : int or None
+        The index of the ``judge`` record it comes from.
+    """
+
+    name: str
+    x: np.ndarray
+    passes: bool
+    record: int | None = None
 
 
 class _Geometry:
@@ -220,6 +241,14 @@ class _Geometry:
             return None, None
         rule = self.limit_rule(name)
         return model.predict(self.result.unit(X), include_noise=rule is not None and rule.with_noise)
+
+    def predicted_centre(self, name: str, X: np.ndarray):
+        """A response's predicted centre at X in its own units (a binomial rate: its median), or None."""
+        mean, sd = self.predict(name, X)
+        if mean is None:
+            return None
+        rule = self.limit_rule(name)
+        return rate_band(mean, sd, Z95)[0] if rule is not None and rule.binomial else mean
 
     def limit_rule(self, name: str):
         """The screen's rule for the limit on response ``name``, or None (the objective)."""

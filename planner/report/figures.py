@@ -24,7 +24,8 @@ from guardband.planner.simulation.loop import best_so_far
 from guardband.planner.step import PlanResult
 
 from guardband.planner.report.tables import band_label
-from guardband.planner.report.data import MAP_POINTS, SLICE_POINTS, MapData, SliceData, _Geometry, map_at, slice_at
+from guardband.planner.report.data import (MAP_POINTS, SLICE_POINTS, JudgedRecipe, MapData, SliceData, _Geometry,
+                                           map_at, slice_at)
 from guardband.planner.report.style import (
     LIMIT_LINE, MAP_CMAP, OKABE_ITO, RUN_MET, RUN_MISSED, ReportFigure, axes_grid, finish_figure, legend_rows,
     legend_top, limit_handle, new_figure, runs_style,
@@ -117,7 +118,7 @@ _LABEL_ROOM = 0.3
 
 
 def slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id: str,
-                 salt: str) -> tuple[ReportFigure, str] | None:
+                 salt: str, judged: Sequence[JudgedRecipe] = ()) -> tuple[ReportFigure, str] | None:
     """One-factor slices of every model through one proposal, and the text that introduces them.
 
     One card per factor that can move; in each card the responses are
@@ -135,23 +136,30 @@ def slice_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id
         The proposal's run id, for the legend.
     salt : str
         Makes the SVG ids of this report its own.
+    judged : sequence of JudgedRecipe
+        Recipes judged with these models, drawn where they lie on each
+        factor at their predicted value (projections, as the runs are).
 
     Returns
     -------
     (ReportFigure, str) or None
         None when no factor can move.
     """
-    drawn = draw_slices(geo, runs, safe, prop, run_id)
+    drawn = draw_slices(geo, runs, safe, prop, run_id, judged)
     if drawn is None:
         return None
     fig, cards = drawn
     factors = list(cards)
     title = f"Slices through proposal {run_id}"
-    figure = finish_figure(fig, f"slices-{prop.rank}", title, _held_note(geo, prop.x, []), salt)
+    note = _held_note(geo, prop.x, [])
+    if judged:
+        note = (note + " " if note else "") + _judged_note(judged)
+    figure = finish_figure(fig, f"slices-{prop.rank}", title, note, salt)
     return figure, _slice_intro(geo, factors)
 
 
-def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id: str):
+def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id: str,
+                judged: Sequence[JudgedRecipe] = ()):
     """The slice figure (a matplotlib Figure) and its cards, or None when no factor can move.
 
     The cards map each moved factor to its strips: one axes per response,
@@ -161,7 +169,7 @@ def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id:
     if not factors:
         return None
     responses = list(geo.protocol.response_names)
-    most = len(_slice_handles(geo, factors, runs, safe, run_id, cut=True))
+    most = len(_slice_handles(geo, factors, runs, safe, run_id, cut=True, judged=judged))
     fig, cards, legend_ncol = _slice_cards(geo, factors, len(responses), most)
     ranges: dict[str, tuple[list[float], list[float]]] = {name: ([], []) for name in responses}
     bands = {}
@@ -169,6 +177,7 @@ def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id:
         sl = slice_at(geo, prop.x, j, SLICE_POINTS)
         for r, (ax, name) in enumerate(zip(strips, responses)):
             core, bands[ax] = _slice_strip(ax, geo, runs, safe, sl, name, prop.x[j])
+            core += _judged_on_strip(ax, geo, judged, j, name, sl.discrete)
             ranges[name][0].extend(core)
             if bands[ax] is not None:
                 ranges[name][1].extend([float(np.min(bands[ax][1])), float(np.max(bands[ax][2]))])
@@ -179,12 +188,12 @@ def draw_slices(geo: _Geometry, runs: RunsTable, safe: np.ndarray, prop, run_id:
         lo, hi = _strip_range(*ranges[name])
         for strips in cards.values():
             cut = _finish_strip(strips[r], geo, name, lo, hi, bands[strips[r]]) or cut
-    legend_top(fig, _slice_handles(geo, factors, runs, safe, run_id, cut=cut), legend_ncol)
+    legend_top(fig, _slice_handles(geo, factors, runs, safe, run_id, cut=cut, judged=judged), legend_ncol)
     return fig, cards
 
 
 def _slice_handles(geo: _Geometry, factors: Sequence[int], runs: RunsTable, safe: np.ndarray,
-                   run_id: str, *, cut: bool) -> list:
+                   run_id: str, *, cut: bool, judged: Sequence[JudgedRecipe] = ()) -> list:
     """The legend entries a slice figure needs (``cut``: some band goes on past a strip's edge)."""
     discrete = [j in geo.levels for j in factors]
     entries = [
@@ -203,6 +212,7 @@ def _slice_handles(geo: _Geometry, factors: Sequence[int], runs: RunsTable, safe
                 label=RUN_MISSED), not np.all(safe | runs.pending)),
         (Line2D([], [], marker="*", ms=11, color=OKABE_ITO["purple"], mec=OKABE_ITO["black"], ls="none",
                 label=f"proposal {run_id} (predicted value)"), True),
+        *[(h, True) for h in _judged_handles(judged, " (predicted value)")],
     ]
     return [h for h, shown in entries if shown]
 
@@ -401,7 +411,8 @@ def _slice_intro(geo: _Geometry, factors: Sequence[int]) -> str:
 
 # ---------------------------------------------------------------- map
 def map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanResult, x0: np.ndarray,
-               x0_what: str, pair: tuple[int, int], chosen_how: str, salt: str) -> ReportFigure:
+               x0_what: str, pair: tuple[int, int], chosen_how: str, salt: str,
+               judged: Sequence[JudgedRecipe] = ()) -> ReportFigure:
     """The joint figure (left) and the objective's posterior mean (right) over two factors.
 
     Parameters
@@ -410,6 +421,8 @@ def map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanRe
         Values of the other factors; ``x0_what`` says what they are.
     pair : (int, int)
         The x and y factors; ``chosen_how`` says why these two.
+    judged : sequence of JudgedRecipe
+        Recipes judged with these models, projected as the runs are.
     """
     a, b = pair
     md = map_at(geo, x0, a, b, MAP_POINTS)
@@ -417,7 +430,9 @@ def map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanRe
     thr = p.screen.threshold
     da, db = a in geo.levels, b in geo.levels
     cont = not (da or db)
-    fig, axes, caxes = _map_axes()
+    n_handles = len(_map_handles(md, runs, safe, result, thr, cont, np.zeros(0, bool))) + 1 + len(
+        _judged_handles(judged, ""))  # at most: the threshold entry may be left out
+    fig, axes, caxes = _map_axes(extra_top=0.0 if n_handles <= _MAP_LEGEND_ONE_ROW else legend_rows(2, 1) - 0.34)
     px, py = _positions(geo, a, md.gx), _positions(geo, b, md.gy)
     ex, ey = _edges(px, da), _edges(py, db)
     panels = [(axes[0], caxes[0], np.ma.masked_invalid(md.joint), f"joint figure ({p.screen.joint})", (0.0, 1.0)),
@@ -453,17 +468,26 @@ def map_figure(geo: _Geometry, runs: RunsTable, safe: np.ndarray, result: PlanRe
             _level_ticks(ax.yaxis, py, md.gy)
         ax.set_xlim(ex[0], ex[-1])
         ax.set_ylim(ey[0], ey[-1])
+        _judged_on_map(ax, geo, judged, a, b)  # after the limits: a name near the right edge goes left
     reached = md.joint[np.isfinite(md.joint)] >= thr
-    handles = _map_handles(md, runs, safe, result, thr, cont, reached)
-    legend_top(fig, handles, len(handles))
+    handles = _map_handles(md, runs, safe, result, thr, cont, reached) + _judged_handles(judged, "")
+    legend_top(fig, handles, len(handles) if n_handles <= _MAP_LEGEND_ONE_ROW else -(-len(handles) // 2))
     names = p.factor_names
     caption = _map_caption(geo, x0, x0_what, pair, chosen_how, cont, reached)
+    if judged:
+        caption += " " + _judged_note(judged)
     return finish_figure(fig, "map", f"Map over {names[a]} and {names[b]}", caption, salt)
 
 
-def _map_axes():
-    """The map figure, its two panels and their colour bars (margins in inches)."""
-    W, H, left, cb_gap, cb_w, cb_lab, bottom, top = 10.6, 5.0, 0.95, 0.12, 0.16, 0.8, 0.62, 0.5
+#: Legend entries of the map that fit in one row above its panels; more take two rows.
+_MAP_LEGEND_ONE_ROW = 6
+
+
+def _map_axes(extra_top: float = 0.0):
+    """The map figure, its two panels and their colour bars (margins in inches; ``extra_top``: room
+    for a second legend row)."""
+    W, H, left, cb_gap, cb_w, cb_lab, bottom, top = 10.6, 5.0 + extra_top, 0.95, 0.12, 0.16, 0.8, 0.62, 0.5
+    top += extra_top
     pw = (W - 0.1) / 2 - left - cb_gap - cb_w - cb_lab
     fig = new_figure(W, H)
     axes, caxes = [], []
@@ -592,6 +616,59 @@ def _map_caption(geo: _Geometry, x0: np.ndarray, x0_what: str, pair: tuple[int, 
     parts.append("The map shows the models only: the hard rules (forbidden regions, largest step from "
                  "a safe run) exclude further points; see the exclusions.")
     return " ".join(parts)
+
+
+# ---------------------------------------------------------------- judged recipes
+#: How a judged recipe is drawn: a diamond, filled when it passed the screen, hollow when it did not.
+_JUDGED = dict(marker="D", ms=7, mec=OKABE_ITO["green"], mew=1.4, ls="none", zorder=5.5)  # under the proposals
+
+
+def _judged_style(passes: bool) -> dict:
+    return dict(_JUDGED, mfc=OKABE_ITO["green"] if passes else "white")
+
+
+def _judged_handles(judged: Sequence[JudgedRecipe], what: str) -> list:
+    """Legend entries of the judged recipes: one for those that passed, one for those that did not."""
+    out = []
+    for passes, text in ((True, "judged recipe that passes"), (False, "judged recipe that fails")):
+        if any(r.passes == passes for r in judged):
+            out.append(Line2D([], [], **_judged_style(passes), label=text + what))
+    return out
+
+
+def _judged_note(judged: Sequence[JudgedRecipe]) -> str:
+    records = sorted({r.record for r in judged if r.record is not None})
+    where = f" (judge record{'s' if len(records) > 1 else ''} {', '.join(map(str, records))})" if records else ""
+    return (f"Green diamonds are recipes judged on this step's protocol and runs{where}: filled when the "
+            "screen passed them, hollow when it did not; they are projected as the runs are, and on the "
+            "slices drawn at this page's predicted value.")
+
+
+def _judged_on_map(ax, geo: _Geometry, judged: Sequence[JudgedRecipe], a: int, b: int) -> None:
+    for r in judged:
+        qx, qy = _positions(geo, a, [r.x[a]])[0], _positions(geo, b, [r.x[b]])[0]
+        ax.plot([qx], [qy], **_judged_style(r.passes))
+        # the name to the left near the right edge, so that it stays inside the panel
+        x_frac = ax.transLimits.transform((qx, qy))[0]
+        right = x_frac > 0.8
+        ax.annotate(r.name, (qx, qy), xytext=(-6 if right else 6, -11), textcoords="offset points",
+                    ha="right" if right else "left", fontsize=7.5, color=OKABE_ITO["black"], zorder=7,
+                    bbox=dict(boxstyle="round,pad=0.12", fc="white", ec="none", alpha=0.8))
+
+
+def _judged_on_strip(ax, geo: _Geometry, judged: Sequence[JudgedRecipe], j: int, name: str,
+                     discrete: bool) -> list[float]:
+    """Each judged recipe at its factor value and its predicted value of ``name``; the values drawn."""
+    if not judged:
+        return []
+    X = np.array([r.x for r in judged], dtype=float)
+    centre = geo.predicted_centre(name, X)
+    if centre is None:
+        return []
+    shift = _RUNS_SHIFT if discrete else 0.0
+    for r, x, y in zip(judged, _positions(geo, j, X[:, j]) + shift, centre):
+        ax.plot([x], [y], **_judged_style(r.passes))
+    return [float(v) for v in centre]
 
 
 # ---------------------------------------------------------------- model checks and history

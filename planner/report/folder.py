@@ -7,6 +7,8 @@ Folder layout written next to the decision log::
 
 Each recorded step is re-run from its recorded inputs to rebuild its models,
 and the re-run is compared with the record by the workflow's own comparison.
+Recipes judged (``guardband judge``) on a step's protocol and runs file, in
+records not superseded, are drawn on that step's slices and map.
 """
 
 from __future__ import annotations
@@ -19,10 +21,12 @@ from guardband.planner.errors import VerificationError
 from guardband.planner.inputs.runs import RunsTable, read_runs_bytes
 from guardband.safety import ledger
 
-from guardband.planner.report.data import check_factor_names
+import numpy as np
+
+from guardband.planner.report.data import JudgedRecipe, check_factor_names
 from guardband.planner.report.page import ReportFiles, build_report, write_report
 
-__all__ = ["report_folder", "report_plan"]
+__all__ = ["report_folder", "report_plan", "judged_recipes"]
 
 
 def _supersession(records: list[dict]) -> dict[int, str]:
@@ -39,6 +43,23 @@ def _supersession(records: list[dict]) -> dict[int, str]:
             out[rec["index"]] = (f"This planning step was superseded by record {later} "
                                  f"({by_index[later]['kind']}{who}): {reason}")
     return out
+
+
+def judged_recipes(records: list[dict], plan: dict, factor_names) -> tuple[JudgedRecipe, ...]:
+    """The recipes of the ``judge`` records (not superseded) made on a plan record's protocol and runs file,
+    their amounts in the order of ``factor_names`` (the log's JSON keeps keys in sorted order)."""
+    body = plan["body"]
+    out = []
+    for rec in ledger.effective_records(records):
+        b = rec.get("body", {})
+        if (rec.get("kind") != "judge" or rec.get("superseded_by") is not None
+                or b.get("protocol_fingerprint") != body.get("protocol_fingerprint")
+                or b.get("runs_sha256") != body.get("runs_sha256")):
+            continue
+        for v in b.get("verdicts", []):
+            out.append(JudgedRecipe(str(v["recipe"]), np.array([v["x"][n] for n in factor_names], dtype=float),
+                                    bool(v["passes"]), rec["index"]))
+    return tuple(out)
 
 
 def _recorded_runs(folder: Path, body: dict, protocol) -> RunsTable:
@@ -113,7 +134,8 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
             problems.append(superseded[rec["index"]])
         runs = _recorded_runs(folder, body, result.protocol)
         report = build_report(result, runs, step_label=step_label, record=rec, log_head=head,
-                              log_count=count, map_factors=map_factors, problems=problems)
+                              log_count=count, map_factors=map_factors, problems=problems,
+                              judged=judged_recipes(records, rec, result.protocol.factor_names))
         out.append(write_report(report, folder, record_index=rec["index"]))
     return out
 
@@ -129,6 +151,8 @@ def report_plan(outcome, *, map_factors: Sequence[str] | None = None) -> ReportF
     body = outcome.record["body"]
     folder = outcome.log_path.parent
     runs = _recorded_runs(folder, body, outcome.result.protocol)
+    judged = judged_recipes(ledger.read_records(outcome.log_path), outcome.record,
+                            outcome.result.protocol.factor_names)
     report = build_report(outcome.result, runs, step_label=body["step_label"], record=outcome.record,
-                          log_head=outcome.head, log_count=outcome.count, map_factors=map_factors)
+                          log_head=outcome.head, log_count=outcome.count, map_factors=map_factors, judged=judged)
     return write_report(report, folder, record_index=outcome.record["index"])

@@ -27,7 +27,7 @@ from guardband.planner.step import PlanResult, safe_runs_mask
 from guardband.safety import cautions as _cautions
 from guardband.safety.calibration import EarnedCalibration
 
-from guardband.planner.report.data import _Geometry, check_map_factors, default_map_factors
+from guardband.planner.report.data import JudgedRecipe, _Geometry, check_map_factors, default_map_factors
 from guardband.planner.app.attitude_text import COMPARISON_HEADER, comparison_rows, guidance_lines, price_sentence
 from guardband.planner.report.attitude_figures import price_figure, rules_figure
 from guardband.planner.report.figures import history_figure, loo_figure, map_figure, slice_figure
@@ -123,6 +123,7 @@ def build_report(
     log_count: int | None = None,
     map_factors: Sequence[str] | None = None,
     problems: Sequence[str] = (),
+    judged: Sequence[JudgedRecipe] = (),
 ) -> Report:
     """Render the report of one planning step.
 
@@ -143,6 +144,9 @@ def build_report(
         The map's factors; default :func:`default_map_factors`.
     problems : sequence of str
         Shown prominently at the top (e.g. the re-run differs from the record).
+    judged : sequence of JudgedRecipe
+        Recipes judged with this step's models (``guardband judge`` on the
+        same protocol and runs), drawn on the slices and the map.
 
     Returns
     -------
@@ -157,7 +161,7 @@ def build_report(
     geo = _Geometry(result)
     safe = safe_runs_mask(p, runs)
     with mpl.rc_context(REPORT_RC):
-        figures = _draw_figures(geo, runs, safe, step_label, map_factors)
+        figures = _draw_figures(geo, runs, safe, step_label, map_factors, tuple(judged))
     body = (record or {}).get("body", {})
     earned = _earned_sentence(body)
     if earned is not None and earned[1]:
@@ -236,14 +240,14 @@ def _earned_sentence(body: dict) -> tuple[str, bool] | None:
 
 
 def _draw_figures(geo: _Geometry, runs: RunsTable, safe: np.ndarray, step_label: str,
-                  map_factors: Sequence[str] | None) -> _Figures:
+                  map_factors: Sequence[str] | None, judged: tuple[JudgedRecipe, ...] = ()) -> _Figures:
     """Every figure of the page: a slice figure per proposal, the map, the model checks, the history."""
     result = geo.result
     # salts the SVG ids, so that two pages' figures never share an id
     salt = hashlib.sha256(step_label.encode("utf-8")).hexdigest()[:8]
     figures = _Figures()
     for q in result.proposals:
-        made = slice_figure(geo, runs, safe, q, proposal_run_id(step_label, q.rank), salt)
+        made = slice_figure(geo, runs, safe, q, proposal_run_id(step_label, q.rank), salt, judged)
         if made is not None:
             figures.slices.append(made[0])
             figures.slice_intro = made[1]
@@ -255,7 +259,7 @@ def _draw_figures(geo: _Geometry, runs: RunsTable, safe: np.ndarray, step_label:
         chosen_how = "the two factors the models are most sensitive to (shortest length scales)"
     if pair is not None:
         x0, x0_what = _map_origin(geo)
-        figures.map = map_figure(geo, runs, safe, result, x0, x0_what, pair, chosen_how, salt)
+        figures.map = map_figure(geo, runs, safe, result, x0, x0_what, pair, chosen_how, salt, judged)
     else:
         figures.notes.append("No map: fewer than two factors can move in this design space.")
     figures.loo, figures.loo_rows = loo_figure(geo, salt)

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from guardband.planner.app.simulate_options import OptionError, parse_vary
+from guardband.planner.app.simulate_options import OptionError, parse_peers, parse_vary
 from guardband.planner.cli import app
 from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.simulation import combine_settings, get_problem, simulate
@@ -54,6 +54,16 @@ def test_settings_grid_and_labels():
 def test_parse_vary_refuses(values, message):
     with pytest.raises(OptionError, match=message):
         parse_vary(values)
+
+
+def test_parse_peers():
+    assert parse_peers(None) == ()
+    assert parse_peers("all") == ("random", "classical")
+    assert parse_peers(" classical, random,classical ") == ("classical", "random")
+    with pytest.raises(OptionError, match="'ei' is not a peer"):
+        parse_peers("random,ei")
+    with pytest.raises(OptionError, match="give random, classical or all"):
+        parse_peers(" , ")
 
 
 def test_parse_vary_reads_lists():
@@ -201,8 +211,10 @@ def test_cli_sweep_of_a_scenario_file_with_peers_gives_their_rows_and_the_promis
     assert {b["strategy"] for b in bins} == {"protocol"}  # peers promise nothing
     for s in scenarios:
         mine = [b for b in bins if b["scenario"] == s]
-        # the tablet protocol's threshold is 0.95: bins [0.95, 0.99) and [0.99, 1] (and [0, 0.95) only if needed)
-        assert [(b["low"], b["high"]) for b in mine][-2:] == [("0.95", "0.99"), ("0.99", "1")]
+        # the tablet protocol's threshold is 0.90: bins [0.9, 0.95), [0.95, 0.99), [0.99, 1]
+        # (and [0, 0.9) in front only when a promise fell below the threshold)
+        assert [(b["low"], b["high"]) for b in mine][-3:] == [("0.9", "0.95"), ("0.95", "0.99"), ("0.99", "1")]
+        assert len(mine) == 3 or (mine[0]["low"], mine[0]["high"]) == ("0", "0.9")
         made = next(r for r in rows if r["scenario"] == s and r["strategy"] == "protocol")
         assert sum(int(b["runs"]) for b in mine) == int(made["n_promised"])
     page = (out / "sweep.html").read_text(encoding="utf-8")

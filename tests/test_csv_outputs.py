@@ -157,7 +157,7 @@ def test_a_sweep_folder_holds_plain_tables_with_notes(tmp_path):
     run("simulate", PROTOCOLS / "tablet_blend.toml", "--problem", "tablet", "--vary", "threshold=0.9,0.95",
         "--seeds", 1, "--budget", 1, *FAST, "--out-dir", out)
     tables = sorted(out.glob("*.csv"))
-    assert [t.name for t in tables][-1] == "sweep.csv" and len(tables) == 3
+    assert [t.name for t in tables][-2:] == ["sweep-calibration.csv", "sweep.csv"] and len(tables) == 4
     for table in tables:
         assert len(read(table)) > 0
         assert_notes_file(table, "formulation")

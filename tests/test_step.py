@@ -301,7 +301,7 @@ def test_rescue_search_finds_a_passing_point_when_the_pool_has_none(monkeypatch)
     plan = plan_step(protocol, runs, seed=4)
     pool_part = plan.origin != "refined"
     assert not np.any(plan.screen.survives[pool_part])  # the pool alone had nothing
-    assert any("local search for the highest joint figure" in m for m in plan.messages)
+    assert any("local search for the highest probabilities" in m for m in plan.messages)
     assert len(plan.proposals) == 1
     p = plan.proposals[0]
     assert p.origin == "refined" and p.joint >= 0.95
@@ -330,3 +330,36 @@ def test_a_limit_judged_on_the_true_value_leaves_the_noise_out(dose_gaussian):
     Um = measured.unit(measured.pool)
     expected = limit_probability(*measured.fitted[lim.name].predict(Um, include_noise=True), upper=lim.upper)
     np.testing.assert_allclose(measured.screen.P[:, 0], expected, rtol=1e-12, atol=1e-15)
+
+
+def test_rescue_figure_is_the_log_of_the_product_and_fails_closed():
+    from guardband.planner.step.refine import rescue_figure
+
+    P = np.array([[0.5, 0.25], [1.0, np.nan], [0.0, 0.9]])
+    out = rescue_figure(P)
+    assert out[0] == pytest.approx(np.log(0.5 * 0.25), rel=1e-12)
+    tiny = np.log(np.finfo(float).tiny)
+    assert out[1] == pytest.approx(tiny) and out[2] == pytest.approx(tiny + np.log(0.9))
+    # where the bound max(0, 1 - sum(1 - p)) is 0 for both, the product still tells them apart
+    flat = np.array([[0.4, 0.4], [0.45, 0.45]])
+    assert np.all(1 - np.sum(1 - flat, axis=1) <= 0)
+    assert rescue_figure(flat)[1] > rescue_figure(flat)[0]
+
+
+def test_rescue_search_moves_where_the_bound_is_flat_at_zero():
+    # A simulated coating campaign (seed 8, threshold 0.5) whose starting design
+    # holds no run that meets both limits. Searching on the screen's joint
+    # figure (the bound, flat at 0 there) it stopped at its first step with
+    # nothing proposed; the rescue search climbs the product of the limits'
+    # probabilities and finds a run that passes the full screen.
+    from guardband.planner.simulation.family import with_settings
+    from guardband.planner.simulation.problems import get_problem
+    from guardband.planner.simulation.runner import simulate
+
+    problem = with_settings(get_problem("coating"), threshold=0.5, batch=1, pool=1000, refine=1)
+    result = simulate(problem, None, budget=1, seeds=1, strategies=("protocol",), noise_scale=1.0,
+                      workers=1, seed=8)
+    h = result.histories["protocol"][0]
+    assert not np.any(np.isfinite(h.best_safe[~h.planned]))  # no starting run met both limits
+    assert not h.stalled and int(h.planned.sum()) == 1
+    assert h.promised[h.planned][0] >= 0.5  # the screen's own bound, not the product

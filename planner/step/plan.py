@@ -17,8 +17,9 @@ The flow (see DESIGN.md):
 3. a candidate pool from the hit-and-run sampler, plus candidates between
    the runs that met every limit and pool points (convex combinations stay
    inside the polytope), plus a local refinement of the best candidates;
-   when no candidate passes, a local search for the highest joint figure
-   from the closest ones (its points are screened like any other);
+   when no candidate passes, a local search for the highest probabilities
+   of meeting the limits (their product) from the closest ones (its points
+   are screened like any other);
    (:mod:`.pool`, :mod:`.refine`); where factors state a ``resolution``,
    every candidate is then rounded to it and screened again
    (:mod:`guardband.planner.space.rounding`), so only amounts that can be
@@ -53,7 +54,7 @@ from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.step.explain import pick_explanations
-from guardband.planner.step.refine import refine
+from guardband.planner.step.refine import refine, rescue_figure
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
 from guardband.safety.screen import span_streak
@@ -61,7 +62,8 @@ from guardband.safety.screen import span_streak
 __all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 
 #: When no pool candidate passes the screen, the local search for the
-#: highest joint figure starts from this many of the closest candidates.
+#: highest probabilities of meeting the limits starts from this many of the
+#: closest candidates.
 RESCUE_STARTS = 6
 
 
@@ -105,9 +107,10 @@ def _screened(ctx: StepContext, X, scores_of, inc_value) -> Pool:
 
 
 def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
-    """Refine the best survivors locally; when none passed, search for the highest
-    joint figure from the candidates that failed only on probability (the screen is
-    not relaxed: every point found is screened again in full)."""
+    """Refine the best survivors locally; when none passed, search from the candidates that
+    failed only on probability for the highest product of the limits' probabilities
+    (``refine.rescue_figure``; the screen is not relaxed: every point found is screened
+    again in full, with its own joint figure)."""
     refine_n = ctx.protocol.batch.refine
     rescue = refine_n > 0 and not np.any(pool.result.survives)
     if refine_n <= 0 or not (np.any(pool.result.survives) or rescue):
@@ -115,7 +118,7 @@ def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
     result = pool.result
     if rescue:
         near = np.flatnonzero(np.isin(result.reason, ("limit-probability", "joint-below-threshold", "rests-on-one-run")))
-        starts = near[np.lexsort((near, -result.joint[near]))][:RESCUE_STARTS]
+        starts = near[np.lexsort((near, -rescue_figure(result.P[near])))][:RESCUE_STARTS]
     else:
         survivors = np.flatnonzero(result.survives)
         starts = survivors[np.lexsort((survivors, -pool.scores[survivors]))][:refine_n]
@@ -126,9 +129,9 @@ def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
         pool = _screened(ctx, np.vstack([pool.X, refined]), scores_of, inc_value)
     messages = []
     if rescue:
-        messages.append(f"no pool candidate passed the screen; a local search for the highest joint figure "
-                        f"from the {len(starts)} closest candidates found {int(np.sum(pool.result.survives))} "
-                        "that pass")
+        messages.append(f"no pool candidate passed the screen; a local search for the highest probabilities "
+                        f"of meeting the limits, from the {len(starts)} closest candidates, found "
+                        f"{int(np.sum(pool.result.survives))} that pass")
     return pool, origin, messages
 
 

@@ -7,8 +7,15 @@ joint(x) >= threshold, each aimed REFINE_MARGIN inside. Where factors
 state a resolution, their bounds are first pulled in to the nearest
 multiples of it, so rounding never has to jump a refined point back inside. Each refined point
 is screened again in full before it can be chosen. With ``rescue`` (no
-candidate passed the screen) the search maximises the joint figure within
-the design space alone, and keeps any point that raised it.
+candidate passed the screen) the search maximises :func:`rescue_figure`
+within the design space alone, and keeps any point that raised it: the sum
+of the logs of the per-limit probabilities. The screen's joint figure (the
+bound max(0, 1 - sum(1 - p_i)) by default) is flat at 0 wherever the
+limits' shortfalls add up to one or more, which is most of the space before
+any run is safe, so a search on it cannot move; the product of the p_i
+rises wherever any of them does and is highest where all are high. It only
+steers the search: a point it finds passes only if the screen, with its own
+joint figure, passes it.
 """
 
 from __future__ import annotations
@@ -24,7 +31,7 @@ from guardband.planner.step.context import StepContext
 from guardband.planner.step.result import Mode
 from guardband.safety.screen import figures_at
 
-__all__ = ["refine", "REFINE_MARGIN"]
+__all__ = ["refine", "rescue_figure", "REFINE_MARGIN"]
 
 #: Forward-difference step (unit-scaled) for the refinement's gradients.
 FD_STEP = 1e-6
@@ -32,11 +39,20 @@ FD_STEP = 1e-6
 REFINE_MARGIN = 1e-3
 
 
-def _values_at(ctx: StepContext, X, mode: str, inc_value, rank_kw, rule: str):
+def rescue_figure(P) -> np.ndarray:
+    """What a rescue search climbs: the sum of the logs of the per-limit probabilities
+    (NaN, a limit that cannot vouch, and 0 count as the smallest normal double)."""
+    P = np.nan_to_num(np.asarray(P, dtype=float), nan=0.0)
+    return np.sum(np.log(np.maximum(P, np.finfo(float).tiny)), axis=1)
+
+
+def _values_at(ctx: StepContext, X, mode: str, inc_value, rank_kw, rule: str, rescue: bool = False):
     """Score (to maximise) and screen slack (>= 0 where it passes) at rows X."""
     U = ctx.scaler.unit(X)
     P, J = figures_at(ctx.limit_predictions(U), U.shape[0], method=ctx.rules.joint)
-    if mode == Mode.FEASIBILITY_FIRST:
+    if rescue:
+        score = rescue_figure(P)
+    elif mode == Mode.FEASIBILITY_FIRST:
         score = J
     else:
         mu, sd = ctx.models.objective.predict(U)
@@ -119,7 +135,7 @@ def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, resc
         return np.zeros((0, X_pool.shape[1]))
     lo, hi = _grid_bounds(ctx.protocol, space, cont)
     span = np.where(hi - lo > 0, hi - lo, 1.0)
-    values_at = lambda X: _values_at(ctx, X, mode, inc_value, rank_kw, rule)
+    values_at = lambda X: _values_at(ctx, X, mode, inc_value, rank_kw, rule, rescue)
     out = []
     for i in top:
         x0 = X_pool[i].copy()

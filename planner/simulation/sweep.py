@@ -131,7 +131,7 @@ def _run_task(task: _Task) -> tuple[CampaignHistory, float]:
         X_start = start_runs(protocol, task.n_start, rng=start_rng)
         measure = functools.partial(problem.measure, scale=task.noise_scale, noise={})
         history = run_campaign(protocol, problem.evaluate, n_start=task.n_start, budget=task.budget, seed=seed,
-                               X_start=X_start, measure=measure, pool_size=task.pool_size)
+                               X_start=X_start, measure=measure, pool_size=task.pool_size, cohort=problem.cohort)
     return history, float(problem.optimum)
 
 

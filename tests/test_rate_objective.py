@@ -302,3 +302,26 @@ def test_cli_plans_a_response_rate_and_judges_a_recipe(tmp_path):
     assert res.exit_code == 0, res.output
     verdict = json.loads(res.stdout)["verdicts"][0]["objective"]
     assert 0 <= verdict["lo95"] <= verdict["mean"] <= verdict["hi95"] <= 1
+
+
+def test_the_dose_example_plan_shows_the_dlt_rate_with_its_interval_inside_the_unit_interval():
+    from pathlib import Path
+
+    from guardband.planner.app.plan_text import figures_table
+    from guardband.planner.app.workflow import plan_table
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.planner.inputs.runs import read_runs
+    from guardband.planner.models.binomial import rate_band
+
+    root = Path(__file__).resolve().parents[1] / "protocols"
+    p = load_protocol(root / "dose_combination.toml")
+    result = plan_step(p, read_runs(root / "dose_combination_runs.csv", p), seed=2, pool_size=300)
+    header, rows = plan_table(result, step_label="P1")
+    at = {h: header.index(h) for h in ("dlt_rate_median", "dlt_rate_lo95", "dlt_rate_hi95")}
+    model = result.fitted["dlt_rate"]
+    for q, row in zip(result.proposals, rows):
+        median, lo, hi = (row[at[h]] for h in ("dlt_rate_median", "dlt_rate_lo95", "dlt_rate_hi95"))
+        assert 0 <= lo <= median <= hi <= 1
+        want = rate_band(*model.predict(result.unit(q.x[None, :])))
+        assert (median, lo, hi) == pytest.approx([float(w[0]) for w in want], rel=1e-12)
+    assert "dlt_rate (95% interval)" in figures_table(result, "P1")

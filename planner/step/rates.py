@@ -304,3 +304,17 @@ def rate_outcome_figures(mean, sd, incumbent, *, maximize: bool) -> dict:
     out["ei"] = rate_expected_improvement(mean, sd, incumbent, maximize=maximize)
     out["shortfall"] = rate_expected_improvement(mean, sd, incumbent, maximize=not maximize)
     return out
+
+
+def limit_rate_bands(result) -> dict:
+    """Each binomial limit's predicted true rate at the proposals: name -> (median, lower 95%, upper 95%)
+    arrays in [0, 1] from its fitted model (the model's own band; the screen's probability may be lower,
+    held down by the monotone envelope), or None when the limit has no model (it vouches for nothing)."""
+    X = np.array([q.x for q in result.proposals], dtype=float).reshape(-1, len(result.factor_names))
+    out = {}
+    for lim in result.protocol.limits:
+        if lim.kind != "binomial":
+            continue
+        model = result.fitted.get(lim.name)
+        out[lim.name] = None if model is None or not X.shape[0] else model.predict_rate(result.unit(X))
+    return out

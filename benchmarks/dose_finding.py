@@ -427,6 +427,10 @@ def _write(rows: list[dict], out: Path) -> None:
     for r in rows:
         print("| " + " | ".join(str(v) for v in r.values()) + " |")
     print(f"\nwrote {out}")
+    from guardband.safety.cautions import as_text
+
+    print("Simulated trials on invented truths: they show how the designs behave, not a dose for anyone.\n"
+          "CAUTIONS:\n" + as_text("dose", prefix="  - "))
 
 
 if __name__ == "__main__":

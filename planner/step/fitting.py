@@ -1,6 +1,8 @@
 """The step's models: one GP per response, fitted side by side, each with its checks.
 
-The objective model needs MIN_OBJECTIVE_RUNS measured runs. A limit model's
+The objective model needs MIN_OBJECTIVE_RUNS measured runs; a binomial
+objective (a rate given as counts) gets the binomial model of a limit, its
+prior mean at the logit of the pooled rate (:func:`pooled_logit`). A limit model's
 prior mean sits at its limit; a limit with fewer runs than the protocol
 requires, or whose model cannot be fitted, vouches for nothing (fail
 closed). A limit model's length scales are capped, it is widened when its

@@ -325,3 +325,15 @@ def test_the_dose_example_plan_shows_the_dlt_rate_with_its_interval_inside_the_u
         want = rate_band(*model.predict(result.unit(q.x[None, :])))
         assert (median, lo, hi) == pytest.approx([float(w[0]) for w in want], rel=1e-12)
     assert "dlt_rate (95% interval)" in figures_table(result, "P1")
+
+
+def test_cli_table_says_the_rule_figures_are_of_the_true_rate(tmp_path):
+    proto, runs = tmp_path / "p.toml", tmp_path / "runs.csv"
+    _write_protocol(proto)
+    runs.write_text(RUNS)
+    res = CliRunner().invoke(app, ["plan", str(proto), str(runs), "--out", str(tmp_path / "o"), "--by", "t",
+                                   "--seed", "3"])
+    assert res.exit_code == 0, res.output
+    assert "figures for its true rate" in res.stdout and "next measured result" not in res.stdout
+    assert "the rules compare with the model's rate there" in " ".join(res.stdout.split())
+    assert "CAUTIONS:" in res.stdout and "not for dosing patients" in res.stdout

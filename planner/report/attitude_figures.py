@@ -60,7 +60,7 @@ def rules_figure(result: PlanResult, salt: str) -> ReportFigure | None:
         ax.axvline(inc, color=OKABE_ITO["black"], lw=1.4)
         handles.append(Line2D([], [], color=OKABE_ITO["black"], lw=1.4,
                               label=f"best run that met every limit ({inc:.4g})"))
-    ax.set_xlabel(_unit(result) + ", next measured result")
+    ax.set_xlabel(_unit(result) + (", true rate" if "latent_mean" in picks[0]["outcome"] else ", next measured result"))
     ax.set_ylabel("predicted density")
     ax.set_yticklabels([])
     fig.legend(handles=handles, loc="upper center", ncol=min(len(handles), 5), frameon=False)

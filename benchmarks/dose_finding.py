@@ -44,6 +44,26 @@ above it, events (toxicities) per trial and subjects per trial.
 
 Run:  python benchmarks/dose_finding.py [--trials 1000] [--guardband-trials 16]
           [--variants 0.75 0.75/6 0.5/6] [--workers 2] [--seed 1] [--out benchmarks/results/dose_finding.csv]
+
+Two agents (``--two-agents``): the dose example itself
+(``protocols/dose_combination.toml``, as written: two agents on their dose
+strengths, a DLT-rate limit of 0.25 at probability 0.9, cohorts of six,
+three cohorts per step, no skipping, a forbidden corner) simulated under the
+three invented truths of ``protocols/scenarios/dose_combination_scenarios.toml``
+by the simulator (DLTs ~ Binomial(6, true rate) per cohort). Each campaign
+starts with ``--start`` cohorts in the starting region and plans ``--budget``
+more; the combination selected is the one a last planning step would give
+the next cohort (none when nothing passes the screen). The true MTD contour
+is every admissible combination whose true rate is at most 0.25 and that
+cannot go one level up in either agent without passing it. The reference
+is trade practice written here: the 3+3 design (cohorts of three, as above)
+along a fixed path that raises one agent by one level at a time, PATH below.
+Figures: the share of trials selecting a combination on the contour, above
+it (true rate above 0.25), below it, or none; the share of subjects treated
+above 0.25; DLTs and subjects per trial.
+
+Run:  python benchmarks/dose_finding.py --two-agents [--trials 1000] [--guardband-trials 100]
+          [--start 4] [--budget 9 15] [--pool 1000] [--workers 2]
 """
 
 from __future__ import annotations
@@ -91,9 +111,11 @@ def true_mtd(rates) -> int | None:
 
 # --------------------------------------------------------------------------- 3+3
 def three_plus_three(rates, rng):
-    """One 3+3 trial: (levels given, one per subject; events per subject; selected level or None)."""
-    n = np.zeros(LEVELS, int)
-    e = np.zeros(LEVELS, int)
+    """One 3+3 trial over the levels of ``rates`` (1-based, in order of escalation): (levels given, one
+    per subject; events per subject; selected level or None)."""
+    top = len(rates)
+    n = np.zeros(top, int)
+    e = np.zeros(top, int)
     given, events = [], []
 
     def treat(level):
@@ -119,11 +141,11 @@ def three_plus_three(rates, rng):
         i = level - 1
         if n[i] == 3 and e[i] == 1:
             treat(level)
-        if e[i] < 2 and level == LEVELS and n[i] < 6:
+        if e[i] < 2 and level == top and n[i] < 6:
             treat(level)  # the top level is declared only with six treated
         if e[i] >= 2:
             return given, events, settle_below(level)
-        if level == LEVELS:
+        if level == top:
             return given, events, level
         level += 1
 
@@ -202,6 +224,127 @@ def guardband_trial(job):
     return given, events, level
 
 
+# --------------------------------------------------------------------------- two agents
+ROOT = Path(__file__).resolve().parents[1]
+DOSE_PROTOCOL = ROOT / "protocols" / "dose_combination.toml"
+DOSE_SCENARIOS = ROOT / "protocols" / "scenarios" / "dose_combination_scenarios.toml"
+#: The trade-practice reference's fixed path through the dose example's combinations (dose_a, dose_b
+#: in mg/kg): one agent up one level at a time, alternating, from the starting doses (invented here).
+PATH = [(5, 1), (10, 1), (10, 2), (20, 2), (20, 4), (40, 4), (80, 4)]
+
+
+def dose_example():
+    """The dose example protocol and its scenarios (their truths: response score and DLT rate)."""
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.planner.simulation.scenarios import load_scenarios
+
+    protocol = load_protocol(DOSE_PROTOCOL)
+    return protocol, load_scenarios(DOSE_SCENARIOS, protocol)
+
+
+def admissible(protocol) -> np.ndarray:
+    """Every level combination a cohort may get: inside the design space and outside every forbidden region."""
+    from guardband.planner.simulation.problems import _discrete_grid
+    from guardband.safety.limits import ScreenRules
+    from guardband.safety.screen import forbidden_mask
+
+    G = _discrete_grid(protocol.design_space())
+    return G[~forbidden_mask(ScreenRules.from_protocol(protocol).forbidden, G)[0]]
+
+
+def mtd_contour(protocol, G, rate) -> set:
+    """The true MTD contour: admissible combinations whose true rate is at most the limit and that
+    cannot go one level up in either agent (to an admissible combination) without passing it."""
+    upper = protocol.limits[0].upper
+    at = {tuple(g): r for g, r in zip(G.tolist(), rate)}
+    levels = [list(f.levels) for f in protocol.factors]
+    out = set()
+    for g, r in at.items():
+        if r > upper:
+            continue
+        ups = []
+        for j in range(2):
+            k = levels[j].index(g[j])
+            if k + 1 < len(levels[j]):
+                h = list(g)
+                h[j] = levels[j][k + 1]
+                ups.append(tuple(h))
+        if all(at.get(h, np.inf) > upper for h in ups):
+            out.add(g)
+    return out
+
+
+def path_trial(path_rates, rng):
+    """One 3+3 trial along PATH: (combinations given, one per subject; events; selected or None)."""
+    given, events, sel = three_plus_three(path_rates, rng)
+    return [PATH[k - 1] for k in given], events, (PATH[sel - 1] if sel else None)
+
+
+def two_agent_trial(job):
+    """One Guardband campaign on the dose example under a scenario: start cohorts, planned cohorts,
+    then the combination a last step would give next (None when nothing passes the screen)."""
+    from guardband.planner.simulation.loop import run_campaign, runs_table_from_arrays
+
+    k, seed, n_start, budget, pool = job
+    protocol, found = dose_example()
+    problem = found.scenarios[k].problem
+    h = run_campaign(protocol, problem.evaluate, n_start=n_start, budget=budget, seed=seed,
+                     measure=problem.measure, pool_size=pool, cohort=problem.cohort)
+    m = problem.cohort["dlt_rate"]
+    selected = None
+    if not h.stalled:
+        runs = runs_table_from_arrays(protocol, h.X, h.Y, cohort=problem.cohort)
+        result = plan_step(protocol, runs, seed=seed + 1, count=1, pool_size=pool, explain=False)
+        selected = tuple(float(v) for v in result.proposals[0].x) if result.proposals else None
+    given = [tuple(float(v) for v in x) for x in h.X for _ in range(m)]
+    events = [int(round(y * m)) for y in h.Y["dlt_rate"]]
+    return given, events, selected
+
+
+def summarise_two(design, scenario, at, contour, upper, trials):
+    """Shares of trials selecting on / above / below the contour or none; subjects above; events; subjects."""
+    sel = [t[2] for t in trials]
+    above = lambda g: at[tuple(float(v) for v in g)] > upper  # noqa: E731
+    subjects = np.array([len(t[0]) for t in trials], float)
+    return {"scenario": scenario, "design": design, "trials": len(trials), "contour": len(contour),
+            "select_contour": round(float(np.mean([s is not None and tuple(s) in contour for s in sel])), 3),
+            "select_above": round(float(np.mean([s is not None and above(s) for s in sel])), 3),
+            "select_below": round(float(np.mean([s is not None and tuple(s) not in contour and not above(s)
+                                                 for s in sel])), 3),
+            "select_none": round(float(np.mean([s is None for s in sel])), 3),
+            "treated_above": round(float(sum(sum(above(g) for g in t[0]) for t in trials) / subjects.sum()), 3),
+            "events_per_trial": round(float(np.mean([np.sum(t[1]) for t in trials])), 2),
+            "subjects_per_trial": round(float(subjects.mean()), 1)}
+
+
+def two_agents(args) -> list[dict]:
+    """The dose example under its scenarios: Guardband's campaigns against 3+3 along PATH."""
+    protocol, found = dose_example()
+    G = admissible(protocol)
+    upper = protocol.limits[0].upper
+    n = args.guardband_trials
+    jobs = [(k, args.seed * 100_000 + 1000 * k + i, args.start, budget, args.pool)
+            for budget in args.budget for k in range(len(found.scenarios)) for i in range(n)]
+    results = run_in_workers(two_agent_trial, jobs, workers=args.workers)
+    per_budget = len(found.scenarios) * n
+    rows = []
+    for k, sc in enumerate(found.scenarios):
+        rate = sc.problem.evaluate(G)["dlt_rate"]
+        at = {tuple(g): r for g, r in zip(G.tolist(), rate)}
+        contour = mtd_contour(protocol, G, rate)
+        path_rates = [at[(float(a), float(b))] for a, b in PATH]
+        rng = np.random.default_rng([args.seed, 7, k])
+        rows.append(summarise_two("3+3 along a fixed path", sc.name, at, contour, upper,
+                                  [path_trial(path_rates, rng) for _ in range(args.trials)]))
+        for b, budget in enumerate(args.budget):
+            mine = results[b * per_budget + k * n:b * per_budget + (k + 1) * n]
+            rows.append(summarise_two(f"Guardband ({args.start} + {budget} cohorts of "
+                                      f"{sc.problem.cohort['dlt_rate']})", sc.name, at, contour, upper, mine))
+        print(f"{sc.name}: MTD contour {sorted(contour)}; the path's true rates "
+              + ", ".join(f"{r:.2f}" for r in path_rates))
+    return rows
+
+
 # --------------------------------------------------------------------------- figures
 def summarise(design, scenario, rates, trials):
     mtd = true_mtd(rates)
@@ -235,9 +378,21 @@ def main(argv=None):
                          "(a dose breaks the limit only once n subjects were treated there; default 1)")
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--out", default="benchmarks/results/dose_finding.csv")
+    ap.add_argument("--out", default=None, help="CSV of the table (default benchmarks/results/dose_finding.csv, "
+                    "or dose_finding_two_agents.csv with --two-agents)")
+    ap.add_argument("--two-agents", action="store_true",
+                    help="the two-agent dose example under its scenarios instead of the single-agent trials")
+    ap.add_argument("--start", type=int, default=4, help="--two-agents: starting cohorts per campaign")
+    ap.add_argument("--budget", type=int, nargs="+", default=[9, 15],
+                    help="--two-agents: planned cohorts per campaign (one row per value)")
+    ap.add_argument("--pool", type=int, default=1000, help="--two-agents: candidate pool of every step")
     args = ap.parse_args(argv)
     start = time.time()
+    if args.two_agents:
+        rows = two_agents(args)
+        _write(rows, Path(args.out or "benchmarks/results/dose_finding_two_agents.csv"))
+        print(f"{time.time() - start:.0f} s")
+        return
     rows = []
     for k, (name, rates) in enumerate(SCENARIOS.items()):
         rng = np.random.default_rng([args.seed, k])
@@ -256,18 +411,26 @@ def main(argv=None):
             rows.append(summarise(label, name, rates, results[at:at + args.guardband_trials]))
             at += args.guardband_trials
     rows.sort(key=lambda r: (list(SCENARIOS).index(r["scenario"]), r["design"]))
-    out = Path(args.out)
+    _write(rows, Path(args.out or "benchmarks/results/dose_finding.csv"))
+    print(f"{time.time() - start:.0f} s")
+
+
+def _write(rows: list[dict], out: Path) -> None:
+    """The rows as a CSV file and as a Markdown table on stdout."""
     out.parent.mkdir(parents=True, exist_ok=True)
     with out.open("w", newline="", encoding="utf-8") as fh:
         w = csv.DictWriter(fh, fieldnames=list(rows[0]))
         w.writeheader()
         w.writerows(rows)
-    print("| scenario | design | trials | true MTD | selects MTD | selects above | none | treated above | "
-          "events/trial | subjects/trial |")
-    print("|---|---|---:|---:|---:|---:|---:|---:|---:|---:|")
+    print("| " + " | ".join(rows[0]) + " |")
+    print("|---|---|" + "---:|" * (len(rows[0]) - 2))
     for r in rows:
         print("| " + " | ".join(str(v) for v in r.values()) + " |")
-    print(f"\nwrote {out}; {time.time() - start:.0f} s")
+    print(f"\nwrote {out}")
+    from guardband.safety.cautions import as_text
+
+    print("Simulated trials on invented truths: they show how the designs behave, not a dose for anyone.\n"
+          "CAUTIONS:\n" + as_text("dose", prefix="  - "))
 
 
 if __name__ == "__main__":

@@ -356,7 +356,8 @@ def _echo_attitudes(result) -> None:
                                                      guidance_lines, price_rows, price_sentence)
 
     if result.rule_picks:
-        _show("what each ranking rule would propose first (figures for the next measured result):")
+        what = "its true rate" if result.protocol.objective.kind == "binomial" else "the next measured result"
+        _show(f"what each ranking rule would propose first (figures for {what}):")
         _show(render_table(COMPARISON_HEADER, comparison_rows(result)))
         for line in guidance_lines(result):
             _show(f"rule: {line}")

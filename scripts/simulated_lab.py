@@ -76,7 +76,7 @@ def measure_pending(protocol: Protocol, runs: RunsTable, extra, problem, rng, *,
     """The runs table as rows with its runs in progress (and ``extra`` runs) measured under ``problem``.
 
     ``noise_scale`` multiplies the scenario's noise; at 0 a run gets the truth
-    itself (a binomial limit's events then the true rate times the cohort, rounded).
+    itself (a binomial response's events then the true rate times the cohort, rounded).
 
     Returns
     -------
@@ -93,13 +93,13 @@ def measure_pending(protocol: Protocol, runs: RunsTable, extra, problem, rng, *,
     if todo.any():
         got = problem.measure(problem.evaluate(X[todo]), rng, scale=noise_scale)
         for r in protocol.response_names:
-            lim = next((lim for lim in protocol.limits if lim.name == r and lim.kind == "binomial"), None)
+            lim = next((item for item in protocol.binomial_responses if item.name == r), None)
             if lim is None:
                 values[r][todo] = got[r]
                 continue
             m = problem.cohort.get(r)
             if not m:
-                raise ProtocolError(f"scenario {problem.name!r}: a binomial limit needs [scenario.cohort] "
+                raise ProtocolError(f"scenario {problem.name!r}: a binomial response needs [scenario.cohort] "
                                     f"{r} = the subjects per cohort")
             values[lim.events][todo] = np.rint(np.asarray(got[r]) * m)
             values[lim.subjects][todo] = m
@@ -113,9 +113,9 @@ def measure_pending(protocol: Protocol, runs: RunsTable, extra, problem, rng, *,
 
 
 def _column(protocol: Protocol, runs: RunsTable, column: str) -> np.ndarray:
-    """A runs-file column as read: a response, or a binomial limit's events or subjects."""
-    for lim in protocol.limits:
-        if lim.kind == "binomial" and column in (lim.events, lim.subjects):
+    """A runs-file column as read: a response, or a binomial response's events or subjects."""
+    for lim in protocol.binomial_responses:
+        if column in (lim.events, lim.subjects):
             events, subjects = runs.counts[lim.name]
             return np.asarray(events if column == lim.events else subjects, dtype=float).copy()
     return np.asarray(runs.Y[column], dtype=float).copy()

@@ -62,3 +62,33 @@ def test_crm_posterior_mean_matches_quadrature():
 def test_true_mtd_is_the_highest_level_within_the_target():
     assert dose_finding.true_mtd([0.05, 0.25, 0.4]) == 2
     assert dose_finding.true_mtd([0.3, 0.4]) is None
+
+
+def test_three_plus_three_along_the_fixed_path_selects_by_its_rule():
+    # trade practice, one agent up one level at a time: certain events from the fifth combination on
+    # stop there, and the fourth (six treated, none with an event) is selected
+    rng = np.random.default_rng(1)
+    rates = [0.0, 0.0, 0.0, 0.0, 1.0, 1.0, 1.0]
+    given, events, selected = dose_finding.path_trial(rates, rng)
+    assert selected == dose_finding.PATH[3] and given.count(dose_finding.PATH[3]) == 6
+    assert dose_finding.PATH[5] not in given and sum(events) == 3
+    steps = np.abs(np.diff(np.array(dose_finding.PATH, float), axis=0)) > 0
+    assert np.all(steps.sum(axis=1) == 1)  # each step of the path raises exactly one agent
+
+
+def test_the_mtd_contour_of_the_dose_example_by_its_definition():
+    protocol, found = dose_finding.dose_example()
+    G = dose_finding.admissible(protocol)
+    assert not np.any((G[:, 0] >= 40) & (G[:, 1] >= 8))  # the forbidden corner is never a cohort's
+    assert np.all(G[:, 0] / 80 + G[:, 1] / 8 <= 1.5 + 1e-12)  # nor is a combination past the cap
+    rate = found.scenarios[0].problem.evaluate(G)["dlt_rate"]
+    contour = dose_finding.mtd_contour(protocol, G, rate)
+    at = {tuple(g): r for g, r in zip(G.tolist(), rate)}
+    a_levels, b_levels = (list(f.levels) for f in protocol.factors)
+    for g, r in at.items():
+        up = [(a_levels[a_levels.index(g[0]) + 1], g[1])] if g[0] != a_levels[-1] else []
+        up += [(g[0], b_levels[b_levels.index(g[1]) + 1])] if g[1] != b_levels[-1] else []
+        on = r <= 0.25 and all(at.get(h, 2.0) > 0.25 for h in up)
+        assert (g in contour) == on, g
+    # the expected truth, by hand from its formula: (20, 4) is at 0.24 and both steps up exceed 0.25
+    assert (20.0, 4.0) in contour and (10.0, 4.0) not in contour

@@ -59,6 +59,11 @@ every line of the notes files, equal the old tables' cells and ``# `` lines
 Then the tested span's push grew with its edge's record (``span_growth``):
 the new setting entered every protocol's fingerprint, which changed the run
 ids; no number of either plan changed.
+Then the dose plan table gained each binomial limit's predicted rate
+(``dlt_rate_median``, ``dlt_rate_lo95``, ``dlt_rate_hi95``): its hash, and the
+record body that names the table, changed; with those three columns
+removed the new table hashes to the old value exactly, and its exclusion
+table and the tablet blend's files did not change.
 """
 
 from __future__ import annotations
@@ -92,9 +97,9 @@ GOLDEN = {
         "02ae57d488e85f1e2c44b5b2edeae3bb1c5c49c4f1ac17a0132714ee237fc321",
     ),
     "dose_combination": (
-        "a8f14e7f857be2924e6cb3e41a90b788bb8f00a49c54a43af3f5c5017afcff8f",
+        "6c38020cd3e763a6eb78bce56f9524c249e196bcfc52897edc57c30e5fd0e034",
         "b885f5c39a332822da99c46cfc27b1c1778dcdd5ef0d6167631e571c5ea5229e",
-        "fb5d924b3b80168ba0180c3844a802d222b42b263fb707236687df9acf4e7023",
+        "57782d04acdaa4b969def097deb0cc46d6ef3b869e7d8f34ee94887bcc7e39f6",
     ),
 }
 

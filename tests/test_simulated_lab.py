@@ -112,3 +112,24 @@ def test_a_scenario_it_cannot_use_is_refused_and_nothing_is_written(tmp_path, ca
                "--out", tmp_path / "m.csv")
     assert code == EXIT_PROTOCOL and words in capsys.readouterr().err
     assert not (tmp_path / "m.csv").exists()
+
+
+def test_a_binomial_objective_is_measured_as_counts_with_the_protocols_cohort(tmp_path):
+    # the objective a response rate (counts), the cohort from escalation.cohort_size: without noise
+    # the responders are the true rate times six, rounded (the formula written out again here)
+    text = DOSE.read_text(encoding="utf-8").replace(
+        'name = "response_score"\ndirection = "maximize"\nunit = "score"',
+        'name = "response_rate"\ndirection = "maximize"\nkind = "binomial"\nevents = "responders"\n'
+        'subjects = "treated"')
+    protocol = tmp_path / "rate.toml"
+    protocol.write_text(text, encoding="utf-8")
+    scenarios = tmp_path / "rate_scenarios.toml"
+    scenarios.write_text('[[scenario]]\nname = "r"\n[scenario.truth]\n'
+                         'response_rate = "logistic(-2 + 0.04 * dose_a + 0.3 * dose_b)"\n'
+                         'dlt_rate = "logistic(-3.6 + 0.045 * dose_a + 0.3 * dose_b)"\n', encoding="utf-8")
+    start(protocol, tmp_path / "s.csv", n=4)
+    assert lab(protocol, scenarios, "--scenario", "r", "--runs", tmp_path / "s.csv", "--out", tmp_path / "m.csv",
+               "--noise-scale", 0) == 0
+    m = pd.read_csv(tmp_path / "m.csv")
+    assert (m["treated"] == 6).all() and (m["dlt_subjects"] == 6).all()
+    np.testing.assert_array_equal(m["responders"], np.rint(6 * logistic(-2 + 0.04 * m.dose_a + 0.3 * m.dose_b)))

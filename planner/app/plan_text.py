@@ -9,6 +9,7 @@ columns, with the run id repeated in every block.
 from __future__ import annotations
 
 from guardband.planner.app.textable import render_table
+from guardband.planner.step.rates import limit_rate_bands
 from guardband.planner.step.result import PlanResult
 
 __all__ = ["settings_table", "figures_table"]
@@ -25,21 +26,34 @@ def settings_table(result: PlanResult, step_label: str) -> str:
     return render_table(header, rows, keys=2)
 
 
+def _band(band, k: int) -> str:
+    """"0.0812 (0.0101 to 0.436)": a rate's median and 95% interval, or "-" without a model."""
+    if band is None:
+        return "-"
+    median, lo, hi = (float(a[k]) for a in band)
+    return f"{median:.3g} ({lo:.3g} to {hi:.3g})"
+
+
 def figures_table(result: PlanResult, step_label: str) -> str:
     """What the models say about each proposal: the objective with its interval, each limit's
-    probability, the joint figure, the value of the rule that ranked it, its origin."""
+    probability (a binomial limit's predicted rate with its interval too), the joint figure, the
+    value of the rule that ranked it, its origin."""
     p = result.protocol
     obj = p.objective
     unit = f" [{obj.unit}]" if obj.unit else ""
     rule = p.ranking.rule if result.mode == "improve" else None
-    header = ["run_id", f"{obj.name}{unit}", "95% interval", *[f"P({n} ok)" for n in p.limit_names], "joint"]
+    bands = limit_rate_bands(result)  # a binomial limit: its predicted true rate too
+    header = ["run_id", f"{obj.name}{unit}", "95% interval",
+              *[h for n in p.limit_names for h in ([f"P({n} ok)", f"{n} (95% interval)"] if n in bands
+                                                     else [f"P({n} ok)"])], "joint"]
     if rule is not None and rule != "mean":  # the mean rule's value is the predicted value itself
         header.append(f"{rule} value")
     header.append("origin")
     rows = []
-    for q in result.proposals:
+    for k, q in enumerate(result.proposals):
         row = [_run_id(step_label, q.rank), q.mean, f"{q.lo95:.4g} to {q.hi95:.4g}",
-               *[q.p[n] for n in p.limit_names], q.joint]
+               *[c for n in p.limit_names for c in ([q.p[n], _band(bands[n], k)] if n in bands else [q.p[n]])],
+               q.joint]
         if rule is not None and rule != "mean":
             row.append(q.values.get(rule))
         rows.append(row + [q.origin])

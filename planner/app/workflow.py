@@ -224,21 +224,26 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
 # ------------------------------------------------------------------- plan
 def plan_table(result: PlanResult, *, step_label: str) -> tuple[list[str], list[list]]:
     """The plan table: proposed runs and what the models say about each."""
+    from guardband.planner.step.rates import limit_rate_bands  # here: `check` never loads the step
+
     p = result.protocol
     obj = p.objective.name
+    bands = limit_rate_bands(result)  # a binomial limit's predicted true rate: median and 95% interval
     header = [
         "rank", RUN_ID, *p.factor_names,
         f"{obj}_mean", f"{obj}_lo95", f"{obj}_hi95",
         *[f"p_{n}" for n in p.limit_names],
+        *[f"{n}_{part}" for n in bands for part in ("median", "lo95", "hi95")],
         "joint", "ei", "pi", "bound", "mean", "origin",
     ]
     rows = []
-    for prop in result.proposals:
+    for k, prop in enumerate(result.proposals):
         v = prop.values
         rows.append([
             prop.rank, f"{step_label}-{prop.rank:02d}", *[float(x) for x in prop.x],
             prop.mean, prop.lo95, prop.hi95,
             *[prop.p[n] for n in p.limit_names],
+            *[None if b is None else float(a[k]) for b in bands.values() for a in (b or (None,) * 3)],
             prop.joint, v.get("ei"), v.get("pi"), v.get("bound"), v.get("mean"), prop.origin,
         ])
     return header, rows

@@ -246,20 +246,57 @@ MeasurementSd = Annotated[float | None, Field(
 )]
 
 
+def _check_count_columns(name: str, events, subjects, what: str) -> None:
+    """A binomial response names its two runs-file count columns, all three names different."""
+    if events is None or subjects is None:
+        raise ValueError(f"{what} {name!r} needs `events` and `subjects`: the names of the "
+                         "runs-file columns with the number of events and the number of subjects")
+    _check_name(events, "events column")
+    _check_name(subjects, "subjects column")
+    if len({name, events, subjects}) < 3:
+        raise ValueError(f"{what} {name!r}: the response, its events column and its subjects "
+                         "column need three different names")
+
+
 class Objective(_Strict):
-    """The performance response to improve."""
+    """The performance response to improve.
+
+    ``kind = "binomial"``: the response is a rate of events among subjects
+    (for example responders among the subjects of a cohort). The runs file
+    then gives the two count columns ``events`` and ``subjects`` names
+    instead of the rate; the model is a GP on the logit of the rate
+    (binomial likelihood), and every rule and figure is on the rate, in [0, 1].
+    """
 
     name: str = Field(description="the response's name, as in the runs file's header")
     direction: Literal["maximize", "minimize"] = Field(
         description="whether a larger (maximize) or a smaller (minimize) value is better"
     )
+    kind: Literal["continuous", "binomial"] = Field(
+        default="continuous", description="continuous: a measured value; binomial: a rate given as a "
+        "count of events among subjects (columns `events` and `subjects`), modelled on the logit scale")
+    events: str | None = Field(default=None, description="binomial: runs-file column with the number of events")
+    subjects: str | None = Field(default=None, description="binomial: runs-file column with the number of subjects")
     unit: str = Field(default="", description="the response's unit, shown in tables and figures")
     measurement_sd: MeasurementSd = None
 
     @model_validator(mode="after")
     def _check(self):
         _check_name(self.name, "objective name")
+        if self.kind == "binomial":
+            _check_count_columns(self.name, self.events, self.subjects, "binomial objective")
+            if self.measurement_sd is not None:
+                raise ValueError(f"binomial objective {self.name!r}: `measurement_sd` does not apply (the "
+                                 "counts carry their own uncertainty); remove it")
+        elif self.events is not None or self.subjects is not None:
+            raise ValueError(f"objective {self.name!r}: `events` and `subjects` belong to a "
+                             "kind = \"binomial\" objective")
         return self
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The runs-file columns of this response: its name, or its events and subjects."""
+        return (self.events, self.subjects) if self.kind == "binomial" else (self.name,)
 
 
 class Limit(_Strict):
@@ -357,14 +394,7 @@ class Limit(_Strict):
 
     def _check_binomial(self) -> None:
         name = self.name
-        if self.events is None or self.subjects is None:
-            raise ValueError(f"binomial limit {name!r} needs `events` and `subjects`: the names of the "
-                             "runs-file columns with the number of events and the number of subjects")
-        _check_name(self.events, "events column")
-        _check_name(self.subjects, "subjects column")
-        if len({name, self.events, self.subjects}) < 3:
-            raise ValueError(f"binomial limit {name!r}: the limit, its events column and its subjects "
-                             "column need three different names")
+        _check_count_columns(name, self.events, self.subjects, "binomial limit")
         for side in ("lower", "upper"):
             v = getattr(self, side)
             if v is not None and not 0 < v < 1:
@@ -441,7 +471,7 @@ class Protocol(_Strict):
                 raise ValueError(_twice(f"factor name {n!r} is used twice", n, seen[name_key(n)]))
             seen[name_key(n)] = n
         responses = [self.objective.name] + [lim.name for lim in self.limits]
-        responses += [c for lim in self.limits if lim.kind == "binomial" for c in lim.columns]
+        responses += [c for item in self.binomial_responses for c in item.columns]
         for r in responses:
             if name_key(r) in seen:
                 raise ValueError(_twice(f"name {r!r} is used for a factor and a response (or twice)",
@@ -494,7 +524,12 @@ class Protocol(_Strict):
     @property
     def runs_columns(self) -> tuple[str, ...]:
         """The response columns of a runs file: the objective, then each limit's column(s)."""
-        return (self.objective.name,) + tuple(c for lim in self.limits for c in lim.columns)
+        return self.objective.columns + tuple(c for lim in self.limits for c in lim.columns)
+
+    @property
+    def binomial_responses(self) -> tuple:
+        """The objective and limits of kind "binomial" (rates given as counts), in that order."""
+        return tuple(item for item in (self.objective, *self.limits) if item.kind == "binomial")
 
     def monotone_for(self, limit: Limit) -> bool:
         """Whether the screen holds ``limit``'s rate monotone in the doses.
@@ -517,7 +552,7 @@ class Protocol(_Strict):
     def canonical(self) -> bytes:
         """Canonical JSON of the validated protocol (sorted keys, no NaN).
 
-        A limit's binomial fields are left out while at their defaults, and a
+        A limit's and the objective's binomial fields are left out while at their defaults, and a
         factor without a ``resolution`` is written without the key, so a
         protocol written before they existed keeps its fingerprint (and its
         recorded decision logs replay).
@@ -529,6 +564,9 @@ class Protocol(_Strict):
             for key, default in _LIMIT_LATER_DEFAULTS.items():
                 if lim.get(key, default) == default:
                     lim.pop(key, None)
+        for key in ("kind", "events", "subjects"):
+            if data["objective"].get(key) == _LIMIT_LATER_DEFAULTS[key]:
+                data["objective"].pop(key, None)
         for f in data.get("factors", []):
             if f.get("resolution") is None:
                 f.pop("resolution", None)

@@ -185,7 +185,7 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
     protocol : Protocol
     Y : dict of str to ndarray
         By runs-file column; changed in place: the events and subjects columns
-        of a binomial limit are removed and the limit's rate added (NaN where
+        of a binomial response (the objective or a limit) are removed and its rate added (NaN where
         not measured or where the counts are a problem).
     wheres : list of str
         Each run as messages name it.
@@ -193,9 +193,7 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
         Appended to, naming the row and both columns.
     """
     counts = {}
-    for lim in protocol.limits:
-        if lim.kind != "binomial":
-            continue
+    for lim in protocol.binomial_responses:  # the objective and the limits given as counts
         events, subjects = Y.pop(lim.events), Y.pop(lim.subjects)
         for k, where in enumerate(wheres):
             problem = _count_problem(events[k], subjects[k])
@@ -209,7 +207,7 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
 
 
 def rate_column_problem(limit, label: str) -> str:
-    """Why a column holding a binomial response's rate is refused, and what to give instead."""
+    """Why a column holding a binomial response's rate (objective or limit) is refused, and what to give instead."""
     return (f"{label}: {limit.name!r} is a binomial response and a rate alone cannot be used: give the "
             f"number of events in column {limit.events!r} and the number of subjects in column "
             f"{limit.subjects!r} (for example 1 and 6, not 0.1667)")

@@ -668,7 +668,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
     factor_names, responses = list(protocol.factor_names), list(protocol.runs_columns)
     known_list = [RUN_ID, *factor_names, *responses, NOTES, CAUTIONS]
     known = set(known_list)
-    rates = {lim.name: lim for lim in protocol.limits if lim.kind == "binomial"}
+    rates = {item.name: item for item in protocol.binomial_responses}
     columns = _Columns()
     twice: set[str] = set()
     for j, cell in enumerate(grid.rows[0]):

@@ -27,6 +27,14 @@ def _unit(result: PlanResult) -> str:
     return obj.name + (f" [{obj.unit}]" if obj.unit else "")
 
 
+def _density(o: dict, y):
+    """The predictive density at y: normal, or for a rate expit(f), f ~ N(latent_mean, latent_sd^2),
+    the logit-normal density phi((logit y - m) / s) / (s y (1 - y))."""
+    if "latent_mean" not in o:
+        return norm.pdf(y, o["mean"], o["sd"])
+    return norm.pdf(np.log(y / (1.0 - y)), o["latent_mean"], o["latent_sd"]) / (y * (1.0 - y))
+
+
 def rules_figure(result: PlanResult, salt: str) -> ReportFigure | None:
     """The predicted distribution of the next measured result at each rule's first pick."""
     picks = [e for e in result.rule_picks if e["candidate"] is not None]
@@ -39,18 +47,20 @@ def rules_figure(result: PlanResult, salt: str) -> ReportFigure | None:
     inc = result.incumbent["value"] if result.incumbent else None
     if inc is not None:
         lo, hi = min(lo, inc), max(hi, inc)
+    if "latent_mean" in picks[0]["outcome"]:  # a binomial objective: a rate, inside (0, 1)
+        lo, hi = max(lo, 1e-4), min(hi, 1.0 - 1e-4)
     y = np.linspace(lo, hi, 400)
     handles = []
     for e in picks:
         o, style = e["outcome"], RULE_STYLE[e["rule"]]
         label = e["rule"] + (f" (= {', '.join(e['same_as'])})" if e["same_as"] else "")
-        ax.plot(y, norm.pdf(y, o["mean"], o["sd"]), lw=1.8, **style)
+        ax.plot(y, _density(o, y), lw=1.8, **style)
         handles.append(Line2D([], [], lw=1.8, label=label, **style))
     if inc is not None:
         ax.axvline(inc, color=OKABE_ITO["black"], lw=1.4)
         handles.append(Line2D([], [], color=OKABE_ITO["black"], lw=1.4,
                               label=f"best run that met every limit ({inc:.4g})"))
-    ax.set_xlabel(_unit(result) + ", next measured result")
+    ax.set_xlabel(_unit(result) + (", true rate" if "latent_mean" in picks[0]["outcome"] else ", next measured result"))
     ax.set_ylabel("predicted density")
     ax.set_yticklabels([])
     fig.legend(handles=handles, loc="upper center", ncol=min(len(handles), 5), frameon=False)

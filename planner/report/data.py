@@ -15,6 +15,7 @@ import numpy as np
 
 from guardband.planner.errors import ProtocolError
 from guardband.planner.models.binomial import rate_band
+from guardband.planner.step.rates import objective_band, objective_scale
 from guardband.planner.settings import FEASIBILITY_TOL, Z95
 from guardband.planner.step import PlanResult
 from guardband.safety.limits import ScreenRules
@@ -304,7 +305,7 @@ def slice_at(geo: _Geometry, x0: np.ndarray, j: int, n: int) -> SliceData:
     mean, sd = {}, {}
     for name in geo.protocol.response_names:
         mean[name], sd[name] = geo.predict(name, X)
-    rates = frozenset(r.name for r in geo.rules.limits if r.binomial)
+    rates = frozenset(item.name for item in geo.protocol.binomial_responses)
     return SliceData(j, t, X, mean, sd, discrete, geo.moves_in_proportion([j]), rates)
 
 
@@ -346,8 +347,8 @@ def map_at(geo: _Geometry, x0: np.ndarray, a: int, b: int, n: int) -> MapData:
     obj = np.full(X.shape[0], np.nan)
     if np.any(inside):
         joint[inside] = geo.joint(X[inside])
-        m, _ = geo.predict(geo.protocol.objective.name, X[inside])
-        obj[inside] = m
+        m, sd = geo.predict(geo.protocol.objective.name, X[inside])
+        obj[inside] = objective_band(m, sd, objective_scale(geo.protocol).get("scale"))[0]  # a rate: its mean
     shape = A.shape
     return MapData((a, b), gx, gy, X.reshape(shape + (geo.d,)), inside.reshape(shape),
                    geo.forbidden(X).reshape(shape), joint.reshape(shape), obj.reshape(shape))

@@ -390,7 +390,7 @@ def _slice_intro(geo: _Geometry, factors: Sequence[int]) -> str:
              "is cut at the strip's edge, with an arrow where it reaches furthest. A response's strips share one scale "
              "across the cards. Runs made so far are drawn at their own value of the moved factor, "
              "whatever their other factors: they are projections, not points on the curve."]
-    rates = [r.name for r in geo.rules.limits if r.binomial]
+    rates = [item.name for item in geo.protocol.binomial_responses]
     if rates:
         parts.append(f"A rate of events among subjects ({', '.join(rates)}) is shown as the median and 95% "
                      "interval of its true rate (a Gaussian process on the logit of the rate), so it "

@@ -70,21 +70,42 @@ class CampaignHistory:
         return float(self.broke_limit[self.planned].sum() / n) if n else float("nan")
 
 
-def runs_table_from_arrays(protocol: Protocol, X: np.ndarray, Y: dict) -> RunsTable:
-    """An in-memory runs table (for simulation and tests)."""
+def runs_table_from_arrays(protocol: Protocol, X: np.ndarray, Y: dict, *, cohort: dict | None = None) -> RunsTable:
+    """An in-memory runs table (for simulation and tests).
+
+    A binomial response of the protocol (objective or limit) needs its
+    subjects per run in ``cohort`` (response -> int); its events are the
+    measured rate times them, rounded, and its rate is events / subjects,
+    as a runs file with count columns would give.
+
+    Raises
+    ------
+    ValueError
+        When a binomial response has no cohort size.
+    """
     X = np.asarray(X, dtype=float)
     n = X.shape[0]
-    digest = hashlib.sha256(X.tobytes() + b"".join(np.asarray(Y[r], float).tobytes()
-                                                    for r in protocol.response_names)).hexdigest()
+    Y = {r: np.asarray(Y[r], dtype=float).copy() for r in protocol.response_names}
+    counts = {}
+    for item in protocol.binomial_responses:
+        m = (cohort or {}).get(item.name)
+        if not m:
+            raise ValueError(f"{item.name!r} is a binomial response: give its subjects per run (cohort)")
+        events = np.rint(Y[item.name] * m)
+        subjects = np.where(np.isfinite(events), float(m), np.nan)
+        counts[item.name] = (events, subjects)
+        Y[item.name] = events / subjects
+    digest = hashlib.sha256(X.tobytes() + b"".join(Y[r].tobytes() for r in protocol.response_names)).hexdigest()
     return RunsTable(
         run_ids=tuple(f"R{i + 1:03d}" for i in range(n)),
         X=X.copy(),
-        Y={r: np.asarray(Y[r], dtype=float).copy() for r in protocol.response_names},
+        Y=Y,
         notes=("",) * n,
         flags=(),
         sha256=digest,
         source="simulated",
         factor_names=protocol.factor_names,
+        counts=counts,
     )
 
 
@@ -184,6 +205,7 @@ def run_campaign(
     measure=None,
     pool_size: int | None = None,
     step_kw: dict | None = None,
+    cohort: dict | None = None,
 ) -> CampaignHistory:
     """Run one simulated campaign.
 
@@ -210,6 +232,10 @@ def run_campaign(
     step_kw : dict, optional
         More keyword arguments of every :func:`~guardband.planner.step.plan_step`
         (a strategy's :func:`~guardband.planner.simulation.strategies.step_options`).
+    cohort : dict, optional
+        Subjects per run of each binomial response of the protocol (its
+        measured rates become counts; :func:`runs_table_from_arrays`), e.g. the
+        problem's :attr:`~guardband.planner.simulation.problems.Problem.cohort`.
 
     Returns
     -------
@@ -234,7 +260,7 @@ def run_campaign(
     warm: dict = {}
     step = 0
     while sum(planned) < budget:
-        runs = runs_table_from_arrays(protocol, X, Y)
+        runs = runs_table_from_arrays(protocol, X, Y, cohort=cohort)
         k = min(protocol.batch.size, budget - sum(planned))
         try:
             result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k,

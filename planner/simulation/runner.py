@@ -91,7 +91,7 @@ def _run_task(task: _Task) -> CampaignHistory:
     protocol = parse_protocol(task.protocol_data, source=f"strategy {task.key}")
     return run_campaign(protocol, task.problem.evaluate, n_start=task.n_start, budget=task.budget,
                         seed=seed, X_start=X_start, measure=measure, pool_size=task.pool_size,
-                        step_kw=task.step_kw)
+                        step_kw=task.step_kw, cohort=task.problem.cohort)
 
 
 def run_in_workers(fn, jobs, *, workers: int, progress=None) -> list:

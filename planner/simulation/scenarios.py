@@ -52,7 +52,7 @@ from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.reading import read_toml
 from guardband.planner.inputs.protocol import Protocol, _format_loc, _plain
 from guardband.planner.simulation.formulas import FormulaError, parse_formula
-from guardband.planner.simulation.problems import Problem, locate_optimum
+from guardband.planner.simulation.problems import Problem, _discrete_grid, locate_optimum
 
 __all__ = ["Scenario", "ScenarioSet", "load_scenarios", "parse_scenarios", "FormulaTruth", "PathTruth",
            "CHECK_POINTS", "DRAW_OPTIMUM_SAMPLES"]
@@ -219,19 +219,59 @@ def _formula_truth(source: str, path: str, protocol: Protocol, entry: ScenarioEn
 
 
 def _check_values(source: str, path: str, protocol: Protocol, truth, cohort: dict) -> None:
-    """Refuse a truth that is not finite on the design space, or a cohort rate outside [0, 1]."""
+    """Refuse a truth that is not finite on the design space, or a rate outside [0, 1]: a cohort
+    rate, or the true rate of a binomial response (objective or limit)."""
     space = protocol.design_space()
     X = space.sample(CHECK_POINTS, rng=np.random.default_rng(0))
+    levels = _level_grid(space)
+    if levels is not None:  # every level combination too: a rate may leave [0, 1] at one corner only
+        X = np.vstack([X, levels])
     Y = truth(X)
+    rates = {item.name for item in protocol.binomial_responses}
     for r, v in Y.items():
         bad = ~np.isfinite(v)
         if np.any(bad):
             at = ", ".join(f"{n}={x:.6g}" for n, x in zip(protocol.factor_names, X[np.argmax(bad)]))
             raise ProtocolError(f"{source}: {path}.truth.{r}: the formula is not a finite number at {at} "
                                 "(log or sqrt of a negative number, or a division by zero?)")
-        if r in cohort and (np.min(v) < 0 or np.max(v) > 1):
+        out = (v < 0) | (v > 1)
+        if r in rates and np.any(out):
+            at = ", ".join(f"{n}={x:.6g}" for n, x in zip(protocol.factor_names, X[np.argmax(out)]))
+            raise ProtocolError(f"{source}: {path}.truth.{r}: {r!r} is a binomial response, so its formula is "
+                                f"the true rate and must lie in [0, 1]; it ranges over [{np.min(v):.4g}, "
+                                f"{np.max(v):.4g}] (at {at} it is {v[np.argmax(out)]:.4g}); write it through "
+                                "logistic(...), for example logistic(-3 + 0.05 * dose)")
+        if r in cohort and np.any(out):
             raise ProtocolError(f"{source}: {path}.cohort.{r}: a rate measured out of a cohort must lie "
                                 f"in [0, 1]; the formula ranges over [{np.min(v):.4g}, {np.max(v):.4g}]")
+
+
+def _level_grid(space, most: int = 20_000):
+    """Every level combination in the space (:func:`problems._discrete_grid`) when every factor is
+    discrete and they are at most ``most``, else None."""
+    if len(space.levels or {}) < space.n_factors:
+        return None
+    if np.prod([len(space.levels[j]) for j in range(space.n_factors)]) > most:
+        return None
+    return _discrete_grid(space)
+
+
+def _cohort(source: str, path: str, protocol: Protocol, entry: ScenarioEntry) -> dict:
+    """Subjects per run of each rate: the scenario's, else (a binomial response) the protocol's cohort size."""
+    out = dict(entry.cohort)
+    size = protocol.escalation.cohort_size if protocol.escalation is not None else None
+    for item in protocol.binomial_responses:
+        if item.name in entry.noise:
+            raise ProtocolError(f"{source}: {path}.noise.{item.name}: {item.name!r} is a binomial response; "
+                                "its spread comes from the counts (events ~ Binomial(subjects, true rate)), "
+                                "so it takes no noise; remove it")
+        if item.name not in out:
+            if size is None:
+                raise ProtocolError(f"{source}: {path}.cohort.{item.name}: {item.name!r} is a binomial response: "
+                                    f"give its subjects per run ({item.name} = 6 in [scenario.cohort]) or "
+                                    "escalation.cohort_size in the protocol")
+            out[item.name] = int(size)
+    return out
 
 
 def _fitted_models(source: str, path: str, protocol: Protocol, runs_path: Path) -> tuple[tuple, dict]:
@@ -272,16 +312,21 @@ def _scenario(source: str, k: int, protocol: Protocol, entry: ScenarioEntry, fol
         raise ProtocolError(f"{source}: {path}: give either truth (one formula per response) or "
                             "draw_from_runs (a runs file), not both and not neither")
     models, fitted = (), {}
+    cohort = _cohort(source, path, protocol, entry)
     if entry.truth:
         truth = _formula_truth(source, path, protocol, entry)
-        _check_values(source, path, protocol, truth, entry.cohort)
+        _check_values(source, path, protocol, truth, cohort)
     else:
+        if protocol.binomial_responses:
+            raise ProtocolError(f"{source}: {path}.draw_from_runs: drawn truths are not available for a "
+                                "protocol with binomial responses (they would be drawn as Gaussian values, "
+                                "not rates); state each true rate as a formula in [scenario.truth]")
         models, fitted = _fitted_models(source, path, protocol, folder / entry.draw_from_runs)
         truth = None
     problem = Problem(
         name=entry.name, source=f"scenario {entry.name!r} of {source}" + (f": {entry.note}" if entry.note else ""),
         protocol_dict=protocol.model_dump(mode="python"), evaluate=truth, optimum=math.nan, optimum_x=(),
-        noise=_noise(protocol, entry, fitted), cohort=dict(entry.cohort),
+        noise=_noise(protocol, entry, fitted), cohort=cohort,
     )
     if truth is not None:
         problem = _with_optimum(problem, where=f"{source}: {path}")

@@ -148,7 +148,7 @@ def _run_task(task: _Task) -> tuple[CampaignHistory, float]:
                                budget=task.budget, seed=seed, measure=measure, pool_size=task.pool_size)
             return history, float(problem.optimum)
         history = run_campaign(protocol, problem.evaluate, n_start=task.n_start, budget=task.budget, seed=seed,
-                               X_start=X_start, measure=measure, pool_size=task.pool_size)
+                               X_start=X_start, measure=measure, pool_size=task.pool_size, cohort=problem.cohort)
     return history, float(problem.optimum)
 
 

@@ -314,9 +314,20 @@ _RULES = {
 RULES = MappingProxyType(_RULES)
 
 
-def _rule(name: str) -> Rule:
+def _rule(name: str, scale: str = "response") -> Rule:
+    """The rule ``name`` on a model's scale: "response" (the mean and sd are the response's), or
+    "logit" (a binomial objective: they are the latent logit's, and the rule is the rate's;
+    :mod:`.rates`)."""
+    if scale == "logit":
+        from guardband.planner.step.rates import RATE_RULES
+
+        rules = RATE_RULES
+    elif scale == "response":
+        rules = RULES
+    else:
+        raise ValueError(f"unknown model scale {scale!r}; known: response, logit")
     try:
-        return RULES[name]
+        return rules[name]
     except (KeyError, TypeError):
         raise ValueError(f"unknown ranking rule {name!r}; known rules: {', '.join(RULES)}") from None
 
@@ -330,6 +341,7 @@ def score(
     maximize: bool = False,
     kappa: float = 2.0,
     xi: float = 0.0,
+    scale: str = "response",
 ) -> np.ndarray:
     """Score of each candidate under ``rule``; larger is better.
 
@@ -345,12 +357,15 @@ def score(
         Width of the confidence bound, in sd.
     xi : float
         Margin of the probability of improvement, response units.
+    scale : str
+        "response", or "logit" for a binomial objective (``mean``, ``sd``
+        and ``incumbent`` latent, the rule the rate's; :mod:`.rates`).
 
     Returns
     -------
     array of shape (n_candidates,)
     """
-    r = _rule(rule)
+    r = _rule(rule, scale)
     if r.needs_incumbent and incumbent is None:
         raise ValueError(
             f"rule {rule!r} needs an incumbent (the best objective among runs that met every limit); "
@@ -367,15 +382,18 @@ def all_values(
     maximize: bool = False,
     kappa: float = 2.0,
     xi: float = 0.0,
+    scale: str = "response",
 ) -> dict[str, np.ndarray]:
     """Every rule's value in natural units, keyed by rule name.
 
     ``"ei"`` (response units), ``"pi"`` (probability), ``"bound"`` and
     ``"mean"`` (response units), each of shape (n_candidates,). Without an
     incumbent, ``"ei"`` and ``"pi"`` are NaN (there is nothing to improve on).
+    With ``scale="logit"`` (a binomial objective) every value is the rate's, in [0, 1].
     """
     out = {}
-    for name, r in RULES.items():
+    for name in RULES:
+        r = _rule(name, scale)
         if r.needs_incumbent and incumbent is None:
             shape = np.broadcast_shapes(np.shape(mean), np.shape(sd))
             out[name] = np.full(shape, np.nan)

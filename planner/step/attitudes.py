@@ -137,8 +137,13 @@ def _distances(picks: list[dict], U, own_rule: str) -> None:
 
 def _pick_figures(ctx, pool, origin, i: int, inc_value, maximize: bool) -> dict:
     """One candidate's factors, screen figures and outcome figures (next measurement)."""
-    mean, sd = ctx.models.objective.predict(pool.U[i:i + 1], include_noise=True)
-    figs = outcome_figures(mean, sd, inc_value, maximize=maximize)
+    if ctx.protocol.objective.kind == "binomial":  # the true rate, from the latent logit (no measurement noise)
+        from guardband.planner.step.rates import rate_outcome_figures
+
+        figs = rate_outcome_figures(pool.mu[i:i + 1], pool.sd[i:i + 1], inc_value, maximize=maximize)
+    else:
+        mean, sd = ctx.models.objective.predict(pool.U[i:i + 1], include_noise=True)
+        figs = outcome_figures(mean, sd, inc_value, maximize=maximize)
     res = pool.result
     return {
         "candidate": i,
@@ -161,6 +166,7 @@ def threshold_price(ctx, pool, inc_value, rank_kw: dict, *, refine_starts: int =
     raising the threshold can never raise it, and the point behind each
     figure passes the screen at that threshold.
     """
+    from guardband.planner.step.rates import objective_band
     from guardband.planner.step.refine import refine
 
     own = float(ctx.protocol.screen.threshold)
@@ -176,7 +182,8 @@ def threshold_price(ctx, pool, inc_value, rank_kw: dict, *, refine_starts: int =
             best = idx[np.lexsort((idx, -_signed(pool.mu[idx], ctx.protocol.maximize)))][:refine_starts]
             found.append(refine(ctx_t, pool.X, best, inc_value, Mode.IMPROVE, kw, rule="mean"))
     X_all = np.vstack(found)
-    U_all, mu_all, _, preds_all = ctx.predict(X_all)
+    U_all, mu_all, sd_all, preds_all = ctx.predict(X_all)
+    shown = objective_band(mu_all, sd_all, rank_kw.get("scale"))[0]  # a binomial objective: the mean rate
     n_pool = pool.X.shape[0]
     out = []
     for t in thresholds:
@@ -186,8 +193,8 @@ def threshold_price(ctx, pool, inc_value, rank_kw: dict, *, refine_starts: int =
                  "best_mean": None, "x": None}
         if np.any(passes):
             idx = np.flatnonzero(passes)
-            j = int(idx[np.lexsort((idx, -_signed(mu_all[idx], ctx.protocol.maximize)))][0])
-            entry.update(best_mean=float(mu_all[j]),
+            j = int(idx[np.lexsort((idx, -_signed(shown[idx], ctx.protocol.maximize)))][0])
+            entry.update(best_mean=float(shown[j]),
                          x={n: float(v) for n, v in zip(ctx.protocol.factor_names, X_all[j])})
         out.append(entry)
     return out

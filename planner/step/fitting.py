@@ -1,6 +1,8 @@
 """The step's models: one GP per response, fitted side by side, each with its checks.
 
-The objective model needs MIN_OBJECTIVE_RUNS measured runs. A limit model's
+The objective model needs MIN_OBJECTIVE_RUNS measured runs; a binomial
+objective (a rate given as counts) gets the binomial model of a limit, its
+prior mean at the logit of the pooled rate (:func:`pooled_logit`). A limit model's
 prior mean sits at its limit; a limit with fewer runs than the protocol
 requires, or whose model cannot be fitted, vouches for nothing (fail
 closed). A limit model's length scales are capped, it is widened when its
@@ -126,7 +128,8 @@ def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale
 
 
 def _fit_binomial(job: dict):
-    """A binomial limit's model: a GP on the logit of the rate (Laplace), with no Gaussian guards.
+    """A binomial response's model (a limit or the objective): a GP on the logit of the rate
+    (Laplace), with no Gaussian guards.
 
     The guards of a Gaussian limit model (the short model, the leave-one-out
     and local widening, the single-run check) answer a Gaussian model's
@@ -135,7 +138,7 @@ def _fit_binomial(job: dict):
     weigh what six subjects weigh), and its prior mean sits at the limit's
     logit, so far from the cohorts it claims nothing.
     """
-    response, U, prior_mean = job["response"], job["U"], job["prior_mean"]
+    response, U, prior_mean, role = job["response"], job["U"], job["prior_mean"], job["role"]
     n_runs = int(len(job["events"]))
     try:
         model = fit_binomial_gp(U, job["events"], job["subjects"], prior_mean=prior_mean,
@@ -144,10 +147,10 @@ def _fit_binomial(job: dict):
                                 ml_runs_per_hyperparameter=job["ml_runs_per_hyperparameter"],
                                 cohort_size=job["cohort_size"])
     except ModelError as exc:
-        return None, ModelSummary(response, "limit", n_runs, ModelStatus.NOT_FITTED, str(exc), prior_mean=prior_mean)
+        return None, ModelSummary(response, role, n_runs, ModelStatus.NOT_FITTED, str(exc), prior_mean=prior_mean)
     cov, rmse = loo_summary(model, model.y) if n_runs >= 3 else (None, None)
     return model, ModelSummary(
-        response=response, role="limit", n_runs=n_runs, status=ModelStatus.OK, message=model.message,
+        response=response, role=role, n_runs=n_runs, status=ModelStatus.OK, message=model.message,
         hyperparameters=model.hyperparameters.to_dict(), log_marginal_likelihood=float(model.log_marginal_likelihood),
         prior_mean=prior_mean, loo_coverage=cov, loo_rmse=rmse)
 
@@ -200,10 +203,14 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
             f"{MIN_OBJECTIVE_RUNS} are needed to plan. Make a starting design with "
             "`guardband start` and measure it first"
         )
-    jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
-                 ids=[runs.run_ids[i] for i in np.flatnonzero(m_obj)],
-                 prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
-                 noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None, local=None)]
+    cohort = protocol.escalation.cohort_size if protocol.escalation is not None else None
+    if obj.kind == "binomial":
+        jobs = [_binomial_job(obj, None, runs, U_runs, m_obj, warm_start, children[2], None, None, cohort)]
+    else:
+        jobs = [dict(response=obj.name, role="objective", U=U_runs[m_obj], y=runs.Y[obj.name][m_obj],
+                     ids=[runs.run_ids[i] for i in np.flatnonzero(m_obj)],
+                     prior_mean=None, warm=_warm(warm_start, obj.name), seed=_seed_of(children[2]),
+                     noise_sd=obj.measurement_sd, length_scale_max=None, widen=False, short=None, local=None)]
     early: dict[int, ModelSummary] = {}
     # a limit model's length scales are capped so that far from the runs it
     # returns to its prior mean (the limit) rather than carry a flat response,
@@ -220,7 +227,6 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
                                     prior_mean=rule.prior_mean)
             continue
         if lim.kind == "binomial":
-            cohort = protocol.escalation.cohort_size if protocol.escalation is not None else None
             jobs.append(_binomial_job(lim, rule, runs, U_runs, mask, warm_start, children[3 + k], k, cap, cohort))
             continue
         jobs.append(dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
@@ -238,16 +244,28 @@ def _jobs(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used,
     return jobs, early
 
 
-def _binomial_job(lim, rule, runs: RunsTable, U_runs, mask, warm_start, child, k: int, cap: float,
-                  cohort_size: int | None) -> dict:
-    if lim.name not in runs.counts:
-        raise ModelError(f"limit {lim.name!r} is binomial but the runs give no counts for it; give the "
-                         f"columns {lim.events!r} and {lim.subjects!r}")
-    events, subjects = runs.counts[lim.name]
-    return dict(response=lim.name, role="limit", U=U_runs[mask], y=runs.Y[lim.name][mask],
-                events=events[mask], subjects=subjects[mask], prior_mean=rule.prior_mean,
-                warm=warm_start.get(lim.name), seed=_seed_of(child), k=k, length_scale_max=cap,
+def _binomial_job(item, rule, runs: RunsTable, U_runs, mask, warm_start, child, k: int | None,
+                  cap: float | None, cohort_size: int | None) -> dict:
+    """A binomial response's fit job: a limit (``rule`` given: the prior mean at the limit's logit)
+    or the objective (``rule`` None: the prior mean at the logit of the pooled rate, see
+    :func:`pooled_logit`)."""
+    role = "objective" if rule is None else "limit"
+    if item.name not in runs.counts:
+        raise ModelError(f"{role} {item.name!r} is binomial but the runs give no counts for it; give the "
+                         f"columns {item.events!r} and {item.subjects!r}")
+    events, subjects = runs.counts[item.name]
+    prior_mean = pooled_logit(events[mask], subjects[mask]) if rule is None else rule.prior_mean
+    return dict(response=item.name, role=role, U=U_runs[mask], y=runs.Y[item.name][mask],
+                events=events[mask], subjects=subjects[mask], prior_mean=prior_mean,
+                warm=warm_start.get(item.name), seed=_seed_of(child), k=k, length_scale_max=cap,
                 cohort_size=cohort_size)
+
+
+def pooled_logit(events, subjects) -> float:
+    """The logit of the pooled rate with Jeffreys' half counts, log((K + 1/2) / (N - K + 1/2)):
+    a binomial objective's prior mean, finite when no run (or every run) had an event."""
+    K, N = float(np.sum(events)), float(np.sum(subjects))
+    return float(np.log((K + 0.5) / (N - K + 0.5)))
 
 
 def fit_models(protocol: Protocol, rules: ScreenRules, runs: RunsTable, U_runs, used, *, warm_start: dict,

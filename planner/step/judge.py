@@ -24,10 +24,10 @@ import numpy as np
 
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
-from guardband.planner.settings import Z95
 from guardband.planner.step.acquisition import all_values
 from guardband.planner.step.batch import MIN_SEPARATION
 from guardband.planner.step.plan import prepare_step
+from guardband.planner.step.rates import objective_band
 from guardband.planner.step.result import Mode, _num
 from guardband.safety.screen import step_distance
 
@@ -131,9 +131,10 @@ def _verdicts(st, X, names) -> tuple[list[RecipeVerdict], np.ndarray, list[str]]
     res = st.ctx.screen(X, U, lims)
     values = all_values(mu, sd, st.inc_value, **st.rank_kw)
     hard = st.ctx.hard(X, U)
+    mean, sd_shown, lo95, hi95 = objective_band(mu, sd, st.rank_kw.get("scale"))  # a binomial objective: its rate
     verdicts = [
-        RecipeVerdict(name=str(names[i]), x=X[i].copy(), inside=bool(hard.inside[i]), mean=float(mu[i]),
-                      sd=float(sd[i]), lo95=float(mu[i] - Z95 * sd[i]), hi95=float(mu[i] + Z95 * sd[i]),
+        RecipeVerdict(name=str(names[i]), x=X[i].copy(), inside=bool(hard.inside[i]), mean=float(mean[i]),
+                      sd=float(sd_shown[i]), lo95=float(lo95[i]), hi95=float(hi95[i]),
                       p={n: float(res.P[i, j]) for j, n in enumerate(res.limit_names)},
                       joint=float(res.joint[i]), values={k: float(v[i]) for k, v in values.items()},
                       passes=bool(res.survives[i]), reason=str(res.reason[i]) or "passes",

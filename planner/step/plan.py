@@ -46,7 +46,6 @@ import numpy as np
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
-from guardband.planner.settings import Z95
 from guardband.planner.step.acquisition import all_values, score as rule_score, weighted_by_joint
 from guardband.planner.step.attitudes import rule_picks, threshold_price
 from guardband.planner.step.batch import Pool, greedy_batch
@@ -54,6 +53,7 @@ from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.step.explain import pick_explanations
+from guardband.planner.step.rates import objective_band, objective_scale, rate_incumbent
 from guardband.planner.step.refine import refine, rescue_figure
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
@@ -72,8 +72,11 @@ def safe_runs_mask(protocol: Protocol, runs: RunsTable) -> np.ndarray:
     return ~runs.pending & meets_limits(limit_rules(protocol), runs.Y, len(runs.pending))
 
 
-def _incumbent(protocol: Protocol, runs: RunsTable, safe) -> tuple[dict | None, str, list[str]]:
-    """The best measured objective among runs that met every limit, the mode, and a message."""
+def _incumbent(protocol: Protocol, runs: RunsTable, safe, model=None, U_runs=None) -> tuple[dict | None, str, list[str]]:
+    """The best measured objective among runs that met every limit, the mode, and a message
+    (a binomial objective's: :func:`.rates.rate_incumbent`)."""
+    if protocol.objective.kind == "binomial":
+        return rate_incumbent(protocol, runs, safe, model, U_runs)
     y_obj = runs.Y[protocol.objective.name]
     cand = safe & np.isfinite(y_obj)
     if not np.any(cand):
@@ -162,11 +165,11 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
         f"cannot be proposed; {near.shape[0]} grid neighbours of the refined candidates were added"]
 
 
-def _proposals(pool: Pool, chosen, origin, values, why) -> list[Proposal]:
+def _proposals(pool: Pool, chosen, origin, values, why, scale=None) -> list[Proposal]:
     res = pool.result
-    return [Proposal(rank=r, x=pool.X[i].copy(), origin=str(origin[i]), mean=float(pool.mu[i]),
-                     sd=float(pool.sd[i]), lo95=float(pool.mu[i] - Z95 * pool.sd[i]),
-                     hi95=float(pool.mu[i] + Z95 * pool.sd[i]),
+    mean, sd, lo95, hi95 = objective_band(pool.mu, pool.sd, scale)  # a binomial objective's: its rate
+    return [Proposal(rank=r, x=pool.X[i].copy(), origin=str(origin[i]), mean=float(mean[i]),
+                     sd=float(sd[i]), lo95=float(lo95[i]), hi95=float(hi95[i]),
                      p={n: float(res.P[i, j]) for j, n in enumerate(res.limit_names)},
                      joint=float(res.joint[i]), values={key: _num(v[i]) for key, v in values.items()},
                      score=float(pool.scores[i]), given_earlier=why[r - 1][0], reason=why[r - 1][1])
@@ -242,14 +245,15 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
     models = fit_models(protocol, rules, runs, U_runs, used, warm_start=warm_start, children=children,
                         n_free=int(scaler.free.sum()), textbook=textbook)
     safe = safe_runs_mask(protocol, runs)
-    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe)
+    incumbent, mode, inc_messages = _incumbent(protocol, runs, safe, models.objective, U_runs)
     anchors, basis = (U_runs[safe], "run that met every limit") if np.any(safe) else (
         U_runs[used], "measured run (none has met every limit yet)")
     ctx = StepContext(protocol, space, scaler, rules, models, anchors, basis, weigh_by_joint=textbook)
     inc_messages = inc_messages + _grow_span(ctx, U_runs[used], safe[used])
-    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi)
+    rank_kw = dict(maximize=protocol.maximize, kappa=protocol.ranking.kappa, xi=protocol.ranking.xi,
+                   **objective_scale(protocol))
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
-                        inc_value=incumbent["value"] if incumbent else None, rank_kw=rank_kw,
+                        inc_value=incumbent.get("latent", incumbent["value"]) if incumbent else None, rank_kw=rank_kw,
                         scores_of=_scorer(protocol, mode, rank_kw, textbook), messages=models.warnings() + inc_messages,
                         warm_start=warm_start, children=children)
 
@@ -336,7 +340,7 @@ def plan_step(
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)
     return PlanResult(
         protocol=protocol, factor_names=protocol.factor_names, seed=int(seed), mode=st.mode,
-        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values, why), pool=pool.X, origin=origin,
+        incumbent=st.incumbent, proposals=_proposals(pool, chosen, origin, values, why, rank_kw.get("scale")), pool=pool.X, origin=origin,
         screen=pool.result, scores=np.asarray(pool.scores, dtype=float), models=models.summaries,
         messages=list(pool.result.messages) + messages, warm_start=st.warm_start, runs_sha256=runs.sha256,
         n_runs_used=int(used.sum()), n_in_progress=int(in_progress.sum()), flags=runs.flags,

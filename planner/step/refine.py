@@ -26,7 +26,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.errors import ModelError
-from guardband.planner.step.acquisition import log_expected_improvement, score as rule_score, weighted_by_joint
+from guardband.planner.step.acquisition import score as rule_score, weighted_by_joint
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.result import Mode
 from guardband.safety.screen import figures_at
@@ -56,10 +56,7 @@ def _values_at(ctx: StepContext, X, mode: str, inc_value, rank_kw, rule: str, re
         score = J
     else:
         mu, sd = ctx.models.objective.predict(U)
-        if rule == "ei":
-            score = log_expected_improvement(mu, sd, inc_value, maximize=rank_kw["maximize"])
-        else:
-            score = rule_score(rule, mu, sd, inc_value, **rank_kw)
+        score = rule_score(rule, mu, sd, inc_value, **rank_kw)
         if ctx.weigh_by_joint:
             score = weighted_by_joint(score, J)
     # aim a little inside the screen (REFINE_MARGIN) so that the refined

@@ -59,6 +59,14 @@ every line of the notes files, equal the old tables' cells and ``# `` lines
 Then the tested span's push grew with its edge's record (``span_growth``):
 the new setting entered every protocol's fingerprint, which changed the run
 ids; no number of either plan changed.
+Then the batch changed on purpose: later picks are valued over sampled
+results of the earlier ones (``batch.method = "sampled"``), the search
+draws and refines per proposed run (``batch.search_per_run``), and the
+three new ``[batch]`` settings entered every fingerprint. The tablet plan's
+picks and its exclusion table changed (16,000 candidates instead of 4,000);
+the dose example's exclusion table did not (its discrete lattice holds the
+same candidates), its plan table changed through the run ids; both record
+bodies gained the search's note.
 """
 
 from __future__ import annotations
@@ -87,14 +95,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "4f3fee672a1217049548b577524e6b24f030cca96bca4204532e72c026b9b6a6",
-        "95dd5eb911fcc1e9785faa5fd6c4defba741e545bcac3b27a8be39380b08a375",
-        "02ae57d488e85f1e2c44b5b2edeae3bb1c5c49c4f1ac17a0132714ee237fc321",
+        "b70de96d5f2e0e13a2858a3d38848f1c40e50c8d4cda0723d6886accd96eeb61",
+        "a18f3fd4ef3c5201bcb63bfd70bf470db3524b00d86920dc5b66bce1ff9b8e0f",
+        "e14e4c10540d233ee3948f2ee8683f4edc1bdf90498c5fc81239d03289a83595",
     ),
     "dose_combination": (
-        "a8f14e7f857be2924e6cb3e41a90b788bb8f00a49c54a43af3f5c5017afcff8f",
+        "329cca28d1abb171a036bff76fe576f7bb9df3fd248f4741a8b1782730527945",
         "b885f5c39a332822da99c46cfc27b1c1778dcdd5ef0d6167631e571c5ea5229e",
-        "fb5d924b3b80168ba0180c3844a802d222b42b263fb707236687df9acf4e7023",
+        "b22ebb4ba5236079ffb068d6a54937fd868a987f0d9f0bd52eb0780ef63ad1b8",
     ),
 }
 

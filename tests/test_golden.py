@@ -66,7 +66,8 @@ three new ``[batch]`` settings entered every fingerprint. The tablet plan's
 picks and its exclusion table changed (16,000 candidates instead of 4,000);
 the dose example's exclusion table did not (its discrete lattice holds the
 same candidates), its plan table changed through the run ids; both record
-bodies gained the search's note.
+bodies gained the search's note, and the hint on a pick worth little now
+names ``batch.least_worth`` (both plan tables).
 """
 
 from __future__ import annotations
@@ -95,14 +96,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "b70de96d5f2e0e13a2858a3d38848f1c40e50c8d4cda0723d6886accd96eeb61",
+        "2b92e7a0c7f76e0e98ffebd9c42379c3949403958a08bb15bf7ea880492855a8",
         "a18f3fd4ef3c5201bcb63bfd70bf470db3524b00d86920dc5b66bce1ff9b8e0f",
-        "e14e4c10540d233ee3948f2ee8683f4edc1bdf90498c5fc81239d03289a83595",
+        "56702fa41cf1c55b80baa684f94f166c8d3d175f59b944cef7f59ae01df3efa8",
     ),
     "dose_combination": (
-        "329cca28d1abb171a036bff76fe576f7bb9df3fd248f4741a8b1782730527945",
+        "9a2fe876a793c4bddab2d9a1371e55173b11e37527d1837d7d92fa89fd8dc532",
         "b885f5c39a332822da99c46cfc27b1c1778dcdd5ef0d6167631e571c5ea5229e",
-        "b22ebb4ba5236079ffb068d6a54937fd868a987f0d9f0bd52eb0780ef63ad1b8",
+        "ad2c3186991c48e087bc9a784f315f0363207e28e10fd76842ede458077d9914",
     ),
 }
 

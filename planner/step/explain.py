@@ -58,7 +58,8 @@ def _reason(g: dict, values: dict, first: dict | None, mode: str, rule: str) -> 
         if rule in ("ei", "pi") and a is not None and b:
             text += f" (worth {a / b:.2g} of the first pick's {rule})"
             if a / b < LITTLE_WORTH:
-                text += "; little is expected from it, and a smaller batch (--count) may serve as well"
+                text += ("; little is expected from it, and a smaller batch (--count, or batch.least_worth "
+                         "to stop there) may serve as well")
     return text
 
 

@@ -17,8 +17,13 @@ Two figures per campaign (as in ``frontier.py``):
 Per problem group (each built-in problem, the family): per batch size and
 method, the share of planned runs that broke a limit (pooled, exact 95%
 interval), the median gap and its ratio to one run per step, and stalled
-campaigns. ``--variants`` adds settings of the screen or batch tables
-(``name:section.key=value,...``) for diagnosis, e.g. ``no-span:screen.span_reach=none``.
+campaigns. A plain method name sets ``batch.method`` only (the other
+settings keep their defaults, ``batch.search_per_run`` among them);
+``--variants`` names settings of any table (``name:section.key=value,...``),
+e.g. ``today:batch.method=believer,batch.search_per_run=false`` or
+``no-span:screen.span_reach=none``, and ``--methods`` then lists the names.
+The README's table: ``--family 56 --seeds 2 --budget 24 --batches 1 4 8
+--methods today sampled-only new --variants ...`` (the README gives it whole).
 
 Outputs: ``--out`` (summary) and ``<stem>_campaigns.csv`` (one row per
 campaign; rows of other ``--label`` values are kept).

@@ -64,6 +64,18 @@ Then the dose plan table gained each binomial limit's predicted rate
 record body that names the table, changed; with those three columns
 removed the new table hashes to the old value exactly, and its exclusion
 table and the tablet blend's files did not change.
+Then the batch changed on purpose: later picks are valued over sampled
+results of the earlier ones (``batch.method = "sampled"``), the search
+draws and refines per proposed run (``batch.search_per_run``), and the
+three new ``[batch]`` settings entered every fingerprint. The tablet plan's
+picks and its exclusion table changed (16,000 candidates instead of 4,000);
+the dose example's exclusion table did not (its discrete lattice holds the
+same candidates), its plan table changed through the run ids; both record
+bodies gained the search's note, and the hint on a pick worth little now
+names ``batch.least_worth`` (both plan tables). The two changes above were
+made side by side and met in one tree: the dose plan table and record body
+carry both (its exclusion table and the tablet blend's three hashes are as
+each change left them).
 """
 
 from __future__ import annotations
@@ -92,14 +104,14 @@ OPERATOR = "golden test"
 # name: (plan table, exclusion table, record body), SHA-256
 GOLDEN = {
     "tablet_blend": (
-        "4f3fee672a1217049548b577524e6b24f030cca96bca4204532e72c026b9b6a6",
-        "95dd5eb911fcc1e9785faa5fd6c4defba741e545bcac3b27a8be39380b08a375",
-        "02ae57d488e85f1e2c44b5b2edeae3bb1c5c49c4f1ac17a0132714ee237fc321",
+        "2b92e7a0c7f76e0e98ffebd9c42379c3949403958a08bb15bf7ea880492855a8",
+        "a18f3fd4ef3c5201bcb63bfd70bf470db3524b00d86920dc5b66bce1ff9b8e0f",
+        "56702fa41cf1c55b80baa684f94f166c8d3d175f59b944cef7f59ae01df3efa8",
     ),
     "dose_combination": (
-        "6c38020cd3e763a6eb78bce56f9524c249e196bcfc52897edc57c30e5fd0e034",
+        "c55d593c1b5b4538921020985253aea410d45067e004ff14e368bafb4b516a50",
         "b885f5c39a332822da99c46cfc27b1c1778dcdd5ef0d6167631e571c5ea5229e",
-        "57782d04acdaa4b969def097deb0cc46d6ef3b869e7d8f34ee94887bcc7e39f6",
+        "5c8a42e1b2f5e811dc7178eaf735b8556f2805f5eccc4869d9b4a862bd3042ca",
     ),
 }
 

@@ -144,6 +144,39 @@ class Batch(_Strict):
                       "space at each step", json_schema_extra=_unit("candidates"))
     refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
                         "(0: none)", json_schema_extra=_unit("candidates"))
+    method: Literal["sampled", "believer"] = Field(
+        default="sampled",
+        description=(
+            "how a later pick of a batch is valued given the earlier picks, whose results are not yet "
+            "known: sampled = the ei or pi value averaged over sampled results of the earlier picks "
+            "(each sample's best result counts as the incumbent in that sample), so that a pick beside "
+            "an earlier one keeps the value of the chance that the earlier one disappoints; believer = "
+            "each earlier pick is taken to come out at its predicted mean, which also becomes the "
+            "incumbent. Either way the limits are fantasised towards the limit and every pick must pass "
+            "the screen with and without the fantasies; the bound and mean rules value picks alike "
+            "under both"
+        ),
+    )
+    search_per_run: bool = Field(
+        default=True,
+        description=(
+            "draw pool candidates and refine refine survivors for each run the step proposes, so that "
+            "a batch of 4 searches as widely as four steps of one run (at most 500,000 candidates); "
+            "false: once per step, whatever the batch size"
+        ),
+    )
+    least_worth: float = Field(
+        default=0.0,
+        ge=0,
+        lt=1,
+        description=(
+            "the batch stops early, and the plan says at which pick and why, when a later pick's ei "
+            "(or pi) given the earlier picks is below this share of the first pick's; 0: never. "
+            "Applies to the ei and pi rules once a run has met every limit; a batch size asked for "
+            "on the command line (--count) is always filled"
+        ),
+        json_schema_extra=_unit("share of the first pick's value"),
+    )
 
 
 class ModelSettings(_Strict):

@@ -699,6 +699,17 @@ class PosteriorAt:
         var = np.maximum(self._var, 0.0) + noise
         return m.prior_mean + m.scale * self._z, m.scale * np.sqrt(var)
 
+    def fantasy_direction(self, p: int = -1) -> np.ndarray:
+        """How the mean at every point moves per unit of the ``p``-th conditioned point's
+        standardised surprise (response units): ``scale * c_p / sqrt(s_p)``.
+
+        If that point's result is drawn from its predictive distribution
+        given the data and the points conditioned before it, as ``mean_j +
+        sqrt(s_p) e`` with ``e`` standard normal, the mean everywhere moves by
+        ``e`` times this vector; the variances do not depend on ``e``.
+        """
+        return self._model.scale * self._updates[p]
+
     @limited_blas
     def condition(self, j: int, y_j: float) -> None:
         """Add an observation ``y_j`` (response units) at point ``j``, in place."""

@@ -263,7 +263,10 @@ def run_campaign(
         runs = runs_table_from_arrays(protocol, X, Y, cohort=cohort)
         k = min(protocol.batch.size, budget - sum(planned))
         try:
-            result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step, count=k,
+            # a full batch as the protocol asks (so batch.least_worth may end it early); the last,
+            # cut to the budget, is forced
+            result = plan_step(protocol, runs, seed=int(rng.integers(2**62)) + step,
+                               count=None if k == protocol.batch.size else k,
                                warm_start=warm, pool_size=pool_size, explain=False, **(step_kw or {}))
         except ModelError as exc:
             stalled, message = True, f"step {step + 1}: {exc}"

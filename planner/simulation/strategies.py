@@ -8,7 +8,8 @@ the start region, ``max_step`` and forbidden regions. The *settings*
 protocol (the user's, e.g. ``protocols/tablet_blend.toml``) supplies how
 the planner searches and screens: ``screen.threshold``, ``screen.joint``,
 ``screen.short_model``, ``screen.widen_from_loo``, ``ranking`` (rule,
-kappa, xi), ``batch.size``, ``batch.pool``, ``batch.refine`` and the
+kappa, xi), ``batch.size``, ``batch.pool``, ``batch.refine``, ``batch.method``,
+``batch.search_per_run``, ``batch.least_worth`` and the
 ``model`` table (restarts, the priors rule, the limit models'
 length-scale cap). The measurement sds belong to the world (the problem's
 assays). Without a settings protocol the problem's own values are used.
@@ -74,7 +75,8 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
     settings : Protocol or None
         Supplies screen.threshold, screen.joint, screen.short_model,
         screen.widen_from_loo, ranking, batch.size, batch.pool,
-        batch.refine and the model settings (restarts, the priors rule,
+        batch.refine, batch.method, batch.search_per_run, batch.least_worth and the model
+        settings (restarts, the priors rule,
         the limit models' length-scale cap); None keeps the problem's own.
 
     Returns
@@ -88,7 +90,7 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
         data["screen"]["short_model"] = settings.screen.short_model
         data["screen"]["widen_from_loo"] = settings.screen.widen_from_loo
         data["ranking"] = settings.ranking.model_dump(mode="python")
-        for key in ("size", "pool", "refine"):
+        for key in ("size", "pool", "refine", "method", "search_per_run", "least_worth"):
             data["batch"][key] = getattr(settings.batch, key)
         data["model"] = settings.model.model_dump(mode="python")
     return parse_protocol(data, source=f"problem {problem.name} with settings")

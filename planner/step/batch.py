@@ -1,4 +1,4 @@
-"""The greedy batch: pick, fantasise, re-screen, re-rank.
+"""The batch: pick, fantasise, re-screen, re-rank, one pick at a time.
 
 Take the best survivor, condition every model on its fantasised results,
 re-screen and re-rank, repeat. The objective's fantasy is its posterior mean
@@ -16,6 +16,32 @@ their fantasies first, and no pick lies within MIN_SEPARATION of one; they
 do not move the incumbent (they have no result). A candidate must pass the screen under the models fitted to
 real data *and* under the models with the fantasies, so fantasised data can
 never admit a candidate that the real data would exclude.
+
+How a later pick is valued (``[batch] method``), for the ei and pi rules
+once a run has met every limit:
+
+``sampled`` (the default)
+    The earlier picks' objective results are drawn, ``SAMPLES`` times, from
+    their joint predictive distribution (a scrambled Sobol set of normal
+    draws, seeded by the step, and its mirror image, pushed through the rank-one updates of
+    :class:`~guardband.planner.models.gp.PosteriorAt`); in each draw the
+    best result so far is the incumbent, and a candidate's value is its ei
+    (or pi) averaged over the draws. This is the greedy form of the
+    multi-point expected improvement (Ginsbourger, Le Riche & Carraro 2010;
+    computed by sampling as in Wilson, Hutter & Deisenroth 2018; both from
+    memory): a pick beside an earlier one keeps the value of the chance
+    that the earlier one disappoints, instead of losing it all. Runs in
+    progress are drawn the same way and so count for each draw's incumbent.
+``believer``
+    Each earlier pick comes out at its posterior mean, which also moves the
+    incumbent (the kriging believer above, the only method before).
+
+The bound and mean rules, and the joint figure while no run has met every
+limit, value picks alike under both (their average over the draws is their
+value at the mean). With ``[batch] least_worth`` above 0, the batch stops
+before a later pick whose ei (or pi) given the earlier picks is below that
+share of the first pick's, and says so; a batch size asked for explicitly
+is always filled.
 """
 
 from __future__ import annotations
@@ -24,15 +50,21 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import ndtri
+from scipy.special import logsumexp, ndtri
+from scipy.stats import qmc
 
+from guardband.planner.step.acquisition import RULES, all_values
 from guardband.planner.step.context import StepContext
 from guardband.safety.screen import ScreenResult, step_distance
 
-__all__ = ["Pool", "greedy_batch", "MIN_SEPARATION"]
+__all__ = ["Pool", "BatchRule", "greedy_batch", "MIN_SEPARATION", "SAMPLES", "VALUED_RULES"]
 
 #: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
 MIN_SEPARATION = 0.01
+#: Draws of the earlier picks' results under the sampled method (a power of 2, for the Sobol set).
+SAMPLES = 128
+#: Rules whose value given the earlier picks the method and ``least_worth`` act on.
+VALUED_RULES = ("ei", "pi")
 
 
 @dataclass(frozen=True)
@@ -117,6 +149,10 @@ class _Fantasies:
                     lp.condition(j, _pessimistic_value(rule, lp, j))
         return f_mu
 
+    def direction(self) -> np.ndarray:
+        """How the objective's mean moves per unit surprise of the latest fantasised point."""
+        return self.objective.fantasy_direction()
+
     def rescreen(self, scores_of, incumbent_value):
         """The pool screened and ranked under the fantasies: (result, scores, mean, sd)."""
         with warnings.catch_warnings():
@@ -128,19 +164,104 @@ class _Fantasies:
         return result, scores_of(mu_f, sd_f, result, incumbent_value), mu_f, sd_f
 
 
+class _Draws:
+    """The sampled method: per draw, how far the objective's mean has moved and the incumbent."""
+
+    def __init__(self, n_points: int, dims: int, rng, incumbent: float, maximize: bool):
+        sobol = qmc.Sobol(d=max(dims, 1), scramble=True, seed=rng)
+        half = ndtri(np.clip(sobol.random(SAMPLES // 2), 1e-12, 1.0 - 1e-12))
+        self.e = np.vstack([half, -half])  # (SAMPLES, dims), antithetic: the draws average to 0
+        self.shift = np.zeros((SAMPLES, n_points))
+        self.inc = np.full(SAMPLES, float(incumbent))
+        self.maximize, self.k = maximize, 0
+
+    def add(self, j: int, direction: np.ndarray, mean_j: float) -> None:
+        """Point j was conditioned on: each draw's result there moves every mean and may be its best."""
+        self.shift += np.outer(self.e[:, self.k], direction)
+        self.k += 1
+        at_j = mean_j + self.shift[:, j]
+        self.inc = np.maximum(self.inc, at_j) if self.maximize else np.minimum(self.inc, at_j)
+
+    def scores(self, rule: str, mu, sd, rank_kw: dict) -> np.ndarray:
+        """log of the rule's value averaged over the draws, at the pool points (mu, sd under the fantasies)."""
+        n = mu.shape[0]
+        logs = RULES[rule].score(mu[None, :] + self.shift[:, :n], sd[None, :], self.inc[:, None], **rank_kw)
+        return logsumexp(logs, axis=0) - np.log(SAMPLES)
+
+    def values(self, j: int, mu_j: float, sd_j: float, rank_kw: dict) -> dict:
+        """Every rule's value at pool point j: ei and pi averaged over the draws, the others at the mean
+        (their average over the draws)."""
+        v = all_values(mu_j + self.shift[:, j], np.full(SAMPLES, sd_j), self.inc, **rank_kw)
+        at_mean = all_values(np.array([mu_j]), np.array([sd_j]), None, **rank_kw)
+        return {k: float(np.mean(a)) if k in VALUED_RULES else float(at_mean[k][0]) for k, a in v.items()}
+
+
+@dataclass
+class BatchRule:
+    """How the batch values later picks, and when it stops: from ``[batch]`` and the ranking."""
+
+    method: str = "believer"
+    rule: str = "ei"
+    rank_kw: dict | None = None
+    least_worth: float = 0.0
+    rng: object = None
+    weigh_by_joint: bool = False
+
+    @classmethod
+    def of(cls, protocol, rank_kw: dict, *, rng=None, forced: bool = False, weigh_by_joint: bool = False):
+        """The protocol's method and least worth (none when the batch size was asked for: ``forced``)."""
+        return cls(protocol.batch.method, protocol.ranking.rule, dict(rank_kw),
+                   0.0 if forced else protocol.batch.least_worth, rng, weigh_by_joint)
+
+    def valued(self, incumbent_value) -> bool:
+        return incumbent_value is not None and self.rule in VALUED_RULES and self.rank_kw is not None
+
+
+def _worth(g: dict, rule: BatchRule) -> float:
+    """The rule's value of a pick given the earlier ones, in its own units."""
+    if "values" in g:
+        return g["values"][rule.rule]
+    v = all_values(np.array([g["mean"]]), np.array([g["sd"]]), g["incumbent"], **rule.rank_kw)
+    return float(v[rule.rule][0])
+
+
+def _stop_message(k: int, count: int, worth: float, first: float, rule: BatchRule) -> str:
+    return (f"the batch stopped at {k} of {count} runs: pick {k + 1} would be worth {rule.rule} {worth:.3g} "
+            f"given the fantasised results of the earlier picks, {worth / first:.2g} of the first pick's "
+            f"{first:.3g}, below batch.least_worth {rule.least_worth:g}; asking for the batch size "
+            "(--count) fills it regardless")
+
+
 def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_value,
-                 maximize: bool, U_busy=None) -> tuple[list[int], list[str], list[dict]]:
+                 maximize: bool, U_busy=None, rule: BatchRule | None = None
+                 ) -> tuple[list[int], list[str], list[dict]]:
     """Indices of the chosen candidates, in order, messages, and for each pick what it was
     chosen on: its objective mean and sd under the fantasies of the runs in progress and
-    the earlier picks, the incumbent then, its joint figure then, and how many candidates
-    were still eligible.
+    the earlier picks, the incumbent then, its joint figure then, how many candidates
+    were still eligible, and (sampled method) its rule values averaged over the draws.
 
     ``scores_of(mu, sd, result, incumbent)`` ranks candidates (larger is better).
     ``U_busy`` (unit-scaled) are the runs in progress: every model is
     conditioned on them first, as on earlier picks, and no pick lies within
-    MIN_SEPARATION of one; they do not move the incumbent (no result yet).
+    MIN_SEPARATION of one; under the believer method they do not move the
+    incumbent (no result yet). ``rule`` (default: the believer, never
+    stopping early) is the method and the least worth.
     """
+    rule = rule or BatchRule()
     U_busy = np.zeros((0, pool.U.shape[1])) if U_busy is None else np.asarray(U_busy, dtype=float)
+    n_busy = U_busy.shape[0]
+    draws = None
+    if rule.method == "sampled" and rule.valued(incumbent_value) and (count > 1 or n_busy):
+        draws = _Draws(pool.U.shape[0] + n_busy, n_busy + count, rule.rng, incumbent_value, maximize)
+
+    def rescreen(fant, inc):
+        res, scores, mu, sd = fant.rescreen(scores_of, inc)
+        if draws is not None:
+            scores = draws.scores(rule.rule, mu, sd, rule.rank_kw)
+            if rule.weigh_by_joint:
+                scores = scores + np.log(np.maximum(res.joint, 1e-300))
+        return res, scores, mu, sd
+
     chosen: list[int] = []
     messages: list[str] = []
     fant = None
@@ -148,13 +269,15 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
     fantasy_inc = incumbent_value
     given: list[dict] = []
     too_close = np.zeros(pool.X.shape[0], dtype=bool)
-    if U_busy.shape[0]:
+    if n_busy:
         for u in U_busy:
             too_close |= step_distance(pool.U, u[None, :]) < MIN_SEPARATION
         fant = _Fantasies(ctx, pool, U_busy)
-        for j in range(U_busy.shape[0]):
-            fant.add(pool.U.shape[0] + j)
-        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
+        for j in range(n_busy):
+            f_mu = fant.add(pool.U.shape[0] + j)
+            if draws is not None:
+                draws.add(pool.U.shape[0] + j, fant.direction(), f_mu)
+        cur_result, cur_scores, cur_mu, cur_sd = rescreen(fant, fantasy_inc)
     for k in range(count):
         ok = pool.result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
@@ -162,10 +285,19 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
             break
         idx = np.flatnonzero(ok)
         best = int(idx[np.lexsort((idx, -cur_scores[idx]))[0]])
+        g = {"mean": float(cur_mu[best]), "sd": float(cur_sd[best]),
+             "incumbent": fantasy_inc if draws is None else incumbent_value,
+             "joint": float(cur_result.joint[best]), "eligible": int(idx.size),
+             "earlier": k, "in_progress": n_busy, "sampled": draws is not None}
+        if draws is not None:
+            g["values"] = draws.values(best, float(cur_mu[best]), float(cur_sd[best]), rule.rank_kw)
+        if k and rule.least_worth > 0 and rule.valued(incumbent_value):
+            worth, first = _worth(g, rule), _worth(given[0], rule)
+            if worth < rule.least_worth * first:
+                messages.append(_stop_message(k, count, worth, first, rule))
+                break
         chosen.append(best)
-        given.append({"mean": float(cur_mu[best]), "sd": float(cur_sd[best]), "incumbent": fantasy_inc,
-                      "joint": float(cur_result.joint[best]), "eligible": int(idx.size),
-                      "earlier": k, "in_progress": int(U_busy.shape[0])})
+        given.append(g)
         if k + 1 == count:
             break
         # a batch never holds two runs closer than MIN_SEPARATION
@@ -173,9 +305,11 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         if fant is None:  # posteriors over the pool, updated by rank one per pick
             fant = _Fantasies(ctx, pool, U_busy)
         f_mu = fant.add(best)
+        if draws is not None:
+            draws.add(best, fant.direction(), f_mu)
         # kriging believer: the fantasised result also counts for the
         # incumbent, so the next pick must improve on it
         if fantasy_inc is not None:
             fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
-        cur_result, cur_scores, cur_mu, cur_sd = fant.rescreen(scores_of, fantasy_inc)
+        cur_result, cur_scores, cur_mu, cur_sd = rescreen(fant, fantasy_inc)
     return chosen, messages, given

@@ -1,10 +1,11 @@
 """Why each pick of a batch: its value given the picks before it, and one line of reason.
 
-The greedy batch (:mod:`.batch`) chooses pick k on the models conditioned
+The batch (:mod:`.batch`) chooses pick k on the models conditioned
 on the fantasised results of the runs in progress and of picks 1..k-1. The
 four rule values here are computed on those conditioned models (with the
-incumbent as the fantasies left it), so they are the values the pick was
-actually chosen on; the plan table's own columns stay the values under the
+incumbent as the fantasies left it; under the sampled method, averaged over
+the draws of those results), so they are the values the pick was actually
+chosen on; the plan table's own columns stay the values under the
 models fitted to real data.
 """
 
@@ -13,6 +14,7 @@ from __future__ import annotations
 import numpy as np
 
 from guardband.planner.step.acquisition import all_values
+from guardband.planner.step.batch import SAMPLES
 from guardband.planner.step.result import Mode, _num
 
 __all__ = ["pick_explanations", "LITTLE_WORTH"]
@@ -23,6 +25,8 @@ LITTLE_WORTH = 0.01
 
 
 def _given_values(g: dict, rank_kw: dict) -> dict:
+    if "values" in g:  # the sampled method: averaged over the draws of the earlier results
+        return {k: _num(v) for k, v in g["values"].items()}
     v = all_values(np.array([g["mean"]]), np.array([g["sd"]]), g["incumbent"], **rank_kw)
     return {k: _num(a[0]) for k, a in v.items()}
 
@@ -46,14 +50,16 @@ def _reason(g: dict, values: dict, first: dict | None, mode: str, rule: str) -> 
     if not given:
         return f"{head} on the models fitted to the runs: {pool}"
     near = "an earlier pick" + (" or a run in progress" if g["in_progress"] else "")
-    text = f"{head} given the fantasised results of {given}: {pool} under those fantasies, " \
-           f"none within the batch separation of {near}"
+    how = (f"averaged over {SAMPLES} sampled results of {given}" if g.get("sampled")
+           else f"given the fantasised results of {given}")
+    text = f"{head} {how}: {pool} under those fantasies, none within the batch separation of {near}"
     if first is not None and mode != Mode.FEASIBILITY_FIRST:
         a, b = values.get(rule), first.get(rule)
         if rule in ("ei", "pi") and a is not None and b:
             text += f" (worth {a / b:.2g} of the first pick's {rule})"
             if a / b < LITTLE_WORTH:
-                text += "; little is expected from it, and a smaller batch (--count) may serve as well"
+                text += ("; little is expected from it, and a smaller batch (--count, or batch.least_worth "
+                         "to stop there) may serve as well")
     return text
 
 

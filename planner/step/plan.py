@@ -29,9 +29,11 @@ The flow (see DESIGN.md):
 5. the incumbent is the best measured objective among runs that met every
    limit; with none, the step ranks by the joint figure (feasibility first)
    and says so;
-6. the batch is chosen greedily with fantasised results (:mod:`.batch`),
-   after conditioning every model on the runs in progress (factors set,
-   nothing measured yet) as on earlier picks.
+6. the batch is chosen one pick at a time with fantasised results
+   (:mod:`.batch`; later picks valued by ``batch.method``, the batch
+   stopped early by ``batch.least_worth``), after conditioning every model
+   on the runs in progress (factors set, nothing measured yet) as on
+   earlier picks.
    Every value shown for a proposal comes from the models fitted to real
    data.
 """
@@ -48,7 +50,7 @@ from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.runs import RunsTable
 from guardband.planner.step.acquisition import all_values, score as rule_score, weighted_by_joint
 from guardband.planner.step.attitudes import rule_picks, threshold_price
-from guardband.planner.step.batch import Pool, greedy_batch
+from guardband.planner.step.batch import VALUED_RULES, BatchRule, Pool, greedy_batch
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
@@ -65,6 +67,12 @@ __all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_O
 #: highest probabilities of meeting the limits starts from this many of the
 #: closest candidates.
 RESCUE_STARTS = 6
+#: The most candidates one step draws when the search grows with the batch (``batch.search_per_run``).
+MAX_POOL = 500_000
+#: The search grows with the batch only while candidates x measured runs stay within this
+#: (the default pool of 4,000 at 300 runs): each candidate is predicted from every run, so
+#: beyond it a wider search would make a large data set's step several times slower.
+SEARCH_BUDGET = 1_200_000
 
 
 def safe_runs_mask(protocol: Protocol, runs: RunsTable) -> np.ndarray:
@@ -109,12 +117,35 @@ def _screened(ctx: StepContext, X, scores_of, inc_value) -> Pool:
     return Pool(X, U, mu, sd, result, scores_of(mu, sd, result, inc_value))
 
 
-def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw):
-    """Refine the best survivors locally; when none passed, search from the candidates that
-    failed only on probability for the highest product of the limits' probabilities
-    (``refine.rescue_figure``; the screen is not relaxed: every point found is screened
-    again in full, with its own joint figure)."""
-    refine_n = ctx.protocol.batch.refine
+def _search_effort(protocol: Protocol, pool_size: int | None, count: int,
+                   n_runs: int) -> tuple[int, int, list[str]]:
+    """Candidates to draw and survivors to refine: per proposed run (``batch.search_per_run``) or per step.
+
+    Per run, the search grows with the batch only while the candidates times the measured
+    runs stay within SEARCH_BUDGET (each candidate is predicted from every run), so a step on
+    a large data set costs what one search per step would.
+    """
+    pool = protocol.batch.pool if pool_size is None else int(pool_size)
+    refine_n = protocol.batch.refine
+    if not protocol.batch.search_per_run or count <= 1:
+        return pool, refine_n, []
+    times = max(1, min(count, SEARCH_BUDGET // max(pool * max(n_runs, 1), 1)))
+    total = min(pool * times, MAX_POOL)
+    if times == 1:
+        return pool, refine_n, [f"the search drew {pool} candidates for the whole batch, not {pool} for each of "
+                                f"the {count} runs: with {n_runs} runs that would pass the search budget "
+                                "(batch.search_per_run)"]
+    text = (f"the search drew {total} candidates and refined up to {refine_n * times} survivors: {pool} and "
+            f"{refine_n}" if refine_n else f"the search drew {total} candidates: {pool}")
+    share = f"for each of the {count} runs asked for" if times == count else f"{times} times over for the {count} runs"
+    return total, refine_n * times, [f"{text} {share} (batch.search_per_run)"]
+
+
+def _refine_phase(ctx, pool: Pool, origin, mode, scores_of, inc_value, rank_kw, refine_n: int):
+    """Refine the best ``refine_n`` survivors locally; when none passed, search from the
+    candidates that failed only on probability for the highest product of the limits'
+    probabilities (``refine.rescue_figure``; the screen is not relaxed: every point found is
+    screened again in full, with its own joint figure)."""
     rescue = refine_n > 0 and not np.any(pool.result.survives)
     if refine_n <= 0 or not (np.any(pool.result.survives) or rescue):
         return pool, origin, []
@@ -211,6 +242,19 @@ def _grow_span(ctx: StepContext, U_measured, met) -> list[str]:
             f"{k} time(s)): the latest {k} run(s) in a row that lay beyond it met every limit"]
 
 
+def _least_worth_unused(protocol: Protocol, mode: str, forced: bool) -> list[str]:
+    """Why ``batch.least_worth`` did not apply to this step, when it is set."""
+    if protocol.batch.least_worth <= 0 or forced:
+        return []
+    if mode == Mode.FEASIBILITY_FIRST:
+        why = "no run has met every limit yet (picks are ranked by the joint figure)"
+    elif protocol.ranking.rule not in VALUED_RULES:
+        why = f"the {protocol.ranking.rule} rule has no value that falls to nothing (only ei and pi do)"
+    else:
+        return []
+    return [f"batch.least_worth {protocol.batch.least_worth:g} was not applied: {why}"]
+
+
 @dataclass(frozen=True)
 class PreparedStep:
     """What a step knows before it looks at any candidate: the models, the incumbent, the ranking."""
@@ -285,11 +329,13 @@ def plan_step(
     seed : int
         Seeds the pool and the model restarts.
     count : int, optional
-        Batch size; defaults to the protocol's.
+        Batch size; defaults to the protocol's. Given, the batch is filled
+        as far as the screen allows (``batch.least_worth`` does not stop it).
     warm_start : dict, optional
         Hyperparameters by response name (from the last plan) tried first.
     pool_size : int, optional
-        Overrides the protocol's pool size.
+        Overrides the protocol's pool size (per proposed run, as the
+        protocol's, under ``batch.search_per_run``).
     explain : bool
         Also find what each ranking rule would propose and what each
         threshold costs (:mod:`.attitudes`); the simulator turns it off.
@@ -313,23 +359,27 @@ def plan_step(
     ModelError
         When the objective model cannot be fitted or has too few runs.
     """
+    forced = count is not None
     count = protocol.batch.size if count is None else int(count)
-    pool_size = protocol.batch.pool if pool_size is None else int(pool_size)
+    pool_size, refine_n, effort = _search_effort(protocol, pool_size, count, int((~runs.pending).sum()))
     st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start, textbook=textbook)
     ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
     space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
     X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))
     pool = _screened(ctx, X_pool, scores_of, inc_value)
-    pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw)
-    messages += more
+    pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw, refine_n)
+    messages += effort + more
     pool, origin, more = _rounding_phase(ctx, pool, origin, scores_of, inc_value)
     messages += more
 
     in_progress = runs.pending  # factors set, nothing measured yet: already chosen
     picks = rule_picks(ctx, pool, origin, inc_value, rank_kw, U_busy=U_runs[in_progress]) if explain else []
     price = threshold_price(ctx, pool, inc_value, rank_kw) if explain else []
+    batch_rule = BatchRule.of(protocol, rank_kw, rng=np.random.default_rng(st.children[1]), forced=forced,
+                              weigh_by_joint=textbook)
     chosen, more, given = greedy_batch(ctx, pool, count, scores_of, inc_value, protocol.maximize,
-                                       U_busy=U_runs[in_progress])
+                                       U_busy=U_runs[in_progress], rule=batch_rule)
+    more += _least_worth_unused(protocol, st.mode, forced)
     why = pick_explanations(given, st.mode, protocol.ranking.rule, rank_kw)
     messages += more + _in_progress_messages(runs, in_progress)
     esc = protocol.escalation

@@ -109,6 +109,10 @@ def test_light_step_campaigns_are_reproducible_and_full_is_the_protocol_as_writt
     assert (full.label, light.label) == ("step=full", "step=light")
     proto = light.result.protocol
     assert (proto.batch.pool, proto.batch.refine, proto.model.restarts) == (1000, 1, 1)
+    # the sweep says what the light step is; a sweep without it does not
+    assert any(line.startswith("step=light: each planning step searches less (a pool of at most 1,000")
+               for line in both.description())
+    assert not any("step=light" in line for line in as_written.description())
     assert proto.screen == wide.screen
     runs = lambda cell: cell.result.histories["protocol"]
     for a, b in zip(runs(full), runs(as_written.cells[0])):  # full: seed for seed the sweep as written

@@ -66,6 +66,10 @@ SWEEP_KEYS = ("threshold", "rule", "batch", "start", "budget", "max_step", "step
 LIGHT_STEP = {"pool": 1000, "refine": 1, "restarts": 1}
 #: The values of the ``step`` key.
 STEPS = ("full", "light")
+#: What the light step is, in one line (the sweep's description).
+LIGHT_NOTE = (f"step=light: each planning step searches less (a pool of at most {LIGHT_STEP['pool']:,} candidates, "
+              f"{LIGHT_STEP['refine']} local refinement, {LIGHT_STEP['restarts']} model restart beside the warm "
+              "start); the screen is the full step's; planning quality is lower (see the README)")
 #: What each peer does, in one phrase (the sweep's description).
 PEER_NOTES = {"random": "random: the starting runs, then the budget drawn uniformly from the design space",
               "classical": "classical: a space-filling design of start + budget - 1 runs, quadratic fits, "
@@ -323,6 +327,8 @@ class SweepResult:
         if peers:
             lines.append("peers, on the same starting runs, seeds and truths: " + "; ".join(
                 PEER_NOTES[p] for p in peers))
+        if any(c.setting.step == "light" for c in planner):
+            lines.append(LIGHT_NOTE)
         for c in self.cells:
             if c.setting == self.cells[0].setting and c.strategy == self.cells[0].strategy:
                 lines.append(f"scenario {c.scenario}: " + c.result.description()[1])

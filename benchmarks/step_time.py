@@ -51,7 +51,7 @@ def run_case(name: str, n: int, repeat: int, explain: bool, light: dict | None =
 
     problem = get_problem(name)
     protocol = problem.protocol
-    if light:
+    if light:  # spelled out here, as simulation.sweep.Setting does it: a reference checkout may not have it
         data = protocol.model_dump(mode="python")
         data["batch"]["pool"] = min(data["batch"]["pool"], light["pool"])
         data["batch"]["refine"] = min(data["batch"]["refine"], light["refine"])

@@ -8,6 +8,9 @@ as every step of a campaign after the first has). The protocols are the
 problems' own; BLAS on one thread, as in a sweep. ``--explain off`` times
 the step as the simulator runs it (without the rule comparison and the price
 of the threshold); ``on`` (the default) as ``guardband plan`` does.
+``--step light`` times the sweep's light step (``simulation.sweep.LIGHT_STEP``:
+a smaller pool, one refinement, one model restart, set in the protocol, so
+both trees run the same settings); ``both`` times the full and the light step.
 
 With ``--reference DIR`` (a checkout of the code to compare with; see
 ``reference_tree.py``) each case runs in both trees in the same run, one
@@ -15,7 +18,7 @@ after the other, in two worker processes, so that the machine's load hits
 both alike; the table gives each tree's median and the ratio.
 
     python benchmarks/step_time.py [--runs 10 25 40] [--repeat 3] [--explain on|off|both]
-                                   [--reference DIR] [--out FILE.csv]
+                                   [--step full|light|both] [--reference DIR] [--out FILE.csv]
 """
 
 from __future__ import annotations
@@ -33,10 +36,14 @@ from reference_tree import environment, import_root
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def run_case(name: str, n: int, repeat: int, explain: bool) -> dict:
-    """Cold and warm step times (s) of one case, ``repeat`` of each (in this process)."""
+def run_case(name: str, n: int, repeat: int, explain: bool, light: dict | None = None) -> dict:
+    """Cold and warm step times (s) of one case, ``repeat`` of each (in this process).
+
+    ``light``: the light step's pool, refinements and restarts (at most these), set in the protocol.
+    """
     import numpy as np
 
+    from guardband.planner.inputs.protocol import parse_protocol
     from guardband.planner.models import blas_limit
     from guardband.planner.simulation import get_problem, runs_table_from_arrays
     from guardband.planner.simulation.loop import start_runs
@@ -44,6 +51,12 @@ def run_case(name: str, n: int, repeat: int, explain: bool) -> dict:
 
     problem = get_problem(name)
     protocol = problem.protocol
+    if light:  # spelled out here, as simulation.sweep.Setting does it: a reference checkout may not have it
+        data = protocol.model_dump(mode="python")
+        data["batch"]["pool"] = min(data["batch"]["pool"], light["pool"])
+        data["batch"]["refine"] = min(data["batch"]["refine"], light["refine"])
+        data["model"]["restarts"] = min(data["model"]["restarts"], light["restarts"])
+        protocol = parse_protocol(data, source=f"{name}, light step")
     cold, warm = [], []
     with blas_limit():
         X = start_runs(protocol, n, rng=np.random.default_rng(n))
@@ -63,7 +76,8 @@ def worker() -> None:
     """Answer one case per line of stdin (JSON) with one line of JSON on stdout."""
     for line in sys.stdin:
         job = json.loads(line)
-        print(json.dumps(run_case(job["name"], job["n"], job["repeat"], job["explain"])), flush=True)
+        print(json.dumps(run_case(job["name"], job["n"], job["repeat"], job["explain"], job.get("light"))),
+              flush=True)
 
 
 class Tree:
@@ -95,6 +109,7 @@ def main() -> None:
     ap.add_argument("--problems", nargs="+", default=["gramacy", "tablet", "coating"])
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--explain", choices=["on", "off", "both"], default="on")
+    ap.add_argument("--step", choices=["full", "light", "both"], default="full")
     ap.add_argument("--reference", type=Path, default=None, help="a checkout to compare with, side by side")
     ap.add_argument("--out", type=Path, default=None)
     ap.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
@@ -105,39 +120,47 @@ def main() -> None:
     if args.reference is not None:
         trees.insert(0, Tree("reference", args.reference))
     modes = {"on": [True], "off": [False], "both": [True, False]}[args.explain]
-    rows, warm_all = [], {(t.label, e): [] for t in trees for e in modes}
+    steps = {"full": ["full"], "light": ["light"], "both": ["full", "light"]}[args.step]
+    light = None
+    if "light" in steps:
+        from guardband.planner.simulation.sweep import LIGHT_STEP  # this tree's definition, for both trees
+        light = dict(LIGHT_STEP)
+    rows, warm_all = [], {(t.label, e, s): [] for t in trees for e in modes for s in steps}
     k = 0
     for name in args.problems:
         for n in args.runs:
             for explain in modes:
-                k += 1
-                # alternate which tree goes first, so that neither always meets the same load
-                order = trees if k % 2 else trees[::-1]
-                got = {t.label: t.run(name=name, n=n, repeat=args.repeat, explain=explain) for t in order}
-                cells = []
-                for t in trees:
-                    res = got[t.label]
-                    cold, warm = statistics.median(res["cold"]), statistics.median(res["warm"])
-                    warm_all[(t.label, explain)] += res["warm"]
-                    rows.append((name, res["factors"], n, t.label, explain, cold, warm))
-                    cells.append(f"{t.label}: cold {cold:7.3f} s, warm {warm:7.3f} s")
-                ratio = ""
-                if len(trees) == 2:
-                    ratio = f"  warm ratio {rows[-1][6] / rows[-2][6]:.2f}"
-                print(f"{name:8s} {rows[-1][1]} factors {n:3d} runs explain {'on ' if explain else 'off'}| "
-                      + " | ".join(cells) + ratio, flush=True)
+                for step in steps:
+                    k += 1
+                    # alternate which tree goes first, so that neither always meets the same load
+                    order = trees if k % 2 else trees[::-1]
+                    got = {t.label: t.run(name=name, n=n, repeat=args.repeat, explain=explain,
+                                          light=light if step == "light" else None) for t in order}
+                    cells = []
+                    for t in trees:
+                        res = got[t.label]
+                        cold, warm = statistics.median(res["cold"]), statistics.median(res["warm"])
+                        warm_all[(t.label, explain, step)] += res["warm"]
+                        rows.append((name, res["factors"], n, t.label, explain, step, cold, warm))
+                        cells.append(f"{t.label}: cold {cold:7.3f} s, warm {warm:7.3f} s")
+                    ratio = ""
+                    if len(trees) == 2:
+                        ratio = f"  warm ratio {rows[-1][7] / rows[-2][7]:.2f}"
+                    print(f"{name:8s} {rows[-1][1]} factors {n:3d} runs explain {'on ' if explain else 'off'} "
+                          f"{step:5s}| " + " | ".join(cells) + ratio, flush=True)
     for explain in modes:
-        meds = {t.label: statistics.median(warm_all[(t.label, explain)]) for t in trees}
-        line = ", ".join(f"{label} {m:.3f} s" for label, m in meds.items())
-        if len(trees) == 2:
-            line += f" (ratio {meds['this tree'] / meds['reference']:.2f})"
-        print(f"median warm step over every case, explain {'on' if explain else 'off'}: {line}")
+        for step in steps:
+            meds = {t.label: statistics.median(warm_all[(t.label, explain, step)]) for t in trees}
+            line = ", ".join(f"{label} {m:.3f} s" for label, m in meds.items())
+            if len(trees) == 2:
+                line += f" (ratio {meds['this tree'] / meds['reference']:.2f})"
+            print(f"median warm step over every case, explain {'on' if explain else 'off'}, {step} step: {line}")
     for t in trees:
         t.close()
     if args.out:
         args.out.parent.mkdir(parents=True, exist_ok=True)
-        args.out.write_text("problem,factors,runs,tree,explain,cold_median_s,warm_median_s\n"
-                            + "".join(f"{a},{b},{c},{d},{e},{f:.4f},{g:.4f}\n" for a, b, c, d, e, f, g in rows),
+        args.out.write_text("problem,factors,runs,tree,explain,step,cold_median_s,warm_median_s\n"
+                            + "".join(f"{a},{b},{c},{d},{e},{s},{f:.4f},{g:.4f}\n" for a, b, c, d, e, s, f, g in rows),
                             encoding="utf-8")
 
 

@@ -542,7 +542,8 @@ def simulate(
     scenarios: Optional[Path] = typer.Option(None, "--scenarios", help="Scenario file (TOML): true responses "
                                              "of the protocol's own factors (see the README)."),
     vary: list[str] = typer.Option([], "--vary", help="Sweep a setting: KEY=V1,V2 with KEY threshold, rule, "
-                                   "batch, start, budget or max_step; repeat for several."),
+                                   "batch, start, budget, max_step or step (full, or light: a cheaper step "
+                                   "for large sweeps, see the README); repeat for several."),
     budget: Optional[int] = typer.Option(None, "--budget", "-b", min=1, max=10000,
                                          help="Planned runs per campaign (default: the problem's or the file's)."),
     seeds: int = typer.Option(5, "--seeds", "-s", min=1, max=10000, help="Campaigns per strategy or setting."),

@@ -15,7 +15,7 @@ from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.simulation import combine_settings, get_problem, simulate
 from guardband.planner.simulation.problems import gramacy_protocol_dict
 from guardband.planner.simulation.scenarios import Scenario, load_scenarios
-from guardband.planner.simulation.sweep import Setting, run_sweep, settings_grid
+from guardband.planner.simulation.sweep import LIGHT_STEP, Setting, run_sweep, settings_grid
 
 PROTOCOLS = __import__("pathlib").Path(__file__).resolve().parents[1] / "protocols"
 #: Small and fast planner settings (as in test_simulate).
@@ -69,6 +69,59 @@ def test_parse_peers():
 def test_parse_vary_reads_lists():
     assert parse_vary(["threshold=0.9,0.95", "max-step=0.2", "rule=ei,mean"]) == {
         "threshold": [0.9, 0.95], "max_step": [0.2], "rule": ["ei", "mean"]}
+
+
+def test_light_step_gives_its_documented_settings_and_nothing_else():
+    wide = parse_protocol({**gramacy_protocol_dict(batch=2, rule="ei", threshold=0.9),
+                           "batch": {"size": 2, "pool": 4000, "refine": 4}, "model": {"restarts": 4}})
+    full, light = Setting(step="full").protocol_data(wide), Setting(step="light").protocol_data(wide)
+    assert full == wide.model_dump(mode="python")  # full: the protocol as written
+    assert LIGHT_STEP == {"pool": 1000, "refine": 1, "restarts": 1}  # as the README states
+    assert (light["batch"]["pool"], light["batch"]["refine"], light["model"]["restarts"]) == (1000, 1, 1)
+    # everything else, the screen included, stays as written
+    for key in ("screen", "limits", "ranking", "factors", "objective"):
+        assert light[key] == full[key]
+    assert {k: v for k, v in light["batch"].items() if k not in ("pool", "refine")} == \
+        {k: v for k, v in full["batch"].items() if k not in ("pool", "refine")}
+    # a protocol already lighter than the light step keeps its own figures
+    small = Setting(step="light").protocol_data(FAST)
+    assert (small["batch"]["pool"], small["batch"]["refine"], small["model"]["restarts"]) == (200, 0, 1)
+    with pytest.raises(ValueError, match="step 'quick' is not known"):
+        Setting(step="quick").protocol_data(wide)
+    assert parse_vary(["step=light,full"]) == {"step": ["light", "full"]}
+    with pytest.raises(OptionError, match="a step is full or light"):
+        parse_vary(["step=quick"])
+
+
+@pytest.mark.slow
+def test_light_step_campaigns_are_reproducible_and_full_is_the_protocol_as_written():
+    problem = get_problem("gramacy")
+    wide = combine_settings(problem, parse_protocol({
+        **gramacy_protocol_dict(batch=1, rule="ei", threshold=0.9),
+        "batch": {"size": 1, "pool": 1500, "refine": 2}, "model": {"restarts": 2}}))
+
+    def sweep(vary):
+        return run_sweep([Scenario(problem.name, "", problem)], lambda sc: wide, vary=vary, seeds=2, base_seed=3,
+                         n_start=6, budget=2, noise_scale=0.0, workers=1)
+
+    both, again, as_written = sweep({"step": ["full", "light"]}), sweep({"step": ["light"]}), sweep(None)
+    full, light = both.cells
+    assert (full.label, light.label) == ("step=full", "step=light")
+    proto = light.result.protocol
+    assert (proto.batch.pool, proto.batch.refine, proto.model.restarts) == (1000, 1, 1)
+    # the sweep says what the light step is; a sweep without it does not
+    assert any(line.startswith("step=light: each planning step searches less (a pool of at most 1,000")
+               for line in both.description())
+    assert not any("step=light" in line for line in as_written.description())
+    assert proto.screen == wide.screen
+    runs = lambda cell: cell.result.histories["protocol"]
+    for a, b in zip(runs(full), runs(as_written.cells[0])):  # full: seed for seed the sweep as written
+        assert np.array_equal(a.X, b.X) and np.array_equal(a.promised, b.promised, equal_nan=True)
+    for a, b in zip(runs(light), runs(again.cells[0])):  # light: the same again, seed for seed
+        assert np.array_equal(a.X, b.X) and np.array_equal(a.promised, b.promised, equal_nan=True)
+    # the same starting runs, then other planned runs: the light step searched less
+    for a, b in zip(runs(full), runs(light)):
+        assert np.array_equal(a.X[:6], b.X[:6]) and not np.array_equal(a.X[6:], b.X[6:])
 
 
 @pytest.mark.slow

@@ -11,6 +11,7 @@ import math
 from pathlib import Path
 
 from guardband.planner.simulation import STRATEGIES, Problem, SimulationResult, get_problem, simulate
+from guardband.planner.simulation.sweep import STEPS
 
 __all__ = ["OptionError", "parse_noise", "parse_peers", "simulate_from_options"]
 
@@ -117,7 +118,8 @@ def simulate_from_options(problem: str, settings: str | Path | None, *, start: i
 
 # ------------------------------------------------------------- scenarios and sweeps
 #: How each key of ``--vary`` reads its values.
-_VARY_TYPES = {"threshold": float, "rule": str, "batch": int, "start": int, "budget": int, "max_step": float}
+_VARY_TYPES = {"threshold": float, "rule": str, "batch": int, "start": int, "budget": int, "max_step": float,
+               "step": str}
 
 
 def parse_vary(values) -> dict:
@@ -154,6 +156,8 @@ def parse_vary(values) -> dict:
             raise OptionError(f"--vary {text!r}: values must be finite numbers")
         if key in ("batch", "budget") and min(vals) < 1 or key == "start" and min(vals) < 3:
             raise OptionError(f"--vary {text!r}: {key} must be at least {3 if key == 'start' else 1}")
+        if key == "step" and any(v not in STEPS for v in vals):
+            raise OptionError(f"--vary {text!r}: a step is {' or '.join(STEPS)}")
         out[key] = list(dict.fromkeys(vals))
     return out
 

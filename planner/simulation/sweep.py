@@ -4,7 +4,12 @@ Settings are given as lists (:data:`SWEEP_KEYS`: the joint threshold, the
 ranking rule, the batch size, the starting runs, the planned-run budget and
 ``max_step``); every combination runs on every scenario (a scenario of the
 author's protocol, :mod:`planner.simulation.scenarios`, or a built-in
-problem) for every seed. The planner's peers (random runs, the classical
+problem) for every seed. The key ``step`` chooses how much search each
+planning step makes: ``full`` (the protocol's pool, refinements and model
+restarts) or ``light`` (:data:`LIGHT_STEP`: a smaller pool, one refinement,
+one model restart beside the warm start), a cheaper step for large sweeps
+whose cost in planning quality is measured in the README; the screen is the
+same in both. The planner's peers (random runs, the classical
 route; :mod:`planner.simulation.peers`) can run beside it: they do not
 read the planner's settings, so each runs once per scenario and per
 starting-run and budget pair of the grid. One campaign is one task; the
@@ -50,11 +55,21 @@ from guardband.planner.simulation.results import SimulationResult, _finite, _fmt
 from guardband.planner.simulation.runner import _seeds, run_peer
 from guardband.planner.simulation.strategies import PEERS
 
-__all__ = ["SWEEP_KEYS", "Setting", "settings_grid", "SweepCell", "SweepResult", "run_sweep",
+__all__ = ["SWEEP_KEYS", "LIGHT_STEP", "STEPS", "Setting", "settings_grid", "SweepCell", "SweepResult", "run_sweep",
            "WITHIN_SHARE"]
 
 #: What a sweep can vary, in the order of a setting's label.
-SWEEP_KEYS = ("threshold", "rule", "batch", "start", "budget", "max_step")
+SWEEP_KEYS = ("threshold", "rule", "batch", "start", "budget", "max_step", "step")
+#: The ``light`` step: at most these candidates (``batch.pool``), local refinements
+#: (``batch.refine``) and hyperparameter restarts beside the warm start (``model.restarts``).
+#: The screen, its threshold and every limit are untouched. ``full`` keeps the protocol's.
+LIGHT_STEP = {"pool": 1000, "refine": 1, "restarts": 1}
+#: The values of the ``step`` key.
+STEPS = ("full", "light")
+#: What the light step is, in one line (the sweep's description).
+LIGHT_NOTE = (f"step=light: each planning step searches less (a pool of at most {LIGHT_STEP['pool']:,} candidates, "
+              f"{LIGHT_STEP['refine']} local refinement, {LIGHT_STEP['restarts']} model restart beside the warm "
+              "start); the screen is the full step's; planning quality is lower (see the README)")
 #: What each peer does, in one phrase (the sweep's description).
 PEER_NOTES = {"random": "random: the starting runs, then the budget drawn uniformly from the design space",
               "classical": "classical: a space-filling design of start + budget - 1 runs, quadratic fits, "
@@ -73,6 +88,7 @@ class Setting:
     start: int | None = None
     budget: int | None = None
     max_step: float | None = None
+    step: str | None = None
 
     @property
     def label(self) -> str:
@@ -81,7 +97,7 @@ class Setting:
         return ",".join(parts) or "as-written"
 
     def protocol_data(self, protocol: Protocol) -> dict:
-        """The protocol (as a dict) with this setting's threshold, rule, batch and max_step."""
+        """The protocol (as a dict) with this setting's threshold, rule, batch, max_step and step."""
         data = protocol.model_dump(mode="python")
         if self.threshold is not None:
             data["screen"]["threshold"] = float(self.threshold)
@@ -91,6 +107,13 @@ class Setting:
             data["batch"]["size"] = int(self.batch)
         if self.max_step is not None:
             data["screen"]["max_step"] = float(self.max_step)
+        if self.step is not None and self.step not in STEPS:
+            raise ValueError(f"step {self.step!r} is not known; a step is one of {', '.join(STEPS)}")
+        if self.step == "light":
+            batch, model = data["batch"], data["model"]
+            batch["pool"] = min(int(batch["pool"]), LIGHT_STEP["pool"])
+            batch["refine"] = min(int(batch["refine"]), LIGHT_STEP["refine"])
+            model["restarts"] = min(int(model["restarts"]), LIGHT_STEP["restarts"])
         return data
 
 
@@ -304,6 +327,8 @@ class SweepResult:
         if peers:
             lines.append("peers, on the same starting runs, seeds and truths: " + "; ".join(
                 PEER_NOTES[p] for p in peers))
+        if any(c.setting.step == "light" for c in planner):
+            lines.append(LIGHT_NOTE)
         for c in self.cells:
             if c.setting == self.cells[0].setting and c.strategy == self.cells[0].strategy:
                 lines.append(f"scenario {c.scenario}: " + c.result.description()[1])

@@ -35,6 +35,9 @@ once a run has met every limit:
 ``believer``
     Each earlier pick comes out at its posterior mean, which also moves the
     incumbent (the kriging believer above, the only method before).
+    A response rate (a binomial objective) is always valued this way: its
+    rules are computed on the rate (:mod:`.rates`), not on the latent
+    Gaussian that the draws move.
 
 The bound and mean rules, and the joint figure while no run has met every
 limit, value picks alike under both (their average over the draws is their
@@ -51,7 +54,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import logsumexp, ndtri
-from scipy.stats import qmc
 
 from guardband.planner.step.acquisition import RULES, all_values
 from guardband.planner.step.context import StepContext
@@ -168,6 +170,8 @@ class _Draws:
     """The sampled method: per draw, how far the objective's mean has moved and the incumbent."""
 
     def __init__(self, n_points: int, dims: int, rng, incumbent: float, maximize: bool):
+        from scipy.stats import qmc  # here: scipy.stats takes about 0.4 s to import
+
         sobol = qmc.Sobol(d=max(dims, 1), scramble=True, seed=rng)
         half = ndtri(np.clip(sobol.random(SAMPLES // 2), 1e-12, 1.0 - 1e-12))
         self.e = np.vstack([half, -half])  # (SAMPLES, dims), antithetic: the draws average to 0
@@ -210,7 +214,10 @@ class BatchRule:
     @classmethod
     def of(cls, protocol, rank_kw: dict, *, rng=None, forced: bool = False, weigh_by_joint: bool = False):
         """The protocol's method and least worth (none when the batch size was asked for: ``forced``)."""
-        return cls(protocol.batch.method, protocol.ranking.rule, dict(rank_kw),
+        # a response rate's rules are computed on the rate (step.rates), not on the latent
+        # Gaussian the draws move: its later picks are valued at the mean
+        method = "believer" if protocol.objective.kind == "binomial" else protocol.batch.method
+        return cls(method, protocol.ranking.rule, dict(rank_kw),
                    0.0 if forced else protocol.batch.least_worth, rng, weigh_by_joint)
 
     def valued(self, incumbent_value) -> bool:

@@ -46,3 +46,21 @@ def with_sections(protocol, **sections):
     for key, update in sections.items():
         data[key] = {**(data.get(key) or {}), **update}
     return parse_protocol(data)
+
+
+def rate_protocol(**sections) -> dict:
+    """Protocol data: two agents on discrete doses, a response rate as the objective and a DLT
+    rate as the limit, both binomial (counts). ``sections`` replace top-level sections."""
+    return {
+        "study": {"title": "response rate (test)", "version": "1", "author": "test", "kind": "dose"},
+        "factors": [{"name": "dose_a", "kind": "discrete", "levels": [0, 5, 10, 20, 40]},
+                    {"name": "dose_b", "kind": "discrete", "levels": [0, 1, 2, 4]}],
+        "objective": {"name": "response_rate", "direction": "maximize", "kind": "binomial",
+                      "events": "responders", "subjects": "treated"},
+        "limits": [{"name": "dlt_rate", "kind": "binomial", "events": "dlt_events", "subjects": "dlt_subjects",
+                    "upper": 0.3, "probability": 0.8}],
+        "screen": {"threshold": 0.8, "min_runs": 3, "max_step": 0.3},
+        "escalation": {"no_skipping": True, "cohort_size": 6},
+        "ranking": {"rule": "ei"},
+        **sections,
+    }

@@ -19,25 +19,14 @@ from guardband.planner.inputs.protocol import load_protocol, parse_protocol
 from guardband.planner.simulation.loop import run_campaign, runs_table_from_arrays
 from guardband.planner.simulation.scenarios import load_scenarios, parse_scenarios
 
+from conftest import rate_protocol
+
 ROOT = Path(__file__).resolve().parents[1]
 DOSE = ROOT / "protocols" / "dose_combination.toml"
 DOSE_SCENARIOS = ROOT / "protocols" / "scenarios" / "dose_combination_scenarios.toml"
 
-RATE_PROTOCOL = {
-    "study": {"title": "response rate (test)", "version": "1", "author": "test", "kind": "dose"},
-    "factors": [{"name": "dose_a", "kind": "discrete", "levels": [0, 5, 10, 20, 40]},
-                {"name": "dose_b", "kind": "discrete", "levels": [0, 1, 2, 4]}],
-    "objective": {"name": "response_rate", "direction": "maximize", "kind": "binomial",
-                  "events": "responders", "subjects": "treated"},
-    "limits": [{"name": "dlt_rate", "kind": "binomial", "events": "dlt_events", "subjects": "dlt_subjects",
-                "upper": 0.3, "probability": 0.8}],
-    "screen": {"threshold": 0.8, "min_runs": 3, "max_step": 0.3},
-    "start": {"rules": ["dose_a <= 10", "dose_b <= 1"]},
-    "escalation": {"no_skipping": True, "cohort_size": 6},
-    "ranking": {"rule": "ei"},
-    "batch": {"size": 1, "pool": 200, "refine": 0},
-    "model": {"restarts": 1},
-}
+RATE_PROTOCOL = rate_protocol(start={"rules": ["dose_a <= 10", "dose_b <= 1"]},
+                              batch={"size": 1, "pool": 200, "refine": 0}, model={"restarts": 1})
 RATE_TRUTH = {"response_rate": "logistic(-2 + 0.06 * dose_a + 0.5 * dose_b)",
               "dlt_rate": "logistic(-4 + 0.05 * dose_a + 0.4 * dose_b)"}
 

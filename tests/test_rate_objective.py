@@ -25,19 +25,9 @@ from guardband.planner.step.acquisition import all_values, score
 from guardband.planner.step.rates import (log_rate_expected_improvement, rate_bound, rate_expected_improvement,
                                           rate_moments, rate_probability_of_improvement)
 
-PROTOCOL = {
-    "study": {"title": "response rate (test)", "version": "1", "author": "test", "kind": "dose"},
-    "factors": [{"name": "dose_a", "kind": "discrete", "levels": [0, 5, 10, 20, 40]},
-                {"name": "dose_b", "kind": "discrete", "levels": [0, 1, 2, 4]}],
-    "objective": {"name": "response_rate", "direction": "maximize", "kind": "binomial",
-                  "events": "responders", "subjects": "treated"},
-    "limits": [{"name": "dlt_rate", "kind": "binomial", "events": "dlt_events", "subjects": "dlt_subjects",
-                "upper": 0.3, "probability": 0.8}],
-    "screen": {"threshold": 0.8, "min_runs": 3, "max_step": 0.3},
-    "escalation": {"no_skipping": True, "cohort_size": 6},
-    "ranking": {"rule": "ei"},
-    "batch": {"size": 2, "pool": 300, "refine": 0},
-}
+from conftest import rate_protocol
+
+PROTOCOL = rate_protocol(batch={"size": 2, "pool": 300, "refine": 0})
 RUNS = ("run_id,dose_a,dose_b,responders,treated,dlt_events,dlt_subjects\n"
         "R1,0,0,0,6,0,6\nR2,5,0,1,6,0,6\nR3,0,1,1,6,0,6\nR4,5,1,2,6,0,6\nR5,10,1,3,6,1,6\n")
 

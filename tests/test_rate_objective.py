@@ -255,6 +255,18 @@ def test_a_planning_step_shows_every_rate_inside_the_unit_interval():
     assert all(e["best_mean"] is None or 0 <= e["best_mean"] <= 1 for e in result.threshold_price)
 
 
+def test_a_batch_of_rates_values_its_later_picks_over_sampled_results():
+    # the sampled method draws the earlier picks' latent results and values later picks by the
+    # rate's rule under each draw: a rate, so every value stays a probability gain in [0, 1]
+    p = _protocol()
+    assert p.batch.method == "sampled" and p.batch.size == 2
+    result = plan_step(p, parse_runs_text(RUNS, p), seed=4, pool_size=300)
+    assert len(result.proposals) == 2
+    second = result.proposals[1]
+    assert "averaged over 128 sampled results of 1 earlier pick(s)" in second.reason
+    assert all(0 <= second.given_earlier[k] <= 1 for k in ("ei", "pi", "bound", "mean"))
+
+
 def test_slices_and_model_checks_of_the_rate_stay_in_the_unit_interval():
     from guardband.planner.models.checks import loo_interval
     from guardband.planner.report.data import map_data, slice_data

@@ -343,6 +343,12 @@ class BinomialPosteriorAt:
             raise ValueError("a binomial model predicts the true rate; it has no measurement noise to add")
         return self._mean.copy(), np.sqrt(np.maximum(self._var, 0.0))
 
+    def fantasy_direction(self, p: int = -1) -> np.ndarray:
+        """How the latent mean at every point moves per unit of the ``p``-th fantasised cohort's
+        standardised surprise: ``c_p / sqrt(s_p)``, as
+        :meth:`planner.models.gp.PosteriorAt.fantasy_direction` (latent units)."""
+        return self._updates[p]
+
     def condition(self, j: int, f_j: float) -> None:
         """Add a fantasised cohort whose latent logit rate is ``f_j`` at point j, in place."""
         m = self._model

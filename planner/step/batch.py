@@ -35,9 +35,6 @@ once a run has met every limit:
 ``believer``
     Each earlier pick comes out at its posterior mean, which also moves the
     incumbent (the kriging believer above, the only method before).
-    A response rate (a binomial objective) is always valued this way: its
-    rules are computed on the rate (:mod:`.rates`), not on the latent
-    Gaussian that the draws move.
 
 The bound and mean rules, and the joint figure while no run has met every
 limit, value picks alike under both (their average over the draws is their
@@ -55,7 +52,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import logsumexp, ndtri
 
-from guardband.planner.step.acquisition import RULES, all_values
+from guardband.planner.step.acquisition import all_values, score as rule_score
 from guardband.planner.step.context import StepContext
 from guardband.safety.screen import ScreenResult, step_distance
 
@@ -189,7 +186,7 @@ class _Draws:
     def scores(self, rule: str, mu, sd, rank_kw: dict) -> np.ndarray:
         """log of the rule's value averaged over the draws, at the pool points (mu, sd under the fantasies)."""
         n = mu.shape[0]
-        logs = RULES[rule].score(mu[None, :] + self.shift[:, :n], sd[None, :], self.inc[:, None], **rank_kw)
+        logs = rule_score(rule, mu[None, :] + self.shift[:, :n], sd[None, :], self.inc[:, None], **rank_kw)
         return logsumexp(logs, axis=0) - np.log(SAMPLES)
 
     def values(self, j: int, mu_j: float, sd_j: float, rank_kw: dict) -> dict:
@@ -214,10 +211,7 @@ class BatchRule:
     @classmethod
     def of(cls, protocol, rank_kw: dict, *, rng=None, forced: bool = False, weigh_by_joint: bool = False):
         """The protocol's method and least worth (none when the batch size was asked for: ``forced``)."""
-        # a response rate's rules are computed on the rate (step.rates), not on the latent
-        # Gaussian the draws move: its later picks are valued at the mean
-        method = "believer" if protocol.objective.kind == "binomial" else protocol.batch.method
-        return cls(method, protocol.ranking.rule, dict(rank_kw),
+        return cls(protocol.batch.method, protocol.ranking.rule, dict(rank_kw),
                    0.0 if forced else protocol.batch.least_worth, rng, weigh_by_joint)
 
     def valued(self, incumbent_value) -> bool:

@@ -52,7 +52,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import logsumexp, ndtri
 
-from guardband.planner.step.acquisition import all_values, score as rule_score
+from guardband.planner.step.acquisition import all_values, score as rule_score, weighted_by_joint
 from guardband.planner.step.context import StepContext
 from guardband.safety.screen import ScreenResult, step_distance
 
@@ -255,13 +255,12 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
     if rule.method == "sampled" and rule.valued(incumbent_value) and (count > 1 or n_busy):
         draws = _Draws(pool.U.shape[0] + n_busy, n_busy + count, rule.rng, incumbent_value, maximize)
 
+    def drawn_scores(mu, sd, res, _inc):  # the sampled method ranks by the rule averaged over the draws
+        scores = draws.scores(rule.rule, mu, sd, rule.rank_kw)
+        return weighted_by_joint(scores, res.joint) if rule.weigh_by_joint else scores
+
     def rescreen(fant, inc):
-        res, scores, mu, sd = fant.rescreen(scores_of, inc)
-        if draws is not None:
-            scores = draws.scores(rule.rule, mu, sd, rule.rank_kw)
-            if rule.weigh_by_joint:
-                scores = scores + np.log(np.maximum(res.joint, 1e-300))
-        return res, scores, mu, sd
+        return fant.rescreen(scores_of if draws is None else drawn_scores, inc)
 
     chosen: list[int] = []
     messages: list[str] = []

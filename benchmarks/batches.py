@@ -57,7 +57,7 @@ import frontier as fr  # noqa: E402  (one campaign's breaks and true gap)
 
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text  # noqa: E402
 from guardband.planner.simulation.family import with_settings  # noqa: E402
-from guardband.planner.simulation.problems import Problem, get_problem  # noqa: E402
+from guardband.planner.simulation.problems import Problem, get_problem, objective_range  # noqa: E402
 from guardband.planner.simulation.runner import run_in_workers  # noqa: E402
 
 DEFAULTS = {"builtin": ["gramacy", "tablet", "dose", "coating"], "family": 28, "seeds": 2, "family_seeds": 1,
@@ -110,7 +110,7 @@ def _jobs(problems, opt: dict, variants: dict) -> list:
     """Every (problem, batch, method, seed) campaign; batch 1 once (every method plans it alike)."""
     jobs = []
     for problem, group, seeds in problems:
-        rng_ = fr.objective_range(problem)
+        rng_ = objective_range(problem)
         for batch in opt["batches"]:
             for method in (["any"] if batch == 1 else opt["methods"]):
                 p = with_settings(problem, threshold=opt["threshold"], batch=batch, pool=opt["pool"],

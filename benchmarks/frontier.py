@@ -66,9 +66,8 @@ sys.path.insert(0, str(HERE))
 import calibration as cal  # noqa: E402  (one home for the CSV merging and the exact interval)
 
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text  # noqa: E402
-from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402
 from guardband.planner.simulation.family import family_problem, with_settings  # noqa: E402
-from guardband.planner.simulation.problems import Problem, get_problem  # noqa: E402
+from guardband.planner.simulation.problems import Problem, get_problem, objective_range  # noqa: E402
 from guardband.planner.simulation.runner import run_in_workers, simulate  # noqa: E402
 
 DEFAULTS = {"builtin": ["gramacy", "tablet", "dose", "coating"], "family": 28, "seeds": 5, "family_seeds": 1,
@@ -96,8 +95,6 @@ CAMPAIGN_COLUMNS = ("label", "problem", "group", "shape", "strategy", "threshold
 SUMMARY_COLUMNS = ("label", "group", "strategy", "threshold", "ablation", "campaigns", "planned", "broken",
                    "broken_share", "ci_low", "ci_high", "median_breaks", "median_gap_pct", "q25_gap_pct",
                    "q75_gap_pct", "stalled")
-#: Points of the design space sampled for a built-in problem's objective range.
-RANGE_SAMPLE = 4000
 
 
 @dataclass(frozen=True)
@@ -121,16 +118,6 @@ def with_ablation(problem: Problem, name: str) -> Problem:
     for section, values in ABLATIONS[name].items():
         data[section] = {**data.get(section, {}), **values}
     return dataclasses.replace(problem, protocol_dict=data)
-
-
-def objective_range(problem: Problem) -> float:
-    """The objective's range over the design space: the family's tag, else a seeded sample."""
-    if "objective_range" in problem.tags:
-        return float(problem.tags["objective_range"])
-    protocol = parse_protocol(problem.protocol_dict, source=problem.name)
-    X = protocol.design_space().sample(RANGE_SAMPLE, rng=np.random.default_rng(0))
-    y = np.asarray(problem.evaluate(X)[protocol.objective.name], dtype=float)
-    return float(max(np.ptp(np.append(y, problem.optimum)), 1e-12))
 
 
 def true_gap(history, protocol, optimum: float) -> float:

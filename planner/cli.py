@@ -556,7 +556,8 @@ def simulate(
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Run a sweep's campaigns on this Dask "
                                             "distributed scheduler (e.g. tcp://10.0.0.5:8786)."),
     within: Optional[float] = typer.Option(None, "--within", min=0.0, help="Distance to the optimum "
-                                           "(objective units) for 'runs until within' (default 1% of it)."),
+                                           "(objective units) for 'runs until within' (default 1% of the "
+                                           "objective's range under the truth)."),
     strategies: str = typer.Option("all", "--strategies", help="Comma-separated: protocol, ei, pi, "
                                    "bound, mean, random, classical, screen-off, textbook (EI times the limits' "
                                    "probabilities, no screen); or all (--problem only)."),

@@ -54,6 +54,98 @@ def test_optimum_against_a_dense_grid_on_two_factors():
     np.testing.assert_allclose(problem.optimum_x, G[ok][np.argmax(Y["y"][ok])], atol=3 * step)
 
 
+def _mixed_protocol():
+    return parse_protocol({
+        "study": {"title": "one continuous, one discrete", "version": "1", "author": "test"},
+        "factors": [{"name": "x", "kind": "continuous", "lower": 0.0, "upper": 1.0},
+                    {"name": "d", "kind": "discrete", "levels": [0, 1, 2, 3]}],
+        "constraints": [{"name": "cap", "rule": "x + 0.25 * d <= 1.3"}],
+        "objective": {"name": "y", "direction": "maximize"},
+        "limits": [{"name": "g", "upper": 0.8, "probability": 0.9}],
+        "screen": {"threshold": 0.9, "min_runs": 3},
+        "batch": {"size": 1, "pool": 200, "refine": 0},
+        "model": {"restarts": 1},
+    })
+
+
+# the limit binds at the best level, the cap at the highest (d = 3 leaves x <= 0.55)
+MIXED_TRUTH = {"y": "x + 0.3 * d - 0.05 * d ^ 2", "g": "x ^ 2 + 0.1 * d"}
+
+
+def test_optimum_with_discrete_and_continuous_factors_against_a_dense_grid():
+    # regression: a protocol with a discrete factor beside continuous ones (a mixture and a pH
+    # level) could not be simulated at all: locate_optimum refused mixed design spaces
+    protocol = _mixed_protocol()
+    problem = parse_scenarios(_one(MIXED_TRUTH), protocol).scenarios[0].problem
+    best, best_x = -np.inf, None
+    for d in (0.0, 1.0, 2.0, 3.0):  # every level, a 100,001-point grid of x each
+        x = np.linspace(0.0, 1.0, 100_001)
+        G = np.column_stack([x, np.full_like(x, d)])
+        G = G[protocol.design_space().contains(G)]
+        Y = problem.evaluate(G)
+        ok = met_every_limit(protocol, Y)
+        if np.any(ok) and np.max(Y["y"][ok]) > best:
+            best, best_x = float(np.max(Y["y"][ok])), G[ok][np.argmax(Y["y"][ok])]
+    # by hand: d = 2 gives x <= sqrt(0.6) = 0.7746 (the limit; the cap allows 0.8), y = 1.1746;
+    # d = 1: x <= sqrt(0.7) = 0.8367, y = 1.0867; d = 3: x <= 0.55 (the cap), y = 1.0
+    assert best == pytest.approx(np.sqrt(0.6) + 0.4, abs=1e-5)
+    assert problem.optimum == pytest.approx(best, abs=1e-5)
+    np.testing.assert_allclose(problem.optimum_x, best_x, atol=1e-4)
+    assert problem.optimum_x[1] == 2.0  # on a level, not between levels
+    # the objective's range rides along for the gap's scale: over the space, y runs from 0 (x = 0,
+    # d = 0) to 1.25 (x = 1, d = 1: beyond the limit but inside the space)
+    assert problem.tags["objective_range"] == pytest.approx(1.25, abs=0.02)
+
+
+MIXED_TOML = """
+[study]
+title = "one continuous, one discrete"
+version = "1"
+author = "test"
+[[factors]]
+name = "x"
+kind = "continuous"
+lower = 0.0
+upper = 1.0
+[[factors]]
+name = "d"
+kind = "discrete"
+levels = [0, 1, 2, 3]
+[[constraints]]
+name = "cap"
+rule = "x + 0.25 * d <= 1.3"
+[objective]
+name = "y"
+direction = "maximize"
+[[limits]]
+name = "g"
+upper = 0.8
+probability = 0.9
+[screen]
+threshold = 0.9
+min_runs = 3
+[batch]
+size = 1
+pool = 200
+refine = 0
+[model]
+restarts = 1
+"""
+
+
+def test_cli_simulates_a_protocol_with_discrete_and_continuous_factors(tmp_path):
+    (tmp_path / "mixed.toml").write_text(MIXED_TOML, encoding="utf-8")
+    truth = "\n".join(f'{k} = "{v}"' for k, v in MIXED_TRUTH.items())
+    (tmp_path / "truth.toml").write_text(f'[[scenario]]\nname = "s"\n[scenario.truth]\n{truth}\n', encoding="utf-8")
+    result = CliRunner().invoke(app, ["simulate", str(tmp_path / "mixed.toml"), "--scenarios",
+                                      str(tmp_path / "truth.toml"), "--start", "5", "--seeds", "1",
+                                      "--budget", "2", "--workers", "1"])
+    assert result.exit_code == 0, result.output
+    flat = " ".join(result.stdout.split())
+    assert "known optimum 1.17459" in flat and "at (0.77459" in flat and ", 2.0)" in flat
+    assert "(within 0.0125)" in flat  # 1% of the objective's range, 1.25
+
+
 def test_noise_defaults_to_the_protocols_measurement_sd():
     protocol = _two_factor_protocol(measurement_sd=0.7)
     problem = parse_scenarios(_one(noise={"g": 0.01}), protocol).scenarios[0].problem

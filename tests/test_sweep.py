@@ -195,6 +195,13 @@ def test_runs_until_within_counts_planned_runs(local):
         assert (np.isnan(runs[s]) and hits.size == 0) or runs[s] == hits[0]
 
 
+def test_the_default_distance_is_a_share_of_the_objectives_range(local):
+    # Gramacy's objective x1 + x2 on the unit square spans 2 (a sample of 4,000 points comes within
+    # 0.05 of it), so 1% of it is 0.02 for the planner and its peers alike. The old default, 1% of
+    # |optimum| (0.006 here), depended on where the objective's zero lies: 0 for an optimum at 0.
+    assert [c.within for c in local.cells] == pytest.approx([0.02] * len(local.cells), abs=5e-4)
+
+
 @pytest.mark.slow
 def test_drawn_scenarios_measure_each_gap_from_their_own_optimum():
     protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")

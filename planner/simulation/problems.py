@@ -68,6 +68,7 @@ __all__ = [
     "PROBLEMS",
     "get_problem",
     "locate_optimum",
+    "objective_range",
     "gramacy_protocol_dict",
     "OPTIMUM_MARGIN",
     "slsqp_in_space",
@@ -209,6 +210,9 @@ class OptimumResult:
     n_points : int
         Size of the dense sample or of the enumeration.
     method : str
+    objective_range : float
+        The objective's range over the sample (or the enumeration) and the
+        optimum: the scale a gap is read against.
     """
 
     value: float
@@ -216,6 +220,11 @@ class OptimumResult:
     share_feasible: float
     n_points: int
     method: str
+    objective_range: float = float("nan")
+
+
+#: Points of the design space drawn for an objective's range when no tag states it.
+RANGE_SAMPLE = 4000
 
 
 def _discrete_grid(space) -> np.ndarray:
@@ -333,6 +342,17 @@ def _pulled_back(protocol: Protocol, evaluate, start: np.ndarray, x: np.ndarray,
     return start + lo * (x - start)
 
 
+def _best_of_each_combination(X: np.ndarray, order: np.ndarray, columns: list[int]) -> list[int]:
+    """The first index in ``order`` of each combination of the values of ``columns`` (best first)."""
+    seen, out = set(), []
+    for i in order:
+        key = tuple(X[i, columns])
+        if key not in seen:
+            seen.add(key)
+            out.append(int(i))
+    return out
+
+
 def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int = 20,
                    seed: int = 0) -> OptimumResult:
     """The best objective among points meeting every limit.
@@ -358,7 +378,11 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     hit-and-run, and SLSQP polishes the best feasible points over the free
     factors with the space's bounds, equalities and inequalities and each
     limit kept ``OPTIMUM_MARGIN`` (times the response's sampled spread)
-    inside. Mixed discrete and continuous factors are not supported.
+    inside. With discrete and continuous factors together, the sample holds
+    feasible level combinations, each polish keeps its start's levels, and
+    the best sample of each combination met is polished too (up to
+    ``n_polish`` combinations, best first), so that no combination is judged
+    by its sample alone.
     """
     protocol = problem.protocol
     space = protocol.design_space()
@@ -373,9 +397,7 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
         idx = np.flatnonzero(ok)
         best = idx[np.argmin(sign * Y[obj][idx])]
         return OptimumResult(float(Y[obj][best]), G[best].copy(), float(ok.mean()), G.shape[0],
-                             "enumeration of every feasible level combination")
-    if space.levels:
-        raise ValueError("locate_optimum supports all-continuous or all-discrete problems")
+                             "enumeration of every feasible level combination", _spread(Y[obj]))
     rng = np.random.default_rng(seed)
     X = space.sample(n_samples, rng=rng)
     Y = problem.evaluate(X)
@@ -387,6 +409,8 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
     order = idx[np.argsort(sign * Y[obj][idx])]
     starts = list(order[:n_polish])
     starts += list(rng.choice(idx, size=min(n_polish, idx.size), replace=False))
+    if space.levels:
+        starts += _best_of_each_combination(X, order, sorted(space.levels))[:n_polish]
     best_x, best_v = X[order[0]].copy(), float(sign * Y[obj][order[0]])
 
     # the objective in units of its sampled spread: SLSQP's tolerances then mean the same on
@@ -413,7 +437,26 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
             best_x, best_v = x, sign * float(y[obj][0])
     return OptimumResult(float(sign * best_v), best_x, float(ok.mean()), int(n_samples),
                          f"dense hit-and-run sample of {n_samples} points, then SLSQP from "
-                         f"{len(starts)} feasible starts")
+                         f"{len(starts)} feasible starts", _spread(Y[obj], sign * best_v))
+
+
+def _spread(y, *extra) -> float:
+    """``ptp`` of the values (and any extra ones), at least 1e-12."""
+    return float(max(np.ptp(np.append(np.asarray(y, dtype=float), extra)), 1e-12))
+
+
+def objective_range(problem: Problem) -> float:
+    """The objective's range over the design space: the problem's tag, else a seeded sample.
+
+    Generated problems and scenario truths carry it as ``tags["objective_range"]``
+    (from :func:`locate_optimum`); otherwise :data:`RANGE_SAMPLE` points of the
+    design space are drawn with seed 0, the known optimum included.
+    """
+    if "objective_range" in problem.tags:
+        return float(problem.tags["objective_range"])
+    protocol = problem.protocol
+    X = protocol.design_space().sample(RANGE_SAMPLE, rng=np.random.default_rng(0))
+    return _spread(problem.evaluate(X)[protocol.objective.name], problem.optimum)
 
 
 # ------------------------------------------------------------ Gramacy 2016

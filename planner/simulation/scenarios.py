@@ -179,7 +179,8 @@ def _with_optimum(problem: Problem, *, where: str, **options) -> Problem:
         raise ProtocolError(f"{where}: {exc}; no point of the design space meets every limit "
                             "under this truth, so no gap can be measured") from None
     return dataclasses.replace(problem, optimum=found.value, optimum_x=tuple(float(v) for v in found.x),
-                               optimum_method=f"locate_optimum: {found.method}")
+                               optimum_method=f"locate_optimum: {found.method}",
+                               tags={**problem.tags, "objective_range": found.objective_range})
 
 
 def _noise(protocol: Protocol, entry: ScenarioEntry, fitted: dict) -> dict:

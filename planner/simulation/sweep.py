@@ -51,6 +51,7 @@ from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.protocol import Protocol, parse_protocol
 from guardband.planner.models import blas_limit
 from guardband.planner.simulation.loop import CampaignHistory, run_campaign, start_runs
+from guardband.planner.simulation.problems import objective_range
 from guardband.planner.simulation.results import SimulationResult, _finite, _fmt, _pct, _quantiles
 from guardband.planner.simulation.runner import _seeds, run_peer
 from guardband.planner.simulation.strategies import PEERS
@@ -74,7 +75,7 @@ LIGHT_NOTE = (f"step=light: each planning step searches less (a pool of at most 
 PEER_NOTES = {"random": "random: the starting runs, then the budget drawn uniformly from the design space",
               "classical": "classical: a space-filling design of start + budget - 1 runs, quadratic fits, "
                            "one confirmation run at the fitted best point"}
-#: Default distance for "runs until within": this share of |optimum| (or of 1 when the optimum is 0).
+#: Default distance for "runs until within": this share of the objective's range over the design space.
 WITHIN_SHARE = 0.01
 
 
@@ -157,8 +158,8 @@ def _one_thread_each():
         fitting.FIT_WORKERS, gp.PREDICT_WORKERS = saved
 
 
-def _run_task(task: _Task) -> tuple[CampaignHistory, float]:
-    """One campaign: (its history, the known optimum of its truth)."""
+def _run_task(task: _Task) -> tuple[CampaignHistory, float, float]:
+    """One campaign: (its history, the known optimum of its truth, the truth's objective range)."""
     with _one_thread_each():
         problem = task.scenario.problem_for(task.base_seed, task.seed_index)
         protocol = parse_protocol(task.protocol_data, source=f"sweep cell {task.cell}")
@@ -169,10 +170,10 @@ def _run_task(task: _Task) -> tuple[CampaignHistory, float]:
         if task.strategy in PEERS:
             history = run_peer(task.strategy, problem, protocol, X_start=X_start, n_start=task.n_start,
                                budget=task.budget, seed=seed, measure=measure, pool_size=task.pool_size)
-            return history, float(problem.optimum)
+            return history, float(problem.optimum), objective_range(problem)
         history = run_campaign(protocol, problem.evaluate, n_start=task.n_start, budget=task.budget, seed=seed,
                                X_start=X_start, measure=measure, pool_size=task.pool_size, cohort=problem.cohort)
-    return history, float(problem.optimum)
+    return history, float(problem.optimum), objective_range(problem)
 
 
 def _run_local(tasks, workers: int, progress) -> list:
@@ -395,9 +396,9 @@ def _safe(text: str) -> str:
     return "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in text)[:60]
 
 
-def _default_within(optima) -> float:
-    scale = float(np.median(np.abs(np.asarray(optima, dtype=float))))
-    return WITHIN_SHARE * (scale if scale > 0 else 1.0)
+def _default_within(ranges) -> float:
+    """:data:`WITHIN_SHARE` of the median objective range of a cell's truths."""
+    return WITHIN_SHARE * float(np.median(np.asarray(ranges, dtype=float)))
 
 
 def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int = 5, base_seed: int = 0,
@@ -423,7 +424,8 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
         Multiplies every measurement sd of the truth (1: as stated, 0: none).
     within : float, optional
         Distance to the optimum for "runs until within" (objective units);
-        default :data:`WITHIN_SHARE` of the median |optimum|.
+        default :data:`WITHIN_SHARE` of the objective's range over the design
+        space under the truth (the median over a cell's drawn truths).
     workers : int
         1: in this process; more: a joblib process pool.
     scheduler : str or dask.distributed.Client, optional
@@ -483,13 +485,14 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
     for c, (setting, sc, data, start, planned, strategy) in enumerate(cells):
         mine = [r for t, r in zip(tasks, results) if t.cell == c]
         protocol = parse_protocol(data, source=f"setting {setting.label}")
-        optima = tuple(o for _, o in mine)
+        optima = tuple(o for _, o, _ in mine)
         result = SimulationResult(
             problem=sc.problem, protocol=protocol, strategies=(strategy,), same_as={},
-            histories={strategy: [h for h, _ in mine]}, n_start=start, budget=planned, seeds=seeds,
+            histories={strategy: [h for h, _, _ in mine]}, n_start=start, budget=planned, seeds=seeds,
             base_seed=int(base_seed), noise_scale=float(noise_scale), noise={},
             workers=workers, optima=optima if sc.drawn else (),
         )
-        out.append(SweepCell(setting, sc.name, result, _default_within(optima) if within is None else float(within),
+        ranges = [r for _, _, r in mine]
+        out.append(SweepCell(setting, sc.name, result, _default_within(ranges) if within is None else float(within),
                              strategy))
     return SweepResult(tuple(out), seeds, int(base_seed), float(noise_scale), runner)

@@ -202,6 +202,14 @@ def test_the_default_distance_is_a_share_of_the_objectives_range(local):
     assert [c.within for c in local.cells] == pytest.approx([0.02] * len(local.cells), abs=5e-4)
 
 
+def test_the_sweep_says_which_thresholds_cannot_bind(local):
+    # FAST asks 0.95 of each of Gramacy's two limits, which already implies a joint figure of 0.9:
+    # a sweep over thresholds at or below it compares settings that screen alike, and must say so
+    text = " ".join(local.table_text().split())
+    assert "setting as-written: screen.threshold 0.9 never binds" in text
+    assert sum("never binds" in line for line in local.description()) == 1
+
+
 @pytest.mark.slow
 def test_drawn_scenarios_measure_each_gap_from_their_own_optimum():
     protocol = load_protocol(PROTOCOLS / "tablet_blend.toml")

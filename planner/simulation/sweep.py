@@ -55,6 +55,7 @@ from guardband.planner.simulation.problems import objective_range
 from guardband.planner.simulation.results import SimulationResult, _finite, _fmt, _pct, _quantiles
 from guardband.planner.simulation.runner import _seeds, run_peer
 from guardband.planner.simulation.strategies import PEERS
+from guardband.planner.step.attitudes import threshold_binding
 
 __all__ = ["SWEEP_KEYS", "LIGHT_STEP", "STEPS", "Setting", "settings_grid", "SweepCell", "SweepResult", "run_sweep",
            "WITHIN_SHARE"]
@@ -330,6 +331,8 @@ class SweepResult:
                 PEER_NOTES[p] for p in peers))
         if any(c.setting.step == "light" for c in planner):
             lines.append(LIGHT_NOTE)
+        for label, protocol in {c.setting.label: c.result.protocol for c in planner}.items():
+            lines += [f"setting {label}: {w}" for w in threshold_binding(protocol)]
         for c in self.cells:
             if c.setting == self.cells[0].setting and c.strategy == self.cells[0].strategy:
                 lines.append(f"scenario {c.scenario}: " + c.result.description()[1])

@@ -162,3 +162,27 @@ def test_plan_output_check_and_log_show_the_comparison_and_the_price(tmp_path):
     assert "warning: screen.threshold 0.9 never binds" in check.stderr
     data = json.loads(runner.invoke(app, ["check", str(PROTOCOLS / "tablet_blend.toml"), "-f", "json"]).stdout)
     assert data["threshold_warnings"] and data["guidance"]
+
+
+def _priced(best_own, best_next, maximize=True):
+    from types import SimpleNamespace
+
+    objective = SimpleNamespace(name="droplet", unit="um")
+    protocol = SimpleNamespace(objective=objective, maximize=maximize)
+    price = [{"threshold": 0.9, "own": True, "best_mean": best_own, "n_pass": 10, "n_candidates": 9005},
+             {"threshold": 0.95, "own": False, "best_mean": best_next, "n_pass": 4, "n_candidates": 9005}]
+    return SimpleNamespace(threshold_price=price, protocol=protocol)
+
+
+@pytest.mark.parametrize(("own", "next_", "maximize", "phrase"), [
+    (5.619, 5.619, False, "costs nothing in the best predicted droplet"),  # read "costs about -0 (um)"
+    (5.619, 5.619 + 1e-9, True, "costs nothing in"),
+    (5.0, 7.5, False, "costs about 2.5 (um) in the best predicted droplet"),
+    (7.5, 5.0, True, "costs about 2.5 (um) in"),
+])
+def test_the_price_of_the_next_threshold_in_words(own, next_, maximize, phrase):
+    from guardband.planner.app.attitude_text import price_sentence
+
+    text = price_sentence(_priced(own, next_, maximize))
+    assert phrase in text and "-0" not in text
+    assert text.endswith("leaves 4 of 9,005 candidates passing")

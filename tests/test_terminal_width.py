@@ -9,7 +9,7 @@ from __future__ import annotations
 import pytest
 from typer.testing import CliRunner
 
-from guardband.planner.app.textable import TERMINAL_WIDTH, render_table, wrap_text
+from guardband.planner.app.textable import TERMINAL_WIDTH, format_cell, render_table, wrap_text
 from guardband.planner.cli import app
 
 from conftest import PROTOCOLS
@@ -30,6 +30,15 @@ def test_a_wide_table_splits_into_blocks_that_keep_every_cell():
         assert text.count(name) == 1  # every column once
     assert text.count("R1 ") + text.count("R1\n") >= 2  # the row's name in every block
     assert _widest(render_table(header, rows, width=None)) > TERMINAL_WIDTH
+
+
+@pytest.mark.parametrize(("value", "text"), [
+    (10000.0, "10000"),  # a stirrer at 10,000 rpm read "1e+04 rpm"
+    (12345.6, "12346"), (99999.5, "100000"), (8384.16, "8384"), (-20000.0, "-20000"), (0.5, "0.5"),
+    (0.12345, "0.1235"), (1234567.0, "1.235e+06"), (0.000123, "1.230e-04"), (0.0, "0"), (3, "3"),
+])
+def test_numbers_below_a_million_read_without_exponents(value, text):
+    assert format_cell(value) == text
 
 
 def test_prose_wraps_with_its_indent():

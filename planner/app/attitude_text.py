@@ -76,8 +76,11 @@ def price_sentence(result: PlanResult) -> str:
                 "that passes")
     sign = 1.0 if result.protocol.maximize else -1.0
     cost = sign * (a["best_mean"] - b["best_mean"])
-    return (f"raising the threshold from {a['threshold']:g} to {b['threshold']:g} costs about "
-            f"{cost:.3g}{unit} in the best predicted {obj.name}, and leaves {b['n_pass']:,} of "
+    # the same best candidate at both thresholds: nothing (not "-0" or a rounding error's -1e-17)
+    same = abs(cost) <= 1e-9 * max(1.0, abs(a["best_mean"]))
+    what = "costs nothing in" if same else f"costs about {cost:.3g}{unit} in"
+    return (f"raising the threshold from {a['threshold']:g} to {b['threshold']:g} {what} "
+            f"the best predicted {obj.name}, and leaves {b['n_pass']:,} of "
             f"{b['n_candidates']:,} candidates passing")
 
 

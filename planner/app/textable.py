@@ -25,7 +25,9 @@ def format_cell(value, *, digits: int = 4) -> str:
             return "-"
         if value != 0 and (abs(value) >= 1e6 or abs(value) < 1e-3):
             return f"{value:.{digits - 1}e}"
-        return f"{value:.{digits}g}"
+        text = f"{value:.{digits}g}"
+        # below 1e6 a whole number reads as one (10000 rpm, not 1e+04): more figures, never fewer
+        return f"{value:.0f}" if "e" in text else text
     return str(value)
 
 

@@ -104,6 +104,32 @@ def test_a_claim_that_rests_on_one_run_is_not_trusted_away_from_it():
     assert p(guarded, farther) < 0.95 <= p(gp, farther)
 
 
+def test_the_guarded_figure_is_the_guards_own_even_below_one_half():
+    """Where the guard's figure falls below 1/2 while the full model's mean is inside a one-sided
+    limit, no widening of the sd can give it (the figure tends to 1/2 as the sd grows). It used
+    to come out as the widening's cap, the sd times a million and a figure of just over 1/2: a
+    plot's band shot off the page, and a screen at a threshold of 1/2 passed such a point. The
+    figure must be the guard's own, by the blend of the docstring, computed here by hand."""
+    X, _, gp = _one_safe_run()
+    guarded = GuardedLimitModel(gp, lower=None, upper=0.5, deletion=True, local=False)
+    pts = X[0] + np.column_stack([np.linspace(0.0, 0.5, 60), np.zeros(60)])
+    mean, sd = gp.predict(pts)
+    p_full = stats.norm.cdf((0.5 - mean) / sd)
+    m_del, sd_del = deletion_predictions(gp, pts)
+    near = np.clip(gp.kernel(pts, X) / (gp.scale**2 * gp.hyperparameters.signal_variance), 0, 1) ** 2
+    blend = near * p_full[:, None] + (1 - near) * stats.norm.cdf((0.5 - m_del) / sd_del)
+    p_guard = np.minimum(p_full, blend.min(axis=1))
+    below = (p_guard < 0.45) & (mean < 0.5)
+    assert below.sum() >= 5  # the case in question occurs on this line
+    g_mean, g_sd = guarded.predict(pts)
+    np.testing.assert_allclose(limit_probability(g_mean, g_sd, upper=0.5), p_guard, atol=1e-6)
+    assert np.all(np.isfinite(g_sd)) and np.all(g_sd <= 1e3 * sd)  # no sd at the widening's cap
+    # the same for a lower limit, mirrored
+    mirrored = GuardedLimitModel(fit_gp(X, -gp.y, prior_mean=-0.5, hyperparameters=gp.hyperparameters),
+                                 lower=-0.5, upper=None, deletion=True, local=False)
+    np.testing.assert_allclose(limit_probability(*mirrored.predict(pts), lower=-0.5), p_guard, atol=1e-6)
+
+
 def test_the_screen_names_the_run_a_claim_rests_on():
     """A candidate that passes with every run counted but not with one run left
     out is excluded with its own reason, naming that run; one that fails either
@@ -145,7 +171,12 @@ def test_guards_never_raise_a_probability():
         p0 = limit_probability(*gp.predict(Xs, include_noise=noise), upper=0.8)
         p1 = limit_probability(*guarded.predict(Xs, include_noise=noise), upper=0.8)
         assert np.all(p1 <= p0 + 1e-12)
-        np.testing.assert_allclose(guarded.predict(Xs)[0], gp.predict(Xs)[0])  # the mean never moves
+        # the mean moves only where the guard's figure is below 1/2, which no sd can give with the
+        # mean inside the limit: there it lies beyond the limit
+        g_mean, m = guarded.predict(Xs, include_noise=noise)[0], gp.predict(Xs, include_noise=noise)[0]
+        moved = g_mean != m
+        np.testing.assert_array_equal(moved, (p1 < 0.5) & (m < 0.8))
+        assert np.all(g_mean[moved] > 0.8)
     # the posterior over fixed points (batch fantasies) gives the same figures
     post = guarded.posterior_at(Xs)
     np.testing.assert_allclose(post.mean_sd()[1], guarded.predict(Xs)[1], rtol=1e-9)

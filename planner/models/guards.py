@@ -261,8 +261,8 @@ class GuardedLimitModel:
 
     def _worst(self, mean, sd_f, noise_var, shifts, factor):
         """Per point, the (mean, sd) whose probability is the guarded one, and why: see :meth:`_unwidened`."""
-        mean, widening, sd_all, leaning = self._unwidened(mean, sd_f, noise_var, shifts, factor)
-        return mean, _bisect([widening])[0], sd_all, leaning
+        _, widening, sd_all, leaning = self._unwidened(mean, sd_f, noise_var, shifts, factor)
+        return widening.mean, _bisect([widening])[0], sd_all, leaning
 
 
 def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
@@ -284,8 +284,8 @@ def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
         noise_var = model._noise_var if noise else 0.0
         pending.append((k, key, *model._unwidened(mean, sd_f, noise_var, *model._guards(Xs))))
     widened = _bisect([p[3] for p in pending])
-    for (k, key, mean, _, sd_all, leaning), sd in zip(pending, widened):
-        out[k] = (mean, sd, sd_all, leaning)
+    for (k, key, _, widening, sd_all, leaning), sd in zip(pending, widened):
+        out[k] = (widening.mean, sd, sd_all, leaning)
         models[k]._keep(key, out[k])
     return out
 
@@ -299,10 +299,16 @@ class _Widening:
     ``limit_probability(mean, sd)``), sd stays as it is (the probability
     there is already at most 1/2, or needs no change). ``target`` holds
     probabilities, in [0, 1]; None: nothing to widen.
+
+    A one-sided limit's probability only falls towards 1/2 as the sd grows,
+    so a target below 1/2 with the mean inside the limit cannot be reached
+    by widening. There the sd stays and the mean moves instead, beyond the
+    limit, to where the sd gives the target exactly (``mean`` holds the
+    means to report; the model's own elsewhere).
     """
 
     def __init__(self, mean, sd, target=None, lower=None, upper=None, p=None):
-        self.sd, self.lower, self.upper = sd, lower, upper
+        self.sd, self.lower, self.upper, self.mean = sd, lower, upper, mean
         self.todo = np.zeros(sd.shape, dtype=bool)
         if target is None:
             return
@@ -314,6 +320,8 @@ class _Widening:
         if lower is not None:
             inside &= mean > lower
         self.todo = inside & (target < p) & (sd > 0)
+        if (lower is None) != (upper is None):
+            self._move_means(self.todo & (target < 0.5), target)
         if not np.any(self.todo):
             return
         self.lo = np.log(sd[self.todo])
@@ -327,6 +335,18 @@ class _Widening:
         self.dl = None if lower is None else lower - self.m
         sd_todo = sd[self.todo]
         self.fast = float(np.min(sd_todo)) > 1e-300 and float(np.max(sd_todo)) < 1e290
+
+    def _move_means(self, move: np.ndarray, target) -> None:
+        """Put the means at ``move`` where their sd gives ``target`` (below 1/2), beyond the one limit."""
+        if not np.any(move):
+            return
+        from scipy.special import ndtri  # on use: scipy.special is heavy to import
+
+        z = ndtri(np.clip(target[move], 1e-300, 0.5))  # <= 0; about -37 at the clip
+        self.mean = np.array(self.mean, dtype=float, copy=True)
+        self.mean[move] = (self.upper - z * self.sd[move] if self.upper is not None
+                           else self.lower + z * self.sd[move])
+        self.todo = self.todo & ~move
 
     def result(self, hi) -> np.ndarray:
         out = self.sd.copy()

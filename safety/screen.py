@@ -129,8 +129,9 @@ class LimitPrediction:
     mean: np.ndarray | None = None
     sd: np.ndarray | None = None
     message: str = ""
-    #: the sd with every run counted (before the single-run check), and the
-    #: run id the check leaned on at each point ("" where it changed nothing)
+    #: the mean and sd with every run counted (before the single-run check), and
+    #: the run id the check leaned on at each point ("" where it changed nothing)
+    mean_all: np.ndarray | None = None
     sd_all: np.ndarray | None = None
     leaning: np.ndarray | None = None
     scale: str = "response"  # or "logit": mean and sd of the logit of a binomial rate
@@ -286,19 +287,19 @@ def joint_figure(P, *, method: str = "bound") -> np.ndarray:
 
 
 def _mean_sd(model, U, with_noise: bool):
-    """(mean, sd, sd_all, leaning) from a fitted model at U, or from a posterior over
-    fixed points (U None); the last two are None unless the model has the single-run check."""
+    """(mean, sd, mean_all, sd_all, leaning) from a fitted model at U, or from a posterior over
+    fixed points (U None); the last three are None unless the model has the single-run check."""
     if U is None:
         if hasattr(model, "mean_sd_parts"):
             return model.mean_sd_parts(include_noise=with_noise)
-        return (*model.mean_sd(include_noise=with_noise), None, None)
+        return (*model.mean_sd(include_noise=with_noise), None, None, None)
     if hasattr(model, "predict_parts"):
         return model.predict_parts(U, include_noise=with_noise)
-    return (*model.predict(U, include_noise=with_noise), None, None)
+    return (*model.predict(U, include_noise=with_noise), None, None, None)
 
 
 def _predicted_together(limits, models, U) -> dict:
-    """``{k: (mean, sd, sd_all, leaning)}`` of the models at U that predict in one go with others
+    """``{k: (mean, sd, mean_all, sd_all, leaning)}`` of the models at U that predict in one go with others
     of their kind (a model class's ``predict_parts_together``: the same numbers, fewer calls)."""
     if U is None:
         return {}
@@ -347,10 +348,12 @@ def limit_predictions(limits: Sequence[LimitRule], models, U=None, *, unavailabl
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper,
                                        status=status, message=message))
         else:
-            mean, sd, sd_all, leaning = together[k] if k in together else _mean_sd(model, U, lim.with_noise)
+            mean, sd, mean_all, sd_all, leaning = (together[k] if k in together
+                                                   else _mean_sd(model, U, lim.with_noise))
             basis = _monotone_basis(lim, model, U) if lim.monotone else None
             out.append(LimitPrediction(lim.name, lim.probability, lim.lower, lim.upper, mean=mean, sd=sd,
-                                       sd_all=sd_all, leaning=leaning, scale=lim.scale, monotone=basis))
+                                       mean_all=mean_all, sd_all=sd_all, leaning=leaning, scale=lim.scale,
+                                       monotone=basis))
     return out
 
 
@@ -691,9 +694,9 @@ class ScreenResult:
 
 
 def _with_every_run(limits: Sequence[LimitPrediction]) -> list[LimitPrediction]:
-    """The predictions with every run counted (the sd before the single-run check)."""
-    return [replace(lim, sd=lim.sd_all) if lim.status == "ok" and lim.sd_all is not None else lim
-            for lim in limits]
+    """The predictions with every run counted (the mean and sd before the single-run check)."""
+    return [replace(lim, mean=lim.mean if lim.mean_all is None else lim.mean_all, sd=lim.sd_all)
+            if lim.status == "ok" and lim.sd_all is not None else lim for lim in limits]
 
 
 def _one_run_detail(i, limits, P, P_all, J, threshold) -> str:

@@ -15,6 +15,7 @@ from scipy import stats
 
 from guardband.planner.models import Hyperparameters, fit_gp
 from guardband.planner.models.guards import (
+    WIDEN_CAP,
     GuardedLimitModel,
     _widen_to,
     deletion_predictions,
@@ -67,17 +68,37 @@ def test_widening_reaches_the_target_probability_and_never_narrows(lower, upper)
     mean = rng.uniform(-0.3, 0.1, 50)
     sd = rng.uniform(0.01, 0.3, 50)
     p = limit_probability(mean, sd, lower=lower, upper=upper)
-    target = p * rng.uniform(0.5, 1.0, 50)
-    out = _widen_to(mean, sd, target, lower, upper)
+    target = p * rng.uniform(0.2, 1.0, 50)  # some targets below 1/2
+    m_out, out = _widen_to(mean, sd, target, lower, upper)
     assert np.all(out >= sd)
-    p_new = limit_probability(mean, out, lower=lower, upper=upper)
+    p_new = limit_probability(m_out, out, lower=lower, upper=upper)
     inside = np.ones(50, bool)
     if upper is not None:
         inside &= mean < upper
     if lower is not None:
         inside &= mean > lower
-    reachable = inside & (target > limit_probability(mean, sd * 1e6, lower=lower, upper=upper))
-    np.testing.assert_allclose(p_new[reachable], np.minimum(target, p)[reachable], atol=1e-6)
+    if lower is None or upper is None:  # one-sided: every target is met, the sd at most WIDEN_CAP times
+        np.testing.assert_allclose(p_new[inside], np.minimum(target, p)[inside], atol=1e-9)
+        assert np.all(out <= WIDEN_CAP * sd * (1 + 1e-12))
+        moved = m_out != mean
+        assert np.all(np.isclose(out[moved], WIDEN_CAP * sd[moved]))  # the mean moves only at the cap
+        towards = (m_out - mean) * (1.0 if upper is not None else -1.0)
+        assert np.all(towards >= 0)  # and only towards the limit
+        assert np.any(moved) and np.any(p_new[moved] < 0.5)  # both cases occur here
+    else:  # two-sided: bisection, the mean kept, every target reachable below the cap of 1e6
+        assert np.all(m_out == mean)
+        reachable = inside & (target > limit_probability(mean, sd * 1e6, lower=lower, upper=upper))
+        np.testing.assert_allclose(p_new[reachable], np.minimum(target, p)[reachable], atol=1e-6)
+
+
+def test_the_widened_mean_is_continuous_in_the_target():
+    # one-sided: as the target falls, the sd grows to the cap, then the mean slides to the limit and
+    # past it, with no jump anywhere (a plotted band neither shoots off nor jumps)
+    target = np.linspace(0.99, 0.05, 2001)
+    mean, sd = np.full(target.size, 0.0), np.full(target.size, 0.1)
+    m_out, s_out = _widen_to(mean, sd, target, None, 0.5, p=np.ones(target.size))
+    assert np.max(np.abs(np.diff(m_out))) < 0.01 and np.max(np.abs(np.diff(s_out))) < 0.01
+    assert s_out.max() == pytest.approx(WIDEN_CAP * 0.1) and m_out[-1] > 0.5 > m_out[0]
 
 
 def _one_safe_run():
@@ -171,12 +192,14 @@ def test_guards_never_raise_a_probability():
         p0 = limit_probability(*gp.predict(Xs, include_noise=noise), upper=0.8)
         p1 = limit_probability(*guarded.predict(Xs, include_noise=noise), upper=0.8)
         assert np.all(p1 <= p0 + 1e-12)
-        # the mean moves only where the guard's figure is below 1/2, which no sd can give with the
-        # mean inside the limit: there it lies beyond the limit
-        g_mean, m = guarded.predict(Xs, include_noise=noise)[0], gp.predict(Xs, include_noise=noise)[0]
+        # the mean moves only where the sd would widen past the cap (always where the guard's
+        # figure is below 1/2, which no sd gives with the mean inside the limit), towards the limit
+        g_mean, g_sd, own, sd_all, _ = guarded.predict_parts(Xs, include_noise=noise)
+        m = gp.predict(Xs, include_noise=noise)[0]
+        np.testing.assert_array_equal(own, m)  # "with every run": the model's own mean
         moved = g_mean != m
-        np.testing.assert_array_equal(moved, (p1 < 0.5) & (m < 0.8))
-        assert np.all(g_mean[moved] > 0.8)
+        assert np.all(np.isclose(g_sd[moved], WIDEN_CAP * sd_all[moved])) and np.all(g_mean[moved] > m[moved])
+        assert np.all(moved[(p1 < 0.5) & (m < 0.8)]) and np.all(g_sd <= WIDEN_CAP * sd_all * (1 + 1e-12))
     # the posterior over fixed points (batch fantasies) gives the same figures
     post = guarded.posterior_at(Xs)
     np.testing.assert_allclose(post.mean_sd()[1], guarded.predict(Xs)[1], rtol=1e-9)
@@ -287,7 +310,7 @@ def test_models_predicted_together_give_each_models_own_numbers():
         together = predict_parts_together(fresh, Xs, [noise] * len(fresh))
         for model, got in zip([GuardedLimitModel(gp, lower=lo, upper=up) for lo, up in sides], together):
             alone = model.predict_parts(Xs, include_noise=noise)
-            assert [a.tobytes() for a in alone[:3]] == [a.tobytes() for a in got[:3]]
-            assert list(alone[3]) == list(got[3])
-        widened = [float(np.max(got[1] - got[2])) for got in together]
-        assert max(widened) > 0  # some point was widened, so the bisection ran
+            assert [a.tobytes() for a in alone[:4]] == [a.tobytes() for a in got[:4]]
+            assert list(alone[4]) == list(got[4])
+        widened = [float(np.max(got[1] - got[3])) for got in together]
+        assert widened[2] > 0  # a point of the two-sided limit was widened, so the bisection ran

@@ -52,6 +52,9 @@ __all__ = ["GuardedLimitModel", "optimistic_errors", "deletion_predictions", "pr
 #: and at the last larger one (a candidate pool).
 RECENT_POINTS = 64
 RECENT_SETS = 64
+#: A guard widens a one-sided limit's sd up to this many times; past it the mean moves towards the
+#: limit instead (the same probability; see :class:`_Widening`).
+WIDEN_CAP = 4.0
 
 
 def optimistic_errors(u: np.ndarray, lower, upper) -> np.ndarray:
@@ -198,7 +201,7 @@ class GuardedLimitModel:
         return self.predict_parts(Xs, include_noise=include_noise, **kwargs)[:2]
 
     def predict_parts(self, Xs, *, include_noise: bool = False, **kwargs):
-        """(mean, sd, sd with every run counted, the run each claim leans on): see :meth:`_worst`.
+        """(mean, sd, mean and sd with every run counted, the run each claim leans on): see :meth:`_worst`.
 
         A prediction is a pure function of the points, so the answers at the
         last few small point sets and at the last large one are kept: a local
@@ -235,12 +238,15 @@ class GuardedLimitModel:
         the full model's ``p`` by how near the point is to run i:
         ``rho_i^2 p + (1 - rho_i^2) p_-i`` (at the run itself the run measured
         the answer; far from it the claim must stand without it), and the
-        lowest blend over i is kept. The sd is widened until the full model's
-        mean gives that probability (the mean is never moved).
+        lowest blend over i is kept. The (mean, sd) are then made to give
+        that probability (:class:`_Widening`: the sd widened, up to a cap,
+        then the mean moved towards the limit).
 
-        Returns ``(mean, sd, sd_all, leaning)``: ``sd_all`` is the sd with
-        every run counted (the local widening only), ``leaning`` the run id
-        (or row number) whose deletion lowered the figure, "" where none did.
+        Returns ``(mean, widening, sd_all, leaning)``: ``mean`` is the
+        model's own and ``sd_all`` the sd with every run counted (the local
+        widening only), the pair the screen judges "with every run";
+        ``leaning`` the run id (or row number) whose deletion lowered the
+        figure, "" where none did.
         """
         sd = factor * np.sqrt(sd_f**2 + noise_var)
         leaning = np.full(mean.shape[0], "", dtype=object)
@@ -261,8 +267,8 @@ class GuardedLimitModel:
 
     def _worst(self, mean, sd_f, noise_var, shifts, factor):
         """Per point, the (mean, sd) whose probability is the guarded one, and why: see :meth:`_unwidened`."""
-        _, widening, sd_all, leaning = self._unwidened(mean, sd_f, noise_var, shifts, factor)
-        return widening.mean, _bisect([widening])[0], sd_all, leaning
+        own, widening, sd_all, leaning = self._unwidened(mean, sd_f, noise_var, shifts, factor)
+        return widening.mean, _bisect([widening])[0], own, sd_all, leaning
 
 
 def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
@@ -284,8 +290,8 @@ def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
         noise_var = model._noise_var if noise else 0.0
         pending.append((k, key, *model._unwidened(mean, sd_f, noise_var, *model._guards(Xs))))
     widened = _bisect([p[3] for p in pending])
-    for (k, key, _, widening, sd_all, leaning), sd in zip(pending, widened):
-        out[k] = (widening.mean, sd, sd_all, leaning)
+    for (k, key, own, widening, sd_all, leaning), sd in zip(pending, widened):
+        out[k] = (widening.mean, sd, own, sd_all, leaning)
         models[k]._keep(key, out[k])
     return out
 
@@ -293,18 +299,24 @@ def predict_parts_together(models, Xs, include_noise) -> list[tuple]:
 class _Widening:
     """What :func:`_widen_to` does for one set of points, ready for :func:`_bisect`.
 
-    The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target,
-    by bisection on log sd'. Where the mean lies outside the limit, or the
-    target is not below the current probability ``p`` (the caller's own
-    ``limit_probability(mean, sd)``), sd stays as it is (the probability
-    there is already at most 1/2, or needs no change). ``target`` holds
-    probabilities, in [0, 1]; None: nothing to widen.
+    Per point, a (mean, sd) whose P(lower <= N(mean, sd^2) <= upper) is the
+    ``target``, where the target is below the current probability ``p`` (the
+    caller's own ``limit_probability(mean, sd)``) and the mean lies inside
+    the limit; elsewhere the model's (mean, sd) stay (outside the limit the
+    probability is already at most 1/2). ``target`` holds probabilities in
+    [0, 1]; None: nothing to widen.
 
-    A one-sided limit's probability only falls towards 1/2 as the sd grows,
-    so a target below 1/2 with the mean inside the limit cannot be reached
-    by widening. There the sd stays and the mean moves instead, beyond the
-    limit, to where the sd gives the target exactly (``mean`` holds the
-    means to report; the model's own elsewhere).
+    A one-sided limit has a closed form: the sd that gives the target with
+    the mean kept is ``d / z`` (``d`` the distance to the limit, ``z`` the
+    target's normal quantile). The sd is widened so up to :data:`WIDEN_CAP`
+    times; beyond that (and always for a target below 1/2, which no sd can
+    give with the mean inside the limit, the probability only falling
+    towards 1/2 as the sd grows) the sd stays at the cap and the mean moves
+    towards the limit, or beyond it, to where that sd gives the target
+    exactly. The mean is continuous in the target across both switches, so
+    a plotted band neither shoots off nor jumps. A two-sided limit is
+    widened by bisection on log sd (the probability falls to 0 as the sd
+    grows; capped at a million times the sd).
     """
 
     def __init__(self, mean, sd, target=None, lower=None, upper=None, p=None):
@@ -321,7 +333,7 @@ class _Widening:
             inside &= mean > lower
         self.todo = inside & (target < p) & (sd > 0)
         if (lower is None) != (upper is None):
-            self._move_means(self.todo & (target < 0.5), target)
+            self._settle_one_sided(target)
         if not np.any(self.todo):
             return
         self.lo = np.log(sd[self.todo])
@@ -336,17 +348,23 @@ class _Widening:
         sd_todo = sd[self.todo]
         self.fast = float(np.min(sd_todo)) > 1e-300 and float(np.max(sd_todo)) < 1e290
 
-    def _move_means(self, move: np.ndarray, target) -> None:
-        """Put the means at ``move`` where their sd gives ``target`` (below 1/2), beyond the one limit."""
-        if not np.any(move):
+    def _settle_one_sided(self, target) -> None:
+        """The closed form of the class docstring for every point to widen; none is left to bisect."""
+        todo = self.todo
+        if not np.any(todo):
             return
         from scipy.special import ndtri  # on use: scipy.special is heavy to import
 
-        z = ndtri(np.clip(target[move], 1e-300, 0.5))  # <= 0; about -37 at the clip
-        self.mean = np.array(self.mean, dtype=float, copy=True)
-        self.mean[move] = (self.upper - z * self.sd[move] if self.upper is not None
-                           else self.lower + z * self.sd[move])
-        self.todo = self.todo & ~move
+        z = ndtri(np.clip(target[todo], 1e-300, None))  # target < p <= 1: finite; about -37 at the clip
+        m, sd = self.mean[todo], self.sd[todo]
+        d = self.upper - m if self.upper is not None else m - self.lower  # > 0: the mean is inside
+        cap = WIDEN_CAP * sd
+        widen = d < cap * z  # d / z within the cap (so z > 0)
+        self.mean, self.sd = np.array(self.mean, dtype=float, copy=True), np.array(self.sd, dtype=float, copy=True)
+        self.sd[todo] = np.where(widen, d / np.where(widen, z, 1.0), cap)
+        moved = self.upper - cap * z if self.upper is not None else self.lower + cap * z
+        self.mean[todo] = np.where(widen, m, moved)
+        self.todo = np.zeros_like(todo)
 
     def result(self, hi) -> np.ndarray:
         out = self.sd.copy()
@@ -399,9 +417,10 @@ def _bisect(widenings, *, steps: int = 40) -> list[np.ndarray]:
     return [w.result(his.get(id(w))) for w in widenings]
 
 
-def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40, p=None) -> np.ndarray:
-    """The smallest sd' >= sd with P(lower <= N(mean, sd'^2) <= upper) <= target: see :class:`_Widening`."""
-    return _bisect([_Widening(mean, sd, target, lower, upper, p)], steps=steps)[0]
+def _widen_to(mean, sd, target, lower, upper, *, steps: int = 40, p=None) -> tuple[np.ndarray, np.ndarray]:
+    """(mean', sd') with P(lower <= N(mean', sd'^2) <= upper) at the target: see :class:`_Widening`."""
+    widening = _Widening(mean, sd, target, lower, upper, p)
+    return widening.mean, _bisect([widening], steps=steps)[0]
 
 
 class _GuardedPosterior:

@@ -20,7 +20,7 @@ never admit a candidate that the real data would exclude.
 How a later pick is valued (``[batch] method``), for the ei and pi rules
 once a run has met every limit:
 
-``sampled`` (the default)
+``sampled``
     The earlier picks' objective results are drawn, ``SAMPLES`` times, from
     their joint predictive distribution (a scrambled Sobol set of normal
     draws, seeded by the step, and its mirror image, pushed through the rank-one updates of
@@ -35,7 +35,7 @@ once a run has met every limit:
 ``believer``
     Each earlier pick comes out at its posterior mean, which also moves the
     incumbent (the kriging believer above, the only method before).
-``explore``
+``explore`` (the default)
     The first pick as under ``sampled``; each later pick is the candidate
     whose objective sd, given the fantasised results of the earlier picks,
     is largest among the candidates that pass the screen and lie in the

@@ -146,7 +146,7 @@ def test_least_worth_says_when_it_does_not_apply(gramacy_runs):
 @pytest.mark.parametrize("key, value, message", [
     ("least_worth", 1.0, "protocol: batch.least_worth: Input should be less than 1"),
     ("least_worth", -0.1, "protocol: batch.least_worth: Input should be greater than or equal to 0"),
-    ("method", "greedy", "protocol: batch.method: Input should be 'sampled' or 'believer'"),
+    ("method", "greedy", "protocol: batch.method: Input should be 'sampled', 'believer' or 'explore'"),
 ])
 def test_bad_batch_settings_name_the_field(key, value, message):
     with pytest.raises(ProtocolError, match=re.escape(message)):

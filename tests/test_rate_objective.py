@@ -258,13 +258,31 @@ def test_a_planning_step_shows_every_rate_inside_the_unit_interval():
 def test_a_batch_of_rates_values_its_later_picks_over_sampled_results():
     # the sampled method draws the earlier picks' latent results and values later picks by the
     # rate's rule under each draw: a rate, so every value stays a probability gain in [0, 1]
-    p = _protocol()
-    assert p.batch.method == "sampled" and p.batch.size == 2
+    p = _with_batch(method="sampled")
+    assert p.batch.size == 2
     result = plan_step(p, parse_runs_text(RUNS, p), seed=4, pool_size=300)
     assert len(result.proposals) == 2
     second = result.proposals[1]
     assert "averaged over 128 sampled results of 1 earlier pick(s)" in second.reason
     assert all(0 <= second.given_earlier[k] <= 1 for k in ("ei", "pi", "bound", "mean"))
+
+
+def test_a_batch_of_rates_explores_on_the_latent_scale():
+    # the explore method's later pick takes the largest latent sd among the candidates whose bounds
+    # (on the logit, a monotone map of the rate's) could still make them the best; its values stay rates
+    p = _with_batch(method="explore")
+    result = plan_step(p, parse_runs_text(RUNS, p), seed=4, pool_size=300)
+    assert len(result.proposals) == 2
+    second = result.proposals[1]
+    assert "the largest objective sd" in second.reason and "could still be the best" in second.reason
+    assert all(0 <= second.given_earlier[k] <= 1 for k in ("ei", "pi", "bound", "mean"))
+    assert second.joint >= p.screen.threshold
+
+
+def _with_batch(**batch):
+    data = dict(PROTOCOL)
+    data["batch"] = {**PROTOCOL.get("batch", {}), **batch}
+    return parse_protocol(data, source="test.toml")
 
 
 def test_slices_and_model_checks_of_the_rate_stay_in_the_unit_interval():

@@ -144,17 +144,21 @@ class Batch(_Strict):
                       "space at each step", json_schema_extra=_unit("candidates"))
     refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
                         "(0: none)", json_schema_extra=_unit("candidates"))
-    method: Literal["sampled", "believer"] = Field(
-        default="sampled",
+    method: Literal["sampled", "believer", "explore"] = Field(
+        default="explore",
         description=(
             "how a later pick of a batch is valued given the earlier picks, whose results are not yet "
             "known: sampled = the ei or pi value averaged over sampled results of the earlier picks "
             "(each sample's best result counts as the incumbent in that sample), so that a pick beside "
             "an earlier one keeps the value of the chance that the earlier one disappoints; believer = "
             "each earlier pick is taken to come out at its predicted mean, which also becomes the "
-            "incumbent. Either way the limits are fantasised towards the limit and every pick must pass "
+            "incumbent; explore = the first pick as under sampled, each later pick the candidate whose "
+            "objective sd given the earlier picks is largest among those that pass the screen and could "
+            "still be the best (optimistic bound, kappa of [ranking], reaching the best pessimistic "
+            "bound among the screen's survivors), falling back to the sampled ranking when none is "
+            "left. Every way the limits are fantasised towards the limit and every pick must pass "
             "the screen with and without the fantasies; the bound and mean rules value picks alike "
-            "under both"
+            "under sampled and believer"
         ),
     )
     search_per_run: bool = Field(

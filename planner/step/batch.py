@@ -20,7 +20,7 @@ never admit a candidate that the real data would exclude.
 How a later pick is valued (``[batch] method``), for the ei and pi rules
 once a run has met every limit:
 
-``sampled`` (the default)
+``sampled``
     The earlier picks' objective results are drawn, ``SAMPLES`` times, from
     their joint predictive distribution (a scrambled Sobol set of normal
     draws, seeded by the step, and its mirror image, pushed through the rank-one updates of
@@ -35,6 +35,24 @@ once a run has met every limit:
 ``believer``
     Each earlier pick comes out at its posterior mean, which also moves the
     incumbent (the kriging believer above, the only method before).
+``explore`` (the default)
+    The first pick as under ``sampled``; each later pick is the candidate
+    whose objective sd, given the fantasised results of the earlier picks,
+    is largest among the candidates that pass the screen and lie in the
+    *relevant region*: those whose optimistic bound (``mean + kappa sd``
+    when maximising, ``mean - kappa sd`` when minimising; ``kappa`` of
+    ``[ranking]``) reaches the best pessimistic bound among the screen's
+    survivors when the batch starts. This is the pure-exploration half of
+    UCB-PE (Contal, Buffoni, Robicquet & Vayatis 2013, from memory): the
+    posterior variance after conditioning does not depend on the fantasised
+    values, so the later picks are spread where the model is least sure
+    among the candidates that could still be the best, rather than beside
+    the first pick. When no candidate of that region is left (too close,
+    or excluded by the re-screen) the pick falls back to the ``sampled``
+    ranking. The values shown for each pick, and ``least_worth``, are the
+    ``sampled`` ones. Applies once a run has met every limit, for every
+    ranking rule; before, picks are ranked by the joint figure as under
+    the other methods.
 
 The bound and mean rules, and the joint figure while no run has met every
 limit, value picks alike under both (their average over the draws is their
@@ -56,7 +74,7 @@ from guardband.planner.step.acquisition import all_values, score as rule_score, 
 from guardband.planner.step.context import StepContext
 from guardband.safety.screen import ScreenResult, step_distance
 
-__all__ = ["Pool", "BatchRule", "greedy_batch", "MIN_SEPARATION", "SAMPLES", "VALUED_RULES"]
+__all__ = ["Pool", "BatchRule", "greedy_batch", "relevant_region", "MIN_SEPARATION", "SAMPLES", "VALUED_RULES"]
 
 #: Smallest distance between two runs of one batch (unit-scaled, per sqrt(factor)).
 MIN_SEPARATION = 0.01
@@ -197,6 +215,21 @@ class _Draws:
         return {k: float(np.mean(a)) if k in VALUED_RULES else float(at_mean[k][0]) for k, a in v.items()}
 
 
+def relevant_region(mu: np.ndarray, sd: np.ndarray, survives: np.ndarray, kappa: float,
+                    maximize: bool) -> np.ndarray:
+    """Candidates whose optimistic bound reaches the best pessimistic bound among the survivors.
+
+    Maximising: ``mu + kappa sd >= max over survivors of (mu - kappa sd)``;
+    minimising, the mirror image. Only survivors can be in the region; none
+    when nothing survives.
+    """
+    if not np.any(survives):
+        return np.zeros(mu.shape[0], dtype=bool)
+    g = mu if maximize else -mu
+    best_pessimistic = float(np.max(g[survives] - kappa * sd[survives]))
+    return survives & (g + kappa * sd >= best_pessimistic)
+
+
 @dataclass
 class BatchRule:
     """How the batch values later picks, and when it stops: from ``[batch]`` and the ranking."""
@@ -217,6 +250,14 @@ class BatchRule:
     def valued(self, incumbent_value) -> bool:
         return incumbent_value is not None and self.rule in VALUED_RULES and self.rank_kw is not None
 
+    def sampled(self, incumbent_value) -> bool:
+        """Are later picks valued over sampled results (the sampled and explore methods)?"""
+        return self.method in ("sampled", "explore") and self.valued(incumbent_value)
+
+    def explores(self, incumbent_value) -> bool:
+        """Are later picks chosen by the objective's sd in the relevant region?"""
+        return self.method == "explore" and incumbent_value is not None and self.rank_kw is not None
+
 
 def _worth(g: dict, rule: BatchRule) -> float:
     """The rule's value of a pick given the earlier ones, in its own units."""
@@ -233,13 +274,26 @@ def _stop_message(k: int, count: int, worth: float, first: float, rule: BatchRul
             "(--count) fills it regardless")
 
 
+def _choose(ok: np.ndarray, scores: np.ndarray, sd: np.ndarray, region) -> tuple[int, int | None]:
+    """The pick among the eligible candidates ``ok``: the best score or, with a ``region`` that
+    holds an eligible candidate, the largest sd there (ties to the lowest index); and how many
+    eligible candidates the region held (None when it was not used)."""
+    if region is not None and np.any(ok & region):
+        idx = np.flatnonzero(ok & region)
+        return int(idx[np.lexsort((idx, -sd[idx]))[0]]), int(idx.size)
+    idx = np.flatnonzero(ok)
+    return int(idx[np.lexsort((idx, -scores[idx]))[0]]), None
+
+
 def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_value,
                  maximize: bool, U_busy=None, rule: BatchRule | None = None
                  ) -> tuple[list[int], list[str], list[dict]]:
     """Indices of the chosen candidates, in order, messages, and for each pick what it was
     chosen on: its objective mean and sd under the fantasies of the runs in progress and
     the earlier picks, the incumbent then, its joint figure then, how many candidates
-    were still eligible, and (sampled method) its rule values averaged over the draws.
+    were still eligible, (sampled and explore methods) its rule values averaged over the
+    draws, and (explore method, later picks) how many eligible candidates the relevant
+    region held (``region``; None when the pick was ranked by the rule).
 
     ``scores_of(mu, sd, result, incumbent)`` ranks candidates (larger is better).
     ``U_busy`` (unit-scaled) are the runs in progress: every model is
@@ -252,7 +306,7 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
     U_busy = np.zeros((0, pool.U.shape[1])) if U_busy is None else np.asarray(U_busy, dtype=float)
     n_busy = U_busy.shape[0]
     draws = None
-    if rule.method == "sampled" and rule.valued(incumbent_value) and (count > 1 or n_busy):
+    if rule.sampled(incumbent_value) and (count > 1 or n_busy):
         draws = _Draws(pool.U.shape[0] + n_busy, n_busy + count, rule.rng, incumbent_value, maximize)
 
     def drawn_scores(mu, sd, res, _inc):  # the sampled method ranks by the rule averaged over the draws
@@ -278,17 +332,20 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
             if draws is not None:
                 draws.add(pool.U.shape[0] + j, fant.direction(), f_mu)
         cur_result, cur_scores, cur_mu, cur_sd = rescreen(fant, fantasy_inc)
+    region = None  # the explore method's relevant region, fixed when the batch starts
+    if rule.explores(incumbent_value):
+        region = relevant_region(cur_mu, cur_sd, pool.result.survives & cur_result.survives,
+                                 float(rule.rank_kw["kappa"]), maximize)
     for k in range(count):
         ok = pool.result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
             messages.append(_shortfall_message(k, count))
             break
-        idx = np.flatnonzero(ok)
-        best = int(idx[np.lexsort((idx, -cur_scores[idx]))[0]])
+        best, in_region = _choose(ok, cur_scores, cur_sd, region if k else None)
         g = {"mean": float(cur_mu[best]), "sd": float(cur_sd[best]),
              "incumbent": fantasy_inc if draws is None else incumbent_value,
-             "joint": float(cur_result.joint[best]), "eligible": int(idx.size),
-             "earlier": k, "in_progress": n_busy, "sampled": draws is not None}
+             "joint": float(cur_result.joint[best]), "eligible": int(np.count_nonzero(ok)),
+             "earlier": k, "in_progress": n_busy, "sampled": draws is not None, "region": in_region}
         if draws is not None:
             g["values"] = draws.values(best, float(cur_mu[best]), float(cur_sd[best]), rule.rank_kw)
         if k and rule.least_worth > 0 and rule.valued(incumbent_value):

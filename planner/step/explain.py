@@ -42,6 +42,9 @@ def _conditioned_on(g: dict) -> str:
 
 def _reason(g: dict, values: dict, first: dict | None, mode: str, rule: str) -> str:
     pool = f"the best of {g['eligible']} candidate(s) that pass the screen"
+    if g.get("region") is not None:  # the explore method's later picks
+        pool = (f"the largest objective sd ({g['sd']:.3g}; chosen to learn, not for its {rule}) among "
+                f"{g['region']} candidate(s) that pass the screen and could still be the best")
     if mode == Mode.FEASIBILITY_FIRST:
         head = f"joint figure {g['joint']:.4g}"
     else:
@@ -57,7 +60,7 @@ def _reason(g: dict, values: dict, first: dict | None, mode: str, rule: str) -> 
         a, b = values.get(rule), first.get(rule)
         if rule in ("ei", "pi") and a is not None and b:
             text += f" (worth {a / b:.2g} of the first pick's {rule})"
-            if a / b < LITTLE_WORTH:
+            if a / b < LITTLE_WORTH and g.get("region") is None:
                 text += ("; little is expected from it, and a smaller batch (--count, or batch.least_worth "
                          "to stop there) may serve as well")
     return text

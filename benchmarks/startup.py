@@ -50,7 +50,10 @@ def _cli(*args: str) -> list[str]:
 
 # what `plan` does before its step (app/workflow.py, run_plan), with names both trees have
 PLAN_START = (
-    "import guardband.planner.cli, guardband.planner.app.workflow\n"
+    "import os, guardband.planner.cli\n"
+    # as main() does before any command (a tree without the setting sets nothing)
+    "os.environ.setdefault(*getattr(guardband.planner.cli, 'NO_PYDANTIC_PLUGINS', ('GUARDBAND_UNUSED', '')))\n"
+    "import guardband.planner.app.workflow\n"
     "from guardband.planner.inputs.protocol import load_protocol\n"
     "from guardband.planner.inputs.runs import read_runs\n"
     "import guardband.planner.step.plan, guardband.planner.models\n"

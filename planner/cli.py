@@ -726,8 +726,17 @@ def demo(
         _err(line)
 
 
+#: Pydantic looks for plugins in the entry points of every installed distribution when it
+#: builds its first model (5 to 10 ms on the project's machine, more with many distributions
+#: installed or a cold file cache); the command line uses none.
+#: Documented by pydantic; a value the user set is kept. Library use (``import guardband``) is
+#: left alone.
+NO_PYDANTIC_PLUGINS = ("PYDANTIC_DISABLE_PLUGINS", "__all__")
+
+
 def main() -> None:
     """Console entry point. An unexpected failure prints one line, not a traceback."""
+    os.environ.setdefault(*NO_PYDANTIC_PLUGINS)
     try:
         app()
     except Exception as exc:

@@ -57,3 +57,23 @@ def test_check_imports_only_what_it_uses(example):
             f"sys.argv = ['guardband', 'check', {str(PROTOCOLS / (example + '.toml'))!r}]\n"
             "try:\n    main()\nexcept SystemExit:\n    pass")
     assert _imported_after(code) == ["pydantic", "scipy.linalg", "scipy.optimize", "scipy.special"]
+
+
+def test_the_command_does_not_search_installed_distributions_for_pydantic_plugins():
+    # pydantic scans every installed distribution's entry points for plugins when it builds its
+    # first model (its cache stays None when it did not); the command line uses none
+    code = ("import os, sys\nfrom guardband.planner.cli import main\n"
+            f"sys.argv = ['guardband', 'check', {str(PROTOCOLS / 'tablet_blend.toml')!r}]\n"
+            "try:\n    main()\nexcept SystemExit:\n    pass\n"
+            "from pydantic.plugin import _loader\n"
+            "print(os.environ.get('PYDANTIC_DISABLE_PLUGINS'), _loader._plugins is not None)")
+
+    def run(env_value):
+        env = {k: v for k, v in __import__("os").environ.items() if k != "PYDANTIC_DISABLE_PLUGINS"}
+        if env_value is not None:
+            env["PYDANTIC_DISABLE_PLUGINS"] = env_value
+        out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True, env=env)
+        return out.stdout.strip().splitlines()[-1]
+
+    assert run(None) == "__all__ False"
+    assert run("some_plugin") == "some_plugin True"  # a value the user set is kept (and plugins searched)

@@ -39,7 +39,8 @@ ROOT = Path(__file__).resolve().parents[1]
 def run_case(name: str, n: int, repeat: int, explain: bool, light: dict | None = None) -> dict:
     """Cold and warm step times (s) of one case, ``repeat`` of each (in this process).
 
-    ``light``: the light step's pool, refinements and restarts (at most these), set in the protocol.
+    ``light``: the light step's pool, refinements and restarts (at most these) and its search
+    once per step, set in the protocol.
     """
     import numpy as np
 
@@ -56,6 +57,8 @@ def run_case(name: str, n: int, repeat: int, explain: bool, light: dict | None =
         data["batch"]["pool"] = min(data["batch"]["pool"], light["pool"])
         data["batch"]["refine"] = min(data["batch"]["refine"], light["refine"])
         data["model"]["restarts"] = min(data["model"]["restarts"], light["restarts"])
+        if "search_per_run" in light and "search_per_run" in data["batch"]:  # a tree that has the setting
+            data["batch"]["search_per_run"] = light["search_per_run"]
         protocol = parse_protocol(data, source=f"{name}, light step")
     cold, warm = [], []
     with blas_limit():

@@ -76,13 +76,17 @@ def test_light_step_gives_its_documented_settings_and_nothing_else():
                            "batch": {"size": 2, "pool": 4000, "refine": 4}, "model": {"restarts": 4}})
     full, light = Setting(step="full").protocol_data(wide), Setting(step="light").protocol_data(wide)
     assert full == wide.model_dump(mode="python")  # full: the protocol as written
-    assert LIGHT_STEP == {"pool": 1000, "refine": 1, "restarts": 1}  # as the README states
+    # as the README states: the search once per step, not once per run of the batch (a batch of 4
+    # would search 4,000 candidates, the full step's pool, and the light step would not be light)
+    assert LIGHT_STEP == {"pool": 1000, "refine": 1, "restarts": 1, "search_per_run": False}
     assert (light["batch"]["pool"], light["batch"]["refine"], light["model"]["restarts"]) == (1000, 1, 1)
+    assert full["batch"]["search_per_run"] is True and light["batch"]["search_per_run"] is False
     # everything else, the screen included, stays as written
     for key in ("screen", "limits", "ranking", "factors", "objective"):
         assert light[key] == full[key]
-    assert {k: v for k, v in light["batch"].items() if k not in ("pool", "refine")} == \
-        {k: v for k, v in full["batch"].items() if k not in ("pool", "refine")}
+    searched = ("pool", "refine", "search_per_run")
+    assert {k: v for k, v in light["batch"].items() if k not in searched} == \
+        {k: v for k, v in full["batch"].items() if k not in searched}
     # a protocol already lighter than the light step keeps its own figures
     small = Setting(step="light").protocol_data(FAST)
     assert (small["batch"]["pool"], small["batch"]["refine"], small["model"]["restarts"]) == (200, 0, 1)

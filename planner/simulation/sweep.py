@@ -65,7 +65,7 @@ SWEEP_KEYS = ("threshold", "rule", "batch", "start", "budget", "max_step", "step
 #: The ``light`` step: at most these candidates (``batch.pool``), local refinements
 #: (``batch.refine``) and hyperparameter restarts beside the warm start (``model.restarts``).
 #: The screen, its threshold and every limit are untouched. ``full`` keeps the protocol's.
-LIGHT_STEP = {"pool": 1000, "refine": 1, "restarts": 1}
+LIGHT_STEP = {"pool": 1000, "refine": 1, "restarts": 1, "search_per_run": False}
 #: The values of the ``step`` key.
 STEPS = ("full", "light")
 #: What the light step is, in one line (the sweep's description).
@@ -115,6 +115,7 @@ class Setting:
             batch, model = data["batch"], data["model"]
             batch["pool"] = min(int(batch["pool"]), LIGHT_STEP["pool"])
             batch["refine"] = min(int(batch["refine"]), LIGHT_STEP["refine"])
+            batch["search_per_run"] = LIGHT_STEP["search_per_run"]  # one search per step, whatever the batch
             model["restarts"] = min(int(model["restarts"]), LIGHT_STEP["restarts"])
         return data
 

@@ -486,3 +486,18 @@ def test_a_fixed_factor_does_not_set_a_rules_scale():
     assert chk.ranges[1, 1] == pytest.approx(0.03125, rel=1e-6)
     X = space.sample(200, rng=0)
     assert space.contains(X, tol=TOL).all() and X[:, 1].max() <= 0.03125 * (1 + 1e-6)
+
+
+def test_last_good_point_on_a_segment_is_good_and_next_to_the_edge():
+    from guardband.planner.space.arrays import last_good_point
+
+    # the half-plane x + y <= 1, from (0, 0) towards (1, 1): the edge is at t = 1/2
+    ok = lambda z: z[0] + z[1] <= 1.0
+    start, end = np.zeros(2), np.ones(2)
+    z = last_good_point(ok, start, end)
+    assert ok(z) and 0.0 <= 1.0 - z.sum() <= 2.0 * 2.0**-40  # t within 2^-40 of the edge, on its good side
+    inside = np.array([0.2, 0.3])
+    assert last_good_point(ok, start, inside) is inside  # a good end is returned as it is
+    # a start that is not good and no good point: the start, which the caller must not take as found
+    np.testing.assert_array_equal(last_good_point(lambda z: False, start, end), start)
+

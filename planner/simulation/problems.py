@@ -60,6 +60,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.inputs.protocol import Protocol, parse_protocol
+from guardband.planner.space.arrays import last_good_point
 from guardband.safety.limits import met_every_limit
 
 __all__ = [
@@ -322,24 +323,16 @@ def limit_slack(protocol: Protocol, values: dict, *, margin: dict | None = None)
     return np.array(out)
 
 
-def _pulled_back(protocol: Protocol, evaluate, start: np.ndarray, x: np.ndarray, steps: int = 40) -> np.ndarray:
+def _pulled_back(protocol: Protocol, evaluate, start: np.ndarray, x: np.ndarray) -> np.ndarray:
     """``x`` if it meets every limit; else the feasible point nearest it on the segment from ``start``.
 
     SLSQP can stop a hair outside a limit (a failed line search at the
-    boundary); bisection on the segment from a start that meets every limit
-    finds the last point of it that still does. The segment lies in the
-    design space (a convex polytope holding both ends).
+    boundary); :func:`~guardband.planner.space.arrays.last_good_point` finds
+    the last point of the segment from a start that meets every limit that
+    still does. The segment lies in the design space (a convex polytope
+    holding both ends).
     """
-    def ok(t: float) -> bool:
-        return bool(met_every_limit(protocol, evaluate((start + t * (x - start))[None, :]))[0])
-
-    if ok(1.0):
-        return x
-    lo, hi = 0.0, 1.0
-    for _ in range(steps):
-        mid = 0.5 * (lo + hi)
-        lo, hi = (mid, hi) if ok(mid) else (lo, mid)
-    return start + lo * (x - start)
+    return last_good_point(lambda z: bool(met_every_limit(protocol, evaluate(z[None, :]))[0]), start, x)
 
 
 def _best_of_each_combination(X: np.ndarray, order: np.ndarray, columns: list[int]) -> list[int]:

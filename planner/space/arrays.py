@@ -1,4 +1,4 @@
-"""Arrays as the design space hands them out: read-only, and as plain JSON values."""
+"""Arrays as the design space hands them out: read-only, as plain JSON values; a segment's last good point."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["read_only", "nan_to_none"]
+__all__ = ["read_only", "nan_to_none", "last_good_point"]
 
 
 def read_only(array: np.ndarray) -> np.ndarray:
@@ -43,3 +43,22 @@ def nan_to_none(value: Any) -> Any:
     if isinstance(value, np.bool_):
         return bool(value)
     return value
+
+
+def last_good_point(ok, start: np.ndarray, end: np.ndarray, *, steps: int = 40) -> np.ndarray:
+    """``end`` if ``ok(end)``; else the last point found good on the segment from ``start`` (good).
+
+    Bisection on the segment's parameter, ``steps`` halvings: for a convex
+    set that holds ``start`` (a polytope, the points meeting a limit that is
+    convex along the segment) the answer is within ``2**-steps`` of the
+    segment's last good point, and always good itself. An optimiser can stop
+    a hair outside a linear rule or a limit it was asked to keep; this brings
+    its answer back instead of throwing it away.
+    """
+    if ok(end):
+        return end
+    lo, hi = 0.0, 1.0
+    for _ in range(steps):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if ok(start + mid * (end - start)) else (lo, mid)
+    return start + lo * (end - start)

@@ -26,6 +26,7 @@ import numpy as np
 from scipy.optimize import minimize
 
 from guardband.planner.errors import ModelError
+from guardband.planner.space.arrays import last_good_point
 from guardband.planner.step.acquisition import score as rule_score, weighted_by_joint
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.result import Mode
@@ -152,6 +153,10 @@ def refine(ctx: StepContext, X_pool, top, inc_value, mode: str, rank_kw, *, resc
             continue  # keep only refinements that converged (rescue: any) and improved the score
         x = x0.copy()
         x[cont] = lo + span * np.clip(res.x, 0.0, 1.0)
-        if np.all(np.isfinite(x)) and bool(np.asarray(space.contains(x[None, :]))[0]):
+        if not np.all(np.isfinite(x)):
+            continue
+        # SLSQP may stop a hair outside a linear rule it kept: back along the way it came
+        x = last_good_point(lambda z: bool(np.asarray(space.contains(z[None, :]))[0]), x0, x)
+        if not np.array_equal(x, x0):
             out.append(x)
     return np.array(out).reshape(-1, X_pool.shape[1])

@@ -74,6 +74,7 @@ REGION_TOL = 1e-9
 
 __all__ = [
     "REASONS",
+    "REASON_TEXT",
     "LimitPrediction",
     "MonotoneBasis",
     "span_streak",
@@ -110,6 +111,22 @@ REASONS = (
     "joint-below-threshold",
     "rests-on-one-run",
 )
+
+#: Each reason (and "survived") in words, for tables, reports and notes.
+REASON_TEXT = {
+    "survived": "passed every rule and reached the threshold",
+    "outside-design-space": "outside the design space (bounds, mixture total, ratio limits, levels)",
+    "forbidden-region": "inside a region the protocol forbids",
+    "step-too-large": "too far from the nearest run that met every limit",
+    "beyond-tested-span": "beyond the span of the runs that met every limit (span_reach)",
+    "skips-untried-level": "would skip an untried dose level, or raise two factors at once (escalation)",
+    "too-few-runs": "a limit has too few runs to vouch for anything (fail closed)",
+    "model-not-fitted": "a limit's model could not be fitted (fail closed)",
+    "above-broken-cohort": "at or above the doses of a cohort that broke a monotone limit",
+    "limit-probability": "a limit's probability below its requirement",
+    "joint-below-threshold": "joint figure below the screen threshold",
+    "rests-on-one-run": "would pass only if a single run is trusted: with that run left out it fails",
+}
 
 
 @dataclass(frozen=True)

@@ -64,3 +64,38 @@ def test_the_extras_change_neither_table(example):
     assert list(with_extras.screen.detail) == list(without.screen.detail)
     assert with_extras.screen.P.tobytes() == without.screen.P.tobytes()
     assert with_extras.messages == without.messages
+
+
+def _screened(U, survives, reason, P, names=("a", "b")):
+    from types import SimpleNamespace
+
+    result = SimpleNamespace(survives=np.asarray(survives), reason=np.asarray(reason, dtype=object),
+                             P=np.asarray(P, dtype=float), limit_names=names)
+    return SimpleNamespace(U=np.asarray(U, dtype=float), result=result)
+
+
+def test_a_note_says_why_no_pick_is_likely_to_beat_the_best_run():
+    from guardband.planner.step.explain import NEAREST, UNLIKELY, unlikely_to_improve
+
+    # 60 candidates on a line from the best run at 0: the 50 nearest are the first 50 (by hand);
+    # 30 of them short of a limit (b the lowest in 20 of those), 15 beyond the span, 5 pass
+    n = 60
+    U = np.column_stack([np.arange(n) / n, np.zeros(n)])
+    reason = ["limit-probability"] * 30 + ["beyond-tested-span"] * 15 + [""] * 5 + ["forbidden-region"] * 10
+    P = [[0.9, 0.5]] * 20 + [[0.4, 0.9]] * 10 + [[1.0, 1.0]] * 30
+    pool = _screened(U, [r == "" for r in reason], reason, P)
+    assert NEAREST == 50
+    note = " ".join(unlikely_to_improve(pool, 45, 1e-12, np.zeros(2), "R09 (85.75)"))
+    assert "beat the best run R09 (85.75)" in note and "chance of a better result is 1e-12" in note
+    assert "Of the 50 candidates nearest that run, 5 pass, 30 limit-probability" in note
+    assert "b the lowest in 20" in note and "15 beyond-tested-span" in note
+    assert "forbidden-region" not in note  # the 10 farthest candidates are not among the nearest
+    # a first pick with a fair chance, or none at all: no note
+    assert unlikely_to_improve(pool, 45, UNLIKELY, np.zeros(2), "R09") == []
+    assert unlikely_to_improve(pool, 45, float("nan"), np.zeros(2), "R09") == []
+
+
+def test_the_tablet_example_says_why_nothing_is_likely_to_beat_its_best_run(tablet_batch):
+    # the demo's first pick has a chance of about 1e-12 of beating run R09: the plan says why
+    notes = [m for m in tablet_batch[1].messages if m.startswith("no candidate that passes the screen")]
+    assert len(notes) == 1 and "best run R09" in notes[0] and "friability the lowest" in notes[0]

@@ -17,7 +17,7 @@ from guardband.planner.models.checks import looks_overconfident
 from guardband.planner.settings import COVERAGE_MIN_RUNS
 from guardband.planner.step import PlanResult
 from guardband.safety.limits import limit_rules, within_limit
-from guardband.safety.screen import REASONS
+from guardband.safety.screen import REASON_TEXT, REASONS
 
 __all__ = ["fmt", "prob", "proposal_run_id", "proposal_rows", "near_miss_rows", "judged_sentence", "band_label",
            "count_rows", "model_rows",
@@ -150,27 +150,13 @@ def proposal_rows(result: PlanResult, step_label: str) -> list[dict]:
     return rows
 
 
-_REASON_TEXT = {
-    "survived": "passed every rule and reached the threshold",
-    "outside-design-space": "outside the design space (bounds, mixture total, ratio limits, levels)",
-    "forbidden-region": "inside a region the protocol forbids",
-    "step-too-large": "too far from the nearest run that met every limit",
-    "beyond-tested-span": "beyond the span of the runs that met every limit (span_reach)",
-    "skips-untried-level": "would skip an untried dose level, or raise two factors at once (escalation)",
-    "too-few-runs": "a limit has too few runs to vouch for anything (fail closed)",
-    "model-not-fitted": "a limit's model could not be fitted (fail closed)",
-    "above-broken-cohort": "at or above the doses of a cohort that broke a monotone limit",
-    "limit-probability": "a limit's probability below its requirement",
-    "joint-below-threshold": "joint figure below the screen threshold",
-    "rests-on-one-run": "would pass only if a single run is trusted: with that run left out it fails",
-}
 
 
 def count_rows(result: PlanResult) -> list[dict]:
     """How many candidates survived and how many each rule excluded, with the rule in words."""
     counts = result.counts()
-    rows = [{"rule": "survived", "count": counts["survived"], "text": _REASON_TEXT["survived"]}]
-    rows += [{"rule": r, "count": counts[r], "text": _REASON_TEXT.get(r, r)} for r in REASONS]
+    rows = [{"rule": "survived", "count": counts["survived"], "text": REASON_TEXT["survived"]}]
+    rows += [{"rule": r, "count": counts[r], "text": REASON_TEXT.get(r, r)} for r in REASONS]
     return rows
 
 

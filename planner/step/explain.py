@@ -1,4 +1,5 @@
-"""Why each pick of a batch: its value given the picks before it, and one line of reason.
+"""Why each pick of a batch: its value given the picks before it, and one line of reason; and why
+none is likely to beat the best run, when that is so.
 
 The batch (:mod:`.batch`) chooses pick k on the models conditioned
 on the fantasised results of the runs in progress and of picks 1..k-1. The
@@ -11,17 +12,24 @@ models fitted to real data.
 
 from __future__ import annotations
 
+from collections import Counter
+
 import numpy as np
 
 from guardband.planner.step.acquisition import all_values
 from guardband.planner.step.batch import SAMPLES
 from guardband.planner.step.result import Mode, _num
+from guardband.safety.screen import REASON_TEXT
 
-__all__ = ["pick_explanations", "LITTLE_WORTH"]
+__all__ = ["pick_explanations", "unlikely_to_improve", "LITTLE_WORTH", "UNLIKELY", "NEAREST"]
 
 #: A pick whose EI (or PI) given the earlier picks is below this share of the
 #: first pick's is flagged as worth little.
 LITTLE_WORTH = 0.01
+#: A first pick whose chance of beating the best run is below this draws a note saying why.
+UNLIKELY = 0.01
+#: The note counts the screen's verdicts on this many candidates nearest the best run.
+NEAREST = 50
 
 
 def _given_values(g: dict, rank_kw: dict) -> dict:
@@ -79,3 +87,34 @@ def pick_explanations(given: list[dict], mode: str, rule: str, rank_kw: dict) ->
         if first is None:
             first = values
     return out
+
+
+def unlikely_to_improve(pool, first: int, pi_first, U_best: np.ndarray, best: str) -> list[str]:
+    """A note when the first pick is unlikely to beat the best run: what the screen said near that run.
+
+    ``pool``: the screened candidates (``U`` unit-scaled, ``result`` the
+    screen's); ``first``: the first pick's index there and ``pi_first`` its
+    chance of a better result; ``U_best``: the best run, unit-scaled, named
+    ``best``. Empty unless ``pi_first`` is below :data:`UNLIKELY`. The
+    :data:`NEAREST` candidates nearest the best run are counted by the
+    screen's verdict, and for those short of a limit's probability, by the
+    limit that fell lowest.
+    """
+    if pi_first is None or not np.isfinite(pi_first) or pi_first >= UNLIKELY:
+        return []
+    res = pool.result
+    near = np.argsort(np.linalg.norm(pool.U - U_best, axis=1), kind="stable")[:NEAREST]
+    parts = [f"{int(np.sum(res.survives[near]))} pass"]
+    for reason, n in Counter(str(r) for r in res.reason[near] if r).most_common(3):
+        text = f"{n} {reason} ({REASON_TEXT.get(reason, reason)}"
+        if reason == "limit-probability" and len(res.limit_names) > 1:
+            P = np.asarray(res.P, dtype=float)[near[res.reason[near] == reason]]
+            P = P[np.all(np.isfinite(P), axis=1)]
+            if P.shape[0]:
+                name, k = Counter(res.limit_names[j] for j in np.argmin(P, axis=1)).most_common(1)[0]
+                text += f"; {name} the lowest in {k}"
+        parts.append(text + ")")
+    return [f"no candidate that passes the screen is likely to beat the best run {best}: the first pick's "
+            f"chance of a better result is {pi_first:.2g}. Of the {near.size} candidates nearest that run, "
+            + ", ".join(parts) + ". The price of the threshold shows what a lower threshold would admit; "
+            "the protocol's author decides"]

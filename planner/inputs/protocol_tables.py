@@ -144,7 +144,7 @@ class Batch(_Strict):
                       "space at each step", json_schema_extra=_unit("candidates"))
     refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
                         "(0: none)", json_schema_extra=_unit("candidates"))
-    method: Literal["sampled", "believer", "explore", "learn", "boundary", "level"] = Field(
+    method: Literal["sampled", "believer", "explore"] = Field(
         default="explore",
         description=(
             "how a later pick of a batch is valued given the earlier picks, whose results are not yet "
@@ -156,12 +156,7 @@ class Batch(_Strict):
             "objective sd given the earlier picks is largest among those that pass the screen and could "
             "still be the best (optimistic bound, kappa of [ranking], reaching the best pessimistic "
             "bound among the screen's survivors), falling back to the sampled ranking when none is "
-            "left; learn, boundary and level (measured, not better than explore; README \"Batches worth "
-            "their runs\") = as explore, the later picks maximising in that region: learn, the sum over "
-            "the objective and each limit of the sd given the earlier picks over that response's largest "
-            "sd in the pool; boundary, the objective's sd so scaled plus, per limit, 2 sqrt(p (1 - p)) "
-            "with p the probability of meeting it; level, 2 sqrt(q (1 - q)) with q the probability of "
-            "beating the best pessimistic bound, plus the same limit terms. Every way the limits are fantasised towards the limit and every pick must pass "
+            "left. Every way the limits are fantasised towards the limit and every pick must pass "
             "the screen with and without the fantasies; the bound and mean rules value picks alike "
             "under sampled and believer"
         ),

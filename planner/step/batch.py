@@ -68,7 +68,7 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import logsumexp, ndtr, ndtri
+from scipy.special import logsumexp, ndtri
 
 from guardband.planner.step.acquisition import all_values, score as rule_score, weighted_by_joint
 from guardband.planner.step.context import StepContext
@@ -178,7 +178,6 @@ class _Fantasies:
             lims_f = self.ctx.limit_predictions(None, [None if lp is None else _Head(lp, self.n)
                                                        for lp in self.limits])
         result = self.ctx.screen(self.pool.X, self.pool.U, lims_f)
-        self.predictions = lims_f
         return result, scores_of(mu_f, sd_f, result, incumbent_value), mu_f, sd_f
 
 
@@ -231,48 +230,6 @@ def relevant_region(mu: np.ndarray, sd: np.ndarray, survives: np.ndarray, kappa:
     return survives & (g + kappa * sd >= best_pessimistic)
 
 
-#: Methods that choose later picks in the relevant region by how much they would teach.
-EXPLORING = ("explore", "learn", "boundary", "level")
-
-
-def response_scales(pool: Pool, predictions) -> list[float]:
-    """Each response's largest sd over the pool under the models fitted to the runs (the objective
-    first, then each limit as the screen judges it; 0 where a limit could not say): the unit in which
-    the learn method adds up sds. Far from every run a GP's sd is its prior sd, and the pool spans the
-    design space, so this is the response's prior scale as the pool sees it."""
-    out = [float(np.max(pool.sd, initial=0.0))]
-    for lp in predictions:
-        ok = lp.status == "ok" and lp.sd is not None
-        out.append(float(np.max(lp.sd, initial=0.0)) if ok else 0.0)
-    return out
-
-
-def spread(method: str, sd: np.ndarray, predictions, result: ScreenResult, scales) -> np.ndarray:
-    """What a later pick of an exploring method maximises at each pool point (larger teaches more).
-
-    ``explore``: the objective's sd. ``learn``: the sum over the objective and each limit of the
-    sd given the earlier picks over that response's scale (:func:`response_scales`).
-    ``boundary``: the objective's sd over its scale plus, per limit, ``2 sqrt(p (1 - p))`` with
-    ``p`` the probability of meeting it given the earlier picks: twice the sd of the indicator
-    "the run meets this limit", 1 where the limit is a coin toss, near 0 where it is surely met
-    (or surely broken), so it weighs a limit's uncertainty by how near its mean is to the limit."""
-    if method == "explore":
-        return sd
-    if method == "level":  # every term the sd of an indicator: beats the level, meets limit r
-        q = ndtr((scales[0] - scales[1]) / np.maximum(sd, 1e-300)) if scales[1] is not None else 0.0
-        P = np.nan_to_num(np.asarray(result.P, dtype=float).reshape(sd.shape[0], -1), nan=0.0)
-        return (2.0 * np.sqrt(np.clip(q * (1.0 - q), 0.0, 0.25))
-                + np.sum(2.0 * np.sqrt(np.clip(P * (1.0 - P), 0.0, 0.25)), axis=1))
-    total = sd / scales[0] if scales[0] > 0 else np.zeros_like(sd)
-    if method == "boundary":
-        P = np.nan_to_num(np.asarray(result.P, dtype=float).reshape(sd.shape[0], -1), nan=0.0)
-        return total + np.sum(2.0 * np.sqrt(np.clip(P * (1.0 - P), 0.0, 0.25)), axis=1)
-    for lp, s in zip(predictions, scales[1:]):
-        if s > 0 and lp.status == "ok" and lp.sd is not None:
-            total = total + np.asarray(lp.sd, dtype=float) / s
-    return total
-
-
 @dataclass
 class BatchRule:
     """How the batch values later picks, and when it stops: from ``[batch]`` and the ranking."""
@@ -295,11 +252,11 @@ class BatchRule:
 
     def sampled(self, incumbent_value) -> bool:
         """Are later picks valued over sampled results (the sampled and explore methods)?"""
-        return self.method in ("sampled",) + EXPLORING and self.valued(incumbent_value)
+        return self.method in ("sampled", "explore") and self.valued(incumbent_value)
 
     def explores(self, incumbent_value) -> bool:
-        """Are later picks chosen by what they teach (:func:`spread`) in the relevant region?"""
-        return self.method in EXPLORING and incumbent_value is not None and self.rank_kw is not None
+        """Are later picks chosen by the objective's sd in the relevant region?"""
+        return self.method == "explore" and incumbent_value is not None and self.rank_kw is not None
 
 
 def _worth(g: dict, rule: BatchRule) -> float:
@@ -319,8 +276,8 @@ def _stop_message(k: int, count: int, worth: float, first: float, rule: BatchRul
 
 def _choose(ok: np.ndarray, scores: np.ndarray, sd: np.ndarray, region) -> tuple[int, int | None]:
     """The pick among the eligible candidates ``ok``: the best score or, with a ``region`` that
-    holds an eligible candidate, the largest ``sd`` (or other spread) there (ties to the lowest
-    index); and how many eligible candidates the region held (None when it was not used)."""
+    holds an eligible candidate, the largest sd there (ties to the lowest index); and how many
+    eligible candidates the region held (None when it was not used)."""
     if region is not None and np.any(ok & region):
         idx = np.flatnonzero(ok & region)
         return int(idx[np.lexsort((idx, -sd[idx]))[0]]), int(idx.size)
@@ -375,29 +332,20 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
             if draws is not None:
                 draws.add(pool.U.shape[0] + j, fant.direction(), f_mu)
         cur_result, cur_scores, cur_mu, cur_sd = rescreen(fant, fantasy_inc)
-    region = None  # the exploring methods' relevant region, fixed when the batch starts
-    scales = None
+    region = None  # the explore method's relevant region, fixed when the batch starts
     if rule.explores(incumbent_value):
         region = relevant_region(cur_mu, cur_sd, pool.result.survives & cur_result.survives,
                                  float(rule.rank_kw["kappa"]), maximize)
-        if rule.method == "level":  # (objective mean in "larger is better" form, at the start; the level)
-            ok0 = pool.result.survives & cur_result.survives
-            g0 = cur_mu if maximize else -cur_mu
-            scales = [g0, float(np.max(g0[ok0] - float(rule.rank_kw["kappa"]) * cur_sd[ok0])) if ok0.any() else None]
-        elif rule.method != "explore":
-            scales = response_scales(pool, ctx.limit_predictions(pool.U))
-    cur_spread = cur_sd
     for k in range(count):
         ok = pool.result.survives & cur_result.survives & ~too_close
         if not np.any(ok):
             messages.append(_shortfall_message(k, count))
             break
-        best, in_region = _choose(ok, cur_scores, cur_spread, region if k else None)
+        best, in_region = _choose(ok, cur_scores, cur_sd, region if k else None)
         g = {"mean": float(cur_mu[best]), "sd": float(cur_sd[best]),
              "incumbent": fantasy_inc if draws is None else incumbent_value,
              "joint": float(cur_result.joint[best]), "eligible": int(np.count_nonzero(ok)),
-             "earlier": k, "in_progress": n_busy, "sampled": draws is not None, "region": in_region,
-             "teach": None if in_region is None else (rule.method, float(cur_spread[best]))}
+             "earlier": k, "in_progress": n_busy, "sampled": draws is not None, "region": in_region}
         if draws is not None:
             g["values"] = draws.values(best, float(cur_mu[best]), float(cur_sd[best]), rule.rank_kw)
         if k and rule.least_worth > 0 and rule.valued(incumbent_value):
@@ -421,6 +369,4 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         if fantasy_inc is not None:
             fantasy_inc = max(fantasy_inc, f_mu) if maximize else min(fantasy_inc, f_mu)
         cur_result, cur_scores, cur_mu, cur_sd = rescreen(fant, fantasy_inc)
-        if region is not None:
-            cur_spread = spread(rule.method, cur_sd, fant.predictions, cur_result, scales)
     return chosen, messages, given

@@ -40,24 +40,10 @@ def _conditioned_on(g: dict) -> str:
     return " and ".join(parts)
 
 
-def _taught(g: dict) -> str:
-    """What an exploring method's later pick maximised (``batch.spread``), opening a parenthesis."""
-    method, value = g.get("teach") or ("explore", g["sd"])
-    if method == "learn":
-        return f"the largest sum of sds, objective and limits, each over its largest in the pool ({value:.3g}"
-    if method == "boundary":
-        return (f"the largest objective sd over its largest in the pool plus, per limit, "
-                f"2 sqrt(p (1 - p)) ({value:.3g}")
-    if method == "level":
-        return (f"the largest 2 sqrt(q (1 - q)), q the chance of beating the best pessimistic bound, plus, "
-                f"per limit, 2 sqrt(p (1 - p)) ({value:.3g}")
-    return f"the largest objective sd ({g['sd']:.3g}"
-
-
 def _reason(g: dict, values: dict, first: dict | None, mode: str, rule: str) -> str:
     pool = f"the best of {g['eligible']} candidate(s) that pass the screen"
-    if g.get("region") is not None:  # the exploring methods' later picks
-        pool = (f"{_taught(g)}; chosen to learn, not for its {rule}) among "
+    if g.get("region") is not None:  # the explore method's later picks
+        pool = (f"the largest objective sd ({g['sd']:.3g}; chosen to learn, not for its {rule}) among "
                 f"{g['region']} candidate(s) that pass the screen and could still be the best")
     if mode == Mode.FEASIBILITY_FIRST:
         head = f"joint figure {g['joint']:.4g}"

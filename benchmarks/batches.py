@@ -49,7 +49,6 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
 
 import calibration as cal  # noqa: E402  (CSV merging, the exact interval, the family jobs)

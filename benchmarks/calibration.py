@@ -46,7 +46,6 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from guardband.planner.app.fileio import atomic_write_text, write_csv_text  # noqa: E402
 from guardband.planner.simulation.family import family_problem, with_settings  # noqa: E402

@@ -70,13 +70,11 @@ from __future__ import annotations
 
 import argparse
 import csv
-import sys
 import time
 from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402
 from guardband.planner.inputs.runs import parse_runs_text  # noqa: E402

@@ -60,7 +60,6 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
 
 import calibration as cal  # noqa: E402  (one home for the CSV merging and the exact interval)

@@ -13,12 +13,9 @@ Run: python benchmarks/gramacy_start_check.py [--seeds 6] [--start 15]
 from __future__ import annotations
 
 import argparse
-import sys
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import guardband.planner.simulation.loop as campaign  # noqa: E402
 from guardband.planner.simulation import get_problem  # noqa: E402

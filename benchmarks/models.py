@@ -62,11 +62,9 @@ import sys
 import time
 import warnings
 from concurrent.futures import ThreadPoolExecutor
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import scipy  # noqa: E402
 import sklearn  # noqa: E402

@@ -15,13 +15,10 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import sys
 import time
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from guardband.planner.simulation import runs_table_from_arrays  # noqa: E402
 from guardband.planner.inputs.protocol import parse_protocol  # noqa: E402

@@ -54,12 +54,15 @@ once a run has met every limit:
     ranking rule; before, picks are ranked by the joint figure as under
     the other methods.
 
-The bound and mean rules, and the joint figure while no run has met every
-limit, value picks alike under both (their average over the draws is their
-value at the mean). With ``[batch] least_worth`` above 0, the batch stops
-before a later pick whose ei (or pi) given the earlier picks is below that
-share of the first pick's, and says so; a batch size asked for explicitly
-is always filled.
+Under ``sampled`` and ``believer`` the bound and mean rules, and the joint
+figure while no run has met every limit, value picks alike (their average
+over the draws is their value at the mean); ``explore`` chooses its later
+picks by the objective's sd once a run has met every limit, whatever the
+rule. With ``[batch] least_worth`` above 0, the batch stops before a later
+pick whose ei (or pi) given the earlier picks is below that share of the
+first pick's, and says so (under ``explore`` too: a pick made to learn is
+judged by its sampled ei); a batch size asked for explicitly is always
+filled.
 """
 
 from __future__ import annotations

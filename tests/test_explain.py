@@ -99,3 +99,22 @@ def test_the_tablet_example_says_why_nothing_is_likely_to_beat_its_best_run(tabl
     # the demo's first pick has a chance of about 1e-12 of beating run R09: the plan says why
     notes = [m for m in tablet_batch[1].messages if m.startswith("no candidate that passes the screen")]
     assert len(notes) == 1 and "best run R09" in notes[0] and "friability the lowest" in notes[0]
+
+
+def test_when_nothing_passes_a_note_names_the_nearest_miss_and_its_weakest_limit():
+    from guardband.planner.step.explain import closest_miss
+
+    # three candidates: one outside the space (highest joint, must be ignored), two inside; the
+    # nearest inside has joint 0.82, limit b at 0.83 (0.12 short of 0.95) and a at 0.99 (above its 0.9)
+    U = np.zeros((3, 2))
+    reason = ["outside-design-space", "limit-probability", "limit-probability"]
+    P = [[1.0, 1.0], [0.99, 0.83], [0.5, 0.6]]
+    pool = _screened(U, [False] * 3, reason, P)
+    pool.result.joint = np.array([0.99, 0.82, 0.1])
+    note = " ".join(closest_miss(pool, [0.9, 0.95], 0.9))
+    assert "candidate 1 (limit-probability) with a joint figure of 0.82 against 0.9" in note
+    assert "'b' is met with probability 0.83 against the 0.95 required" in note
+    # every candidate outside the space: nothing to say
+    outside = _screened(U, [False] * 3, ["outside-design-space"] * 3, P)
+    outside.result.joint = np.zeros(3)
+    assert closest_miss(outside, [0.9, 0.95], 0.9) == []

@@ -21,7 +21,7 @@ from guardband.planner.step.batch import SAMPLES
 from guardband.planner.step.result import Mode, _num
 from guardband.safety.screen import REASON_TEXT
 
-__all__ = ["pick_explanations", "unlikely_to_improve", "LITTLE_WORTH", "UNLIKELY", "NEAREST"]
+__all__ = ["pick_explanations", "unlikely_to_improve", "closest_miss", "LITTLE_WORTH", "UNLIKELY", "NEAREST"]
 
 #: A pick whose EI (or PI) given the earlier picks is below this share of the
 #: first pick's is flagged as worth little.
@@ -118,3 +118,26 @@ def unlikely_to_improve(pool, first: int, pi_first, U_best: np.ndarray, best: st
             f"chance of a better result is {pi_first:.2g}. Of the {near.size} candidates nearest that run, "
             + ", ".join(parts) + ". The price of the threshold shows what a lower threshold would admit; "
             "the protocol's author decides"]
+
+
+def closest_miss(pool, requirements, threshold: float) -> list[str]:
+    """A note when nothing passes the screen: the candidate that came nearest, and what held it back.
+
+    ``requirements``: each limit's required probability, in the order of the
+    screen's limits; ``threshold``: the joint figure's. The nearest is the
+    candidate inside the design space with the highest joint figure; the
+    limit named is the one furthest below its requirement there.
+    """
+    res = pool.result
+    joint = np.nan_to_num(np.asarray(res.joint, dtype=float), nan=-1.0)
+    inside = np.asarray(res.reason) != "outside-design-space"
+    if not np.any(inside) or not len(res.limit_names):
+        return []
+    i = int(np.flatnonzero(inside)[np.argmax(joint[inside])])
+    P = np.nan_to_num(np.asarray(res.P, dtype=float)[i], nan=0.0)
+    short = P - np.asarray(requirements, dtype=float)
+    j = int(np.argmin(short))
+    return [f"the nearest miss: candidate {i} ({res.reason[i]}) with a joint figure of {joint[i]:.3g} against "
+            f"{threshold:g}; there {res.limit_names[j]!r} is met with probability {P[j]:.3g} against the "
+            f"{requirements[j]:g} required. The exclusion table gives every candidate's reason; "
+            "`guardband judge` gives the models' figures for recipes of your own"]

@@ -54,7 +54,7 @@ from guardband.planner.step.batch import VALUED_RULES, BatchRule, Pool, greedy_b
 from guardband.planner.step.context import StepContext
 from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
 from guardband.planner.step.pool import candidate_pool
-from guardband.planner.step.explain import pick_explanations, unlikely_to_improve
+from guardband.planner.step.explain import closest_miss, pick_explanations, unlikely_to_improve
 from guardband.planner.step.rates import objective_band, objective_scale, rate_incumbent
 from guardband.planner.step.refine import refine, rescue_figure
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
@@ -388,6 +388,8 @@ def plan_step(
     # all four values from the models fitted to real data (EI and PI are NaN,
     # shown empty, when there is no incumbent yet)
     values = all_values(pool.mu, pool.sd, inc_value, **rank_kw)
+    if not chosen:
+        messages += closest_miss(pool, [lim.probability for lim in ctx.rules.limits], ctx.rules.threshold)
     if chosen and st.incumbent is not None and st.mode == Mode.IMPROVE:
         best = runs.run_ids.index(st.incumbent["run_id"])
         messages += unlikely_to_improve(pool, chosen[0], float(values["pi"][chosen[0]]), U_runs[best],

@@ -177,7 +177,9 @@ class Batch(_Strict):
             "the batch stops early, and the plan says at which pick and why, when a later pick's ei "
             "(or pi) given the earlier picks is below this share of the first pick's; 0: never. "
             "Applies to the ei and pi rules once a run has met every limit; a batch size asked for "
-            "on the command line (--count) is always filled"
+            "on the command line (--count) is always filled. Under method = \"explore\" a later pick "
+            "made to learn is judged by the same ei, which is small by design, so a value above 0 "
+            "often stops such a batch at its first pick"
         ),
         json_schema_extra=_unit("share of the first pick's value"),
     )

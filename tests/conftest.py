@@ -64,3 +64,32 @@ def rate_protocol(**sections) -> dict:
         "ranking": {"rule": "ei"},
         **sections,
     }
+
+
+def gramacy_batch_protocol(*, with_limits: bool = True, **batch):
+    """Gramacy's protocol with a small batch of 4 (pool 600, no refinement), ``batch`` overriding.
+
+    Without limits the screen is the hard rules alone, which no fantasy changes.
+    """
+    import copy
+
+    from guardband.planner.inputs.protocol import parse_protocol
+    from guardband.planner.simulation.problems import get_problem
+
+    data = copy.deepcopy(get_problem("gramacy").protocol_dict)
+    data["batch"] = {**data.get("batch", {}), "size": 4, "pool": 600, "refine": 0, **batch}
+    if not with_limits:
+        data["limits"] = []
+    return parse_protocol(data, source="gramacy, test settings")
+
+
+def gramacy_batch_runs():
+    """Eight starting runs of Gramacy's problem (seed 3), measured without noise."""
+    import numpy as np
+
+    from guardband.planner.simulation.loop import runs_table_from_arrays, start_runs
+    from guardband.planner.simulation.problems import get_problem
+
+    p = gramacy_batch_protocol()
+    X = start_runs(p, 8, rng=np.random.default_rng(3))
+    return runs_table_from_arrays(p, X, get_problem("gramacy").evaluate(X))

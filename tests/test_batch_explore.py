@@ -12,35 +12,27 @@ Rasmussen & Williams (2006) eq. 2.24, computed here with
 rank-one updates.
 """
 
-import copy
 
 import numpy as np
 import pytest
 
-from guardband.planner.inputs.protocol import parse_protocol
-from guardband.planner.simulation.loop import runs_table_from_arrays, start_runs
-from guardband.planner.simulation.problems import get_problem
+from guardband.planner.simulation.loop import runs_table_from_arrays
 from guardband.planner.step import plan_step
 from guardband.planner.step.batch import MIN_SEPARATION, _choose, relevant_region
 from guardband.safety.screen import step_distance
+
+from conftest import gramacy_batch_protocol, gramacy_batch_runs
 
 SEED = 11
 
 
 def _protocol(with_limits=True, **batch):
-    data = copy.deepcopy(get_problem("gramacy").protocol_dict)
-    data["batch"] = {**data.get("batch", {}), "size": 4, "pool": 600, "refine": 0, **batch}
-    if not with_limits:  # the screen is the hard rules alone, which no fantasy changes
-        data["limits"] = []
-    return parse_protocol(data, source="gramacy, test settings")
+    return gramacy_batch_protocol(with_limits=with_limits, **batch)
 
 
 @pytest.fixture(scope="module")
 def runs():
-    problem = get_problem("gramacy")
-    p = _protocol()
-    X = start_runs(p, 8, rng=np.random.default_rng(3))
-    return runs_table_from_arrays(p, X, problem.evaluate(X))
+    return gramacy_batch_runs()
 
 
 # ---------------------------------------------------------------- the region

@@ -11,11 +11,12 @@ from scipy.stats import norm
 
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.protocol import parse_protocol
-from guardband.planner.simulation.loop import runs_table_from_arrays, start_runs
 from guardband.planner.simulation.problems import get_problem
 from guardband.planner.step import plan_step
 from guardband.planner.step.acquisition import expected_improvement
 from guardband.planner.step.batch import SAMPLES
+
+from conftest import gramacy_batch_protocol, gramacy_batch_runs
 
 from test_protocol import BASE
 
@@ -23,19 +24,12 @@ SEED = 11
 
 
 def _protocol(**batch):
-    problem = get_problem("gramacy")
-    data = copy.deepcopy(problem.protocol_dict)
-    data["batch"] = {**data.get("batch", {}), "size": 4, "pool": 600, "refine": 0, **batch}
-    return parse_protocol(data, source="gramacy, test settings")
+    return gramacy_batch_protocol(**batch)
 
 
 @pytest.fixture(scope="module")
 def gramacy_runs():
-    problem = get_problem("gramacy")
-    p = _protocol()
-    X = start_runs(p, 8, rng=np.random.default_rng(3))
-    Y = problem.evaluate(X)
-    return problem, runs_table_from_arrays(p, X, Y)
+    return get_problem("gramacy"), gramacy_batch_runs()
 
 
 @pytest.fixture(scope="module")

@@ -63,9 +63,9 @@ def test_choose_takes_the_largest_sd_in_the_region_and_falls_back_to_the_score()
     ok = np.array([True, True, True, False])
     scores, sd = np.array([3.0, 1.0, 2.0, 9.0]), np.array([0.1, 0.4, 0.4, 0.9])
     region = np.array([False, True, True, True])
-    assert _choose(ok, scores, sd, region) == (1, 2)  # a tie in sd goes to the lowest index
-    assert _choose(ok, scores, sd, None) == (0, None)
-    assert _choose(ok, scores, sd, np.array([False, False, False, True])) == (0, None)  # none eligible there
+    assert _choose(ok, lambda: scores, sd, region) == (1, 2)  # a tie in sd goes to the lowest index
+    assert _choose(ok, lambda: scores, sd, None) == (0, None)
+    assert _choose(ok, lambda: scores, sd, np.array([False, False, False, True])) == (0, None)  # none eligible there
 
 
 # ---------------------------------------------------------------- the plan

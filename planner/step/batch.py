@@ -173,15 +173,14 @@ class _Fantasies:
         """How the objective's mean moves per unit surprise of the latest fantasised point."""
         return self.objective.fantasy_direction()
 
-    def rescreen(self, scores_of, incumbent_value):
-        """The pool screened and ranked under the fantasies: (result, scores, mean, sd)."""
+    def rescreen(self):
+        """The pool screened under the fantasies: (result, mean, sd)."""
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             mu_f, sd_f = _Head(self.objective, self.n).mean_sd()
             lims_f = self.ctx.limit_predictions(None, [None if lp is None else _Head(lp, self.n)
                                                        for lp in self.limits])
-        result = self.ctx.screen(self.pool.X, self.pool.U, lims_f)
-        return result, scores_of(mu_f, sd_f, result, incumbent_value), mu_f, sd_f
+        return self.ctx.screen(self.pool.X, self.pool.U, lims_f), mu_f, sd_f
 
 
 class _Draws:
@@ -277,15 +276,18 @@ def _stop_message(k: int, count: int, worth: float, first: float, rule: BatchRul
             "(--count) fills it regardless")
 
 
-def _choose(ok: np.ndarray, scores: np.ndarray, sd: np.ndarray, region) -> tuple[int, int | None]:
-    """The pick among the eligible candidates ``ok``: the best score or, with a ``region`` that
-    holds an eligible candidate, the largest sd there (ties to the lowest index); and how many
-    eligible candidates the region held (None when it was not used)."""
+def _choose(ok: np.ndarray, scores, sd: np.ndarray, region) -> tuple[int, int | None]:
+    """The pick among the eligible candidates ``ok``: the best of ``scores()`` or, with a
+    ``region`` that holds an eligible candidate, the largest sd there (ties to the lowest
+    index); and how many eligible candidates the region held (None when it was not used).
+    ``scores`` is called only when the rule ranks: under the sampled values it is the
+    costliest part of a later pick, and an exploring pick does not need it."""
     if region is not None and np.any(ok & region):
         idx = np.flatnonzero(ok & region)
         return int(idx[np.lexsort((idx, -sd[idx]))[0]]), int(idx.size)
     idx = np.flatnonzero(ok)
-    return int(idx[np.lexsort((idx, -scores[idx]))[0]]), None
+    ranked = scores()
+    return int(idx[np.lexsort((idx, -ranked[idx]))[0]]), None
 
 
 def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_value,
@@ -316,13 +318,15 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
         scores = draws.scores(rule.rule, mu, sd, rule.rank_kw)
         return weighted_by_joint(scores, res.joint) if rule.weigh_by_joint else scores
 
-    def rescreen(fant, inc):
-        return fant.rescreen(scores_of if draws is None else drawn_scores, inc)
+    def rescreen(fant, inc):  # (result, scores on demand, mean, sd) under the fantasies
+        result, mu, sd = fant.rescreen()
+        rank = scores_of if draws is None else drawn_scores
+        return result, lambda: rank(mu, sd, result, inc), mu, sd
 
     chosen: list[int] = []
     messages: list[str] = []
     fant = None
-    cur_result, cur_scores, cur_mu, cur_sd = pool.result, pool.scores, pool.mu, pool.sd
+    cur_result, cur_scores, cur_mu, cur_sd = pool.result, lambda: pool.scores, pool.mu, pool.sd
     fantasy_inc = incumbent_value
     given: list[dict] = []
     too_close = np.zeros(pool.X.shape[0], dtype=bool)

@@ -182,3 +182,13 @@ def test_gaussian_measurement_noise_has_the_stated_sd():
     assert np.std(m["dissolution"] - truth["dissolution"]) == pytest.approx(2.0, rel=0.03)
     m2 = problem.measure(truth, np.random.default_rng(1), scale=1.0, noise={"dissolution": 0.5})
     assert np.std(m2["dissolution"] - truth["dissolution"]) == pytest.approx(0.5, rel=0.03)
+
+
+def test_the_best_sample_of_each_level_combination_in_order():
+    from guardband.planner.simulation.problems import _best_of_each_combination
+
+    # rows by hand: level columns 1 and 2; order = best first
+    X = np.array([[0.1, 1, 0], [0.2, 2, 0], [0.3, 1, 0], [0.4, 1, 1], [0.5, 2, 0]])
+    order = np.array([4, 2, 0, 3, 1])
+    # first of (2,0) is row 4, of (1,0) row 2, of (1,1) row 3
+    assert _best_of_each_combination(X, order, [1, 2]) == [4, 2, 3]

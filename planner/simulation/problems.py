@@ -337,13 +337,8 @@ def _pulled_back(protocol: Protocol, evaluate, start: np.ndarray, x: np.ndarray)
 
 def _best_of_each_combination(X: np.ndarray, order: np.ndarray, columns: list[int]) -> list[int]:
     """The first index in ``order`` of each combination of the values of ``columns`` (best first)."""
-    seen, out = set(), []
-    for i in order:
-        key = tuple(X[i, columns])
-        if key not in seen:
-            seen.add(key)
-            out.append(int(i))
-    return out
+    _, first = np.unique(X[np.ix_(order, columns)], axis=0, return_index=True)
+    return [int(i) for i in order[np.sort(first)]]
 
 
 def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int = 20,

@@ -161,7 +161,8 @@ def _one_thread_each():
 
 
 def _run_task(task: _Task) -> tuple[CampaignHistory, float, float]:
-    """One campaign: (its history, the known optimum of its truth, the truth's objective range)."""
+    """One campaign: (its history, the known optimum of its truth, the objective range of a drawn
+    truth; NaN for a scenario's one truth, whose range the sweep takes once)."""
     with _one_thread_each():
         problem = task.scenario.problem_for(task.base_seed, task.seed_index)
         protocol = parse_protocol(task.protocol_data, source=f"sweep cell {task.cell}")
@@ -172,10 +173,14 @@ def _run_task(task: _Task) -> tuple[CampaignHistory, float, float]:
         if task.strategy in PEERS:
             history = run_peer(task.strategy, problem, protocol, X_start=X_start, n_start=task.n_start,
                                budget=task.budget, seed=seed, measure=measure, pool_size=task.pool_size)
-            return history, float(problem.optimum), objective_range(problem)
+            return history, float(problem.optimum), _drawn_range(task.scenario, problem)
         history = run_campaign(protocol, problem.evaluate, n_start=task.n_start, budget=task.budget, seed=seed,
                                X_start=X_start, measure=measure, pool_size=task.pool_size, cohort=problem.cohort)
-    return history, float(problem.optimum), objective_range(problem)
+    return history, float(problem.optimum), _drawn_range(task.scenario, problem)
+
+
+def _drawn_range(scenario, problem) -> float:
+    return objective_range(problem) if scenario.drawn else float("nan")
 
 
 def _run_local(tasks, workers: int, progress) -> list:
@@ -496,7 +501,7 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
             base_seed=int(base_seed), noise_scale=float(noise_scale), noise={},
             workers=workers, optima=optima if sc.drawn else (),
         )
-        ranges = [r for _, _, r in mine]
+        ranges = [r for _, _, r in mine] if sc.drawn else [objective_range(sc.problem)]
         out.append(SweepCell(setting, sc.name, result, _default_within(ranges) if within is None else float(within),
                              strategy))
     return SweepResult(tuple(out), seeds, int(base_seed), float(noise_scale), runner)

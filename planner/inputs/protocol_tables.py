@@ -144,7 +144,7 @@ class Batch(_Strict):
                       "space at each step", json_schema_extra=_unit("candidates"))
     refine: int = Field(default=4, ge=0, le=50, description="best survivors refined by a local search "
                         "(0: none)", json_schema_extra=_unit("candidates"))
-    method: Literal["sampled", "believer", "explore", "thompson"] = Field(
+    method: Literal["sampled", "believer", "explore"] = Field(
         default="explore",
         description=(
             "how a later pick of a batch is valued given the earlier picks, whose results are not yet "

@@ -711,18 +711,6 @@ class PosteriorAt:
         return self._model.scale * self._updates[p]
 
     @limited_blas
-    def covariance(self, idx) -> np.ndarray:
-        """The joint covariance of the latent response at points ``idx`` given the data and
-        every point conditioned on so far (response units)."""
-        m = self._model
-        idx = np.asarray(idx, dtype=int)
-        V = linalg.solve_triangular(m._L, self._Ks[idx].T, lower=True, check_finite=False)
-        C = m._k(self._Xs[idx], self._Xs[idx]) - V.T @ V
-        for u in self._updates:
-            C -= np.outer(u[idx], u[idx])
-        return m.scale**2 * 0.5 * (C + C.T)
-
-    @limited_blas
     def condition(self, j: int, y_j: float) -> None:
         """Add an observation ``y_j`` (response units) at point ``j``, in place."""
         m = self._model

@@ -83,8 +83,6 @@ __all__ = ["Pool", "BatchRule", "greedy_batch", "relevant_region", "MIN_SEPARATI
 MIN_SEPARATION = 0.01
 #: Draws of the earlier picks' results under the sampled method (a power of 2, for the Sobol set).
 SAMPLES = 128
-#: Candidates a later pick's posterior draw is taken over under the thompson method.
-DRAW_POINTS = 500
 #: Rules whose value given the earlier picks the method and ``least_worth`` act on.
 VALUED_RULES = ("ei", "pi")
 
@@ -256,11 +254,11 @@ class BatchRule:
 
     def sampled(self, incumbent_value) -> bool:
         """Are later picks valued over sampled results (the sampled and explore methods)?"""
-        return self.method in ("sampled", "explore", "thompson") and self.valued(incumbent_value)
+        return self.method in ("sampled", "explore") and self.valued(incumbent_value)
 
     def explores(self, incumbent_value) -> bool:
         """Are later picks chosen by the objective's sd in the relevant region?"""
-        return self.method in ("explore", "thompson") and incumbent_value is not None and self.rank_kw is not None
+        return self.method == "explore" and incumbent_value is not None and self.rank_kw is not None
 
 
 def _worth(g: dict, rule: BatchRule) -> float:
@@ -276,16 +274,6 @@ def _stop_message(k: int, count: int, worth: float, first: float, rule: BatchRul
             f"given the fantasised results of the earlier picks, {worth / first:.2g} of the first pick's "
             f"{first:.3g}, below batch.least_worth {rule.least_worth:g}; asking for the batch size "
             "(--count) fills it regardless")
-
-
-def _drawn_pick(idx, mu, sd, posterior, rule, maximize) -> int:
-    """Thompson sampling (measured, not kept): the best point of one joint posterior draw of
-    the objective over the DRAW_POINTS candidates of ``idx`` with the largest optimistic bound."""
-    g = mu if maximize else -mu
-    top = idx[np.lexsort((idx, -(g[idx] + float(rule.rank_kw["kappa"]) * sd[idx])))[:DRAW_POINTS]]
-    w, Q = np.linalg.eigh(posterior.covariance(top))
-    f = g[top] + Q @ (np.sqrt(np.clip(w, 0.0, None)) * rule.rng.standard_normal(top.size))
-    return int(top[np.argmax(f)])
 
 
 def _choose(ok: np.ndarray, scores, sd: np.ndarray, region) -> tuple[int, int | None]:
@@ -361,8 +349,6 @@ def greedy_batch(ctx: StepContext, pool: Pool, count: int, scores_of, incumbent_
             messages.append(_shortfall_message(k, count))
             break
         best, in_region = _choose(ok, cur_scores, cur_sd, region if k else None)
-        if in_region is not None and rule.method == "thompson":
-            best = _drawn_pick(np.flatnonzero(ok & region), cur_mu, cur_sd, fant.objective, rule, maximize)
         g = {"mean": float(cur_mu[best]), "sd": float(cur_sd[best]),
              "incumbent": fantasy_inc if draws is None else incumbent_value,
              "joint": float(cur_result.joint[best]), "eligible": int(np.count_nonzero(ok)),

@@ -21,7 +21,9 @@ campaigns. A plain method name sets ``batch.method`` only (the other
 settings keep their defaults, ``batch.search_per_run`` among them);
 ``--variants`` names settings of any table (``name:section.key=value,...``),
 e.g. ``today:batch.method=believer,batch.search_per_run=false`` or
-``no-span:screen.span_reach=none``, and ``--methods`` then lists the names.
+``no-span:screen.span_reach=none``, and ``--methods`` then lists the names;
+``--one-variant NAME`` gives one run per step that variant's settings too
+(for settings that are not about batches, such as a model's).
 The README's table: ``--family 56 --seeds 2 --budget 24 --batches 1 4 8
 --methods today sampled-only new --variants ...`` (the README gives it whole).
 
@@ -105,8 +107,9 @@ def with_overrides(problem: Problem, overrides: dict) -> Problem:
     return dataclasses.replace(problem, protocol_dict=data)
 
 
-def _jobs(problems, opt: dict, variants: dict) -> list:
-    """Every (problem, batch, method, seed) campaign; batch 1 once (every method plans it alike)."""
+def _jobs(problems, opt: dict, variants: dict, one_variant: str | None = None) -> list:
+    """Every (problem, batch, method, seed) campaign; batch 1 once (every method plans it alike),
+    with the settings of the variant ``one_variant`` when it is named."""
     jobs = []
     for problem, group, seeds in problems:
         rng_ = objective_range(problem)
@@ -116,6 +119,8 @@ def _jobs(problems, opt: dict, variants: dict) -> list:
                                   refine=opt["refine"])
                 if method in variants:
                     p = with_overrides(p, variants[method])
+                elif batch == 1 and one_variant is not None:
+                    p = with_overrides(p, variants[one_variant])
                 elif method != "any":
                     p = with_overrides(p, {"batch": {"method": method}})
                 jobs += [fr.Job(p, group, f"{batch}|{method}", "protocol", opt["threshold"], "", s,
@@ -170,6 +175,7 @@ def _command(args, opt: dict) -> str:
             f"--seeds {opt['seeds']} --family-seeds {opt['family_seeds']} --budget {opt['budget']} "
             f"--batches {lst(opt['batches'])} --methods {lst(opt['methods'])} --threshold {opt['threshold']:g} "
             + (f"--variants {lst(args.variants)} " if args.variants else "")
+            + (f"--one-variant {args.one_variant} " if args.one_variant else "")
             + f"--pool {opt['pool']} --refine {opt['refine']} --workers {args.workers} --label {args.label}")
 
 
@@ -184,6 +190,7 @@ def main(argv=None) -> int:
     ap.add_argument("--batches", type=int, nargs="*", help="batch sizes (default 1 4 8)")
     ap.add_argument("--methods", nargs="*", help="batch methods, or names of --variants")
     ap.add_argument("--variants", nargs="*", default=[], help="name:section.key=value,... (diagnosis)")
+    ap.add_argument("--one-variant", help="a name of --variants whose settings one run per step takes too")
     ap.add_argument("--threshold", type=float)
     ap.add_argument("--pool", type=int)
     ap.add_argument("--refine", type=int)
@@ -200,7 +207,9 @@ def main(argv=None) -> int:
     family = run_in_workers(cal._family_job, [(i, args.family_seed) for i in range(opt["family"])],
                             workers=args.workers)
     problems += [(p, "family", opt["family_seeds"]) for p in family]
-    jobs = _jobs(problems, opt, variants)
+    if args.one_variant is not None and args.one_variant not in variants:
+        raise SystemExit(f"--one-variant {args.one_variant!r} is not a name of --variants")
+    jobs = _jobs(problems, opt, variants, args.one_variant)
 
     def progress(done, total):
         if sys.stderr.isatty() or done == total or done % 20 == 0:

@@ -365,9 +365,7 @@ def plan_step(
     st = prepare_step(protocol, runs, seed=seed, warm_start=warm_start, textbook=textbook)
     ctx, scores_of, inc_value, rank_kw = st.ctx, st.scores_of, st.inc_value, st.rank_kw
     space, models, used, U_runs, messages = st.ctx.space, st.ctx.models, st.used, st.U_runs, list(st.messages)
-    ids = list(runs.run_ids)
-    X_best = runs.X[ids.index(st.incumbent["run_id"])] if st.incumbent and st.incumbent.get("run_id") in ids else None
-    X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]), X_best)
+    X_pool, origin = candidate_pool(space, runs.X[st.safe], pool_size, np.random.default_rng(st.children[0]))
     pool = _screened(ctx, X_pool, scores_of, inc_value)
     pool, origin, more = _refine_phase(ctx, pool, origin, st.mode, scores_of, inc_value, rank_kw, refine_n)
     messages += effort + more

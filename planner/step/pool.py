@@ -15,7 +15,7 @@ __all__ = ["candidate_pool", "LOCAL_SHARE"]
 LOCAL_SHARE = 0.25
 
 
-def candidate_pool(space, X_safe, pool_size: int, rng, X_best=None) -> tuple[np.ndarray, np.ndarray]:
+def candidate_pool(space, X_safe, pool_size: int, rng) -> tuple[np.ndarray, np.ndarray]:
     """Candidates and where each came from ("pool" or "local").
 
     Parameters
@@ -30,7 +30,7 @@ def candidate_pool(space, X_safe, pool_size: int, rng, X_best=None) -> tuple[np.
     X_pool = np.asarray(space.sample(pool_size - n_local, rng=rng))
     origin = ["pool"] * X_pool.shape[0]
     if n_local:
-        X_local = _local_candidates(space, X_safe, X_pool, n_local, rng, X_best)
+        X_local = _local_candidates(space, X_safe, X_pool, n_local, rng)
         X_pool = np.vstack([X_pool, X_local])
         origin += ["local"] * X_local.shape[0]
     origin = np.array(origin, dtype=object)
@@ -41,7 +41,7 @@ def candidate_pool(space, X_safe, pool_size: int, rng, X_best=None) -> tuple[np.
     return X_pool[keep], origin[keep]
 
 
-def _local_candidates(space, X_safe, X_pool, n, rng, X_best=None) -> np.ndarray:
+def _local_candidates(space, X_safe, X_pool, n, rng) -> np.ndarray:
     """Points a short way from a safe run towards a pool point.
 
     A convex combination of two points of a convex polytope stays inside it;
@@ -50,10 +50,8 @@ def _local_candidates(space, X_safe, X_pool, n, rng, X_best=None) -> np.ndarray:
     bounds) is dropped.
     """
     a = X_safe[rng.integers(0, X_safe.shape[0], size=n)]
-    if X_best is not None:
-        a[: n // 2] = X_best  # half from the incumbent (tried, not kept)
     b = X_pool[rng.integers(0, X_pool.shape[0], size=n)]
-    t = np.exp(rng.uniform(np.log(0.003), np.log(0.3), size=(n, 1)))
+    t = rng.uniform(0.0, 0.3, size=(n, 1))
     X = a + t * (b - a)
     for j in space.levels:
         X[:, j] = a[:, j]

@@ -18,7 +18,7 @@ can see how near each near miss came.
    extrapolation in proportion to what has been tested, so the region grows
    only as far as runs at its edge come back within the limits. The push
    doubles for each of the latest runs in a row (up to ``span_growth``)
-   that extended the span and met every limit (:func:`span_streak`).
+   that extended the span and met every limit (:func:`guardband.safety.span.span_streak`).
 3c. ``skips-untried-level`` (protocol ``[escalation] no_skipping``): a
    discrete factor more than one level above the highest level given in a
    run that met every limit, or more than one factor above theirs at once.
@@ -66,6 +66,7 @@ import numpy as np
 from scipy.special import ndtr
 
 from guardband.safety.limits import ForbiddenRegion, LimitRule, ScreenRules, within_limit
+from guardband.safety.span import tested_span
 
 #: Slack when testing ``A x <= b`` for a forbidden region (the same
 #: feasibility tolerance as the design space's; the rows are normalised by
@@ -77,7 +78,6 @@ __all__ = [
     "REASON_TEXT",
     "LimitPrediction",
     "MonotoneBasis",
-    "span_streak",
     "monotone_envelope",
     "above_broken",
     "HardRules",
@@ -520,52 +520,6 @@ def skipped_levels(ladders, U, anchors) -> tuple[np.ndarray, list[str]]:
     return out, detail
 
 
-def tested_span(anchors, reach: float, floor: float) -> tuple[np.ndarray, np.ndarray]:
-    """The box the anchors span (unit-scaled), each side pushed out by ``reach`` x width (>= floor)."""
-    lo, hi = anchors.min(axis=0), anchors.max(axis=0)
-    pad = np.maximum(reach * (hi - lo), floor)
-    return lo - pad, hi + pad
-
-
-def span_streak(U, met, columns=None) -> int:
-    """How many of the latest runs in a row extended the tested span and met every limit.
-
-    Runs are taken in order. A run *extends* the span when it lies outside
-    the box of the earlier runs that met every limit (in ``columns``); each
-    such run that met every limit adds one, and any run that broke a limit
-    ends the streak (sets it to 0). This is the success count of a trust
-    region (Eriksson et al. 2019, "Scalable global optimization via local
-    Bayesian optimization", NeurIPS; from memory), read off the runs
-    themselves so that a plan stays a function of its inputs.
-
-    Parameters
-    ----------
-    U : array of shape (n_runs, k)
-        Measured runs, unit-scaled, in the order they were made.
-    met : bool array of shape (n_runs,)
-        Whether each run met every limit.
-    columns : bool array of shape (k,), optional
-        The columns the span rule applies to (default all).
-
-    Returns
-    -------
-    int
-    """
-    U = np.asarray(U, dtype=float)
-    cols = np.ones(U.shape[1], dtype=bool) if columns is None else np.asarray(columns, dtype=bool)
-    lo = hi = None
-    streak = 0
-    for u, ok in zip(U[:, cols], np.asarray(met, dtype=bool)):
-        if not ok:
-            streak = 0
-            continue
-        if lo is not None and np.any((u < lo - 1e-12) | (u > hi + 1e-12)):
-            streak += 1
-        lo = u.copy() if lo is None else np.minimum(lo, u)
-        hi = u.copy() if hi is None else np.maximum(hi, u)
-    return streak
-
-
 def _beyond_span(U, anchors, reach, floor, basis, columns=None):
     n = U.shape[0]
     cols = np.ones(U.shape[1], dtype=bool) if columns is None else np.asarray(columns, dtype=bool)
@@ -761,7 +715,7 @@ def run_screen(
     step_basis : str
         What ``step`` was measured from, for the messages.
     beyond : bool array (n,), optional
-        Whether each candidate lies beyond the tested span (see :func:`tested_span`).
+        Whether each candidate lies beyond the tested span (see :func:`guardband.safety.span.tested_span`).
     beyond_detail : list of str, optional
     skips : bool array (n,), optional
         Whether each candidate skips an untried level (see :func:`skipped_levels`).

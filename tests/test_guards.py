@@ -230,7 +230,7 @@ def test_a_limits_fantasy_lies_towards_the_limit(rule, expected_sign):
 
 
 def test_tested_span_is_the_runs_box_pushed_out_by_its_reach():
-    from guardband.safety.screen import tested_span
+    from guardband.safety.span import tested_span
     anchors = np.array([[0.2, 0.5], [0.4, 0.5], [0.3, 0.6]])
     lo, hi = tested_span(anchors, 0.25, 0.05)
     # x: width 0.2, pushed by 0.05 each side; y: width 0.1, pushed by the floor 0.05

@@ -16,7 +16,7 @@ from guardband.planner.inputs.protocol import parse_protocol
 from guardband.planner.simulation import runs_table_from_arrays
 from guardband.planner.simulation.problems import gramacy_protocol_dict
 from guardband.planner.step.plan import prepare_step
-from guardband.safety.screen import span_streak
+from guardband.safety.span import span_streak
 
 
 def test_runs_inside_the_box_do_not_count_and_a_break_ends_the_streak():

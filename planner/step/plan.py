@@ -59,7 +59,7 @@ from guardband.planner.step.rates import objective_band, objective_scale, rate_i
 from guardband.planner.step.refine import refine, rescue_figure
 from guardband.planner.step.result import Mode, PlanResult, Proposal, Scaler, _num
 from guardband.safety.limits import ScreenRules, limit_rules, meets_limits
-from guardband.safety.screen import span_streak
+from guardband.safety.span import span_streak
 
 __all__ = ["plan_step", "prepare_step", "PreparedStep", "safe_runs_mask", "MIN_OBJECTIVE_RUNS"]
 

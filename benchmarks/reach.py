@@ -1,6 +1,6 @@
 """How far the screen vouches: the joint figure on the way from the best safe run to the optimum.
 
-A built-in problem's campaign is simulated for ``--budget`` planned runs
+A built-in (or generated) problem's campaign is simulated for ``--budget`` planned runs
 (one run per step, the given threshold); then the recipes on the straight
 line from the best run that truly met every limit to the true constrained
 optimum are judged as ``guardband judge`` would judge them against that
@@ -23,21 +23,29 @@ import sys
 import numpy as np
 
 from guardband.planner.simulation import simulate
-from guardband.planner.simulation.family import with_settings
+from guardband.planner.simulation.family import family_problem, with_settings
 from guardband.planner.simulation.loop import runs_table_from_arrays
 from guardband.planner.simulation.problems import get_problem
 from guardband.planner.step.judge import judge_points
 
 
+def _problem(name: str):
+    """A built-in problem, or a generated one named as the family names them (``family-s0-033``)."""
+    if name.startswith("family-s"):
+        seed, index = name[len("family-s"):].split("-")
+        return family_problem(int(index), int(seed))
+    return get_problem(name)
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--problem", default="coating")
+    ap.add_argument("--problem", default="coating", help="a built-in problem, or family-s<seed>-<index>")
     ap.add_argument("--threshold", type=float, default=0.5)
     ap.add_argument("--budget", type=int, default=6)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--points", type=int, default=11)
     args = ap.parse_args(argv)
-    problem = get_problem(args.problem)
+    problem = _problem(args.problem)
     p = with_settings(problem, threshold=args.threshold, batch=1, pool=1000, refine=1)
     result = simulate(p, None, budget=args.budget, seeds=1, strategies=("protocol",), noise_scale=1.0,
                       workers=1, seed=args.seed)

@@ -154,3 +154,25 @@ def test_off_grid_names_each_value_that_is_not_a_multiple():
     off = off_grid(X, [0.001, 0.5, np.nan])
     assert off.tolist() == [[False, False, False], [True, True, False]]
     assert on_grid(X, [0.001, 0.5, np.nan]).tolist() == [True, False]
+
+
+def test_the_starting_design_is_on_the_grid_inside_the_space_and_its_start_region(tablet):
+    """`start` writes runs the lab can weigh: a resolution binds the starting design as it binds a plan."""
+    from guardband.planner.app.workflow import start_design
+
+    rnd = rounding_of(tablet)
+    header, rows, notes = start_design(tablet, 12, seed=3)
+    X = np.array([row[1:1 + len(tablet.factors)] for row in rows], dtype=float)
+    assert on_grid(X, rnd.resolution).all()
+    assert tablet.design_space().contains(X).all()
+    assert any("resolution" in n for n in notes)
+    # with a starting region, every rounded run also stays inside it
+    data = tablet.model_dump(mode="python")
+    data["start"] = {"rules": ["force <= 9", "croscarmellose >= 0.03"]}
+    region = parse_protocol(data)
+    _, rows, _ = start_design(region, 8, seed=5)
+    X = np.array([row[1:1 + len(region.factors)] for row in rows], dtype=float)
+    assert on_grid(X, rnd.resolution).all()
+    assert np.all(X[:, region.factor_names.index("force")] <= 9 + 1e-12)
+    assert np.all(X[:, region.factor_names.index("croscarmellose")] >= 0.03 - 1e-12)
+    assert region.design_space().contains(X).all()

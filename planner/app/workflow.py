@@ -211,14 +211,44 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
         region=None if region is None else (region[0], region[1]),
     )
     header = [RUN_ID, *protocol.factor_names, *protocol.runs_columns, "notes"]
-    rows = []
     width = max(2, len(str(n)))
-    for i, (x, label) in enumerate(zip(X, labels), start=1):
-        rows.append([f"S{i:0{width}d}", *[float(v) for v in x], *[""] * len(protocol.runs_columns), label])
-    notes = []
+    run_ids = [f"S{i:0{width}d}" for i in range(1, len(X) + 1)]
+    inner = space if region is None else space.add_inequalities(*region)
+    X, notes = _start_on_grid(protocol, inner, X, run_ids, in_region=region is not None)
+    rows = [[rid, *[float(v) for v in x], *[""] * len(protocol.runs_columns), label]
+            for rid, x, label in zip(run_ids, X, labels)]
     if region is not None:
         notes.append("every starting run lies inside the protocol's starting region")
     return header, rows, notes
+
+
+def _start_on_grid(protocol: Protocol, inner, X: np.ndarray, run_ids: list[str], *,
+                   in_region: bool) -> tuple[np.ndarray, list[str]]:
+    """The starting runs rounded to their factors' resolution, as a plan rounds its candidates.
+
+    Each run takes the first of its grid neighbours (its own rounding first)
+    that lies inside ``inner`` (the design space and the starting region);
+    a run with none is left as it is, and the notes name it.
+    """
+    from guardband.planner.space.rounding import rounding_of  # here: the space package loads cvxpy
+
+    rnd = rounding_of(protocol)
+    if not rnd.any:
+        return X, []
+    out, unrounded = X.copy(), []
+    for i, x in enumerate(X):
+        grid = rnd.neighbours(x)
+        inside = np.flatnonzero(inner.contains(grid))
+        if inside.size:
+            out[i] = grid[inside[0]]
+        else:
+            unrounded.append(run_ids[i])
+    notes = [f"every starting run is rounded to its factors' resolution ({rnd.describe()})"]
+    if unrounded:
+        notes = [f"the starting runs are rounded to their factors' resolution ({rnd.describe()}), except "
+                 f"{', '.join(unrounded)}: no grid point next to them lies inside the design space"
+                 + (" and the starting region" if in_region else "") + "; they are given unrounded"]
+    return out, notes
 
 
 # ------------------------------------------------------------------- plan

@@ -347,6 +347,9 @@ def judge(
         _show(_cautions_block(cautions_of(p)))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
+    if format is not Format.csv:  # with csv, the notes (these warnings among them) are on stderr already
+        for w in outcome.warnings:
+            _err(f"warning: {w}")
     _err(f"wrote {outcome.files['judge']} and {outcome.files['judge_notes'].name}")
 
 

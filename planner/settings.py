@@ -16,6 +16,10 @@ MIXTURE_SUM_TOL = 2e-3
 #: Relative tolerance (times max(1, |upper bound|)) when a measured run's
 #: factor value is compared with its bounds and discrete levels.
 FACTOR_VALUE_RTOL = 1e-9
+#: How far a measured run may break a rule of the protocol's constraints, in
+#: the factor-scaled units of FEASIBILITY_TOL, before it is flagged: values
+#: typed to five or six digits leave a run on a rule's edge this close to it.
+RUN_RULE_TOL = 1e-4
 #: A factor whose reachable range is narrower than this share of its declared
 #: span (its magnitude when fixed by its bounds) is treated as fixed.
 FIXED_RANGE_TOL = 1e-9

@@ -27,6 +27,9 @@ __all__ = ["read_runs", "plan", "Plan"]
 
 #: repr of a plan stays under this many characters.
 REPR_MAX = 2000
+#: The runs reader's warnings a repr lists (each cut to REPR_WARNING_CHARS); the rest are counted.
+REPR_WARNINGS = 5
+REPR_WARNING_CHARS = 200
 
 
 def _pandas():
@@ -124,15 +127,29 @@ class Plan:
                  "incumbent: none (no run meets every limit)",
                  f"candidates: {counts}", where,
                  "tables: .proposals, .exclusions, .models (DataFrames); everything: .result",
+                 *_warning_lines(r.flags),
                  "CAUTION: " + " ".join(self.cautions)]
         text = "\n".join(lines)
-        return text if len(text) <= REPR_MAX else text[:REPR_MAX - 3] + "..."
+        return _cut(text, REPR_MAX)
 
     def _repr_html_(self) -> str:
         head = "".join(f"<div>{html.escape(line)}</div>" for line in repr(self).splitlines()[:-1])
         table = self.proposals.to_html(index=False, float_format=lambda v: f"{v:.4g}", escape=True)
         notes = "".join(f"<li>{html.escape(c)}</li>" for c in self.cautions)
         return f"<div>{head}{table}<p><b>Cautions</b></p><ul>{notes}</ul></div>"
+
+
+def _warning_lines(flags) -> list[str]:
+    """What the runs reader flagged (a value kept outside its bounds, a unit converted), the first
+    few in full, so that the cautions after them always fit the repr."""
+    lines = [_cut(f"warning: {f}", REPR_WARNING_CHARS) for f in flags[:REPR_WARNINGS]]
+    if len(flags) > REPR_WARNINGS:
+        lines.append(f"and {len(flags) - REPR_WARNINGS} more warning(s) in .result.flags")
+    return lines
+
+
+def _cut(text: str, n: int) -> str:
+    return text if len(text) <= n else text[:n - 3] + "..."
 
 
 def plan(protocol, runs, *, out=None, seed: int | None = None, count: int | None = None,

@@ -103,6 +103,22 @@ def test_every_rounded_proposal_is_on_the_grid_inside_and_passes_the_screen(tabl
     assert on_grid(result.pool[result.screen.survives], rounding_of(tablet).resolution).all()
 
 
+def test_the_rule_picks_and_the_price_of_a_threshold_stand_on_the_grid(tablet):
+    """The best predicted objective at each threshold is that of a recipe the lab can weigh:
+    the price's local search is rounded as the plan's is (it used to report an off-grid point)."""
+    runs = read_runs(PROTOCOLS / "tablet_blend_runs.csv", tablet)
+    result = plan_step(tablet, runs, seed=4, pool_size=800)
+    res = rounding_of(tablet).resolution
+    names = list(tablet.factor_names)
+    priced = [e for e in result.threshold_price if e["x"] is not None]
+    assert priced
+    X = np.array([[e["x"][n] for n in names] for e in priced])
+    assert on_grid(X, res).all()
+    assert tablet.design_space().contains(X).all()
+    picks = [p for p in result.rule_picks if p.get("x") is not None]
+    assert picks and on_grid(np.array([[p["x"][n] for n in names] for p in picks]), res).all()
+
+
 def test_a_protocol_without_resolution_keeps_its_fingerprint():
     p = load_protocol(PROTOCOLS / "tablet_blend.toml")
     assert b"resolution" not in p.canonical()

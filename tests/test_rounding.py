@@ -192,3 +192,25 @@ def test_the_starting_design_is_on_the_grid_inside_the_space_and_its_start_regio
     assert np.all(X[:, region.factor_names.index("force")] <= 9 + 1e-12)
     assert np.all(X[:, region.factor_names.index("croscarmellose")] >= 0.03 - 1e-12)
     assert region.design_space().contains(X).all()
+
+
+def test_the_rounding_note_speaks_of_a_mixture_only_when_there_is_one(tablet):
+    from conftest import unit_square_protocol
+
+    data = unit_square_protocol({"name": "g", "upper": 1.0, "probability": 0.9},
+                                screen={"threshold": 0.9, "min_runs": 3}, batch={"size": 1, "pool": 200})
+    data["factors"][0]["resolution"] = 0.05
+    square = parse_protocol(data)
+    rng = np.random.default_rng(2)
+    X = rng.uniform(0, 1, (8, 2))
+    text = "run_id,x1,x2,y,g\n" + "".join(f"R{i},{a:.4f},{b:.4f},{a + b:.4f},{0.5 * a:.4f}\n"
+                                          for i, (a, b) in enumerate(X))
+    from guardband.planner.inputs.runs import parse_runs_text
+
+    result = plan_step(square, parse_runs_text(text, square, source="r.csv"), seed=1, explain=False)
+    note = next(m for m in result.messages if "rounded to its factors' resolution" in m)
+    assert "x1 0.05" in note and "mixture" not in note
+    runs = read_runs(PROTOCOLS / "tablet_blend_runs.csv", tablet)
+    note = next(m for m in plan_step(tablet, runs, seed=4, pool_size=300, explain=False).messages
+                if "rounded to its factors' resolution" in m)
+    assert "a mixture's total restored by largest remainders" in note

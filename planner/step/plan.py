@@ -190,8 +190,9 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
     origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)]
                       + ["refined, rounded, grid neighbour"] * near.shape[0], dtype=object)
     return rounded, origin, [
-        f"every candidate was rounded to its factors' resolution ({rnd.describe()}; a mixture's total "
-        f"restored by largest remainders) and screened again: {int(moved.sum())} moved; "
+        f"every candidate was rounded to its factors' resolution ({rnd.describe()}"
+        + ("; a mixture's total restored by largest remainders" if rnd.mixture.any() else "")
+        + f") and screened again: {int(moved.sum())} moved; "
         f"{int(lost.sum())} of the {int(before.sum())} that passed before rounding fail after it and "
         f"cannot be proposed; {near.shape[0]} grid neighbours of the refined candidates were added"]
 

@@ -180,6 +180,20 @@ def test_bad_scenario_files_name_the_field(data, message):
     assert ProtocolError.exit_code == EXIT_PROTOCOL
 
 
+@pytest.mark.parametrize(("data", "hint"), [
+    ({"budgett": 6, **_one()}, "budgett: unknown key; did you mean `budget`?"),
+    ({"scenario": [{"name": "s", "truth": TRUTH, "nose": {"y": 1.0}}]},
+     "scenario[0].nose: unknown key; did you mean `noise`?"),
+    ({"scenario": [{"name": "s", "truth": TRUTH, "colour": 1}]},
+     "scenario[0].colour: unknown key; check its spelling (see the README, \"Simulating your own study\")"),
+], ids=["top-level", "in-a-scenario", "no-close-key"])
+def test_a_misspelt_key_of_a_scenario_file_is_hinted_from_the_scenario_files_own_keys(data, hint):
+    """Not from the protocol's: a scenario file's keys are not in docs/protocol-reference.md."""
+    with pytest.raises(ProtocolError) as info:
+        parse_scenarios(data, _two_factor_protocol(), source="mine.toml")
+    assert str(info.value) == f"mine.toml: {hint}"
+
+
 def test_example_scenario_files_load_and_each_optimum_meets_every_limit():
     for stem in ("tablet_blend", "dose_combination"):
         protocol = load_protocol(PROTOCOLS / f"{stem}.toml")

@@ -704,12 +704,14 @@ def _format_loc(loc: tuple) -> str:
     return out or "(top level)"
 
 
-def _plain(err: dict) -> str:
+def _plain(err: dict, root: type[BaseModel] | None = None, reference: str = "docs/protocol-reference.md") -> str:
+    """A pydantic error of a file read by the model ``root`` (default: the protocol) in plain words;
+    an unknown key is hinted from ``root``'s keys, else pointed to ``reference``."""
     kind = err.get("type", "")
     msg = err.get("msg", "")
     if kind == "extra_forbidden":
-        hint = unknown_key_hint(Protocol, tuple(err.get("loc", ())))
-        return "unknown key; " + (hint or "check its spelling (see docs/protocol-reference.md)")
+        hint = unknown_key_hint(root or Protocol, tuple(err.get("loc", ())))
+        return "unknown key; " + (hint or f"check its spelling (see {reference})")
     if kind == "missing":
         return "this field is required"
     if kind == "literal_error":

@@ -20,6 +20,10 @@ FACTOR_VALUE_RTOL = 1e-9
 #: the factor-scaled units of FEASIBILITY_TOL, before it is flagged: values
 #: typed to five or six digits leave a run on a rule's edge this close to it.
 RUN_RULE_TOL = 1e-4
+#: A measured run with a planned run's id counts against that plan's promise only
+#: when each factor lies within this share of its declared span (or half its
+#: resolution, if larger) of the proposal: weighed to a few digits, not made elsewhere.
+AS_PROPOSED_RTOL = 0.01
 #: A factor whose reachable range is narrower than this share of its declared
 #: span (its magnitude when fixed by its bounds) is treated as fixed.
 FIXED_RANGE_TOL = 1e-9

@@ -219,7 +219,25 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
             for rid, x, label in zip(run_ids, X, labels)]
     if region is not None:
         notes.append("every starting run lies inside the protocol's starting region")
-    return header, rows, notes
+    return header, rows, notes + _repeats_note(X, run_ids)
+
+
+def _repeats_note(X: np.ndarray, run_ids: list[str]) -> list[str]:
+    """A note naming the starting runs whose settings repeat an earlier one's (a space or
+    starting region with fewer settings than runs asked for: discrete levels, a coarse grid)."""
+    first: dict[tuple, str] = {}
+    repeats = []
+    for rid, x in zip(run_ids, X):
+        key = tuple(float(v) for v in x)
+        if key in first:
+            repeats.append(f"{rid} (= {first[key]})")
+        else:
+            first[key] = rid
+    if not repeats:
+        return []
+    return [f"{len(repeats)} starting run(s) repeat the settings of an earlier one, as replicates: "
+            f"{', '.join(repeats)}; only {len(first)} distinct settings were found for {len(run_ids)} runs "
+            "(ask for fewer runs for distinct settings only)"]
 
 
 def _start_on_grid(protocol: Protocol, inner, X: np.ndarray, run_ids: list[str], *,

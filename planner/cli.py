@@ -342,7 +342,9 @@ def judge(
                    + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
         for m in res.messages:
             _show(f"note: {m}")
-        _show(render_table(*judge_table(p, res)))
+        header, rows = judge_table(p, res)
+        units = {f.name: f.unit for f in p.factors}  # the recipes as judged: in the protocol's units
+        _show(render_table([h + (f" [{units[h]}]" if units.get(h) else "") for h in header], rows))
         _show(f"decision log: {outcome.log_path} (record {outcome.record['index']}, kind judge)")
         _show(_cautions_block(cautions_of(p)))
     if outcome.seed_drawn:

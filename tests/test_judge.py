@@ -247,3 +247,20 @@ def test_what_the_runs_and_recipes_readers_flag_reaches_the_notes_the_record_and
     body = ledger.read_records(tmp_path / "c" / "decisions.jsonl")[-1]["body"]
     assert any(f.startswith("column H (force): values converted [N] -> [kN]") for f in body["runs_flags"])
     assert body["flags"] == ["row 2 (run hot), column force: 40 is outside the bounds [6, 20] (kept)"]
+
+
+def test_the_terminal_table_gives_each_factor_its_unit(tmp_path):
+    """A recipe given in newtons is shown converted to the protocol's kN: the header must say so
+    (it said 'force', so 13 read as what the chemist typed)."""
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force [N]"]
+    _recipes_csv(tmp_path / "r.csv", names, [("A", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 13000.0])])
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1)
+    assert res.exit_code == 0, res.output
+    lines = res.stdout.splitlines()
+    header = " ".join(ln for ln in lines if ln.startswith("recipe "))  # blocks that fit the width
+    assert "force [kN]" in header and "mcc [fraction]" in header
+    values = " ".join(ln for ln in lines if ln.startswith("A "))
+    assert " 13 " in values and "13000" not in values
+    # the CSV table keeps plain column names, as every table a program reads
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "csv")
+    assert next(csv.reader(io.StringIO(res.stdout)))[7] == "force"

@@ -117,3 +117,7 @@ MAX_SHEET_ROWS = 200_000
 #: Runs closer than this (unit-scaled, in every factor) count as repeats of the
 #: same factor settings when a model cannot be fitted and the message names them.
 REPEATED_RUN_DISTANCE = 1e-6
+#: Two measurements at the same settings that differ by more than this many times
+#: sqrt(2) stated measurement sds (a chance of 6e-5 for normal errors) contradict
+#: the stated ``measurement_sd``, and the plan says so.
+REPLICATE_SPREAD_SDS = 4.0

@@ -52,7 +52,7 @@ from guardband.planner.step.acquisition import all_values, score as rule_score, 
 from guardband.planner.step.attitudes import rule_picks, threshold_price
 from guardband.planner.step.batch import VALUED_RULES, BatchRule, Pool, greedy_batch
 from guardband.planner.step.context import StepContext
-from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
+from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models, stated_sd_contradicted
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.step.explain import closest_miss, pick_explanations, unlikely_to_improve
 from guardband.planner.step.rates import objective_band, objective_scale, rate_incumbent
@@ -299,7 +299,8 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
                    **objective_scale(protocol))
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
                         inc_value=incumbent.get("latent", incumbent["value"]) if incumbent else None, rank_kw=rank_kw,
-                        scores_of=_scorer(protocol, mode, rank_kw, textbook), messages=models.warnings() + inc_messages,
+                        scores_of=_scorer(protocol, mode, rank_kw, textbook),
+                        messages=models.warnings() + stated_sd_contradicted(protocol, runs, U_runs) + inc_messages,
                         warm_start=warm_start, children=children)
 
 

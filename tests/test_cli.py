@@ -101,6 +101,18 @@ def campaign(tmp_path_factory):
     return out, res
 
 
+def test_start_with_a_region_outside_the_design_space_names_the_rule_and_writes_nothing(tmp_path):
+    """The refusal named "starting region row 1"; `check` names the rule, and so does `start` now."""
+    text = (PROTOCOLS / "dose_combination.toml").read_text()
+    text = text.replace('rules = ["dose_a <= 10", "dose_b <= 2"]', 'rules = ["dose_a >= 100"]')
+    protocol = tmp_path / "p.toml"
+    protocol.write_text(text)
+    res = runner.invoke(app, ["start", str(protocol), "--runs", "3", "--out", str(tmp_path / "s.csv")])
+    assert res.exit_code == EXIT_PROTOCOL
+    assert "start region: 'dose_a >= 100'" in res.stderr and "row 1" not in res.stderr
+    assert not (tmp_path / "s.csv").exists()
+
+
 def test_plan_writes_table_log_and_cautions(campaign):
     out, res = campaign
     assert "CAUTIONS" in res.stdout and "qualified person" in res.stdout

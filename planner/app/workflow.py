@@ -208,7 +208,7 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
     mixture = [k for k, f in enumerate(protocol.factors) if f.kind == "component"] or None
     X, labels = starting_design(
         space, n, rng=np.random.default_rng(seed), mixture_indices=mixture,
-        region=None if region is None else (region[0], region[1]),
+        region=region,  # with its labels, so that a refusal names the rule
     )
     header = [RUN_ID, *protocol.factor_names, *protocol.runs_columns, "notes"]
     width = max(2, len(str(n)))

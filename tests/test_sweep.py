@@ -190,6 +190,16 @@ def _differences(a, b) -> list:
             if not (x[k] == y.get(k) or (x[k] != x[k] and y.get(k) != y.get(k)))]
 
 
+def test_each_cells_settings_line_gives_the_pool_its_campaigns_used():
+    """--pool 60 against the protocol's 200: the cells' notes said pool 200."""
+    problem = get_problem("gramacy")
+    combined = combine_settings(problem, FAST)
+    sweep = run_sweep([Scenario(problem.name, "", problem)], lambda sc: combined, seeds=1, n_start=6, budget=1,
+                      noise_scale=0.0, pool_size=60, workers=1)
+    line = next(t for t in sweep.cells[0].result.description() if t.startswith("settings:"))
+    assert "pool 60," in line
+
+
 def test_runs_until_within_counts_planned_runs(local):
     cell = local.cells[0]
     gap = cell.result.trajectories("protocol")["gap_true"]

@@ -475,6 +475,8 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
     for setting in grid:
         for sc in scenarios:
             data = setting.protocol_data(protocol_for(sc))
+            if pool_size is not None:  # the campaigns' pool, as the cell's settings line shows it
+                data = {**data, "batch": {**data["batch"], "pool": int(pool_size)}}
             try:  # a bad value fails here, not in a worker
                 parse_protocol(data, source=f"setting {setting.label}")
             except ProtocolError as exc:

@@ -248,9 +248,10 @@ class SweepCell:
         return self.strategy + ("" if self.setting.label == "as-written" else f",{self.setting.label}")
 
     def runs_until_within(self) -> np.ndarray:
-        """Per seed, the planned runs until the chosen run's true gap was at most ``within`` (NaN: never)."""
-        gap = self.result.trajectories(self.strategy)["gap_true"]
-        hit = gap <= self.within
+        """Per seed, the planned runs until the chosen run's true gap was at most ``within`` and its true
+        values met every limit (NaN: never)."""
+        tr = self.result.trajectories(self.strategy)
+        hit = (tr["gap_true"] <= self.within) & tr["chosen_met"]
         return np.where(hit.any(axis=1), hit.argmax(axis=1), np.nan).astype(float)
 
     def row(self) -> dict:

@@ -290,7 +290,7 @@ def plan(
         _show(_cautions_block(cautions))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
-    for f in result.flags:
+    for f in (*result.flags, *outcome.warnings):
         _err(f"warning: {f}")
     if outcome.calibration is not None and outcome.calibration.contradicts:
         _err("warning: " + outcome.calibration.sentence())

@@ -220,3 +220,21 @@ def test_demo_runs_everything(tmp_path):
     assert "== 4. replay" in summary and "identical" in summary
     assert "ok: 1 record(s)" in summary
     assert "CAUTIONS" in summary
+
+
+def test_a_plan_of_another_study_into_a_campaign_folder_is_warned_of(tmp_path):
+    """Two studies in one decision log went without a word; a protocol amendment (same responses)
+    is a campaign's own and goes on quietly."""
+    out = tmp_path / "camp"
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", "--out", out,
+              "--pool", 300, "--count", 1)
+    assert res.exit_code == 0 and "another study" not in res.stderr
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", "--out", out,
+              "--pool", 300, "--count", 2)
+    assert res.exit_code == 0 and "another study" not in res.stderr
+    res = run("plan", PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv", "--out", out)
+    assert res.exit_code == 0, res.output
+    said = " ".join(res.stderr.split())
+    assert ("warning: the campaign folder's last plan (record 1, protocol file tablet_blend.toml) is of another "
+            "study: it modelled dissolution_30min, degradant_b, friability; this protocol models "
+            "response_score, dlt_rate") in said

@@ -28,6 +28,7 @@ inputs write identical files.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import secrets
 from dataclasses import dataclass, field
@@ -342,6 +343,7 @@ class PlanOutcome:
     head: str = ""
     count: int = 0
     calibration: EarnedCalibration | None = None
+    warnings: tuple[str, ...] = ()  # about the campaign folder (another study's steps in its log)
 
 
 def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int) -> tuple[dict, int | None]:
@@ -366,6 +368,24 @@ def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int
     last = plans[-1]
     return ({m["response"]: m["hyperparameters"] for m in last["body"].get("models", [])
              if m.get("hyperparameters")}, int(last["index"]))
+
+
+def other_study_warning(log_path: Path, protocol: Protocol) -> list[str]:
+    """A warning when the log's last plan modelled other responses than ``protocol``: another study's
+    campaign folder, most likely (an amendment that keeps the responses is the campaign's own)."""
+    if not log_path.exists():
+        return []
+    plans = [rec for rec in ledger.read_records(log_path) if rec.get("kind") == "plan"]
+    if not plans:
+        return []
+    last = plans[-1]
+    before = [m.get("response") for m in last["body"].get("models", [])]
+    if set(before) == set(protocol.response_names):
+        return []
+    return [f"the campaign folder's last plan (record {last['index']}, protocol file "
+            f"{last['body'].get('protocol_file', {}).get('name', '?')}) is of another study: it modelled "
+            f"{', '.join(before)}; this protocol models {', '.join(protocol.response_names)}. The step is "
+            "recorded in the same decision log; give a new --out folder to keep the studies apart"]
 
 
 def run_plan(
@@ -423,12 +443,14 @@ def run_plan(
         ledger.verify_or_raise(log_path)
     warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
     calibration = campaign_calibration(log_path, protocol, runs)
+    warnings = tuple(other_study_warning(log_path, protocol))
     with blas_limit():
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
-    return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
-                       seed, seed_drawn, count, pool_size, protocol_path, runs_path,
-                       read_options=read_options, calibration=calibration, operator=operator,
-                       warm_from=warm_from)
+    outcome = _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
+                          seed, seed_drawn, count, pool_size, protocol_path, runs_path,
+                          read_options=read_options, calibration=calibration, operator=operator,
+                          warm_from=warm_from)
+    return dataclasses.replace(outcome, warnings=warnings)
 
 
 def _read_input(path: Path, error, what: str) -> bytes:

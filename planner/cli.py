@@ -32,7 +32,8 @@ import typer
 
 from guardband.planner import __version__
 from guardband.planner.settings import MAX_RUNS_DEFAULT
-from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError
+from guardband.planner.errors import (EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError,
+                                      ProtocolError)
 from guardband.planner.app.fileio import (atomic_write_many, atomic_write_text, notes_path, notes_text,
                                          split_comment_lines, table_with_notes, write_csv_text)
 from guardband.planner.app.textable import render_table, wrap_text
@@ -173,7 +174,7 @@ def check(
     for line in data["threshold_warnings"]:
         _err(f"warning: {line}")
     if report.empty:
-        _err("Error: the design space is empty. Conflicting constraints:")
+        _err(f"Error: {protocol.name}: the design space is empty. Conflicting constraints:")
         for c in report.conflicts:
             _err(f"  - {c}")
         raise typer.Exit(EXIT_PROTOCOL)
@@ -198,7 +199,8 @@ def start(
 
     p = load_protocol(protocol)
     seed_used = seed if seed is not None else (p.seed if p.seed is not None else 0)
-    header, rows, notes = start_design(p, runs, seed=seed_used)
+    with ProtocolError.naming(protocol):
+        header, rows, notes = start_design(p, runs, seed=seed_used)
     cautions = cautions_of(p)
     comments = [f"Guardband starting design - {p.study.title}",
                 f"protocol fingerprint {p.fingerprint}; seed {seed_used}; tool version {__version__}",

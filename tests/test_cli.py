@@ -61,6 +61,21 @@ def test_check_empty_design_space(tmp_path):
     assert "filler ratio" in res.stderr
 
 
+def test_an_empty_design_space_is_refused_naming_the_protocol_file_by_every_command(tmp_path):
+    """check, start, plan and judge said "the design space is empty" without the file's name."""
+    text = (PROTOCOLS / "tablet_blend.toml").read_text()
+    bad = tmp_path / "empty.toml"
+    bad.write_text(text.replace('rule = "mcc / lactose <= 4"', 'rule = "mcc >= 2 * lactose + 0.45"'))
+    runs = PROTOCOLS / "tablet_blend_runs.csv"
+    recipes = PROTOCOLS / "tablet_blend_recipes.csv"
+    for args in (["check", bad], ["start", bad, "--runs", 3, "--out", tmp_path / "s.csv"],
+                 ["plan", bad, runs, "--out", tmp_path / "c"], ["judge", bad, runs, recipes, "--out", tmp_path / "c"]):
+        res = runner.invoke(app, [str(a) for a in args])
+        assert res.exit_code == EXIT_PROTOCOL, (args[0], res.output)
+        assert "empty.toml: the design space is empty" in res.stderr, (args[0], res.stderr)
+    assert not (tmp_path / "c").exists() and not (tmp_path / "s.csv").exists()
+
+
 def test_check_bad_protocol_names_field(tmp_path):
     bad = tmp_path / "bad.toml"
     bad.write_text((PROTOCOLS / "tablet_blend.toml").read_text().replace("threshold = 0.90", "threshold = 1.5"))

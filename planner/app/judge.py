@@ -121,7 +121,7 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
     if log_path.exists():
         ledger.verify_or_raise(log_path)
     warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
-    with blas_limit():
+    with blas_limit(), ProtocolError.naming(protocol_path):
         result = judge_points(protocol, runs, recipes.X, recipes.run_ids, seed=seed, warm_start=warm)
     header, rows = judge_table(protocol, result)
     warnings = (*[f"runs file {runs_path.name}: {f}" for f in runs.flags],

@@ -444,7 +444,7 @@ def run_plan(
     warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
     calibration = campaign_calibration(log_path, protocol, runs)
     warnings = tuple(other_study_warning(log_path, protocol))
-    with blas_limit():
+    with blas_limit(), ProtocolError.naming(protocol_path):
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     outcome = _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
                           seed, seed_drawn, count, pool_size, protocol_path, runs_path,

@@ -114,3 +114,15 @@ def test_the_repr_says_what_the_runs_reader_flagged_and_keeps_the_cautions():
     assert f"and {len(runs) - 5} more warning(s) in .result.flags" in text
     assert len(text) < 2000 and text.rstrip().endswith("they are not guarantees.")
     assert "25 is outside the bounds" in many._repr_html_()
+
+
+def test_a_logged_plan_of_another_study_says_so_in_its_repr(tmp_path):
+    """As `plan --out` warns on stderr: the notebook's logged step says it in its repr."""
+    camp = tmp_path / "camp"
+    first = guardband.plan(TOML, CSV, seed=7, pool=300, out=camp, by="A. Chemist")
+    assert "another study" not in repr(first)
+    dose = guardband.plan(PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv",
+                          out=camp, by="A. Chemist")
+    text = repr(dose)
+    assert "warning: the campaign folder's last plan (record 0, protocol file tablet_blend.toml) is of another" in text
+    assert text.rstrip().endswith(dose.cautions[-1]) and len(text) < 2000

@@ -113,6 +113,7 @@ class Plan:
     seed: int
     log: dict | None
     cautions: tuple[str, ...] = field(default=())
+    warnings: tuple[str, ...] = field(default=())  # about the campaign folder, as `plan --out` warns
 
     def __repr__(self) -> str:
         r = self.result
@@ -127,6 +128,7 @@ class Plan:
                  "incumbent: none (no run meets every limit)",
                  f"candidates: {counts}", where,
                  "tables: .proposals, .exclusions, .models (DataFrames); everything: .result",
+                 *[_cut(f"warning: {w}", REPR_MAX // 4) for w in self.warnings],
                  *_warning_lines(r.flags),
                  "CAUTION: " + " ".join(self.cautions)]
         text = "\n".join(lines)
@@ -193,18 +195,19 @@ def plan(protocol, runs, *, out=None, seed: int | None = None, count: int | None
         outcome = _logged(protocol, runs, out, run_plan, seed=seed, count=count, pool=pool, by=by, **options)
         result, label, seed = outcome.result, outcome.record["body"]["step_label"], outcome.seed
         log = {"file": str(outcome.log_path), "record": outcome.record["index"], "head": outcome.head}
+        warnings = outcome.warnings
     else:
         proto = _protocol(protocol)
         table = read_runs(runs, proto, **options)
         seed = seed if seed is not None else (proto.seed if proto.seed is not None else secrets.randbits(62))
         result = plan_step(proto, table, seed=seed, count=count, pool_size=pool)
-        label, log = "notebook", None
+        label, log, warnings = "notebook", None, ()
     pd = _pandas()
     frame = lambda ht: pd.DataFrame(ht[1], columns=ht[0])
     models = pd.DataFrame([m.to_dict() for m in result.models])
     return Plan(result=result, proposals=frame(plan_table(result, step_label=label)),
                 exclusions=frame(exclusion_table(result)), models=models, counts=result.counts(),
-                seed=int(seed), log=log, cautions=tuple(cautions_of(result.protocol)))
+                seed=int(seed), log=log, cautions=tuple(cautions_of(result.protocol)), warnings=tuple(warnings))
 
 
 def _logged(protocol, runs, out, run_plan, *, seed, count, pool, by, **options):

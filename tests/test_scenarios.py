@@ -72,6 +72,26 @@ def _mixed_protocol():
 MIXED_TRUTH = {"y": "x + 0.3 * d - 0.05 * d ^ 2", "g": "x ^ 2 + 0.1 * d"}
 
 
+def test_with_resolutions_the_optimum_is_the_best_point_the_lab_can_set():
+    """Every planned run is rounded to the resolution, so the gap must be measured from the best
+    grid point that meets every limit: the known optimum used to lie between grid points (x1 at the
+    limit, 0.7746), a gap no campaign could close. Checked against every grid point (exhaustive)."""
+    data = _two_factor_protocol().model_dump(mode="python")
+    data["factors"][0]["resolution"] = 0.05
+    data["factors"][1]["resolution"] = 0.25
+    protocol = parse_protocol(data)
+    problem = parse_scenarios(_one(), protocol).scenarios[0].problem
+    g1, g2 = np.meshgrid(np.arange(0, 21) * 0.05, np.arange(0, 9) * 0.25)
+    G = np.column_stack([g1.ravel(), g2.ravel()])
+    Y = problem.evaluate(G)
+    ok = met_every_limit(protocol, Y)
+    best = np.flatnonzero(ok)[np.argmax(Y["y"][ok])]
+    assert problem.optimum == pytest.approx(Y["y"][best], abs=1e-12)
+    np.testing.assert_allclose(problem.optimum_x, G[best], atol=1e-12)
+    unrounded = parse_scenarios(_one(), _two_factor_protocol()).scenarios[0].problem
+    assert unrounded.optimum > problem.optimum  # the continuous optimum lies off the grid
+
+
 def test_optimum_with_discrete_and_continuous_factors_against_a_dense_grid():
     # regression: a protocol with a discrete factor beside continuous ones (a mixture and a pH
     # level) could not be simulated at all: locate_optimum refused mixed design spaces

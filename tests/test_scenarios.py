@@ -162,7 +162,8 @@ def test_cli_simulates_a_protocol_with_discrete_and_continuous_factors(tmp_path)
                                       "--budget", "2", "--workers", "1"])
     assert result.exit_code == 0, result.output
     flat = " ".join(result.stdout.split())
-    assert "known optimum 1.17459" in flat and "at (0.77459" in flat and ", 2.0)" in flat
+    # each coordinate named by its factor (an unnamed tuple of eight numbers read poorly)
+    assert "known optimum 1.17459" in flat and "at (x=0.77459" in flat and ", d=2)" in flat
     assert "(within 0.0125)" in flat  # 1% of the objective's range, 1.25
 
 

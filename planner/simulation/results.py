@@ -245,7 +245,8 @@ class SimulationResult:
             (f"known optimum of each seed's drawn truth ({p.objective.direction}): from "
              f"{min(self.optima):.6g} to {max(self.optima):.6g}" if self.optima else
              f"known optimum {self.problem.optimum:.10g} ({p.objective.direction}) "
-             f"at {tuple(round(float(v), 6) for v in self.problem.optimum_x)}"),
+             "at (" + ", ".join(f"{n}={float(v):.6g}" for n, v in zip(p.factor_names, self.problem.optimum_x))
+             + ")"),
             f"{self.seeds} seeds (base seed {self.base_seed}); {self.n_start} starting runs + "
             f"{self.budget} planned runs; measurement noise {noise}",
             f"settings: threshold {p.screen.threshold:g} ({p.screen.joint}), rule {p.ranking.rule} "

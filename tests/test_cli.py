@@ -253,3 +253,15 @@ def test_a_plan_of_another_study_into_a_campaign_folder_is_warned_of(tmp_path):
     assert ("warning: the campaign folder's last plan (record 1, protocol file tablet_blend.toml) is of another "
             "study: it modelled dissolution_30min, degradant_b, friability; this protocol models "
             "response_score, dlt_rate") in said
+
+
+def test_a_last_plan_that_recorded_no_models_is_not_taken_for_another_study(tmp_path):
+    from guardband.planner.app.workflow import other_study_warning
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.safety import ledger
+
+    log = tmp_path / "decisions.jsonl"
+    ledger.append_record(log, "plan", {"models": [], "protocol_file": {"name": "x.toml"}})
+    assert other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml")) == []
+    ledger.append_record(log, "plan", {"models": [{"response": "y"}], "protocol_file": {"name": "x.toml"}})
+    assert "is of another study" in other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml"))[0]

@@ -380,7 +380,7 @@ def other_study_warning(log_path: Path, protocol: Protocol) -> list[str]:
         return []
     last = plans[-1]
     before = [m.get("response") for m in last["body"].get("models", [])]
-    if set(before) == set(protocol.response_names):
+    if not before or set(before) == set(protocol.response_names):  # no models recorded: nothing to compare
         return []
     return [f"the campaign folder's last plan (record {last['index']}, protocol file "
             f"{last['body'].get('protocol_file', {}).get('name', '?')}) is of another study: it modelled "

@@ -32,7 +32,8 @@ import typer
 
 from guardband.planner import __version__
 from guardband.planner.settings import MAX_RUNS_DEFAULT
-from guardband.planner.errors import EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError
+from guardband.planner.errors import (EXIT_NO_SAFE, EXIT_PROTOCOL, EXIT_VERIFY, GuardbandError, OutputError,
+                                      ProtocolError)
 from guardband.planner.app.fileio import (atomic_write_many, atomic_write_text, notes_path, notes_text,
                                          split_comment_lines, table_with_notes, write_csv_text)
 from guardband.planner.app.textable import render_table, wrap_text
@@ -173,7 +174,7 @@ def check(
     for line in data["threshold_warnings"]:
         _err(f"warning: {line}")
     if report.empty:
-        _err("Error: the design space is empty. Conflicting constraints:")
+        _err(f"Error: {protocol.name}: the design space is empty. Conflicting constraints:")
         for c in report.conflicts:
             _err(f"  - {c}")
         raise typer.Exit(EXIT_PROTOCOL)
@@ -198,7 +199,8 @@ def start(
 
     p = load_protocol(protocol)
     seed_used = seed if seed is not None else (p.seed if p.seed is not None else 0)
-    header, rows, notes = start_design(p, runs, seed=seed_used)
+    with ProtocolError.naming(protocol):
+        header, rows, notes = start_design(p, runs, seed=seed_used)
     cautions = cautions_of(p)
     comments = [f"Guardband starting design - {p.study.title}",
                 f"protocol fingerprint {p.fingerprint}; seed {seed_used}; tool version {__version__}",
@@ -290,7 +292,7 @@ def plan(
         _show(_cautions_block(cautions))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
-    for f in result.flags:
+    for f in (*result.flags, *outcome.warnings):
         _err(f"warning: {f}")
     if outcome.calibration is not None and outcome.calibration.contradicts:
         _err("warning: " + outcome.calibration.sentence())
@@ -342,11 +344,16 @@ def judge(
                    + (f"{inc['value']:.6g} (run {inc['run_id']})" if inc else "none (no run meets every limit)"))
         for m in res.messages:
             _show(f"note: {m}")
-        _show(render_table(*judge_table(p, res)))
+        header, rows = judge_table(p, res)
+        units = {f.name: f.unit for f in p.factors}  # the recipes as judged: in the protocol's units
+        _show(render_table([h + (f" [{units[h]}]" if units.get(h) else "") for h in header], rows))
         _show(f"decision log: {outcome.log_path} (record {outcome.record['index']}, kind judge)")
         _show(_cautions_block(cautions_of(p)))
     if outcome.seed_drawn:
         _err(f"seed used: {outcome.seed} (drawn; recorded in the log)")
+    if format is not Format.csv:  # with csv, the notes (these warnings among them) are on stderr already
+        for w in outcome.warnings:
+            _err(f"warning: {w}")
     _err(f"wrote {outcome.files['judge']} and {outcome.files['judge_notes'].name}")
 
 

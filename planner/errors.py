@@ -7,6 +7,9 @@ Library code raises them and never prints.
 
 from __future__ import annotations
 
+import contextlib
+import os
+
 __all__ = [
     "EXIT_OK",
     "EXIT_USAGE",
@@ -46,6 +49,19 @@ class ProtocolError(GuardbandError):
     """The protocol file is unreadable, invalid, or describes an empty design space."""
 
     exit_code = EXIT_PROTOCOL
+
+    @classmethod
+    @contextlib.contextmanager
+    def naming(cls, path):
+        """Inside, a ProtocolError that does not yet name the protocol file ``path`` is raised
+        again with its name in front (an empty design space is found after the file is read)."""
+        name = os.path.basename(str(path))
+        try:
+            yield
+        except ProtocolError as exc:
+            if str(exc).startswith(f"{name}: "):
+                raise
+            raise type(exc)(f"{name}: {exc}") from None
 
 
 class RunsDataError(GuardbandError):

@@ -16,6 +16,14 @@ MIXTURE_SUM_TOL = 2e-3
 #: Relative tolerance (times max(1, |upper bound|)) when a measured run's
 #: factor value is compared with its bounds and discrete levels.
 FACTOR_VALUE_RTOL = 1e-9
+#: How far a measured run may break a rule of the protocol's constraints, in
+#: the factor-scaled units of FEASIBILITY_TOL, before it is flagged: values
+#: typed to five or six digits leave a run on a rule's edge this close to it.
+RUN_RULE_TOL = 1e-4
+#: A measured run with a planned run's id counts against that plan's promise only
+#: when each factor lies within this share of its declared span (or half its
+#: resolution, if larger) of the proposal: weighed to a few digits, not made elsewhere.
+AS_PROPOSED_RTOL = 0.01
 #: A factor whose reachable range is narrower than this share of its declared
 #: span (its magnitude when fixed by its bounds) is treated as fixed.
 FIXED_RANGE_TOL = 1e-9
@@ -109,3 +117,7 @@ MAX_SHEET_ROWS = 200_000
 #: Runs closer than this (unit-scaled, in every factor) count as repeats of the
 #: same factor settings when a model cannot be fitted and the message names them.
 REPEATED_RUN_DISTANCE = 1e-6
+#: Two measurements at the same settings that differ by more than this many times
+#: sqrt(2) stated measurement sds (a chance of 6e-5 for normal errors) contradict
+#: the stated ``measurement_sd``, and the plan says so.
+REPLICATE_SPREAD_SDS = 4.0

@@ -126,28 +126,39 @@ class EarnedCalibration:
     expected_broke: float
     tail_probability: float
     broke_run_ids: tuple[str, ...] = ()
+    #: (run id, what differs) of measured runs with a planned run's id but other settings than
+    #: proposed: their promise was made for another recipe, so they are not counted
+    not_as_proposed: tuple[tuple[str, str], ...] = ()
 
     @property
     def contradicts(self) -> bool:
         return self.n_measured > 0 and self.tail_probability < CONTRADICTION_LEVEL
 
     def to_dict(self) -> dict:
-        return {"n_measured": self.n_measured, "n_broke": self.n_broke,
-                "expected_broke": round(self.expected_broke, 6),
-                "tail_probability": round(self.tail_probability, 6),
-                "contradicts_promise": self.contradicts, "broke_run_ids": list(self.broke_run_ids)}
+        out = {"n_measured": self.n_measured, "n_broke": self.n_broke,
+               "expected_broke": round(self.expected_broke, 6),
+               "tail_probability": round(self.tail_probability, 6),
+               "contradicts_promise": self.contradicts, "broke_run_ids": list(self.broke_run_ids)}
+        if self.not_as_proposed:  # only then: a campaign without such runs keeps its record as before
+            out["not_as_proposed_run_ids"] = [rid for rid, _ in self.not_as_proposed]
+            out["not_as_proposed"] = [what for _, what in self.not_as_proposed]
+        return out
 
     @classmethod
     def from_dict(cls, d: dict) -> EarnedCalibration:
         """The inverse of :meth:`to_dict` (as recorded in a plan record's ``calibration_earned``)."""
+        changed = tuple(zip(map(str, d.get("not_as_proposed_run_ids", ())), map(str, d.get("not_as_proposed", ()))))
         return cls(int(d["n_measured"]), int(d["n_broke"]), float(d["expected_broke"]),
-                   float(d["tail_probability"]), tuple(str(r) for r in d.get("broke_run_ids", ())))
+                   float(d["tail_probability"]), tuple(str(r) for r in d.get("broke_run_ids", ())), changed)
 
     def sentence(self) -> str:
+        changed = "".join(f"; not counted: {rid} (made with other settings than proposed: {what})"
+                          for rid, what in self.not_as_proposed)
         if self.n_measured == 0:
-            return "calibration so far: no planned run of this campaign has been measured yet"
+            return "calibration so far: no planned run of this campaign has been measured yet" + changed
         text = (f"calibration so far: {self.n_broke} of {self.n_measured} measured planned runs broke a limit, "
                 f"against about {self.expected_broke:.2g} allowed by the joint figures they were proposed with")
+        text += changed
         if self.contradicts:
             text += (f"; WARNING: if the promises held, {self.n_broke} or more breaks would happen with "
                      f"probability {self.tail_probability:.2g}. The models' probabilities look too optimistic "
@@ -156,7 +167,7 @@ class EarnedCalibration:
         return text
 
 
-def earned_calibration(promised, broke, run_ids=()) -> EarnedCalibration:
+def earned_calibration(promised, broke, run_ids=(), not_as_proposed=()) -> EarnedCalibration:
     """Summarise planned runs.
 
     Parameters
@@ -166,10 +177,12 @@ def earned_calibration(promised, broke, run_ids=()) -> EarnedCalibration:
     broke : bool array of shape (n,)
         Whether its measured values broke a limit.
     run_ids : sequence of str, optional
+    not_as_proposed : sequence of (str, str), optional
+        (run id, what differs) of runs left out because they were made with other settings.
     """
     promised = np.asarray(promised, dtype=float)
     broke = np.asarray(broke, dtype=bool)
     rates = 1.0 - promised
     ids = tuple(str(r) for r, b in zip(run_ids, broke) if b)
     return EarnedCalibration(int(broke.size), int(broke.sum()), float(rates.sum()),
-                             poisson_binomial_tail(rates, int(broke.sum())), ids)
+                             poisson_binomial_tail(rates, int(broke.sum())), ids, tuple(not_as_proposed))

@@ -186,3 +186,13 @@ def test_the_price_of_the_next_threshold_in_words(own, next_, maximize, phrase):
     text = price_sentence(_priced(own, next_, maximize))
     assert phrase in text and "-0" not in text
     assert text.endswith("leaves 4 of 9,005 candidates passing")
+
+
+@pytest.mark.parametrize(("maximize", "direction"), [(True, "lower"), (False, "raise")])
+def test_the_price_figures_caption_says_which_way_a_higher_threshold_moves_the_curve(maximize, direction):
+    """Minimising, a higher threshold can only raise the best predicted value (the caption said lower)."""
+    from guardband.planner.report.attitude_figures import price_figure
+
+    own, next_ = (7.5, 5.0) if maximize else (5.0, 7.5)
+    caption = price_figure(_priced(own, next_, maximize), "salt").caption
+    assert f"A higher threshold can only {direction} the curve (make the best predicted value worse)" in caption

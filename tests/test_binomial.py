@@ -349,3 +349,21 @@ def test_broken_after_waits_for_enough_subjects(broken_after, excluded):
     preds = limit_predictions(rules.limits, [model], space.to_unit(np.array([[10.0, 1.0], [20.0, 2.0]])))
     P, _ = probabilities_at(preds, 2)
     assert bool(np.all(P[:, 0] == 0.0)) is excluded
+
+
+def test_a_starting_design_with_more_runs_than_settings_names_its_repeats():
+    """The dose example's starting region holds 9 level combinations: of 12 runs, 3 repeat a
+    setting, and the notes say which (they were all labelled space-filling, repeats unsaid)."""
+    from guardband.planner.app.workflow import start_design
+
+    p = load_protocol(DOSE)
+    _, rows, notes = start_design(p, 12, seed=0)
+    X = [tuple(r[1:3]) for r in rows]
+    repeats = [r[0] for k, r in enumerate(rows) if tuple(r[1:3]) in X[:k]]
+    assert len(set(X)) == 9 and len(repeats) == 3
+    note = next(n for n in notes if "repeat" in n)
+    for rid in repeats:
+        assert rid in note
+    assert "replicates" in note
+    _, rows, notes = start_design(p, 4, seed=0)
+    assert len({tuple(r[1:3]) for r in rows}) == 4 and not any("repeat" in n for n in notes)

@@ -91,3 +91,40 @@ def test_plan_output_reports_planned_runs_that_broke_a_limit(tmp_path):
     assert "WARNING" in top and "too optimistic" in top
     first = (out / f"report-{ledger.read_records(out / 'decisions.jsonl')[0]['body']['step_label']}.html")
     assert "no planned run of this campaign has been measured yet" in first.read_text(encoding="utf-8")
+
+
+def test_a_planned_run_made_with_other_settings_is_not_counted_against_its_promise(tmp_path):
+    """The promise was made for the proposed recipe: a run that keeps the plan's run id but was
+    made elsewhere (force 19 kN for a proposal at about 12) is named and left out, while one
+    weighed to a few digits (a rounding of the proposal) still counts."""
+    protocol = PROTOCOLS / "tablet_blend.toml"
+    runs_text = (PROTOCOLS / "tablet_blend_runs.csv").read_text()
+    out = tmp_path / "campaign"
+    runner = CliRunner()
+    res = runner.invoke(app, ["plan", str(protocol), str(PROTOCOLS / "tablet_blend_runs.csv"), "--out", str(out),
+                              "--pool", "300", "--count", "2"])
+    assert res.exit_code == 0, res.output
+    plan_csv = next(out.glob("plan-*.csv")).read_text()
+    measured = _append_measured(runs_text, plan_csv, {"dissolution_30min": "80", "degradant_b": "0.1",
+                                                      "friability": "1.6"})
+    lines = measured.rstrip("\n").split("\n")
+    header = lines[0].split(",")
+    first, second = lines[-2].split(","), lines[-1].split(",")
+    force = header.index("force")
+    assert abs(float(first[force]) - 19.0) > 1.0
+    first[force] = "19"  # made at another force than proposed
+    for k, name in enumerate(header):  # the other run weighed to four decimals, as a lab would
+        if name in ("mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"):
+            second[k] = f"{float(second[k]):.4f}"
+    mcc = header.index("mcc")  # keep the mixture total after rounding
+    comps = [header.index(n) for n in ("active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate")]
+    second[mcc] = f"{float(second[mcc]) + 1.0 - sum(float(second[k]) for k in comps):.5f}"
+    (tmp_path / "runs2.csv").write_text("\n".join([*lines[:-2], ",".join(first), ",".join(second)]) + "\n")
+    res = runner.invoke(app, ["plan", str(protocol), str(tmp_path / "runs2.csv"), "--out", str(out),
+                              "--pool", "300"])
+    assert res.exit_code in (0, 6), res.output
+    flat = " ".join(res.stdout.split())
+    assert "1 of 1 measured planned runs broke a limit" in flat
+    assert f"not counted: {first[0]} (made with other settings than proposed: force" in flat
+    earned = ledger.read_records(out / "decisions.jsonl")[1]["body"]["calibration_earned"]
+    assert earned["n_measured"] == 1 and earned["not_as_proposed_run_ids"] == [first[0]]

@@ -61,6 +61,21 @@ def test_check_empty_design_space(tmp_path):
     assert "filler ratio" in res.stderr
 
 
+def test_an_empty_design_space_is_refused_naming_the_protocol_file_by_every_command(tmp_path):
+    """check, start, plan and judge said "the design space is empty" without the file's name."""
+    text = (PROTOCOLS / "tablet_blend.toml").read_text()
+    bad = tmp_path / "empty.toml"
+    bad.write_text(text.replace('rule = "mcc / lactose <= 4"', 'rule = "mcc >= 2 * lactose + 0.45"'))
+    runs = PROTOCOLS / "tablet_blend_runs.csv"
+    recipes = PROTOCOLS / "tablet_blend_recipes.csv"
+    for args in (["check", bad], ["start", bad, "--runs", 3, "--out", tmp_path / "s.csv"],
+                 ["plan", bad, runs, "--out", tmp_path / "c"], ["judge", bad, runs, recipes, "--out", tmp_path / "c"]):
+        res = runner.invoke(app, [str(a) for a in args])
+        assert res.exit_code == EXIT_PROTOCOL, (args[0], res.output)
+        assert "empty.toml: the design space is empty" in res.stderr, (args[0], res.stderr)
+    assert not (tmp_path / "c").exists() and not (tmp_path / "s.csv").exists()
+
+
 def test_check_bad_protocol_names_field(tmp_path):
     bad = tmp_path / "bad.toml"
     bad.write_text((PROTOCOLS / "tablet_blend.toml").read_text().replace("threshold = 0.90", "threshold = 1.5"))
@@ -99,6 +114,18 @@ def campaign(tmp_path_factory):
               "--out", out, "--count", 3, "--pool", 500)
     assert res.exit_code == 0, res.output
     return out, res
+
+
+def test_start_with_a_region_outside_the_design_space_names_the_rule_and_writes_nothing(tmp_path):
+    """The refusal named "starting region row 1"; `check` names the rule, and so does `start` now."""
+    text = (PROTOCOLS / "dose_combination.toml").read_text()
+    text = text.replace('rules = ["dose_a <= 10", "dose_b <= 2"]', 'rules = ["dose_a >= 100"]')
+    protocol = tmp_path / "p.toml"
+    protocol.write_text(text)
+    res = runner.invoke(app, ["start", str(protocol), "--runs", "3", "--out", str(tmp_path / "s.csv")])
+    assert res.exit_code == EXIT_PROTOCOL
+    assert "start region: 'dose_a >= 100'" in res.stderr and "row 1" not in res.stderr
+    assert not (tmp_path / "s.csv").exists()
 
 
 def test_plan_writes_table_log_and_cautions(campaign):
@@ -208,3 +235,33 @@ def test_demo_runs_everything(tmp_path):
     assert "== 4. replay" in summary and "identical" in summary
     assert "ok: 1 record(s)" in summary
     assert "CAUTIONS" in summary
+
+
+def test_a_plan_of_another_study_into_a_campaign_folder_is_warned_of(tmp_path):
+    """Two studies in one decision log went without a word; a protocol amendment (same responses)
+    is a campaign's own and goes on quietly."""
+    out = tmp_path / "camp"
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", "--out", out,
+              "--pool", 300, "--count", 1)
+    assert res.exit_code == 0 and "another study" not in res.stderr
+    res = run("plan", PROTOCOLS / "tablet_blend.toml", PROTOCOLS / "tablet_blend_runs.csv", "--out", out,
+              "--pool", 300, "--count", 2)
+    assert res.exit_code == 0 and "another study" not in res.stderr
+    res = run("plan", PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv", "--out", out)
+    assert res.exit_code == 0, res.output
+    said = " ".join(res.stderr.split())
+    assert ("warning: the campaign folder's last plan (record 1, protocol file tablet_blend.toml) is of another "
+            "study: it modelled dissolution_30min, degradant_b, friability; this protocol models "
+            "response_score, dlt_rate") in said
+
+
+def test_a_last_plan_that_recorded_no_models_is_not_taken_for_another_study(tmp_path):
+    from guardband.planner.app.workflow import other_study_warning
+    from guardband.planner.inputs.protocol import load_protocol
+    from guardband.safety import ledger
+
+    log = tmp_path / "decisions.jsonl"
+    ledger.append_record(log, "plan", {"models": [], "protocol_file": {"name": "x.toml"}})
+    assert other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml")) == []
+    ledger.append_record(log, "plan", {"models": [{"response": "y"}], "protocol_file": {"name": "x.toml"}})
+    assert "is of another study" in other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml"))[0]

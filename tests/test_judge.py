@@ -217,3 +217,50 @@ def test_a_protocol_without_resolutions_keeps_its_judge_table(tmp_path):
     assert "grid" not in rows[0] and len(rows) == 2
     assert "off_grid" not in json.loads(run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "d",
                                             "--seed", 1, "--format", "json").stdout)["verdicts"][0]
+
+
+def test_what_the_runs_and_recipes_readers_flag_reaches_the_notes_the_record_and_stderr(tmp_path):
+    """A unit converted or a value outside its bounds in either input is said, naming the file.
+
+    `plan` prints the runs file's flags and keeps them in its record; `judge`
+    used to keep only the recipes file's, in its notes, and to print neither.
+    """
+    lines = TABLET[1].read_text().splitlines()
+    header = lines[0].split(",")
+    k = header.index("force")
+    header[k] = "force [N]"  # the runs in newtons: converted to the protocol's kN, and said so
+    rows = [line.split(",") for line in lines[1:]]
+    for r in rows:
+        r[k] = repr(float(r[k]) * 1000)
+    (tmp_path / "runs.csv").write_text("\n".join(",".join(r) for r in [header, *rows]) + "\n")
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force"]
+    _recipes_csv(tmp_path / "r.csv", names, [("hot", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 40.0])])
+    res = runner.invoke(app, ["judge", str(TABLET[0]), str(tmp_path / "runs.csv"), str(tmp_path / "r.csv"),
+                              "--out", str(tmp_path / "c"), "--seed", "1"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    converted = "runs file runs.csv: column H (force): values converted [N] -> [kN]"
+    outside = "recipes file r.csv: row 2 (run hot), column force: 40 is outside the bounds [6, 20] (kept)"
+    for said in (converted, outside):
+        assert f"warning: {said}" in res.stderr
+    notes = next((tmp_path / "c").glob("judge-*.notes.txt")).read_text()
+    assert f"warning: {converted}" in notes and f"warning: {outside}" in notes
+    body = ledger.read_records(tmp_path / "c" / "decisions.jsonl")[-1]["body"]
+    assert any(f.startswith("column H (force): values converted [N] -> [kN]") for f in body["runs_flags"])
+    assert body["flags"] == ["row 2 (run hot), column force: 40 is outside the bounds [6, 20] (kept)"]
+
+
+def test_the_terminal_table_gives_each_factor_its_unit(tmp_path):
+    """A recipe given in newtons is shown converted to the protocol's kN: the header must say so
+    (it said 'force', so 13 read as what the chemist typed)."""
+    names = ["active", "mcc", "lactose", "croscarmellose", "povidone", "mg_stearate", "force [N]"]
+    _recipes_csv(tmp_path / "r.csv", names, [("A", [0.1, 0.48875, 0.38875, 0.01, 0.01, 0.0025, 13000.0])])
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1)
+    assert res.exit_code == 0, res.output
+    lines = res.stdout.splitlines()
+    header = " ".join(ln for ln in lines if ln.startswith("recipe "))  # blocks that fit the width
+    assert "force [kN]" in header and "mcc [fraction]" in header
+    values = " ".join(ln for ln in lines if ln.startswith("A "))
+    assert " 13 " in values and "13000" not in values
+    # the CSV table keeps plain column names, as every table a program reads
+    res = run("judge", *TABLET, tmp_path / "r.csv", "--out", tmp_path / "c", "--seed", 1, "--format", "csv")
+    assert next(csv.reader(io.StringIO(res.stdout)))[7] == "force"

@@ -94,3 +94,35 @@ def test_the_readme_python_example_runs(tmp_path, monkeypatch):
     exec(compile(code, "README.md", "exec"), scope)  # noqa: S102 - the README's own example
     assert isinstance(scope["step"], guardband.Plan)
     assert (tmp_path / "notebook_campaign" / "decisions.jsonl").is_file()
+
+
+def test_the_repr_says_what_the_runs_reader_flagged_and_keeps_the_cautions():
+    """A value kept outside its bounds is said in the notebook as on the command line's stderr.
+
+    Many such values are summed up in one line, so the cautions are never cut off the repr.
+    """
+    runs = pd.read_csv(CSV)
+    runs.loc[0, "force"] = 25.0  # the protocol's bounds are [6, 20] kN
+    text = repr(guardband.plan(TOML, runs, seed=7, pool=300))
+    assert "warning: row 2 (run R01), column force: 25 is outside the bounds [6, 20] (kept)" in text
+    assert "CAUTION" in text and text.rstrip().endswith("they are not guarantees.")
+    runs.loc[:, "force"] = 25.0
+    many = guardband.plan(TOML, runs, seed=7, pool=300)
+    text = repr(many)
+    assert len(many.result.flags) == len(runs) > 5
+    assert text.count("warning: row") == 5
+    assert f"and {len(runs) - 5} more warning(s) in .result.flags" in text
+    assert len(text) < 2000 and text.rstrip().endswith("they are not guarantees.")
+    assert "25 is outside the bounds" in many._repr_html_()
+
+
+def test_a_logged_plan_of_another_study_says_so_in_its_repr(tmp_path):
+    """As `plan --out` warns on stderr: the notebook's logged step says it in its repr."""
+    camp = tmp_path / "camp"
+    first = guardband.plan(TOML, CSV, seed=7, pool=300, out=camp, by="A. Chemist")
+    assert "another study" not in repr(first)
+    dose = guardband.plan(PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv",
+                          out=camp, by="A. Chemist")
+    text = repr(dose)
+    assert "warning: the campaign folder's last plan (record 0, protocol file tablet_blend.toml) is of another" in text
+    assert text.rstrip().endswith(dose.cautions[-1]) and len(text) < 2000

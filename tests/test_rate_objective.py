@@ -122,8 +122,24 @@ def test_objective_schema_refusals_name_the_field():
         _protocol(measurement_sd=0.1)
     with pytest.raises(ProtocolError, match=r"objective: .*belong to a kind = \"binomial\" objective"):
         _protocol(kind="continuous")
-    with pytest.raises(ProtocolError, match=r"used for a factor and a response"):
+    with pytest.raises(ProtocolError, match=r"'dlt_events' is used twice: as the events column of the objective"):
         _protocol(events="dlt_events")
+
+
+def test_a_count_column_named_by_two_responses_is_refused_saying_which_and_what_to_do():
+    """Responders and toxicities counted among the same cohort: one `subjects` column for both
+    was refused as 'used for a factor and a response', though no factor was involved."""
+    with pytest.raises(ProtocolError) as err:
+        _protocol(subjects="dlt_subjects")
+    text = str(err.value)
+    assert "used for a factor" not in text
+    assert ("name 'dlt_subjects' is used twice: as the subjects column of the objective 'response_rate' "
+            "and as the subjects column of the limit 'dlt_rate'") in text
+    assert "each binomial response needs its own two count columns" in text
+    # a clash with a factor keeps its own words, naming the response's column
+    with pytest.raises(ProtocolError, match=r"name 'dose_a' is used for a factor and a response \(the events "
+                                            r"column of the objective 'response_rate'\)"):
+        _protocol(events="dose_a")
 
 
 def test_a_continuous_objective_keeps_its_fingerprint_keys():

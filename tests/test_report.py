@@ -211,6 +211,20 @@ def test_report_from_the_folder_matches_the_one_made_with_the_plan(dose_campaign
     assert len(entry["figures"]) == len(list((folder / f"figures-{label}").glob("*.png")))
 
 
+def test_a_step_planned_twice_is_reported_once_from_its_last_record(dose_campaign, tmp_path):
+    """Planning the same inputs again gives the same step (label, files); `report DIR` re-ran and
+    redrew it once per record, each page overwriting the last."""
+    folder = tmp_path / "copy"
+    shutil.copytree(dose_campaign, folder)
+    _plan(PROTOCOLS / "dose_combination.toml", PROTOCOLS / "dose_combination_runs.csv", folder)
+    records = ledger.read_records(folder / LOG_NAME)
+    assert [r["body"]["step_label"] for r in records] == [records[0]["body"]["step_label"]] * 2
+    result = _invoke(["report", folder, "--format", "json"])
+    assert result.exit_code == 0, result.output
+    (entry,) = json.loads(result.stdout)
+    assert entry["record_index"] == 1
+
+
 def test_report_says_when_the_rerun_differs_or_the_step_was_superseded(dose_campaign, tmp_path, monkeypatch):
     folder = tmp_path / "copy"
     shutil.copytree(dose_campaign, folder)

@@ -103,6 +103,22 @@ def test_every_rounded_proposal_is_on_the_grid_inside_and_passes_the_screen(tabl
     assert on_grid(result.pool[result.screen.survives], rounding_of(tablet).resolution).all()
 
 
+def test_the_rule_picks_and_the_price_of_a_threshold_stand_on_the_grid(tablet):
+    """The best predicted objective at each threshold is that of a recipe the lab can weigh:
+    the price's local search is rounded as the plan's is (it used to report an off-grid point)."""
+    runs = read_runs(PROTOCOLS / "tablet_blend_runs.csv", tablet)
+    result = plan_step(tablet, runs, seed=4, pool_size=800)
+    res = rounding_of(tablet).resolution
+    names = list(tablet.factor_names)
+    priced = [e for e in result.threshold_price if e["x"] is not None]
+    assert priced
+    X = np.array([[e["x"][n] for n in names] for e in priced])
+    assert on_grid(X, res).all()
+    assert tablet.design_space().contains(X).all()
+    picks = [p for p in result.rule_picks if p.get("x") is not None]
+    assert picks and on_grid(np.array([[p["x"][n] for n in names] for p in picks]), res).all()
+
+
 def test_a_protocol_without_resolution_keeps_its_fingerprint():
     p = load_protocol(PROTOCOLS / "tablet_blend.toml")
     assert b"resolution" not in p.canonical()
@@ -154,3 +170,47 @@ def test_off_grid_names_each_value_that_is_not_a_multiple():
     off = off_grid(X, [0.001, 0.5, np.nan])
     assert off.tolist() == [[False, False, False], [True, True, False]]
     assert on_grid(X, [0.001, 0.5, np.nan]).tolist() == [True, False]
+
+
+def test_the_starting_design_is_on_the_grid_inside_the_space_and_its_start_region(tablet):
+    """`start` writes runs the lab can weigh: a resolution binds the starting design as it binds a plan."""
+    from guardband.planner.app.workflow import start_design
+
+    rnd = rounding_of(tablet)
+    header, rows, notes = start_design(tablet, 12, seed=3)
+    X = np.array([row[1:1 + len(tablet.factors)] for row in rows], dtype=float)
+    assert on_grid(X, rnd.resolution).all()
+    assert tablet.design_space().contains(X).all()
+    assert any("resolution" in n for n in notes)
+    # with a starting region, every rounded run also stays inside it
+    data = tablet.model_dump(mode="python")
+    data["start"] = {"rules": ["force <= 9", "croscarmellose >= 0.03"]}
+    region = parse_protocol(data)
+    _, rows, _ = start_design(region, 8, seed=5)
+    X = np.array([row[1:1 + len(region.factors)] for row in rows], dtype=float)
+    assert on_grid(X, rnd.resolution).all()
+    assert np.all(X[:, region.factor_names.index("force")] <= 9 + 1e-12)
+    assert np.all(X[:, region.factor_names.index("croscarmellose")] >= 0.03 - 1e-12)
+    assert region.design_space().contains(X).all()
+
+
+def test_the_rounding_note_speaks_of_a_mixture_only_when_there_is_one(tablet):
+    from conftest import unit_square_protocol
+
+    data = unit_square_protocol({"name": "g", "upper": 1.0, "probability": 0.9},
+                                screen={"threshold": 0.9, "min_runs": 3}, batch={"size": 1, "pool": 200})
+    data["factors"][0]["resolution"] = 0.05
+    square = parse_protocol(data)
+    rng = np.random.default_rng(2)
+    X = rng.uniform(0, 1, (8, 2))
+    text = "run_id,x1,x2,y,g\n" + "".join(f"R{i},{a:.4f},{b:.4f},{a + b:.4f},{0.5 * a:.4f}\n"
+                                          for i, (a, b) in enumerate(X))
+    from guardband.planner.inputs.runs import parse_runs_text
+
+    result = plan_step(square, parse_runs_text(text, square, source="r.csv"), seed=1, explain=False)
+    note = next(m for m in result.messages if "rounded to its factors' resolution" in m)
+    assert "x1 0.05" in note and "mixture" not in note
+    runs = read_runs(PROTOCOLS / "tablet_blend_runs.csv", tablet)
+    note = next(m for m in plan_step(tablet, runs, seed=4, pool_size=300, explain=False).messages
+                if "rounded to its factors' resolution" in m)
+    assert "a mixture's total restored by largest remainders" in note

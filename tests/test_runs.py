@@ -104,3 +104,22 @@ def test_leading_comment_lines_are_skipped_and_rows_still_count_them():
     assert t.run_ids == ("R1", "R2", "R3")
     with pytest.raises(RunsDataError, match=re.escape("row 5 (run R2), column a: 'abc' is not a number")):
         parse(text.replace("R2,0.5", "R2,abc"))
+
+
+def test_a_run_that_breaks_a_rule_of_the_protocol_is_kept_but_flagged():
+    """A measured run outside the design space by a rule (not a bound) is said, as a bound is."""
+    data = PROTOCOL.model_dump(mode="python")
+    data["constraints"] = [{"name": "a to b", "rule": "a / b <= 0.7"}]
+    protocol = parse_protocol(data)
+    # R2 has a / b = 1; R1 (0.43) and R3 (0.67) keep the rule
+    t = parse_runs_text(GOOD, protocol, source="runs.csv")
+    assert t.X[1, 0] == 0.5
+    broken = [f for f in t.flags if "rule" in f]
+    assert len(broken) == 1
+    assert broken[0].startswith("row 3 (run R2): breaks the rule constraint a to b: 'a / b <= 0.7'")
+    assert broken[0].endswith("(kept)")
+    # on the rule's edge, as a value typed to a few digits leaves it, is not flagged
+    edge = GOOD.replace("R2,0.5,0.5", "R2,0.41176,0.58824")  # a / b = 0.69998
+    assert not [f for f in parse_runs_text(edge, protocol, source="runs.csv").flags if "rule" in f]
+    edge = GOOD.replace("R2,0.5,0.5", "R2,0.41177,0.58823")  # a / b = 0.70001: a typing rounding, not flagged
+    assert not [f for f in parse_runs_text(edge, protocol, source="runs.csv").flags if "rule" in f]

@@ -72,6 +72,26 @@ def _mixed_protocol():
 MIXED_TRUTH = {"y": "x + 0.3 * d - 0.05 * d ^ 2", "g": "x ^ 2 + 0.1 * d"}
 
 
+def test_with_resolutions_the_optimum_is_the_best_point_the_lab_can_set():
+    """Every planned run is rounded to the resolution, so the gap must be measured from the best
+    grid point that meets every limit: the known optimum used to lie between grid points (x1 at the
+    limit, 0.7746), a gap no campaign could close. Checked against every grid point (exhaustive)."""
+    data = _two_factor_protocol().model_dump(mode="python")
+    data["factors"][0]["resolution"] = 0.05
+    data["factors"][1]["resolution"] = 0.25
+    protocol = parse_protocol(data)
+    problem = parse_scenarios(_one(), protocol).scenarios[0].problem
+    g1, g2 = np.meshgrid(np.arange(0, 21) * 0.05, np.arange(0, 9) * 0.25)
+    G = np.column_stack([g1.ravel(), g2.ravel()])
+    Y = problem.evaluate(G)
+    ok = met_every_limit(protocol, Y)
+    best = np.flatnonzero(ok)[np.argmax(Y["y"][ok])]
+    assert problem.optimum == pytest.approx(Y["y"][best], abs=1e-12)
+    np.testing.assert_allclose(problem.optimum_x, G[best], atol=1e-12)
+    unrounded = parse_scenarios(_one(), _two_factor_protocol()).scenarios[0].problem
+    assert unrounded.optimum > problem.optimum  # the continuous optimum lies off the grid
+
+
 def test_optimum_with_discrete_and_continuous_factors_against_a_dense_grid():
     # regression: a protocol with a discrete factor beside continuous ones (a mixture and a pH
     # level) could not be simulated at all: locate_optimum refused mixed design spaces
@@ -142,7 +162,8 @@ def test_cli_simulates_a_protocol_with_discrete_and_continuous_factors(tmp_path)
                                       "--budget", "2", "--workers", "1"])
     assert result.exit_code == 0, result.output
     flat = " ".join(result.stdout.split())
-    assert "known optimum 1.17459" in flat and "at (0.77459" in flat and ", 2.0)" in flat
+    # each coordinate named by its factor (an unnamed tuple of eight numbers read poorly)
+    assert "known optimum 1.17459" in flat and "at (x=0.77459" in flat and ", d=2)" in flat
     assert "(within 0.0125)" in flat  # 1% of the objective's range, 1.25
 
 
@@ -178,6 +199,20 @@ def test_bad_scenario_files_name_the_field(data, message):
     assert f"mine.toml: {message}" in str(info.value) or message in str(info.value)
     assert str(info.value).startswith("mine.toml")
     assert ProtocolError.exit_code == EXIT_PROTOCOL
+
+
+@pytest.mark.parametrize(("data", "hint"), [
+    ({"budgett": 6, **_one()}, "budgett: unknown key; did you mean `budget`?"),
+    ({"scenario": [{"name": "s", "truth": TRUTH, "nose": {"y": 1.0}}]},
+     "scenario[0].nose: unknown key; did you mean `noise`?"),
+    ({"scenario": [{"name": "s", "truth": TRUTH, "colour": 1}]},
+     "scenario[0].colour: unknown key; check its spelling (see the README, \"Simulating your own study\")"),
+], ids=["top-level", "in-a-scenario", "no-close-key"])
+def test_a_misspelt_key_of_a_scenario_file_is_hinted_from_the_scenario_files_own_keys(data, hint):
+    """Not from the protocol's: a scenario file's keys are not in docs/protocol-reference.md."""
+    with pytest.raises(ProtocolError) as info:
+        parse_scenarios(data, _two_factor_protocol(), source="mine.toml")
+    assert str(info.value) == f"mine.toml: {hint}"
 
 
 def test_example_scenario_files_load_and_each_optimum_meets_every_limit():

@@ -215,6 +215,15 @@ def test_equal_protocols_share_their_campaigns():
     assert "pi (= protocol)" in res.table_text()
 
 
+def test_the_settings_line_gives_the_pool_the_campaigns_used():
+    """--pool overrides the protocol's pool: the description said the protocol's (pool 200 here)."""
+    res = simulate("gramacy", FAST, workers=1, budget=1, seeds=1, n_start=6, pool_size=100,
+                   strategies=("protocol",))
+    assert "pool 100," in " ".join(res.description()) and "pool 200" not in " ".join(res.description())
+    res = simulate("gramacy", FAST, workers=1, budget=1, seeds=1, n_start=6, strategies=("protocol",))
+    assert "pool 200," in " ".join(res.description())
+
+
 def test_results_are_deterministic_for_a_fixed_seed(small):
     some = ("protocol", "random", "classical", "screen-off")
     again = simulate("gramacy", FAST, workers=1, strategies=some, **TINY)

@@ -368,3 +368,25 @@ def test_rescue_search_moves_where_the_bound_is_flat_at_zero():
     assert not np.any(np.isfinite(h.best_safe[~h.planned]))  # no starting run met both limits
     assert not h.stalled and int(h.planned.sum()) == 1
     assert h.promised[h.planned][0] >= 0.5  # the screen's own bound, not the product
+
+
+@pytest.mark.parametrize(("sd", "apart", "said"), [(0.0, 3.0, True), (0.5, 3.0, True), (1.0, 3.0, False),
+                                                  (0.0, 0.0, False)])
+def test_replicates_that_contradict_a_stated_measurement_sd_are_named(sd, apart, said):
+    """A limit said to repeat within sd 0 (or 0.5) whose two runs at one setting differ by 3:
+    the model's noise is fixed at the stated sd, so the plan and judge say which runs disagree.
+    Two measurements differ by more than 4 sqrt(2) sd with probability 6e-5 (normal tail)."""
+    data = unit_square_protocol({"name": "g", "upper": 10.0, "probability": 0.9, "measurement_sd": sd},
+                                screen={"threshold": 0.9, "min_runs": 3}, batch={"size": 1, "pool": 100})
+    protocol = parse_protocol(data)
+    rng = np.random.default_rng(5)
+    X = np.vstack([rng.random((7, 2)), [[0.3, 0.6]], [[0.3, 0.6]]])
+    g = 2 * X[:, 0] + X[:, 1]
+    g[-1] += apart
+    runs = runs_table_from_arrays(protocol, X, {"y": X.sum(axis=1), "g": g})
+    messages = plan_step(protocol, runs, seed=1, explain=False).messages
+    found = [m for m in messages if "measurement_sd" in m]
+    assert bool(found) == said, messages
+    if said:
+        assert runs.run_ids[-2] in found[0] and runs.run_ids[-1] in found[0]
+        assert f"{apart:g} apart" in found[0] and f"measurement_sd = {sd:g}" in found[0]

@@ -190,6 +190,43 @@ def _differences(a, b) -> list:
             if not (x[k] == y.get(k) or (x[k] != x[k] and y.get(k) != y.get(k)))]
 
 
+def test_each_cells_settings_line_gives_the_pool_its_campaigns_used():
+    """--pool 60 against the protocol's 200: the cells' notes said pool 200."""
+    problem = get_problem("gramacy")
+    combined = combine_settings(problem, FAST)
+    sweep = run_sweep([Scenario(problem.name, "", problem)], lambda sc: combined, seeds=1, n_start=6, budget=1,
+                      noise_scale=0.0, pool_size=60, workers=1)
+    line = next(t for t in sweep.cells[0].result.description() if t.startswith("settings:"))
+    assert "pool 60," in line
+
+
+def test_a_chosen_run_that_truly_broke_a_limit_is_never_within_reach_of_the_optimum():
+    """The lab picks by measured values; a run measured within the limits whose true values broke
+    one may beat the constrained optimum (a negative gap). It is not the optimum reached: a stalled
+    campaign was reported as 1/2 reached within 0 planned runs."""
+    from guardband.planner.simulation.loop import CampaignHistory
+    from guardband.planner.simulation.results import SimulationResult
+    from guardband.planner.simulation.sweep import SweepCell
+
+    problem = get_problem("gramacy")  # minimise x1 + x2 under c1 <= 0, c2 <= 0
+    protocol = combine_settings(problem, FAST)
+    opt = problem.optimum
+    f = np.array([opt + 0.3, opt - 0.01, opt + 0.3])  # the second run: better than the optimum, truly unsafe
+    measured_ok = {"c1": np.array([-0.1, -0.1, -0.1]), "c2": np.array([-0.1, -0.1, -0.1])}
+    history = CampaignHistory(
+        X=np.zeros((3, 2)), Y={"f": f, **measured_ok}, planned=np.array([False, False, True]),
+        broke_limit=np.array([False, True, False]), best_safe=np.array([f[0], f[1], f[1]]),
+        promised=np.array([np.nan, np.nan, 0.95]), stalled=False,
+        T={"f": f, "c1": np.array([-0.1, 0.2, -0.1]), "c2": measured_ok["c2"]})
+    result = SimulationResult(problem=problem, protocol=protocol, strategies=("protocol",), same_as={},
+                              histories={"protocol": [history]}, n_start=2, budget=1, seeds=1, base_seed=0,
+                              noise_scale=1.0, noise={}, workers=1)
+    cell = SweepCell(Setting(), problem.name, result, within=0.05)
+    assert result.trajectories("protocol")["gap_true"][0, 0] == pytest.approx(-0.01)
+    assert np.isnan(cell.runs_until_within()[0])
+    assert cell.row()["reached"] == 0
+
+
 def test_runs_until_within_counts_planned_runs(local):
     cell = local.cells[0]
     gap = cell.result.trajectories("protocol")["gap_true"]

@@ -48,6 +48,7 @@ class JudgeOutcome:
     record: dict
     log_path: Path
     files: dict = field(default_factory=dict)
+    warnings: tuple[str, ...] = ()  # what the readers flagged in the runs and recipes files, naming each
 
 
 def judge_table(protocol, result: JudgeResult) -> tuple[list[str], list[list]]:
@@ -120,13 +121,15 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
     if log_path.exists():
         ledger.verify_or_raise(log_path)
     warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
-    with blas_limit():
+    with blas_limit(), ProtocolError.naming(protocol_path):
         result = judge_points(protocol, runs, recipes.X, recipes.run_ids, seed=seed, warm_start=warm)
     header, rows = judge_table(protocol, result)
+    warnings = (*[f"runs file {runs_path.name}: {f}" for f in runs.flags],
+                *[f"recipes file {recipes_path.name}: {f}" for f in recipes.flags])
     lines = [f"Guardband judgement of given recipes - {protocol.study.title}",
              f"protocol fingerprint {protocol.fingerprint}; runs file sha256 {runs.sha256}; recipes file "
              f"sha256 {recipes.sha256}; seed {seed}; tool version {_version()}",
-             *[f"note: {m}" for m in result.messages], *[f"warning: {f}" for f in recipes.flags]]
+             *[f"note: {m}" for m in result.messages], *[f"warning: {w}" for w in warnings]]
     table_bytes, notes_bytes = table_with_notes(header, rows, lines, cautions_of(protocol), float_format=_FLOAT)
     table_name, notes_name = table_file_names("judge", table_bytes, notes_bytes)
     files = {
@@ -142,7 +145,7 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
         "mode": result.mode, "incumbent": result.incumbent, "threshold": protocol.screen.threshold,
         "models": [m.to_dict() for m in result.models],
         "verdicts": [v.to_dict(protocol.factor_names) for v in result.verdicts],
-        "messages": list(result.messages), "flags": list(recipes.flags),
+        "messages": list(result.messages), "flags": list(recipes.flags), "runs_flags": list(runs.flags),
         "protocol_file": _entry(protocol_path, protocol_bytes, files["protocol_copy"], out_dir),
         "runs_file": {**_entry(runs_path, runs_bytes, files["runs_copy"], out_dir), "read_options": read_options},
         "recipes_file": {**_entry(recipes_path, recipes_bytes, files["recipes_copy"], out_dir),
@@ -168,7 +171,7 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
 
             _remove_new_campaign(out_dir, log_path)
         raise
-    return JudgeOutcome(result, protocol, seed, seed_drawn, warm_from, record, log_path, files)
+    return JudgeOutcome(result, protocol, seed, seed_drawn, warm_from, record, log_path, files, warnings)
 
 
 def _suffix(path: Path) -> str:

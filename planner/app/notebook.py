@@ -27,6 +27,9 @@ __all__ = ["read_runs", "plan", "Plan"]
 
 #: repr of a plan stays under this many characters.
 REPR_MAX = 2000
+#: The runs reader's warnings a repr lists (each cut to REPR_WARNING_CHARS); the rest are counted.
+REPR_WARNINGS = 5
+REPR_WARNING_CHARS = 200
 
 
 def _pandas():
@@ -110,6 +113,7 @@ class Plan:
     seed: int
     log: dict | None
     cautions: tuple[str, ...] = field(default=())
+    warnings: tuple[str, ...] = field(default=())  # about the campaign folder, as `plan --out` warns
 
     def __repr__(self) -> str:
         r = self.result
@@ -124,15 +128,30 @@ class Plan:
                  "incumbent: none (no run meets every limit)",
                  f"candidates: {counts}", where,
                  "tables: .proposals, .exclusions, .models (DataFrames); everything: .result",
+                 *[_cut(f"warning: {w}", REPR_MAX // 4) for w in self.warnings],
+                 *_warning_lines(r.flags),
                  "CAUTION: " + " ".join(self.cautions)]
         text = "\n".join(lines)
-        return text if len(text) <= REPR_MAX else text[:REPR_MAX - 3] + "..."
+        return _cut(text, REPR_MAX)
 
     def _repr_html_(self) -> str:
         head = "".join(f"<div>{html.escape(line)}</div>" for line in repr(self).splitlines()[:-1])
         table = self.proposals.to_html(index=False, float_format=lambda v: f"{v:.4g}", escape=True)
         notes = "".join(f"<li>{html.escape(c)}</li>" for c in self.cautions)
         return f"<div>{head}{table}<p><b>Cautions</b></p><ul>{notes}</ul></div>"
+
+
+def _warning_lines(flags) -> list[str]:
+    """What the runs reader flagged (a value kept outside its bounds, a unit converted), the first
+    few in full, so that the cautions after them always fit the repr."""
+    lines = [_cut(f"warning: {f}", REPR_WARNING_CHARS) for f in flags[:REPR_WARNINGS]]
+    if len(flags) > REPR_WARNINGS:
+        lines.append(f"and {len(flags) - REPR_WARNINGS} more warning(s) in .result.flags")
+    return lines
+
+
+def _cut(text: str, n: int) -> str:
+    return text if len(text) <= n else text[:n - 3] + "..."
 
 
 def plan(protocol, runs, *, out=None, seed: int | None = None, count: int | None = None,
@@ -176,18 +195,19 @@ def plan(protocol, runs, *, out=None, seed: int | None = None, count: int | None
         outcome = _logged(protocol, runs, out, run_plan, seed=seed, count=count, pool=pool, by=by, **options)
         result, label, seed = outcome.result, outcome.record["body"]["step_label"], outcome.seed
         log = {"file": str(outcome.log_path), "record": outcome.record["index"], "head": outcome.head}
+        warnings = outcome.warnings
     else:
         proto = _protocol(protocol)
         table = read_runs(runs, proto, **options)
         seed = seed if seed is not None else (proto.seed if proto.seed is not None else secrets.randbits(62))
         result = plan_step(proto, table, seed=seed, count=count, pool_size=pool)
-        label, log = "notebook", None
+        label, log, warnings = "notebook", None, ()
     pd = _pandas()
     frame = lambda ht: pd.DataFrame(ht[1], columns=ht[0])
     models = pd.DataFrame([m.to_dict() for m in result.models])
     return Plan(result=result, proposals=frame(plan_table(result, step_label=label)),
                 exclusions=frame(exclusion_table(result)), models=models, counts=result.counts(),
-                seed=int(seed), log=log, cautions=tuple(cautions_of(result.protocol)))
+                seed=int(seed), log=log, cautions=tuple(cautions_of(result.protocol)), warnings=tuple(warnings))
 
 
 def _logged(protocol, runs, out, run_plan, *, seed, count, pool, by, **options):

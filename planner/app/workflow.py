@@ -28,6 +28,7 @@ inputs write identical files.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import secrets
 from dataclasses import dataclass, field
@@ -208,17 +209,65 @@ def start_design(protocol: Protocol, n: int, *, seed: int) -> tuple[list[str], l
     mixture = [k for k, f in enumerate(protocol.factors) if f.kind == "component"] or None
     X, labels = starting_design(
         space, n, rng=np.random.default_rng(seed), mixture_indices=mixture,
-        region=None if region is None else (region[0], region[1]),
+        region=region,  # with its labels, so that a refusal names the rule
     )
     header = [RUN_ID, *protocol.factor_names, *protocol.runs_columns, "notes"]
-    rows = []
     width = max(2, len(str(n)))
-    for i, (x, label) in enumerate(zip(X, labels), start=1):
-        rows.append([f"S{i:0{width}d}", *[float(v) for v in x], *[""] * len(protocol.runs_columns), label])
-    notes = []
+    run_ids = [f"S{i:0{width}d}" for i in range(1, len(X) + 1)]
+    inner = space if region is None else space.add_inequalities(*region)
+    X, notes = _start_on_grid(protocol, inner, X, run_ids, in_region=region is not None)
+    rows = [[rid, *[float(v) for v in x], *[""] * len(protocol.runs_columns), label]
+            for rid, x, label in zip(run_ids, X, labels)]
     if region is not None:
         notes.append("every starting run lies inside the protocol's starting region")
-    return header, rows, notes
+    return header, rows, notes + _repeats_note(X, run_ids)
+
+
+def _repeats_note(X: np.ndarray, run_ids: list[str]) -> list[str]:
+    """A note naming the starting runs whose settings repeat an earlier one's (a space or
+    starting region with fewer settings than runs asked for: discrete levels, a coarse grid)."""
+    first: dict[tuple, str] = {}
+    repeats = []
+    for rid, x in zip(run_ids, X):
+        key = tuple(float(v) for v in x)
+        if key in first:
+            repeats.append(f"{rid} (= {first[key]})")
+        else:
+            first[key] = rid
+    if not repeats:
+        return []
+    return [f"{len(repeats)} starting run(s) repeat the settings of an earlier one, as replicates: "
+            f"{', '.join(repeats)}; only {len(first)} distinct settings were found for {len(run_ids)} runs "
+            "(ask for fewer runs for distinct settings only)"]
+
+
+def _start_on_grid(protocol: Protocol, inner, X: np.ndarray, run_ids: list[str], *,
+                   in_region: bool) -> tuple[np.ndarray, list[str]]:
+    """The starting runs rounded to their factors' resolution, as a plan rounds its candidates.
+
+    Each run takes the first of its grid neighbours (its own rounding first)
+    that lies inside ``inner`` (the design space and the starting region);
+    a run with none is left as it is, and the notes name it.
+    """
+    from guardband.planner.space.rounding import rounding_of  # here: the space package loads cvxpy
+
+    rnd = rounding_of(protocol)
+    if not rnd.any:
+        return X, []
+    out, unrounded = X.copy(), []
+    for i, x in enumerate(X):
+        grid = rnd.neighbours(x)
+        inside = np.flatnonzero(inner.contains(grid))
+        if inside.size:
+            out[i] = grid[inside[0]]
+        else:
+            unrounded.append(run_ids[i])
+    notes = [f"every starting run is rounded to its factors' resolution ({rnd.describe()})"]
+    if unrounded:
+        notes = [f"the starting runs are rounded to their factors' resolution ({rnd.describe()}), except "
+                 f"{', '.join(unrounded)}: no grid point next to them lies inside the design space"
+                 + (" and the starting region" if in_region else "") + "; they are given unrounded"]
+    return out, notes
 
 
 # ------------------------------------------------------------------- plan
@@ -294,6 +343,7 @@ class PlanOutcome:
     head: str = ""
     count: int = 0
     calibration: EarnedCalibration | None = None
+    warnings: tuple[str, ...] = ()  # about the campaign folder (another study's steps in its log)
 
 
 def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int) -> tuple[dict, int | None]:
@@ -318,6 +368,24 @@ def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int
     last = plans[-1]
     return ({m["response"]: m["hyperparameters"] for m in last["body"].get("models", [])
              if m.get("hyperparameters")}, int(last["index"]))
+
+
+def other_study_warning(log_path: Path, protocol: Protocol) -> list[str]:
+    """A warning when the log's last plan modelled other responses than ``protocol``: another study's
+    campaign folder, most likely (an amendment that keeps the responses is the campaign's own)."""
+    if not log_path.exists():
+        return []
+    plans = [rec for rec in ledger.read_records(log_path) if rec.get("kind") == "plan"]
+    if not plans:
+        return []
+    last = plans[-1]
+    before = [m.get("response") for m in last["body"].get("models", [])]
+    if not before or set(before) == set(protocol.response_names):  # no models recorded: nothing to compare
+        return []
+    return [f"the campaign folder's last plan (record {last['index']}, protocol file "
+            f"{last['body'].get('protocol_file', {}).get('name', '?')}) is of another study: it modelled "
+            f"{', '.join(before)}; this protocol models {', '.join(protocol.response_names)}. The step is "
+            "recorded in the same decision log; give a new --out folder to keep the studies apart"]
 
 
 def run_plan(
@@ -375,12 +443,14 @@ def run_plan(
         ledger.verify_or_raise(log_path)
     warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
     calibration = campaign_calibration(log_path, protocol, runs)
-    with blas_limit():
+    warnings = tuple(other_study_warning(log_path, protocol))
+    with blas_limit(), ProtocolError.naming(protocol_path):
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
-    return _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
-                       seed, seed_drawn, count, pool_size, protocol_path, runs_path,
-                       read_options=read_options, calibration=calibration, operator=operator,
-                       warm_from=warm_from)
+    outcome = _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,
+                          seed, seed_drawn, count, pool_size, protocol_path, runs_path,
+                          read_options=read_options, calibration=calibration, operator=operator,
+                          warm_from=warm_from)
+    return dataclasses.replace(outcome, warnings=warnings)
 
 
 def _read_input(path: Path, error, what: str) -> bytes:

@@ -22,10 +22,10 @@ PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 
 def _model_of(annotation) -> type[BaseModel] | None:
-    """The table model inside an annotation (``X``, ``X | None``, ``tuple[X, ...]``), if any."""
+    """The table model inside an annotation (``X``, ``X | None``, ``tuple[X, ...]``, ``list[X]``), if any."""
     if isinstance(annotation, type) and issubclass(annotation, BaseModel):
         return annotation
-    if typing.get_origin(annotation) in (typing.Union, types.UnionType, tuple, typing.Annotated):
+    if typing.get_origin(annotation) in (typing.Union, types.UnionType, tuple, list, typing.Annotated):
         for arg in typing.get_args(annotation):
             found = _model_of(arg)
             if found is not None:

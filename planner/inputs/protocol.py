@@ -470,13 +470,18 @@ class Protocol(_Strict):
             if name_key(n) in seen:
                 raise ValueError(_twice(f"factor name {n!r} is used twice", n, seen[name_key(n)]))
             seen[name_key(n)] = n
-        responses = [self.objective.name] + [lim.name for lim in self.limits]
-        responses += [c for item in self.binomial_responses for c in item.columns]
-        for r in responses:
+        roles: dict[str, str] = {}  # a response name or count column -> what names it
+        for r, role in self._response_names():
             if name_key(r) in seen:
-                raise ValueError(_twice(f"name {r!r} is used for a factor and a response (or twice)",
-                                        r, seen[name_key(r)]))
+                first = seen[name_key(r)]
+                if name_key(r) not in roles:
+                    raise ValueError(_twice(f"name {r!r} is used for a factor and a response ({role})", r, first))
+                hint = ("; each binomial response needs its own two count columns (when two count among "
+                        "the same subjects, give that number in a column of each)") if "column" in role else ""
+                raise ValueError(_twice(f"name {r!r} is used twice: as {roles[name_key(r)]} and as {role}{hint}",
+                                        r, first))
             seen[name_key(r)] = r
+            roles[name_key(r)] = role
         if any(name_key(n) in seen for n in ("run_id", "notes", "cautions")):
             raise ValueError("`run_id`, `notes` and `cautions` are reserved column names; rename that factor "
                              "or response")
@@ -525,6 +530,14 @@ class Protocol(_Strict):
     def runs_columns(self) -> tuple[str, ...]:
         """The response columns of a runs file: the objective, then each limit's column(s)."""
         return self.objective.columns + tuple(c for lim in self.limits for c in lim.columns)
+
+    def _response_names(self):
+        """(name, what names it) of every response and binomial count column, the objective first."""
+        for item, what in ((self.objective, "the objective"), *((lim, "the limit") for lim in self.limits)):
+            yield item.name, f"{what} {item.name!r}"
+            if item.kind == "binomial":
+                yield item.events, f"the events column of {what} {item.name!r}"
+                yield item.subjects, f"the subjects column of {what} {item.name!r}"
 
     @property
     def binomial_responses(self) -> tuple:
@@ -704,12 +717,14 @@ def _format_loc(loc: tuple) -> str:
     return out or "(top level)"
 
 
-def _plain(err: dict) -> str:
+def _plain(err: dict, root: type[BaseModel] | None = None, reference: str = "docs/protocol-reference.md") -> str:
+    """A pydantic error of a file read by the model ``root`` (default: the protocol) in plain words;
+    an unknown key is hinted from ``root``'s keys, else pointed to ``reference``."""
     kind = err.get("type", "")
     msg = err.get("msg", "")
     if kind == "extra_forbidden":
-        hint = unknown_key_hint(Protocol, tuple(err.get("loc", ())))
-        return "unknown key; " + (hint or "check its spelling (see docs/protocol-reference.md)")
+        hint = unknown_key_hint(root or Protocol, tuple(err.get("loc", ())))
+        return "unknown key; " + (hint or f"check its spelling (see {reference})")
     if kind == "missing":
         return "this field is required"
     if kind == "literal_error":

@@ -2,8 +2,9 @@
 
 A unit stated in a column header is converted to the protocol's, or
 refused where that is not safe (see :mod:`planner.inputs.units`). A factor
-value outside its bounds, or off a discrete factor's levels, is kept and
-flagged; a run whose components miss the mixture total is a problem. The
+value outside its bounds, or off a discrete factor's levels, and a run that
+breaks a rule of the protocol's constraints, are kept and flagged; a run
+whose components miss the mixture total is a problem. The
 values of a column whose stated unit cannot be converted are not judged. A
 binomial response's two count columns become its rate (and the counts).
 """
@@ -102,7 +103,8 @@ def to_protocol_units(protocol: Protocol, X: np.ndarray, Y: dict[str, np.ndarray
 
 def factor_value_flags(protocol: Protocol, X: np.ndarray, wheres: list[str],
                        convert: dict[str, object]) -> list[str]:
-    """A flag for each factor value off its levels or outside its bounds (the value is kept).
+    """A flag for each factor value off its levels or outside its bounds, and for each run that
+    breaks a rule of the protocol's ``[[constraints]]`` (the values are kept).
 
     Parameters
     ----------
@@ -127,7 +129,19 @@ def factor_value_flags(protocol: Protocol, X: np.ndarray, wheres: list[str],
             elif v < f.low - tol or v > f.high + tol:
                 flags.append(f"{where}, column {f.name}: {v:g} is outside the bounds "
                              f"[{f.low:g}, {f.high:g}] (kept)")
-    return flags
+    return flags + _rule_flags(protocol, X, wheres, convert)
+
+
+def _rule_flags(protocol: Protocol, X: np.ndarray, wheres: list[str], convert: dict[str, object]) -> list[str]:
+    """A flag for each run that breaks a rule by more than ``settings.RUN_RULE_TOL`` (factor-scaled)."""
+    if not protocol.constraints or any(_unconvertible(convert, n) for n in protocol.factor_names):
+        return []
+    space = protocol.design_space()
+    A, b = space.normalise_rows(space.A_ub, space.b_ub)
+    n = len(wheres)
+    with np.errstate(invalid="ignore"):
+        broken = X[:n] @ A.T - b > settings.RUN_RULE_TOL  # False where a value is missing (NaN)
+    return [f"{wheres[k]}: breaks the rule {space.ub_labels[i]} (kept)" for k, i in zip(*np.nonzero(broken))]
 
 
 def mixture_total_problems(protocol: Protocol, X: np.ndarray, wheres: list[str],

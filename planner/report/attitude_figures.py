@@ -99,9 +99,11 @@ def price_figure(result: PlanResult, salt: str) -> ReportFigure | None:
                 va="bottom", ha="center", fontsize=7.5, color=OKABE_ITO["vermillion"])
     ax.set_xlabel("screen threshold (joint figure a candidate must reach)")
     ax.set_ylabel("best predicted\n" + _unit(result))
+    worse = "lower" if result.protocol.maximize else "raise"
     caption = ("The price of the threshold: at each threshold, the best predicted value of "
                f"{result.protocol.objective.name} among candidates that pass the screen there (the same "
                "screen as the plan, with a local search at each threshold), and how many of the pool's "
-               f"{price[0]['n_candidates']:,} candidates pass. A higher threshold can only lower the curve; "
+               f"{price[0]['n_candidates']:,} candidates pass. A higher threshold can only {worse} the curve "
+               "(make the best predicted value worse); "
                "where it is flat, the limits' own probabilities bind, not the threshold.")
     return finish_figure(fig, "price", "The price of the threshold", caption, salt)

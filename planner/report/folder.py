@@ -99,6 +99,9 @@ def report_folder(folder: str | Path, *, map_factors: Sequence[str] | None = Non
         raise VerificationError(f"decision log {log} failed verification: {verdict.problem}")
     records = ledger.read_records(log)
     plans = [r for r in records if r["kind"] == "plan"]
+    # a step planned again on the same inputs has the same label and files: its last record only
+    last = {r["body"].get("step_label", r["index"]): r for r in plans}
+    plans = [r for r in plans if last[r["body"].get("step_label", r["index"])] is r]
     if not plans:
         raise VerificationError(f"{log}: the log holds no plan record, so there is nothing to report")
     if map_factors is not None:  # refuse a bad --map before the (slow) re-runs

@@ -423,9 +423,37 @@ def locate_optimum(problem: Problem, *, n_samples: int = 200_000, n_polish: int 
         y = problem.evaluate(x[None, :])
         if met_every_limit(protocol, y)[0] and sign * float(y[obj][0]) < best_v:
             best_x, best_v = x, sign * float(y[obj][0])
-    return OptimumResult(float(sign * best_v), best_x, float(ok.mean()), int(n_samples),
-                         f"dense hit-and-run sample of {n_samples} points, then SLSQP from "
-                         f"{len(starts)} feasible starts", _spread(Y[obj], sign * best_v))
+    method = f"dense hit-and-run sample of {n_samples} points, then SLSQP from {len(starts)} feasible starts"
+    on_grid = _best_on_grid(problem, X[idx], best_x)
+    if on_grid is not None:
+        best_x, best_v = on_grid[0], sign * on_grid[1]
+        method += ("; on the factors' resolution grid: the best of the rounded feasible samples and the "
+                   "grid points within two steps of the optimum's rounding")
+    return OptimumResult(float(sign * best_v), best_x, float(ok.mean()), int(n_samples), method,
+                         _spread(Y[obj], sign * best_v))
+
+
+def _best_on_grid(problem: Problem, X_ok: np.ndarray, x_best: np.ndarray) -> tuple[np.ndarray, float] | None:
+    """With resolutions, (point, value) of the best grid point inside the space that meets every
+    limit, among the rounded feasible samples and the grid points within two steps of the rounding
+    of ``x_best``: every planned run is rounded, so a gap is measured from a point the lab can set.
+    None without resolutions (or when no such grid point is found)."""
+    from guardband.planner.space.rounding import rounding_of
+
+    protocol = problem.protocol
+    rnd = rounding_of(protocol)
+    if not rnd.any:
+        return None
+    near = rnd.neighbours(x_best)
+    G = np.unique(np.vstack([rnd.round(X_ok), *[rnd.neighbours(x) for x in near]]), axis=0)
+    G = G[protocol.design_space().contains(G)]
+    Y = problem.evaluate(G)
+    ok = np.flatnonzero(met_every_limit(protocol, Y))
+    if ok.size == 0:
+        return None
+    y = Y[protocol.objective.name][ok]
+    best = ok[np.argmax(y) if protocol.maximize else np.argmin(y)]
+    return G[best].copy(), float(Y[protocol.objective.name][best])
 
 
 def _spread(y, *extra) -> float:

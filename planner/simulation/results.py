@@ -107,13 +107,16 @@ class SimulationResult:
             k when a campaign stopped early), ``gap_true`` (the gap of the
             *true* objective at the run the lab would pick, the best measured
             among runs measured within every limit; equal to ``gap`` without
-            noise; inf before a safe run).
+            noise; inf before a safe run), ``chosen_met`` (whether that run's
+            *true* values met every limit: a run measured within the limits
+            may truly have broken one, and then its gap can be negative).
         """
         sign = -1.0 if self.protocol.maximize else 1.0
         obj = self.protocol.objective.name
         B, S = self.budget, self.seeds
         best = np.full((S, B + 1), np.nan)
         chosen_true = np.full((S, B + 1), np.nan)
+        chosen_met = np.zeros((S, B + 1), dtype=bool)
         broken = np.full((S, B + 1), np.nan)
         made = np.zeros((S, B + 1), dtype=int)
         for s, h in enumerate(self.histories[strategy]):
@@ -127,12 +130,14 @@ class SimulationResult:
                 best[s, k] = h.best_safe[last] if last >= 0 else np.nan
                 if chosen is not None and last >= 0 and chosen[last] >= 0:
                     chosen_true[s, k] = h.T[obj][chosen[last]]
+                    chosen_met[s, k] = not h.broke_limit[chosen[last]]
                 if m:
                     broken[s, k] = float(np.mean(h.broke_limit[n_start:n_start + m]))
         optimum = np.array([[self.optimum_of(s)] for s in range(S)]).reshape(S, 1)
         gap = np.where(np.isnan(best), np.inf, sign * (best - optimum) + 0.0)  # no -0
         gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - optimum) + 0.0)
-        return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true}
+        return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true,
+                "chosen_met": chosen_met}
 
     def checkpoints(self) -> list[int]:
         """Planned-run counts shown in the table: 0, about a quarter, half, three quarters, all."""
@@ -240,7 +245,8 @@ class SimulationResult:
             (f"known optimum of each seed's drawn truth ({p.objective.direction}): from "
              f"{min(self.optima):.6g} to {max(self.optima):.6g}" if self.optima else
              f"known optimum {self.problem.optimum:.10g} ({p.objective.direction}) "
-             f"at {tuple(round(float(v), 6) for v in self.problem.optimum_x)}"),
+             "at (" + ", ".join(f"{n}={float(v):.6g}" for n, v in zip(p.factor_names, self.problem.optimum_x))
+             + ")"),
             f"{self.seeds} seeds (base seed {self.base_seed}); {self.n_start} starting runs + "
             f"{self.budget} planned runs; measurement noise {noise}",
             f"settings: threshold {p.screen.threshold:g} ({p.screen.joint}), rule {p.ranking.rule} "

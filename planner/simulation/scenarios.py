@@ -80,6 +80,10 @@ class ScenarioEntry(_Strict):
     cohort: dict[str, int] = Field(default_factory=dict)
 
 
+#: Where a scenario file's keys are described, for the message on a key it does not know.
+SCENARIO_KEYS_DOC = 'the README, "Simulating your own study"'
+
+
 class ScenarioFile(_Strict):
     """A whole scenario file."""
 
@@ -357,7 +361,8 @@ def parse_scenarios(data: dict, protocol: Protocol, *, source: str = "scenarios"
     try:
         parsed = ScenarioFile.model_validate(data)
     except ValidationError as exc:
-        raise ProtocolError("\n".join(f"{source}: {_format_loc(e['loc'])}: {_plain(e)}"
+        raise ProtocolError("\n".join(f"{source}: {_format_loc(e['loc'])}: "
+                                      f"{_plain(e, ScenarioFile, SCENARIO_KEYS_DOC)}"
                                       for e in exc.errors())) from None
     seen = set()
     for k, entry in enumerate(parsed.scenario):

@@ -248,9 +248,10 @@ class SweepCell:
         return self.strategy + ("" if self.setting.label == "as-written" else f",{self.setting.label}")
 
     def runs_until_within(self) -> np.ndarray:
-        """Per seed, the planned runs until the chosen run's true gap was at most ``within`` (NaN: never)."""
-        gap = self.result.trajectories(self.strategy)["gap_true"]
-        hit = gap <= self.within
+        """Per seed, the planned runs until the chosen run's true gap was at most ``within`` and its true
+        values met every limit (NaN: never)."""
+        tr = self.result.trajectories(self.strategy)
+        hit = (tr["gap_true"] <= self.within) & tr["chosen_met"]
         return np.where(hit.any(axis=1), hit.argmax(axis=1), np.nan).astype(float)
 
     def row(self) -> dict:
@@ -475,6 +476,8 @@ def run_sweep(scenarios, protocol_for, *, vary: dict | None = None, seeds: int =
     for setting in grid:
         for sc in scenarios:
             data = setting.protocol_data(protocol_for(sc))
+            if pool_size is not None:  # the campaigns' pool, as the cell's settings line shows it
+                data = {**data, "batch": {**data["batch"], "pool": int(pool_size)}}
             try:  # a bad value fails here, not in a worker
                 parse_protocol(data, source=f"setting {setting.label}")
             except ProtocolError as exc:

@@ -164,11 +164,16 @@ def threshold_price(ctx, pool, inc_value, rank_kw: dict, *, refine_starts: int =
     constraint. Every point found at any threshold is screened at every
     threshold, so each figure is the best over all points passing there:
     raising the threshold can never raise it, and the point behind each
-    figure passes the screen at that threshold.
+    figure passes the screen at that threshold. When the protocol states
+    resolutions, each refined point is replaced by the grid points around it
+    (:meth:`Rounding.neighbours`), so that every figure is a recipe the lab
+    can weigh, as every proposal is.
     """
+    from guardband.planner.space.rounding import rounding_of  # here: the space package loads cvxpy
     from guardband.planner.step.rates import objective_band
     from guardband.planner.step.refine import refine
 
+    rnd = rounding_of(ctx.protocol)
     own = float(ctx.protocol.screen.threshold)
     thresholds = sorted({*PRICE_THRESHOLDS, own})
     preds = ctx.limit_predictions(pool.U)
@@ -180,7 +185,9 @@ def threshold_price(ctx, pool, inc_value, rank_kw: dict, *, refine_starts: int =
         idx = np.flatnonzero(res.survives)
         if idx.size and refine_starts > 0:
             best = idx[np.lexsort((idx, -_signed(pool.mu[idx], ctx.protocol.maximize)))][:refine_starts]
-            found.append(refine(ctx_t, pool.X, best, inc_value, Mode.IMPROVE, kw, rule="mean"))
+            X_t = refine(ctx_t, pool.X, best, inc_value, Mode.IMPROVE, kw, rule="mean")
+            # with resolutions, as the plan's candidates: the grid points around each refined point
+            found.append(np.vstack([rnd.neighbours(x) for x in X_t]) if rnd.any and X_t.shape[0] else X_t)
     X_all = np.vstack(found)
     U_all, mu_all, sd_all, preds_all = ctx.predict(X_all)
     shown = objective_band(mu_all, sd_all, rank_kw.get("scale"))[0]  # a binomial objective: the mean rate

@@ -27,7 +27,7 @@ from guardband.planner.models.gp import Hyperparameters, fit_gp
 from guardband.planner.models.limitmodel import PessimisticLimitModel
 from guardband.planner.models.guards import GuardedLimitModel
 from guardband.planner.models.parallel import default_workers, map_jobs
-from guardband.planner.settings import LIMIT_SIGNAL_VARIANCE_MIN, REPEATED_RUN_DISTANCE
+from guardband.planner.settings import LIMIT_SIGNAL_VARIANCE_MIN, REPEATED_RUN_DISTANCE, REPLICATE_SPREAD_SDS
 from guardband.planner.step.result import ModelStatus, ModelSummary
 from guardband.safety.limits import ScreenRules
 
@@ -89,6 +89,29 @@ def repeated_runs_note(U: np.ndarray, ids) -> str:
     shown = ", ".join(f"{ids[i]} and {ids[j]}" for i, j in pairs[:10])
     more = f" (and {len(pairs) - 10} more pairs)" if len(pairs) > 10 else ""
     return f"; runs at the same factor settings (unit-scaled, within {REPEATED_RUN_DISTANCE:g}): {shown}{more}"
+
+
+def stated_sd_contradicted(protocol, runs, U: np.ndarray) -> list[str]:
+    """For each response whose ``measurement_sd`` is stated, the pair of runs at the same settings
+    (within REPEATED_RUN_DISTANCE, unit-scaled) whose values differ most, when they differ by more
+    than REPLICATE_SPREAD_SDS * sqrt(2) stated sds (any difference, beyond rounding, when it is 0)."""
+    from scipy.spatial import cKDTree
+
+    pairs = sorted(cKDTree(U).query_pairs(REPEATED_RUN_DISTANCE, p=np.inf)) if len(U) > 1 else []
+    out = []
+    for item, what in ((protocol.objective, "[objective]"), *((lim, f"limit {lim.name!r}") for lim in protocol.limits)):
+        sd = getattr(item, "measurement_sd", None)
+        if not pairs or sd is None or item.kind == "binomial":
+            continue
+        y = runs.Y[item.name]
+        apart = [(abs(y[i] - y[j]), i, j) for i, j in pairs if np.isfinite(y[i]) and np.isfinite(y[j])]
+        d, i, j = max(apart, default=(0.0, 0, 0))
+        if d > max(REPLICATE_SPREAD_SDS * np.sqrt(2.0) * sd, 1e-9 * max(1.0, abs(y[i]))):
+            out.append(f"measurement_sd check: runs {runs.run_ids[i]} and {runs.run_ids[j]} have the same settings "
+                       f"but {item.name} {y[i]:.6g} and {y[j]:.6g}, {d:.6g} apart, while the {what} states "
+                       f"measurement_sd = {sd:g}; the model's noise is fixed at that sd, so its figures near "
+                       "these runs may be too sure: check the values or the stated repeatability")
+    return out
 
 
 def _fit(response, role, U, y, *, prior_mean, restarts, warm, seed, length_scale_max=None,

@@ -52,7 +52,7 @@ from guardband.planner.step.acquisition import all_values, score as rule_score, 
 from guardband.planner.step.attitudes import rule_picks, threshold_price
 from guardband.planner.step.batch import VALUED_RULES, BatchRule, Pool, greedy_batch
 from guardband.planner.step.context import StepContext
-from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models
+from guardband.planner.step.fitting import MIN_OBJECTIVE_RUNS, fit_models, stated_sd_contradicted
 from guardband.planner.step.pool import candidate_pool
 from guardband.planner.step.explain import closest_miss, pick_explanations, unlikely_to_improve
 from guardband.planner.step.rates import objective_band, objective_scale, rate_incumbent
@@ -190,8 +190,9 @@ def _rounding_phase(ctx, pool: Pool, origin, scores_of, inc_value):
     origin = np.array([f"{o}, rounded" if m else str(o) for o, m in zip(origin, moved)]
                       + ["refined, rounded, grid neighbour"] * near.shape[0], dtype=object)
     return rounded, origin, [
-        f"every candidate was rounded to its factors' resolution ({rnd.describe()}; a mixture's total "
-        f"restored by largest remainders) and screened again: {int(moved.sum())} moved; "
+        f"every candidate was rounded to its factors' resolution ({rnd.describe()}"
+        + ("; a mixture's total restored by largest remainders" if rnd.mixture.any() else "")
+        + f") and screened again: {int(moved.sum())} moved; "
         f"{int(lost.sum())} of the {int(before.sum())} that passed before rounding fail after it and "
         f"cannot be proposed; {near.shape[0]} grid neighbours of the refined candidates were added"]
 
@@ -298,7 +299,8 @@ def prepare_step(protocol: Protocol, runs: RunsTable, *, seed: int, warm_start: 
                    **objective_scale(protocol))
     return PreparedStep(ctx=ctx, safe=safe, used=used, U_runs=U_runs, incumbent=incumbent, mode=mode,
                         inc_value=incumbent.get("latent", incumbent["value"]) if incumbent else None, rank_kw=rank_kw,
-                        scores_of=_scorer(protocol, mode, rank_kw, textbook), messages=models.warnings() + inc_messages,
+                        scores_of=_scorer(protocol, mode, rank_kw, textbook),
+                        messages=models.warnings() + stated_sd_contradicted(protocol, runs, U_runs) + inc_messages,
                         warm_start=warm_start, children=children)
 
 

@@ -191,12 +191,16 @@ def start(
                                       help="Write the design as CSV to this file (its notes and cautions "
                                            "to the same name with .notes.txt)."),
     seed: Optional[int] = typer.Option(None, "--seed", help="Random seed (default: the protocol's)."),
+    replace: bool = typer.Option(False, "--replace", help="Overwrite --out when it already exists and is "
+                                 "not empty (refused otherwise: it may be a runs file with measurements)."),
     format: Format = typer.Option(Format.table, "--format", "-f", help=FORMAT_HELP),
 ) -> None:
     """Make a starting design for a campaign with no runs yet, ready to fill in."""
     from guardband.planner.inputs.protocol import load_protocol
     from guardband.planner.app.workflow import cautions_of, start_design
 
+    if out is not None and not replace:
+        _refuse_to_overwrite(out)
     p = load_protocol(protocol)
     seed_used = seed if seed is not None else (p.seed if p.seed is not None else 0)
     with ProtocolError.naming(protocol):
@@ -221,6 +225,13 @@ def start(
         for n in notes:
             _show(f"note: {n}")
         _show(_cautions_block(cautions))
+
+
+def _refuse_to_overwrite(out: str) -> None:
+    """A starting design never silently replaces a file with content: it may hold measurements."""
+    if os.path.isfile(out) and not os.path.islink(out) and os.path.getsize(out) > 0:
+        raise OutputError(f"{out} already exists and is not empty (it may be a runs file with measurements); "
+                          "nothing was written: give another --out, or --replace to overwrite it")
 
 
 # -------------------------------------------------------------------- plan

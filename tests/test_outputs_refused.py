@@ -82,15 +82,15 @@ def test_start_refuses_a_write_protected_file(tmp_path):
     out = tmp_path / "design.csv"
     out.write_text("signed copy\n")
     os.chmod(out, 0o444)
-    res = _start(out)
+    res = run("start", PROTOCOL, "--runs", 3, "--out", out, "--replace")
     assert res.exit_code == EXIT_IO and f"{out} is write-protected" in res.stderr
     assert out.read_text() == "signed copy\n"
 
 
-def test_start_still_replaces_a_writable_regular_file(tmp_path):
+def test_start_still_replaces_a_writable_regular_file_when_asked(tmp_path):
     out = tmp_path / "design.csv"
     out.write_text("old\n")
-    assert _start(out).exit_code == 0
+    assert run("start", PROTOCOL, "--runs", 3, "--out", out, "--replace").exit_code == 0
     assert out.read_text().startswith("run_id,")
     assert (tmp_path / "design.notes.txt").read_text().startswith("Guardband starting design")
 
@@ -204,3 +204,23 @@ def test_write_protected_input_copies_with_the_same_bytes_are_left_alone(campaig
     assert {p.name: p.read_bytes() for p in (campaign / "inputs").iterdir()} == before
     assert all(stat.S_IMODE(p.stat().st_mode) == 0o444 for p in (campaign / "inputs").iterdir())
     assert run("verify", campaign / "decisions.jsonl", "--expect-count", 2).exit_code == 0
+
+
+def test_start_never_overwrites_a_file_that_may_hold_measurements(tmp_path):
+    """A starting design written over the lab's runs file would lose its measurements: refused
+    (exit 8, nothing changed) unless --replace says so."""
+    out = tmp_path / "runs.csv"
+    shutil.copy(RUNS, out)
+    before = snapshot(tmp_path)
+    res = _start(out)
+    assert res.exit_code == EXIT_IO
+    assert f"{out} already exists" in res.stderr and "--replace" in res.stderr
+    assert snapshot(tmp_path) == before
+    res = run("start", PROTOCOL, "--runs", 3, "--out", out, "--replace")
+    assert res.exit_code == 0 and out.read_text() != RUNS.read_text()
+
+
+def test_start_writes_onto_an_empty_file(tmp_path):
+    out = tmp_path / "design.csv"
+    out.write_text("")
+    assert _start(out).exit_code == 0 and out.read_text().strip()

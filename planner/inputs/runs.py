@@ -430,13 +430,38 @@ def _text_of(value: object) -> str:
 
 def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
                 stated: str | None) -> tuple[str | None, str | None]:
-    """The decimal mark of the text cells, and a problem when the file mixes them."""
+    """The decimal mark of the text cells, and a problem when the file mixes them, or when a
+    stated decimal comma meets a file that uses decimal points (None then: the cells are not
+    reported one by one)."""
+    if stated == ",":
+        first_dot, first_comma = _first_marks(grid, numeric_cols)
+        if first_dot and not first_comma:
+            i, name, s = first_dot
+            return None, (
+                f"the decimal mark is stated as ',' (--decimal ,), but the file appears to use decimal "
+                f"points ({grid.where(i)}, column {name}: {s!r}; no number has a decimal comma); "
+                "leave out --decimal, or state --decimal ."
+            )
     if stated is not None:
         return stated, None
     if grid.delimiter == "," or grid.sheet is not None:
         # a comma-separated file, or text in a workbook (whose numbers are
         # numbers): a comma inside a number is reported cell by cell
         return ".", None
+    first_dot, first_comma = _first_marks(grid, numeric_cols)
+    if first_dot and first_comma:
+        (i1, n1, s1), (i2, n2, s2) = first_dot, first_comma
+        return None, (
+            f"the file mixes decimal points ({grid.where(i1)}, column {n1}: {s1!r}) and decimal commas "
+            f"({grid.where(i2)}, column {n2}: {s2!r}); write every number the same way, or state the "
+            "decimal mark (--decimal . or --decimal ,)"
+        )
+    return ("," if first_comma else "."), None
+
+
+def _first_marks(grid: _Grid, numeric_cols: list[tuple[str, int]]) -> tuple[tuple | None, tuple | None]:
+    """The first text cell with a decimal point and the first with a decimal comma, each as
+    (row index, column name, text), or None."""
     first_dot = first_comma = None
     for i, row in enumerate(grid.rows[1:], start=1):
         for name, j in numeric_cols:
@@ -449,14 +474,7 @@ def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
                 first_comma = (i, name, s)
         if first_dot and first_comma:
             break
-    if first_dot and first_comma:
-        (i1, n1, s1), (i2, n2, s2) = first_dot, first_comma
-        return None, (
-            f"the file mixes decimal points ({grid.where(i1)}, column {n1}: {s1!r}) and decimal commas "
-            f"({grid.where(i2)}, column {n2}: {s2!r}); write every number the same way, or state the "
-            "decimal mark (--decimal . or --decimal ,)"
-        )
-    return ("," if first_comma else "."), None
+    return first_dot, first_comma
 
 
 def _number(value: object, decimal: str | None) -> tuple[float | None, str | None]:
@@ -626,7 +644,8 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         problems.append(mixed)
     values = _read_rows(grid, protocol, columns, decimal, problems)
     problems += to_protocol_units(protocol, values.X, values.Y, columns.convert, values.wheres)
-    counts = binomial_counts(protocol, values.Y, values.wheres, problems)
+    counts = binomial_counts(protocol, values.Y, values.wheres, problems,
+                             absent=set(protocol.runs_columns) - set(columns.at))
     flags += factor_value_flags(protocol, values.X, values.wheres, columns.convert)
     problems += mixture_total_problems(protocol, values.X, values.wheres, columns.convert)
     if problems:

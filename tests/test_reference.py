@@ -84,6 +84,18 @@ def test_committed_schema_is_what_the_generator_writes():
         "docs/protocol.schema.json is stale: run `guardband reference -f json-schema --out docs/protocol.schema.json`"
 
 
+def test_the_reference_says_when_an_empty_design_space_is_found(tmp_path):
+    """The protocol is read without complaint; the commands that use it refuse it, naming the file."""
+    bad = BAD / "protocol_empty_design_space.toml"
+    parse_protocol(_toml(bad))  # reading does not look for an empty design space
+    res = CliRunner().invoke(app, ["check", str(bad)])
+    assert res.exit_code == 3 and "protocol_empty_design_space.toml: the design space is empty" in res.stderr
+    text = " ".join(protocol_reference_markdown().split())
+    read_checks = text[:text.index("made when the protocol is read")]
+    assert "empty" not in read_checks[read_checks.rindex("Cross-checks"):]
+    assert "`check`, `start`, `plan` and `judge` refuse an empty one" in text
+
+
 def test_reference_command_writes_both(tmp_path):
     runner = CliRunner()
     res = runner.invoke(app, ["reference"])

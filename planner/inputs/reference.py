@@ -45,7 +45,7 @@ names used once, rules naming known factors) are made when the protocol is
 read; their messages name the field. Whether the design space is empty (no
 setting meets every bound and rule together) is found later: `check`,
 `start`, `plan` and `judge` refuse an empty one before computing anything
-(exit code 3), naming the protocol file and the rules that conflict.
+(exit code 3), naming the protocol file and the bounds and rules that conflict.
 
 The limits and thresholds in any protocol are choices for the study's
 qualified people under the applicable regulations, pharmacopoeia and local

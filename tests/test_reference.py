@@ -264,6 +264,20 @@ def test_percent_bounds_get_one_hint_to_set_total_100():
     assert parse_protocol(data).mixture.total == 100.0  # what the hint says, accepted
 
 
+@pytest.mark.parametrize("table", ["forbidden", "start"])
+def test_a_name_with_a_space_in_a_region_rule_gets_its_quoting(table):
+    """Regions hold a list of rules (a constraint holds one); the hint quotes the one to change."""
+    data = _blend()
+    data["factors"][1]["name"] = "mcc grade"
+    data["constraints"][0]["rule"] = "`mcc grade` / lactose <= 4"
+    if table == "forbidden":
+        data["screen"]["forbidden"] = [{"name": "x", "rules": ["mcc grade >= 0.5", "force >= 15"]}]
+    else:
+        data["start"] = {"rules": ["mcc grade <= 0.5", "force <= 15"]}
+    msg = _message(data)
+    assert 'backquotes: write "`mcc grade` ' in msg and "force" not in msg.split("write", 1)[1], msg
+
+
 @pytest.mark.parametrize("name", ["mcc powder", "mcc [pH]", "mcc-101", "lactose-free mcc"])
 def test_a_name_with_a_space_or_sign_gets_a_quoting_that_is_accepted(name):
     data = _blend()

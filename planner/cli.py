@@ -166,6 +166,9 @@ def check(
         if p.limits:
             _show("limits: " + "; ".join(
                 f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
+        else:
+            _show("limits: none; the safety screen checks nothing (every candidate passes it), and only "
+                  "the factors' bounds and the constraints keep runs in the design space")
         _show(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
                    f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
         for line in data["guidance"]:

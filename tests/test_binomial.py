@@ -266,6 +266,22 @@ def test_rate_column_refused_with_exit_code_4(tmp_path):
     assert not (tmp_path / "o").exists()  # nothing written
 
 
+@pytest.mark.parametrize("missing", ["dlt_subjects", "dlt_events"])
+def test_a_missing_count_column_is_one_problem_not_one_per_row(tmp_path, missing):
+    """The absent column is the one cause; no row is blamed for the count it cannot hold."""
+    full = HEADER + "R1,5,1,20,1,6\nR2,10,1,25,0,6\nR3,10,2,30,0,3\n"
+    drop = HEADER.strip().split(",").index(missing)
+    runs = tmp_path / "runs.csv"
+    runs.write_text("".join(",".join(c for j, c in enumerate(line.split(",")) if j != drop) + "\n"
+                            for line in full.splitlines()))
+    res = CliRunner().invoke(app, ["plan", str(DOSE), str(runs), "--out", str(tmp_path / "o")])
+    assert res.exit_code == 4
+    assert "runs.csv: 1 problem found" in res.stderr, res.stderr
+    assert f"missing column {missing!r}" in res.stderr
+    assert "give both counts" not in res.stderr
+    assert not (tmp_path / "o").exists()  # nothing written
+
+
 def test_starting_design_template_has_count_columns(tmp_path):
     res = CliRunner().invoke(app, ["start", str(DOSE), "--runs", "4", "--out", str(tmp_path / "start.csv")])
     assert res.exit_code == 0, res.output

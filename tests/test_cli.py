@@ -49,6 +49,22 @@ def test_check_every_example_protocol(protocol):
         assert f["reach_low"] <= f["centre"] + 1e-9 and f["centre"] <= f["reach_high"] + 1e-9
 
 
+def test_check_says_a_protocol_without_limits_leaves_the_screen_nothing_to_check(tmp_path):
+    lines = (PROTOCOLS / "tablet_blend.toml").read_text().splitlines()
+    kept, skip = [], False
+    for line in lines:  # drop every [[limits]] table
+        if line.startswith("["):
+            skip = line.strip() == "[[limits]]"
+        if not skip:
+            kept.append(line)
+    bare = tmp_path / "no_limits.toml"
+    bare.write_text("\n".join(kept) + "\n")
+    res = run("check", bare)
+    assert res.exit_code == 0, res.output
+    assert "limits: none; the safety screen checks nothing" in res.stdout
+    assert "the safety screen checks nothing" not in run("check", PROTOCOLS / "tablet_blend.toml").stdout
+
+
 def test_check_empty_design_space(tmp_path):
     text = (PROTOCOLS / "tablet_blend.toml").read_text()
     # a ratio rule that cannot hold together with the bounds of mcc and lactose

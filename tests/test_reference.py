@@ -84,6 +84,18 @@ def test_committed_schema_is_what_the_generator_writes():
         "docs/protocol.schema.json is stale: run `guardband reference -f json-schema --out docs/protocol.schema.json`"
 
 
+def test_the_reference_says_when_an_empty_design_space_is_found(tmp_path):
+    """The protocol is read without complaint; the commands that use it refuse it, naming the file."""
+    bad = BAD / "protocol_empty_design_space.toml"
+    parse_protocol(_toml(bad))  # reading does not look for an empty design space
+    res = CliRunner().invoke(app, ["check", str(bad)])
+    assert res.exit_code == 3 and "protocol_empty_design_space.toml: the design space is empty" in res.stderr
+    text = " ".join(protocol_reference_markdown().split())
+    read_checks = text[:text.index("made when the protocol is read")]
+    assert "empty" not in read_checks[read_checks.rindex("Cross-checks"):]
+    assert "`check`, `start`, `plan` and `judge` refuse an empty one" in text
+
+
 def test_reference_command_writes_both(tmp_path):
     runner = CliRunner()
     res = runner.invoke(app, ["reference"])
@@ -250,6 +262,20 @@ def test_percent_bounds_get_one_hint_to_set_total_100():
     data["mixture"]["total"] = 100.0
     data["mixture"]["tolerance"] = 0.2
     assert parse_protocol(data).mixture.total == 100.0  # what the hint says, accepted
+
+
+@pytest.mark.parametrize("table", ["forbidden", "start"])
+def test_a_name_with_a_space_in_a_region_rule_gets_its_quoting(table):
+    """Regions hold a list of rules (a constraint holds one); the hint quotes the one to change."""
+    data = _blend()
+    data["factors"][1]["name"] = "mcc grade"
+    data["constraints"][0]["rule"] = "`mcc grade` / lactose <= 4"
+    if table == "forbidden":
+        data["screen"]["forbidden"] = [{"name": "x", "rules": ["mcc grade >= 0.5", "force >= 15"]}]
+    else:
+        data["start"] = {"rules": ["mcc grade <= 0.5", "force <= 15"]}
+    msg = _message(data)
+    assert 'backquotes: write "`mcc grade` ' in msg and "force" not in msg.split("write", 1)[1], msg
 
 
 @pytest.mark.parametrize("name", ["mcc powder", "mcc [pH]", "mcc-101", "lactose-free mcc"])

@@ -227,6 +227,43 @@ def test_a_chosen_run_that_truly_broke_a_limit_is_never_within_reach_of_the_opti
     assert cell.row()["reached"] == 0
 
 
+def test_a_chosen_run_that_truly_broke_a_limit_is_said_not_given_a_negative_gap():
+    """The true gap is taken over the campaigns whose chosen run truly met every limit; a campaign
+    whose chosen run truly broke one (gap -0.01 below the constrained optimum) is counted apart."""
+    from guardband.planner.simulation.loop import CampaignHistory
+    from guardband.planner.simulation.results import SimulationResult
+    from guardband.planner.simulation.sweep import SweepCell, SweepResult
+
+    problem = get_problem("gramacy")  # minimise x1 + x2 under c1 <= 0, c2 <= 0
+    protocol = combine_settings(problem, FAST)
+    opt = problem.optimum
+    ok = np.array([-0.1, -0.1, -0.1])
+
+    def history(f, true_c1):
+        f = opt + np.array(f)
+        return CampaignHistory(
+            X=np.zeros((3, 2)), Y={"f": f, "c1": ok, "c2": ok}, planned=np.array([False, False, True]),
+            broke_limit=np.asarray(true_c1) > 0, best_safe=np.minimum.accumulate(f),
+            promised=np.array([np.nan, np.nan, 0.95]), stalled=False, T={"f": f, "c1": np.asarray(true_c1), "c2": ok})
+
+    broke = history([0.3, -0.01, 0.3], [-0.1, 0.2, -0.1])  # the chosen (second) run truly broke c1
+    met = history([0.3, 0.2, 0.25], [-0.1, -0.1, -0.1])  # the chosen run, gap 0.2, truly met both
+    result = SimulationResult(problem=problem, protocol=protocol, strategies=("protocol",), same_as={},
+                              histories={"protocol": [broke, met]}, n_start=2, budget=1, seeds=2, base_seed=0,
+                              noise_scale=1.0, noise={}, workers=1)
+    final = result.final_rows()[0]
+    # by hand: the one campaign whose chosen run met every limit has gap 0.2
+    assert final["gap_true_median"] == pytest.approx(0.2) and final["gap_true_q25"] == pytest.approx(0.2)
+    assert final["chosen_broke"] == 1
+    assert "1/2 chosen broke a limit" in result.table_text() and "-0.01" not in result.table_text()
+    sweep = SweepResult((SweepCell(Setting(), problem.name, result, within=0.05),), seeds=2, base_seed=0,
+                        noise_scale=1.0, runner="this process")
+    assert sweep.rows()[0]["chosen_broke"] == 1
+    text = sweep.table_text()
+    assert "0.2 [0.2, 0.2], 1/2 chosen broke a limit" in text and "-0.01" not in text
+    assert "inf: no run was measured within every limit" in text
+
+
 def test_runs_until_within_counts_planned_runs(local):
     cell = local.cells[0]
     gap = cell.result.trajectories("protocol")["gap_true"]

@@ -3,7 +3,7 @@ a name with a space in a rule.
 
 Each function returns the extra words of a message (or ""), so that the
 message itself stays where the mistake is found (``protocol.py``,
-``runchecks.py``). They read the pydantic models, never a list of their own.
+``rulechecks.py``, ``runchecks.py``). They read the pydantic models, never a list of their own.
 """
 
 from __future__ import annotations

@@ -26,8 +26,9 @@ from guardband.planner import settings
 from guardband.planner.errors import ProtocolError
 from guardband.planner.inputs.names import check_visible, name_key, normal_text, shown
 from guardband.planner.inputs.reading import read_toml
-from guardband.planner.inputs.hints import choice_hint, percent_total_hint, quoted_rule, unknown_key_hint
-from guardband.planner.inputs.rules import LinearRule, RuleSyntaxError, parse_rule
+from guardband.planner.inputs.hints import choice_hint, percent_total_hint, unknown_key_hint
+from guardband.planner.inputs.rulechecks import check_rules
+from guardband.planner.inputs.rules import LinearRule, parse_rule
 from guardband.planner.inputs.protocol_tables import (  # noqa: F401 - re-exported
     Batch,
     Escalation,
@@ -737,32 +738,6 @@ def _plain(err: dict, root: type[BaseModel] | None = None, reference: str = "doc
     return msg
 
 
-def _rule_fields(p: Protocol):
-    """(field path, rule text) for every rule in the protocol."""
-    for k, c in enumerate(p.constraints):
-        yield f"constraints[{k}].rule", c, "parsed"
-    for k, f in enumerate(p.screen.forbidden):
-        yield f"screen.forbidden[{k}].rules", f, "parsed"
-    if p.start is not None:
-        yield "start.rules", p.start, "parsed"
-
-
-def _quoting_hint(holder, names) -> str:
-    """The rules of ``holder`` with the factor names that need backquotes quoted, if that reads."""
-    texts = (holder.rule,) if isinstance(holder, Rule) else holder.rules
-    suggested = [quoted_rule(t, names) or t for t in texts]
-    if suggested == list(texts):
-        return ""
-    try:
-        read = [r for t in suggested for r in parse_rule(t)]
-    except RuleSyntaxError:
-        return ""
-    if any(n not in names for r in read for n in r.names):
-        return ""
-    shown = "; ".join(f'"{t}"' for t, old in zip(suggested, texts) if t != old)
-    return f"a factor name with a space or sign goes in backquotes: write {shown}"
-
-
 def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
     """Validate a protocol given as a dict (already parsed TOML).
 
@@ -777,34 +752,7 @@ def parse_protocol(data: dict, *, source: str = "protocol") -> Protocol:
     except ValidationError as exc:
         lines = [f"{source}: {_format_loc(e['loc'])}: {_plain(e)}" for e in exc.errors()]
         raise ProtocolError("\n".join(lines)) from None
-    names = set(protocol.factor_names)
-    factor = {f.name: f for f in protocol.factors}
-    for path, holder, attr in _rule_fields(protocol):
-        try:
-            rules = getattr(holder, attr)
-        except RuleSyntaxError as exc:
-            hint = _quoting_hint(holder, names)
-            raise ProtocolError(f"{source}: {path}: cannot read the rule: "
-                                + (f"{exc.message}; {hint}" if hint else str(exc))) from None
-        for rule in rules:
-            unknown = [n for n in rule.names if n not in names]
-            if unknown:
-                hint = _quoting_hint(holder, names)
-                raise ProtocolError(
-                    f"{source}: {path}: rule {rule.text!r} names unknown factor(s) "
-                    f"{', '.join(repr(u) for u in unknown)}; "
-                    + (hint if hint else f"known factors: {', '.join(sorted(names))}")
-                )
-            for coefs, const in rule.divisors:
-                low = const + sum(
-                    min(c * factor[n].low, c * factor[n].high) for n, c in coefs
-                )
-                if low < 0:
-                    raise ProtocolError(
-                        f"{source}: {path}: rule {rule.text!r} divides by a quantity that can be "
-                        f"negative within the factor bounds (as low as {low:g}); write the rule "
-                        "without division"
-                    )
+    check_rules(protocol, source)
     return protocol
 
 

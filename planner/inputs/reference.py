@@ -41,8 +41,11 @@ letters, digits and `_` is quoted in backquotes: `` `name with space` >= 0.1 ``.
 
 Cross-checks beyond single settings (a discrete factor needs `levels`, lower
 not above upper, the components' bounds able to reach the mixture total,
-names used once, rules naming known factors, a design space that is not
-empty) are made when the protocol is read; their messages name the field.
+names used once, rules naming known factors) are made when the protocol is
+read; their messages name the field. Whether the design space is empty (no
+setting meets every bound and rule together) is found later: `check`,
+`start`, `plan` and `judge` refuse an empty one before computing anything
+(exit code 3), naming the protocol file and the bounds and rules that conflict.
 
 The limits and thresholds in any protocol are choices for the study's
 qualified people under the applicable regulations, pharmacopoeia and local

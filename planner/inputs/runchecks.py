@@ -191,7 +191,7 @@ def _count_problem(events: float, subjects: float) -> str | None:
 
 
 def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[str],
-                    problems: list[str]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+                    problems: list[str], absent=()) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Replace, in ``Y``, each binomial response's count columns by its rate; return the counts.
 
     Parameters
@@ -205,11 +205,15 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
         Each run as messages name it.
     problems : list of str
         Appended to, naming the row and both columns.
+    absent : collection of str
+        Count columns the header lacks (the header's check names them once): their
+        rows are not judged, as no row could hold the count.
     """
     counts = {}
     for lim in protocol.binomial_responses:  # the objective and the limits given as counts
         events, subjects = Y.pop(lim.events), Y.pop(lim.subjects)
-        for k, where in enumerate(wheres):
+        judged = wheres if lim.events not in absent and lim.subjects not in absent else []
+        for k, where in enumerate(judged):
             problem = _count_problem(events[k], subjects[k])
             if problem:
                 problems.append(f"{where}, columns {lim.events}/{lim.subjects}: {problem}")

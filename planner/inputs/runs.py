@@ -36,11 +36,9 @@ flagged.
 from __future__ import annotations
 
 import csv
-import datetime as _dt
 import difflib
 import hashlib
 import io
-import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -49,11 +47,10 @@ import numpy as np
 
 from guardband.planner import settings
 from guardband.planner.errors import RunsDataError
+from guardband.planner.inputs.cells import HAS_COMMA, HAS_DOT, cell_number, cell_text
 from guardband.planner.inputs.names import check_visible, name_key, normal_text
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.reading import read_input
-from guardband.planner.inputs.workbook import Formula as _Formula
-from guardband.planner.inputs.workbook import SheetError as _SheetError
 from guardband.planner.inputs.workbook import read_sheet
 from guardband.planner.inputs.runchecks import (
     binomial_counts,
@@ -88,14 +85,6 @@ _HEADER_UNIT = re.compile(r"^(?P<name>.*?)\s*\[(?P<unit>[^\]]*)\]\s*$")
 _PAREN_UNIT = re.compile(r"^(?P<name>.*?)\s*\((?P<unit>[^)]*)\)\s*$")
 _SEP_LINE = re.compile(r"^\s*sep=(.)\s*$")
 _FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r", "\0")
-_EXP = r"(?:[eE][+-]?[0-9]+)?"
-_NUM_DOT = re.compile(rf"^[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+){_EXP}$")
-_NUM_COMMA = re.compile(rf"^[+-]?(?:[0-9]+,?[0-9]*|,[0-9]+){_EXP}$")
-_HAS_DOT = re.compile(rf"^[+-]?(?:[0-9]*\.[0-9]+|[0-9]+\.){_EXP}$")
-_HAS_COMMA = re.compile(rf"^[+-]?(?:[0-9]*,[0-9]+|[0-9]+,){_EXP}$")
-_GROUPED = re.compile(r"^[+-]?[0-9]{1,3}(?:[.,' \u00a0\u202f][0-9]{3})+(?:[.,][0-9]+)?$")
-_WITH_UNIT = re.compile(r"^(?P<num>[+-]?[0-9][0-9.,]*)\s*(?P<unit>[A-Za-zµμ°%‰][^0-9]*)$")
-_NOT_FINITE = {"nan", "inf", "-inf", "+inf", "infinity", "-infinity", "+infinity"}
 _ZIP_MAGIC = b"PK\x03\x04"
 _OLE_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
 
@@ -413,42 +402,28 @@ def _read_xlsx(raw: bytes, *, source: str, sheet: str | None) -> _Grid:
     return _Grid(rows=rows[skip:], row_numbers=numbers[skip:], sheet=_sheet_ref(title))
 
 
-# ------------------------------------------------------------ cells
-def _text_of(value: object) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, str):
-        return value.strip()
-    if isinstance(value, bool):
-        return "TRUE" if value else "FALSE"
-    if isinstance(value, float) and value.is_integer() and abs(value) < 1e15:
-        return str(int(value))
-    if isinstance(value, (_Formula, _SheetError)):
-        return ""
-    return str(value)
-
-
+# ------------------------------------------------------------ the decimal mark
 def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
                 stated: str | None) -> tuple[str | None, str | None]:
-    """The decimal mark of the text cells, and a problem when the file mixes them."""
+    """The decimal mark of the text cells, and a problem when the file mixes them, or when a
+    stated decimal comma meets a file that uses decimal points (None then: the cells are not
+    reported one by one)."""
+    if stated == ",":
+        first_dot, first_comma = _first_marks(grid, numeric_cols)
+        if first_dot and not first_comma:
+            i, name, s = first_dot
+            return None, (
+                f"the decimal mark is stated as ',' (--decimal ,), but the file appears to use decimal "
+                f"points ({grid.where(i)}, column {name}: {s!r}; no number has a decimal comma); "
+                "leave out --decimal, or state --decimal ."
+            )
     if stated is not None:
         return stated, None
     if grid.delimiter == "," or grid.sheet is not None:
         # a comma-separated file, or text in a workbook (whose numbers are
         # numbers): a comma inside a number is reported cell by cell
         return ".", None
-    first_dot = first_comma = None
-    for i, row in enumerate(grid.rows[1:], start=1):
-        for name, j in numeric_cols:
-            if j >= len(row) or not isinstance(row[j], str):
-                continue
-            s = row[j].strip()
-            if first_dot is None and _HAS_DOT.match(s):
-                first_dot = (i, name, s)
-            elif first_comma is None and _HAS_COMMA.match(s):
-                first_comma = (i, name, s)
-        if first_dot and first_comma:
-            break
+    first_dot, first_comma = _first_marks(grid, numeric_cols)
     if first_dot and first_comma:
         (i1, n1, s1), (i2, n2, s2) = first_dot, first_comma
         return None, (
@@ -459,47 +434,22 @@ def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
     return ("," if first_comma else "."), None
 
 
-def _number(value: object, decimal: str | None) -> tuple[float | None, str | None]:
-    """A cell as a number: (value, None), (None, None) when empty, or (None, problem).
-
-    The problem "" means "already reported for the whole file".
-    """
-    if value is None:
-        return None, None
-    if isinstance(value, _Formula):
-        return None, (
-            f"the cell holds a formula ({value.text}) with no saved result; open the workbook in a "
-            "spreadsheet program, let it calculate, save it, and try again"
-        )
-    if isinstance(value, _SheetError):
-        return None, f"the cell holds the spreadsheet error {value.code}"
-    if isinstance(value, bool):
-        return None, f"{'TRUE' if value else 'FALSE'} is a true/false value, not a number"
-    if isinstance(value, (_dt.datetime, _dt.date, _dt.time, _dt.timedelta)):
-        return None, f"{value} is a date or time, not a number (is the cell formatted as a date?)"
-    if isinstance(value, (int, float)):
-        v = float(value)
-        if not math.isfinite(v):
-            return None, f"{value!r} is not a finite number"
-        return _in_range(v, repr(value))
-    s = str(value).strip()
-    if not s:
-        return None, None
-    v = None
-    if decimal == "." and _NUM_DOT.match(s):
-        v = float(s)
-    elif decimal == "," and _NUM_COMMA.match(s):
-        v = float(s.replace(",", "."))
-    elif decimal is None:
-        if re.fullmatch(rf"[+-]?[0-9]+{_EXP}", s):
-            v = float(s)
-        elif _NUM_DOT.match(s) or _NUM_COMMA.match(s):
-            return None, ""
-    if v is None:
-        return None, _why_not_number(s, decimal)
-    if not math.isfinite(v):  # "1e400" reads as infinity
-        return None, f"{s!r} is too large to be a finite number"
-    return _in_range(v, repr(s))
+def _first_marks(grid: _Grid, numeric_cols: list[tuple[str, int]]) -> tuple[tuple | None, tuple | None]:
+    """The first text cell with a decimal point and the first with a decimal comma, each as
+    (row index, column name, text), or None."""
+    first_dot = first_comma = None
+    for i, row in enumerate(grid.rows[1:], start=1):
+        for name, j in numeric_cols:
+            if j >= len(row) or not isinstance(row[j], str):
+                continue
+            s = row[j].strip()
+            if first_dot is None and HAS_DOT.match(s):
+                first_dot = (i, name, s)
+            elif first_comma is None and HAS_COMMA.match(s):
+                first_comma = (i, name, s)
+        if first_dot and first_comma:
+            break
+    return first_dot, first_comma
 
 
 def too_many_runs(source: str, n: int, max_runs: int, *, at_least: bool = False) -> str:
@@ -512,45 +462,6 @@ def too_many_runs(source: str, n: int, max_runs: int, *, at_least: bool = False)
             f"time grows with the cube of the number of runs; {settings.MAX_RUNS_DEFAULT:,} runs took about "
             f"half a minute on a 2-core machine). To plan with them all, raise the limit: "
             f"guardband plan ... --max-runs {n}")
-
-
-def too_large(text: str) -> str:
-    """The problem text for a value beyond ``settings.MAX_INPUT_MAGNITUDE``."""
-    return (f"{text} is larger in size than the {settings.MAX_INPUT_MAGNITUDE:.0e} the tool computes with "
-            "safely; state the column's unit in the header (e.g. 'name [mg]') or rescale it")
-
-
-def _in_range(v: float, text: str) -> tuple[float | None, str | None]:
-    if abs(v) > settings.MAX_INPUT_MAGNITUDE:
-        return None, too_large(text)
-    return v, None
-
-
-def _why_not_number(s: str, decimal: str | None) -> str:
-    low = s.lower()
-    if low in _NOT_FINITE:
-        return f"{s!r} is not a finite number"
-    if s[0] in "<>≤≥":
-        return (
-            f"{s!r} is a censored value (below or above a reporting limit), not a measurement; "
-            "the tool cannot use it: enter a number or leave the cell empty"
-        )
-    if _GROUPED.match(s) and ("." in s and "," in s or re.search(r"[' \u00a0\u202f]", s)):
-        return f"{s!r} looks like a number with thousands separators; write it without them"
-    if decimal == "." and _HAS_COMMA.match(s) or decimal == "." and _GROUPED.match(s):
-        return (
-            f"{s!r} has a comma: a decimal comma or a thousands separator? write it with a "
-            "decimal point, or state the decimal mark (--decimal ,)"
-        )
-    if decimal == "," and (_HAS_DOT.match(s) or _GROUPED.match(s)):
-        return f"{s!r} has a decimal point, but this file's decimal mark is ','"
-    m = _WITH_UNIT.match(s)
-    if m:
-        return (
-            f"{s!r} holds a unit or symbol; write the number only and state the unit in the header "
-            f"(e.g. 'name [{m.group('unit').strip()}]')"
-        )
-    return f"{s!r} is not a number"
 
 
 # ------------------------------------------------------------ checking
@@ -626,7 +537,8 @@ def _check_grid(grid: _Grid, protocol: Protocol, *, source: str, sha256: str,
         problems.append(mixed)
     values = _read_rows(grid, protocol, columns, decimal, problems)
     problems += to_protocol_units(protocol, values.X, values.Y, columns.convert, values.wheres)
-    counts = binomial_counts(protocol, values.Y, values.wheres, problems)
+    counts = binomial_counts(protocol, values.Y, values.wheres, problems,
+                             absent=set(protocol.runs_columns) - set(columns.at))
     flags += factor_value_flags(protocol, values.X, values.wheres, columns.convert)
     problems += mixture_total_problems(protocol, values.X, values.wheres, columns.convert)
     if problems:
@@ -705,7 +617,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
 
 def _header_name(cell: object, known: set[str]) -> tuple[str, str | None]:
     """A header cell as (name, unit stated in brackets or None)."""
-    text = normal_text(_text_of(cell))
+    text = normal_text(cell_text(cell))
     # a name that itself ends in brackets ("x [1]") is taken whole
     name, unit = (text, None) if text in known else _split_header(text)
     if name not in known and name[:1] == "'" and name[1:2] in _FORMULA_PREFIXES and name[1:] in known:
@@ -738,7 +650,7 @@ def _read_rows(grid: _Grid, protocol: Protocol, columns: _Columns, decimal: str 
         rid = _run_id(grid, i, columns, seen_ids, problems)
         values.run_ids.append(rid)
         values.wheres.append(grid.where(i, rid))
-        values.notes.append(_text_of(_cell(row, columns.at[NOTES])) if NOTES in columns.at else "")
+        values.notes.append(cell_text(_cell(row, columns.at[NOTES])) if NOTES in columns.at else "")
         values.X[k] = _row_numbers(grid, i, rid, protocol.factor_names, columns, decimal, problems,
                                    empty="the factor value is empty")
         y = _row_numbers(grid, i, rid, protocol.runs_columns, columns, decimal, problems,
@@ -760,7 +672,7 @@ def _run_id(grid: _Grid, i: int, columns: _Columns, seen: dict[str, tuple[str, i
     if RUN_ID not in columns.at:
         return ""
     j = columns.at[RUN_ID]
-    rid = normal_text(_text_of(_cell(grid.rows[i], j)))
+    rid = normal_text(cell_text(_cell(grid.rows[i], j)))
     try:
         check_visible(rid, "run id")
     except ValueError as exc:
@@ -790,7 +702,7 @@ def _row_numbers(grid: _Grid, i: int, rid: str, names, columns: _Columns, decima
         if name not in columns.at:
             continue
         j = columns.at[name]
-        v, problem = _number(_cell(grid.rows[i], j), decimal)
+        v, problem = cell_number(_cell(grid.rows[i], j), decimal)
         if problem is None and v is None and empty:
             problems.append(f"{grid.at(i, j, name, rid)}: {empty}")
         elif problem:

@@ -140,13 +140,14 @@ def sweep_html(result, *, title: str, kind: str) -> str:
 
     noisy = result.noise_scale > 0
     lo_k, med_k, hi_k = _gap_keys(noisy)
-    from guardband.planner.simulation.results import _fmt, _pct
+    from guardband.planner.simulation.results import _fmt, _pct, true_gap_band
     from guardband.planner.simulation.sweep import _bin_label
 
     word = "true gap" if noisy else "gap"
     header = ["setting", "scenario", f"{word} (median [IQR])", f"{word} halfway", "broke a limit", "runs until within",
               "stalled", "promised", "met"]
-    rows = [[r["setting"], r["scenario"], f"{_fmt(r[med_k])} [{_fmt(r[lo_k])}, {_fmt(r[hi_k])}]",
+    rows = [[r["setting"], r["scenario"], true_gap_band(r, r["seeds"]) if noisy else
+             f"{_fmt(r[med_k])} [{_fmt(r[lo_k])}, {_fmt(r[hi_k])}]",
              _fmt(r[med_k + "_halfway"]), _pct(r["broken_pooled"]),
              f"{_fmt(r['runs_until_within_median'])} ({r['reached']}/{r['seeds']} within {_fmt(r['within'])})",
              f"{r['stalled']}/{r['seeds']}", _fmt(r["promised_joint_mean"]), _fmt(r["observed_met_share"])]

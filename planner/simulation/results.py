@@ -7,7 +7,9 @@ the first ``n_start``, the same for every strategy), over seeds: the best
 measured objective among runs whose measured responses met every limit
 (the lab's view), the gap to the known optimum (positive is worse; no safe
 run counts as an infinite gap) and the share of planned runs that broke a
-limit by the true responses; medians and quartiles. For the planner
+limit by the true responses; medians and quartiles. The true gap at the
+run the lab would pick is taken over the campaigns whose chosen run truly
+met every limit; those whose chosen run truly broke one are counted apart. For the planner
 strategies, the mean joint figure promised by the screen against the
 observed share of planned runs that met every limit (calibration).
 """
@@ -109,7 +111,8 @@ class SimulationResult:
             among runs measured within every limit; equal to ``gap`` without
             noise; inf before a safe run), ``chosen_met`` (whether that run's
             *true* values met every limit: a run measured within the limits
-            may truly have broken one, and then its gap can be negative).
+            may truly have broken one, and then its gap can be negative),
+            ``chosen_broke`` (there is a chosen run and its true values broke a limit).
         """
         sign = -1.0 if self.protocol.maximize else 1.0
         obj = self.protocol.objective.name
@@ -137,7 +140,7 @@ class SimulationResult:
         gap = np.where(np.isnan(best), np.inf, sign * (best - optimum) + 0.0)  # no -0
         gap_true = np.where(np.isnan(chosen_true), np.inf, sign * (chosen_true - optimum) + 0.0)
         return {"best": best, "gap": gap, "broken": broken, "made": made, "gap_true": gap_true,
-                "chosen_met": chosen_met}
+                "chosen_met": chosen_met, "chosen_broke": np.isfinite(chosen_true) & ~chosen_met}
 
     def checkpoints(self) -> list[int]:
         """Planned-run counts shown in the table: 0, about a quarter, half, three quarters, all."""
@@ -153,7 +156,8 @@ class SimulationResult:
             tr = self.trajectories(st)
             for k in counts:
                 b, g, r = _quantiles(tr["best"][:, k]), _quantiles(tr["gap"][:, k]), _quantiles(tr["broken"][:, k])
-                gt = _quantiles(tr["gap_true"][:, k])
+                # a chosen run that truly broke a limit has no gap (it may lie below the optimum)
+                gt = _quantiles(np.where(tr["chosen_broke"][:, k], np.nan, tr["gap_true"][:, k]))
                 made = int(tr["made"][:, k].sum())
                 pooled = (float(np.nansum(tr["broken"][:, k] * tr["made"][:, k]) / made)
                           if made else float("nan"))
@@ -168,6 +172,7 @@ class SimulationResult:
                     "broken_pooled": pooled,
                     "runs_made": made,
                     "no_safe_run": int(np.sum(np.isnan(tr["best"][:, k]))),
+                    "chosen_broke": int(np.sum(tr["chosen_broke"][:, k])),
                 })
         return rows
 
@@ -230,7 +235,8 @@ class SimulationResult:
     # -------------------------------------------------------------- output
     CSV_COLUMNS = ("strategy", "planned_runs", "seeds", "best_q25", "best_median", "best_q75",
                    "gap_q25", "gap_median", "gap_q75", "gap_true_q25", "gap_true_median", "gap_true_q75",
-                   "broken_q25", "broken_median", "broken_q75", "broken_pooled", "runs_made", "no_safe_run")
+                   "broken_q25", "broken_median", "broken_q75", "broken_pooled", "runs_made", "no_safe_run",
+                   "chosen_broke")
 
     def description(self) -> list[str]:
         """Lines saying what was simulated (for comments and the terminal)."""
@@ -286,7 +292,7 @@ class SimulationResult:
             # value at the run the lab would pick is the fair gap
             head1.insert(3, "true gap at the chosen run")
             for row, r in zip(rows1, final):
-                row.insert(3, band(r["gap_true_q25"], r["gap_true_median"], r["gap_true_q75"]))
+                row.insert(3, true_gap_band(r, r["seeds"]))
         counts = self.checkpoints()
         by = {(r["strategy"], r["planned_runs"]): r for r in self.summary_rows(counts)}
         head2 = ["median gap after k planned runs"] + [f"k={k}" for k in counts]
@@ -295,8 +301,8 @@ class SimulationResult:
         rows3 = [[_label(r), _fmt(r["promised_joint_mean"]), _fmt(r["observed_met_share"]), r["n_promised"]]
                  for r in final if r["n_promised"]]
         parts = ["\n".join(self.description()), "",
-                 f"after {self.budget} planned runs:", render_table(head1, rows1, max_width=60), "",
-                 render_table(head2, rows2)]
+                 f"after {self.budget} planned runs:", render_table(head1, rows1, max_width=60),
+                 gap_legend(self.noise_scale > 0), "", render_table(head2, rows2)]
         if rows3:
             parts += ["", "calibration of the screen (planned runs, all seeds):", render_table(head3, rows3)]
         head4 = ["strategy", "planned runs worse than the incumbent", "mean shortfall", "runs"]
@@ -328,6 +334,23 @@ class SimulationResult:
             "cautions": list(self.cautions()),
         }
 
+
+
+def true_gap_band(row: dict, seeds: int, prefix: str = "gap_true_") -> str:
+    """A row's true gap as "median [q25, q75]", saying how many chosen runs truly broke a limit."""
+    text = f"{_fmt(row[prefix + 'median'])} [{_fmt(row[prefix + 'q25'])}, {_fmt(row[prefix + 'q75'])}]"
+    return text + (f", {row['chosen_broke']}/{seeds} chosen broke a limit" if row["chosen_broke"] else "")
+
+
+def gap_legend(noisy: bool) -> str:
+    """What the gap figures of a table mean, and what ``inf`` means."""
+    if not noisy:
+        return ("gap: the best objective among runs that met every limit, from the known optimum (positive "
+                "is worse); inf: no run met every limit")
+    return ("true gap: the true objective at the chosen run (the best measured among runs measured within "
+            "every limit) from the known optimum, positive is worse, over the campaigns whose chosen run "
+            "truly met every limit; 'chosen broke a limit': campaigns whose chosen run truly broke one (no "
+            "gap given); inf: no run was measured within every limit, so none to choose")
 
 
 def _finite(row: dict) -> dict:

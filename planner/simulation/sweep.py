@@ -52,7 +52,8 @@ from guardband.planner.inputs.protocol import Protocol, parse_protocol
 from guardband.planner.models import blas_limit
 from guardband.planner.simulation.loop import CampaignHistory, run_campaign, start_runs
 from guardband.planner.simulation.problems import objective_range
-from guardband.planner.simulation.results import SimulationResult, _finite, _fmt, _pct, _quantiles
+from guardband.planner.simulation.results import (SimulationResult, _finite, _fmt, _pct, _quantiles, gap_legend,
+                                                  true_gap_band)
 from guardband.planner.simulation.runner import _seeds, run_peer
 from guardband.planner.simulation.strategies import PEERS
 from guardband.planner.step.attitudes import threshold_binding
@@ -264,7 +265,7 @@ class SweepCell:
         out.update(start_runs=self.result.n_start, planned_runs=self.result.budget, seeds=self.result.seeds)
         for key in ("gap_q25", "gap_median", "gap_q75", "gap_true_q25", "gap_true_median", "gap_true_q75",
                     "broken_pooled", "runs_made", "no_safe_run", "stalled", "promised_joint_mean",
-                    "observed_met_share", "n_promised"):
+                    "observed_met_share", "n_promised", "chosen_broke"):
             out[key] = final[key]
         half = self.result.summary_rows([self.result.budget // 2])[0]
         out["gap_median_halfway"] = half["gap_median"]
@@ -303,7 +304,7 @@ class SweepResult:
         "gap_true_median", "gap_true_q75", "gap_median_halfway", "gap_true_median_halfway", "broken_pooled",
         "runs_made", "no_safe_run",
         "stalled", "within", "reached", "runs_until_within_q25", "runs_until_within_median",
-        "runs_until_within_q75", "promised_joint_mean", "observed_met_share", "n_promised")
+        "runs_until_within_q75", "promised_joint_mean", "observed_met_share", "n_promised", "chosen_broke")
 
     CALIBRATION_COLUMNS = ("setting", "strategy", "scenario", "threshold", "low", "high", "runs", "met",
                            "met_share", "mean_promised", "ci_low", "ci_high")
@@ -364,6 +365,7 @@ class SweepResult:
         for r in self.rows():
             g = ("gap_true_" if noisy else "gap_")
             rows.append([r["setting"], r["scenario"],
+                         true_gap_band(r, r["seeds"]) if noisy else
                          f"{_fmt(r[g + 'median'])} [{_fmt(r[g + 'q25'])}, {_fmt(r[g + 'q75'])}]",
                          _fmt(r[g + "median_halfway"]), _pct(r["broken_pooled"]),
                          f"{_fmt(r['runs_until_within_median'])} [{_fmt(r['runs_until_within_q25'])}, "
@@ -374,7 +376,7 @@ class SweepResult:
         cal = [[r["setting"], r["scenario"], _bin_label(r), r["runs"], _fmt(r["mean_promised"]),
                 f"{_fmt(r['met_share'])} [{_fmt(r['ci_low'])}, {_fmt(r['ci_high'])}]"]
                for r in self.calibration_rows() if r["runs"]]
-        parts = self.description() + ["", render_table(head, rows, max_width=40)]
+        parts = self.description() + ["", render_table(head, rows, max_width=40), gap_legend(noisy)]
         if cal:
             parts += ["", "the promise in bins (planned runs, all seeds; met: by the true values, exact 95% "
                           "interval):",

@@ -157,7 +157,7 @@ def check(
         _echo(_json(data))
     elif format is Format.csv:
         _echo(write_csv_text([list(r.values()) for r in rows], list(rows[0].keys())), nl=False)
-        _err_notes(notes_text([f"fingerprint {report.protocol.fingerprint}"], data["cautions"]))
+        _err_notes(notes_text([f"fingerprint {report.protocol.fingerprint}", *data["notes"]], data["cautions"]))
     else:
         p = report.protocol
         _show(f"{p.study.title} (version {p.study.version}, {p.study.kind} study, by {p.study.author})")
@@ -166,9 +166,8 @@ def check(
         if p.limits:
             _show("limits: " + "; ".join(
                 f"{lim.describe()} with probability >= {lim.probability:g}" for lim in p.limits))
-        else:
-            _show("limits: none; the safety screen checks nothing (every candidate passes it), and only "
-                  "the factors' bounds and the constraints keep runs in the design space")
+        for line in data["notes"]:
+            _show(line)
         _show(f"screen: joint figure ({p.screen.joint}) >= {p.screen.threshold:g}; "
                    f"ranking: {p.ranking.rule}; batch size {p.batch.size}")
         for line in data["guidance"]:

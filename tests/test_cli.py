@@ -49,7 +49,8 @@ def test_check_every_example_protocol(protocol):
         assert f["reach_low"] <= f["centre"] + 1e-9 and f["centre"] <= f["reach_high"] + 1e-9
 
 
-def test_check_says_a_protocol_without_limits_leaves_the_screen_nothing_to_check(tmp_path):
+def _without_limits(tmp_path):
+    """The tablet protocol with every [[limits]] table dropped."""
     lines = (PROTOCOLS / "tablet_blend.toml").read_text().splitlines()
     kept, skip = [], False
     for line in lines:  # drop every [[limits]] table
@@ -59,10 +60,30 @@ def test_check_says_a_protocol_without_limits_leaves_the_screen_nothing_to_check
             kept.append(line)
     bare = tmp_path / "no_limits.toml"
     bare.write_text("\n".join(kept) + "\n")
+    return bare
+
+
+def test_check_says_a_protocol_without_limits_leaves_the_screen_nothing_to_check(tmp_path):
+    bare = _without_limits(tmp_path)
     res = run("check", bare)
     assert res.exit_code == 0, res.output
     assert "limits: none; the safety screen checks nothing" in res.stdout
     assert "the safety screen checks nothing" not in run("check", PROTOCOLS / "tablet_blend.toml").stdout
+
+
+def test_check_json_and_csv_say_a_protocol_without_limits_leaves_the_screen_nothing_to_check(tmp_path):
+    bare = _without_limits(tmp_path)
+    data = json.loads(run("check", bare, "--format", "json").stdout)
+    assert data["limits"] == []
+    assert any("the safety screen checks nothing" in n for n in data["notes"]), data["notes"]
+    res = run("check", bare, "--format", "csv")
+    assert res.exit_code == 0, res.output
+    assert "the safety screen checks nothing" in res.stderr  # with the fingerprint, among the notes
+    assert "the safety screen checks nothing" not in res.stdout  # the table stays a plain table
+    assert data_rows(res.stdout)[0][0] == "factor"
+    tablet = PROTOCOLS / "tablet_blend.toml"
+    assert json.loads(run("check", tablet, "--format", "json").stdout)["notes"] == []
+    assert "the safety screen checks nothing" not in run("check", tablet, "--format", "csv").stderr
 
 
 def test_check_empty_design_space(tmp_path):

@@ -137,10 +137,18 @@ class CheckReport:
             "limits": [lim.describe() for lim in p.limits],
             "message": self.message,
             "guidance": self.guidance(),
+            "notes": self.notes(),
             "threshold_warnings": self.threshold_warnings(),
             "tool_version": __version__,
             "cautions": list(cautions_of(p)),
         }
+
+    def notes(self) -> list[str]:
+        """What the protocol leaves unchecked: without limits, the safety screen checks nothing."""
+        if self.protocol.limits:
+            return []
+        return ["limits: none; the safety screen checks nothing (every candidate passes it), and only "
+                "the factors' bounds and the constraints keep runs in the design space"]
 
     def guidance(self) -> list[str]:
         """The ranking rule's attitude to risk in plain words (and what suits a dose study)."""

@@ -282,6 +282,18 @@ def test_a_missing_count_column_is_one_problem_not_one_per_row(tmp_path, missing
     assert not (tmp_path / "o").exists()  # nothing written
 
 
+@pytest.mark.parametrize("missing, role", [("dlt_subjects", "the subjects column"),
+                                           ("dlt_events", "the events column")])
+def test_a_missing_count_column_names_its_response_and_which_count_it_is(missing, role):
+    header = HEADER.strip().split(",")
+    kept = [j for j, name in enumerate(header) if name != missing]
+    text = "\n".join(",".join(line.split(",")[j] for j in kept)
+                     for line in (HEADER + "R1,5,1,20,1,6\n").splitlines()) + "\n"
+    with pytest.raises(RunsDataError) as err:
+        parse_runs_text(text, load_protocol(DOSE))
+    assert f"missing column {missing!r} ({role} of the limit 'dlt_rate')" in str(err.value)
+
+
 def test_starting_design_template_has_count_columns(tmp_path):
     res = CliRunner().invoke(app, ["start", str(DOSE), "--runs", "4", "--out", str(tmp_path / "start.csv")])
     assert res.exit_code == 0, res.output

@@ -472,7 +472,7 @@ class Protocol(_Strict):
                 raise ValueError(_twice(f"factor name {n!r} is used twice", n, seen[name_key(n)]))
             seen[name_key(n)] = n
         roles: dict[str, str] = {}  # a response name or count column -> what names it
-        for r, role in self._response_names():
+        for r, role in self.response_roles():
             if name_key(r) in seen:
                 first = seen[name_key(r)]
                 if name_key(r) not in roles:
@@ -532,7 +532,7 @@ class Protocol(_Strict):
         """The response columns of a runs file: the objective, then each limit's column(s)."""
         return self.objective.columns + tuple(c for lim in self.limits for c in lim.columns)
 
-    def _response_names(self):
+    def response_roles(self):
         """(name, what names it) of every response and binomial count column, the objective first."""
         for item, what in ((self.objective, "the objective"), *((lim, "the limit") for lim in self.limits)):
             yield item.name, f"{what} {item.name!r}"

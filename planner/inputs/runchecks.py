@@ -18,7 +18,7 @@ from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.units import UnitError, conversion
 
 __all__ = ["check_unit", "to_protocol_units", "factor_value_flags", "mixture_total_problems",
-           "binomial_counts", "rate_column_problem"]
+           "binomial_counts", "rate_column_problem", "missing_column_problem"]
 
 
 def _unconvertible(convert: dict[str, object], name: str) -> bool:
@@ -222,6 +222,15 @@ def binomial_counts(protocol: Protocol, Y: dict[str, np.ndarray], wheres: list[s
             Y[lim.name] = events / subjects
         counts[lim.name] = (events, subjects)
     return counts
+
+
+def missing_column_problem(protocol: Protocol, name: str) -> str:
+    """A runs file's header lacks the column ``name``; a binomial count column is named with its
+    response and which of its counts (events or subjects) it holds."""
+    counts = {c for item in protocol.binomial_responses for c in (item.events, item.subjects)}
+    if name in counts:
+        return f"missing column {name!r} ({dict(protocol.response_roles())[name]})"
+    return f"missing column {name!r}"
 
 
 def rate_column_problem(limit, label: str) -> str:

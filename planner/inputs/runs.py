@@ -54,6 +54,7 @@ from guardband.planner.inputs.reading import read_input
 from guardband.planner.inputs.workbook import read_sheet
 from guardband.planner.inputs.runchecks import (
     binomial_counts,
+    missing_column_problem,
     rate_column_problem,
     check_unit,
     factor_value_flags,
@@ -611,7 +612,7 @@ def _check_header(grid: _Grid, protocol: Protocol, problems: list[str], flags: l
                            problems, flags)
     for name in known_list:
         if name not in (NOTES, CAUTIONS) and name not in optional and name not in columns.at and name not in twice:
-            problems.append(f"missing column {name!r}")
+            problems.append(missing_column_problem(protocol, name))
     return columns
 
 

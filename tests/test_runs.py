@@ -92,6 +92,27 @@ def test_semicolon_and_decimal_comma_with_bom_and_blank_trailing_rows():
     assert t.Y["y"][0] == pytest.approx(5.0)
 
 
+def test_a_stated_decimal_point_for_a_file_of_decimal_commas_is_reported_once_only_when_unambiguous():
+    semicolons = GOOD.replace(",", ";").replace("0.", "0,").replace("5.0", "5,0").replace("6.0", "6,0")
+    with pytest.raises(RunsDataError) as err:
+        parse(semicolons, decimal=".")
+    assert "runs.csv: 1 problem found" in str(err.value)
+    assert ("the decimal mark is stated as '.' (--decimal .), but the file appears to use decimal commas "
+            "(row 2, column a: '0,3'; no number has a decimal point)") in str(err.value)
+    # '1,250' may be a thousands separator: each such cell is asked about, not the whole file
+    grouped = "run_id;a;b;t;y;imp;notes\nR1;1;0;20;1,250;;first\nR2;1;0;25;2,500;;\n"
+    with pytest.raises(RunsDataError) as err:
+        parse(grouped, decimal=".")
+    assert "appears to use decimal commas" not in str(err.value)
+    assert "row 2 (run R1), column y: '1,250' has a comma: a decimal comma or a thousands separator?" in str(err.value)
+    # in a comma-separated file a comma inside a number is always asked about cell by cell
+    quoted = GOOD.replace("R1,0.3,0.7", 'R1,"0,3","0,7"')
+    with pytest.raises(RunsDataError) as err:
+        parse(quoted, decimal=".")
+    assert "appears to use decimal commas" not in str(err.value)
+    assert "row 2 (run R1), column a: '0,3' has a comma" in str(err.value)
+
+
 def test_header_whitespace_and_matching_unit_are_accepted():
     t = parse(GOOD.replace("t,y", " t [C] , y "))
     np.testing.assert_allclose(t.X[:, 2], [20, 25, 15])

@@ -17,7 +17,7 @@ from guardband.planner import settings
 from guardband.planner.inputs.workbook import Formula as _Formula
 from guardband.planner.inputs.workbook import SheetError as _SheetError
 
-__all__ = ["cell_text", "cell_number", "too_large", "HAS_DOT", "HAS_COMMA"]
+__all__ = ["cell_text", "cell_number", "too_large", "only_a_decimal_comma", "HAS_DOT", "HAS_COMMA"]
 
 _EXP = r"(?:[eE][+-]?[0-9]+)?"
 _NUM_DOT = re.compile(rf"^[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+){_EXP}$")
@@ -29,6 +29,12 @@ HAS_COMMA = re.compile(rf"^[+-]?(?:[0-9]*,[0-9]+|[0-9]+,){_EXP}$")
 _GROUPED = re.compile(r"^[+-]?[0-9]{1,3}(?:[.,' \u00a0\u202f][0-9]{3})+(?:[.,][0-9]+)?$")
 _WITH_UNIT = re.compile(r"^(?P<num>[+-]?[0-9][0-9.,]*)\s*(?P<unit>[A-Za-zµμ°%‰][^0-9]*)$")
 _NOT_FINITE = {"nan", "inf", "-inf", "+inf", "infinity", "-infinity", "+infinity"}
+
+
+def only_a_decimal_comma(text: str) -> bool:
+    """Whether ``text`` is a number whose comma can only be a decimal comma ('0,8696'), not a
+    thousands separator ('1,234')."""
+    return bool(HAS_COMMA.match(text)) and not _GROUPED.match(text)
 
 
 def cell_text(value: object) -> str:

@@ -47,7 +47,7 @@ import numpy as np
 
 from guardband.planner import settings
 from guardband.planner.errors import RunsDataError
-from guardband.planner.inputs.cells import HAS_COMMA, HAS_DOT, cell_number, cell_text
+from guardband.planner.inputs.cells import HAS_COMMA, HAS_DOT, cell_number, cell_text, only_a_decimal_comma
 from guardband.planner.inputs.names import check_visible, name_key, normal_text
 from guardband.planner.inputs.protocol import Protocol
 from guardband.planner.inputs.reading import read_input
@@ -406,23 +406,12 @@ def _read_xlsx(raw: bytes, *, source: str, sheet: str | None) -> _Grid:
 # ------------------------------------------------------------ the decimal mark
 def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
                 stated: str | None) -> tuple[str | None, str | None]:
-    """The decimal mark of the text cells, and a problem when the file mixes them, or when a
-    stated decimal comma meets a file that uses decimal points (None then: the cells are not
-    reported one by one)."""
-    if stated == ",":
-        first_dot, first_comma = _first_marks(grid, numeric_cols)
-        if first_dot and not first_comma:
-            i, name, s = first_dot
-            return None, (
-                f"the decimal mark is stated as ',' (--decimal ,), but the file appears to use decimal "
-                f"points ({grid.where(i)}, column {name}: {s!r}; no number has a decimal comma); "
-                "leave out --decimal, or state --decimal ."
-            )
+    """The decimal mark of the text cells, and a problem when the file mixes them, or when the
+    stated mark is plainly not the file's (None then: the cells are not reported one by one)."""
     if stated is not None:
-        return stated, None
-    if grid.delimiter == "," or grid.sheet is not None:
-        # a comma-separated file, or text in a workbook (whose numbers are
-        # numbers): a comma inside a number is reported cell by cell
+        wrong = _stated_mark_wrong(grid, numeric_cols, stated)
+        return (None, wrong) if wrong else (stated, None)
+    if _commas_in_cells(grid):
         return ".", None
     first_dot, first_comma = _first_marks(grid, numeric_cols)
     if first_dot and first_comma:
@@ -435,9 +424,36 @@ def _decimal_of(grid: _Grid, numeric_cols: list[tuple[str, int]],
     return ("," if first_comma else "."), None
 
 
-def _first_marks(grid: _Grid, numeric_cols: list[tuple[str, int]]) -> tuple[tuple | None, tuple | None]:
-    """The first text cell with a decimal point and the first with a decimal comma, each as
-    (row index, column name, text), or None."""
+def _commas_in_cells(grid: _Grid) -> bool:
+    """Whether a comma inside a number is reported cell by cell: in a comma-separated file, or
+    in text in a workbook (whose numbers are numbers), it may as well be a thousands separator."""
+    return grid.delimiter == "," or grid.sheet is not None
+
+
+def _stated_mark_wrong(grid: _Grid, numeric_cols: list[tuple[str, int]], stated: str) -> str | None:
+    """The one problem when the file plainly uses the other decimal mark than the one stated: a
+    stated comma meets only decimal points, or a stated point meets only decimal commas in a file
+    where a comma cannot be a thousands separator ('0,8696', not '1,234'; not comma-separated)."""
+    if stated == ",":
+        found, other = _first_marks(grid, numeric_cols)
+        uses, lacks, mark = "points", "comma", "."
+    elif not _commas_in_cells(grid):
+        other, found = _first_marks(grid, numeric_cols, comma=only_a_decimal_comma)
+        uses, lacks, mark = "commas", "point", ","
+    else:
+        return None
+    if not found or other:
+        return None
+    i, column, s = found
+    return (f"the decimal mark is stated as {stated!r} (--decimal {stated}), but the file appears to use "
+            f"decimal {uses} ({grid.where(i)}, column {column}: {s!r}; no number has a decimal {lacks}); "
+            f"leave out --decimal, or state --decimal {mark}")
+
+
+def _first_marks(grid: _Grid, numeric_cols: list[tuple[str, int]],
+                 comma=HAS_COMMA.match) -> tuple[tuple | None, tuple | None]:
+    """The first text cell with a decimal point and the first with a decimal comma (as ``comma``
+    tells), each as (row index, column name, text), or None."""
     first_dot = first_comma = None
     for i, row in enumerate(grid.rows[1:], start=1):
         for name, j in numeric_cols:
@@ -446,7 +462,7 @@ def _first_marks(grid: _Grid, numeric_cols: list[tuple[str, int]]) -> tuple[tupl
             s = row[j].strip()
             if first_dot is None and HAS_DOT.match(s):
                 first_dot = (i, name, s)
-            elif first_comma is None and HAS_COMMA.match(s):
+            elif first_comma is None and comma(s):
                 first_comma = (i, name, s)
         if first_dot and first_comma:
             break

@@ -79,11 +79,19 @@ def _fit_job(job: dict):
     return model, summary
 
 
-def repeated_runs_note(U: np.ndarray, ids) -> str:
-    """"; runs at the same factor settings: A and B, ..." for runs closer than REPEATED_RUN_DISTANCE, or ""."""
+def repeat_pairs(U: np.ndarray) -> list[tuple[int, int]]:
+    """Pairs (i < j) of runs at the same factor settings: within REPEATED_RUN_DISTANCE in every
+    unit-scaled factor, in order."""
+    if len(U) < 2:
+        return []
     from scipy.spatial import cKDTree
 
-    pairs = sorted(cKDTree(U).query_pairs(REPEATED_RUN_DISTANCE, p=np.inf))
+    return sorted(cKDTree(U).query_pairs(REPEATED_RUN_DISTANCE, p=np.inf))
+
+
+def repeated_runs_note(U: np.ndarray, ids) -> str:
+    """"; runs at the same factor settings: A and B, ..." for runs closer than REPEATED_RUN_DISTANCE, or ""."""
+    pairs = repeat_pairs(U)
     if not pairs:
         return ""
     shown = ", ".join(f"{ids[i]} and {ids[j]}" for i, j in pairs[:10])
@@ -93,15 +101,15 @@ def repeated_runs_note(U: np.ndarray, ids) -> str:
 
 def stated_sd_contradicted(protocol, runs, U: np.ndarray) -> list[str]:
     """For each response whose ``measurement_sd`` is stated, the pair of runs at the same settings
-    (within REPEATED_RUN_DISTANCE, unit-scaled) whose values differ most, when they differ by more
-    than REPLICATE_SPREAD_SDS * sqrt(2) stated sds (any difference, beyond rounding, when it is 0)."""
-    from scipy.spatial import cKDTree
-
-    pairs = sorted(cKDTree(U).query_pairs(REPEATED_RUN_DISTANCE, p=np.inf)) if len(U) > 1 else []
+    (:func:`repeat_pairs`) whose values differ most, when they differ by more than
+    REPLICATE_SPREAD_SDS * sqrt(2) stated sds (any difference, beyond rounding, when it is 0)."""
+    pairs = repeat_pairs(U)
+    if not pairs:
+        return []
     out = []
     for item, what in ((protocol.objective, "[objective]"), *((lim, f"limit {lim.name!r}") for lim in protocol.limits)):
         sd = getattr(item, "measurement_sd", None)
-        if not pairs or sd is None or item.kind == "binomial":
+        if sd is None or item.kind == "binomial":
             continue
         y = runs.Y[item.name]
         apart = [(abs(y[i] - y[j]), i, j) for i, j in pairs if np.isfinite(y[i]) and np.isfinite(y[j])]

@@ -14,8 +14,7 @@ one run per step, and the geometric mean of the per-problem ratios
 ((gap + 0.01) / (one-at-a-time gap + 0.01), gaps below 0 taken as 0), for
 each half.
 
-Run:  python benchmarks/batch_split.py benchmarks/results/batches_table_t08_campaigns.csv [...]
-          [--family-seed 0] [--seed 0] [--workers 2]
+Run:  python benchmarks/batch_split.py benchmarks/results/batches_table_t08_campaigns.csv [...] [--workers 2]
 """
 
 from __future__ import annotations
@@ -31,25 +30,24 @@ import pandas as pd
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # the other benchmark scripts, not the package
 
 import calibration as cal  # noqa: E402  (the family jobs)
+import frontier as fr  # noqa: E402  (the true gap)
 
 from guardband.planner.simulation import simulate  # noqa: E402
-from guardband.planner.simulation.family import with_settings  # noqa: E402
+from guardband.planner.simulation.family import family_index, with_settings  # noqa: E402
 from guardband.planner.simulation.problems import objective_range  # noqa: E402
 from guardband.planner.simulation.runner import run_in_workers  # noqa: E402
 
+#: The campaigns' seed: batches.py runs one campaign per family problem, seed 0.
+SEED = 0
 
-def start_gap(job: tuple) -> tuple[str, float]:
+
+def start_gap(problem) -> tuple[str, float]:
     """(problem name, gap of its best starting run that truly met every limit, % of range)."""
-    problem, seed = job
     p = with_settings(problem, threshold=0.8, batch=1, pool=100, refine=0)
-    result = simulate(p, None, budget=1, seeds=1, strategies=("protocol",), noise_scale=1.0, workers=1, seed=seed)
-    h, protocol = result.histories["protocol"][0], result.protocol
-    y = np.asarray(h.T[protocol.objective.name], dtype=float)
-    ok = ~h.planned & ~h.broke_limit
-    if not np.any(ok):
-        return problem.name, np.inf
-    best = float(np.max(y[ok]) if protocol.maximize else np.min(y[ok]))
-    gap = (problem.optimum - best) if protocol.maximize else (best - problem.optimum)
+    # the simulator plans at least one step; only the starting runs before it are read
+    result = simulate(p, None, budget=1, seeds=1, strategies=("protocol",), noise_scale=1.0, workers=1, seed=SEED)
+    h = result.histories["protocol"][0]
+    gap = fr.true_gap(h, result.protocol, problem.optimum, among=~h.planned)
     return problem.name, 100.0 * gap / objective_range(problem)
 
 
@@ -74,16 +72,14 @@ def split_rows(campaigns: pd.DataFrame, starts: pd.Series) -> list[dict]:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("campaigns", nargs="+", type=Path, help="batches.py campaigns files")
-    ap.add_argument("--family-seed", type=int, default=0)
-    ap.add_argument("--seed", type=int, default=0, help="the campaigns' seed (batches.py: 0 for one per problem)")
     ap.add_argument("--workers", type=int, default=min(2, os.cpu_count() or 1))
     args = ap.parse_args(argv)
     frames = [pd.read_csv(f, comment="#").assign(source=f.name) for f in args.campaigns]
     campaigns = pd.concat(frames)
-    campaigns = campaigns[(campaigns.group == "family") & (campaigns.seed == args.seed)]
-    indices = sorted({int(n.rsplit("-", 1)[1]) for n in campaigns.problem})
-    problems = run_in_workers(cal._family_job, [(i, args.family_seed) for i in indices], workers=args.workers)
-    starts = pd.Series(dict(run_in_workers(start_gap, [(p, args.seed) for p in problems], workers=args.workers)))
+    campaigns = campaigns[(campaigns.group == "family") & (campaigns.seed == SEED)]
+    names = sorted(set(campaigns.problem))
+    problems = run_in_workers(cal._family_job, [family_index(n) for n in names], workers=args.workers)
+    starts = pd.Series(dict(run_in_workers(start_gap, problems, workers=args.workers)))
     print(f"gap of the best starting run: median {starts.median():.1f}% of the range "
           f"(far: above it, {int((starts > starts.median()).sum())} problems)\n")
     print("| file | batch | method | starts | problems | one at a time | batch | x one | geometric mean |")

@@ -120,10 +120,13 @@ def with_ablation(problem: Problem, name: str) -> Problem:
     return dataclasses.replace(problem, protocol_dict=data)
 
 
-def true_gap(history, protocol, optimum: float) -> float:
-    """Best TRUE objective among runs that truly met every limit, from the optimum (inf: none did)."""
+def true_gap(history, protocol, optimum: float, among=None) -> float:
+    """Best TRUE objective among runs (``among``, a mask; default all) that truly met every limit,
+    from the optimum (inf: none did)."""
     y = np.asarray(history.T[protocol.objective.name], dtype=float)
     ok = ~history.broke_limit & np.isfinite(y)
+    if among is not None:
+        ok &= np.asarray(among, dtype=bool)
     if not np.any(ok):
         return math.inf
     best = float(np.max(y[ok]) if protocol.maximize else np.min(y[ok]))

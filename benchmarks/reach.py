@@ -23,18 +23,16 @@ import sys
 import numpy as np
 
 from guardband.planner.simulation import simulate
-from guardband.planner.simulation.family import family_problem, with_settings
+from guardband.planner.simulation.family import family_index, family_problem, with_settings
 from guardband.planner.simulation.loop import runs_table_from_arrays
 from guardband.planner.simulation.problems import get_problem
 from guardband.planner.step.judge import judge_points
 
 
 def _problem(name: str):
-    """A built-in problem, or a generated one named as the family names them (``family-s0-033``)."""
-    if name.startswith("family-s"):
-        seed, index = name[len("family-s"):].split("-")
-        return family_problem(int(index), int(seed))
-    return get_problem(name)
+    """A built-in problem, or a generated one by its family name (``family-s0-033``)."""
+    found = family_index(name)
+    return get_problem(name) if found is None else family_problem(*found)
 
 
 def main(argv=None) -> int:

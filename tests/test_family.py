@@ -234,3 +234,12 @@ def test_a_tiny_benchmark_run_gives_well_formed_rows():
         assert r["runs"] == len(c["rows"])
         assert r["broken"] == sum(not x["met_true"] for x in c["rows"])
         assert r["ci_low"] <= r["broken_share"] <= r["ci_high"]
+
+
+def test_a_family_name_is_read_back_to_its_index_and_seed():
+    from guardband.planner.simulation.family import family_index, family_name
+
+    assert family_name(33, 1) == "family-s1-033"
+    assert family_index("family-s1-033") == (33, 1)
+    assert family_index(family_name(1234, 0)) == (1234, 0)
+    assert family_index("coating") is None and family_index("family-s1-033x") is None

@@ -60,6 +60,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
+import re
 from dataclasses import dataclass, field
 from functools import partial
 
@@ -86,7 +87,7 @@ from guardband.planner.simulation.loop import start_runs
 from guardband.planner.simulation.problems import Problem, locate_optimum
 from guardband.safety.limits import met_every_limit
 
-__all__ = ["SHAPES", "TAG_KEYS", "family_problem", "generate_family", "with_settings",
+__all__ = ["SHAPES", "TAG_KEYS", "family_problem", "family_name", "family_index", "generate_family", "with_settings",
            "FamilyResponses", "LimitShape"]
 
 SHAPES = ("half-space", "ball", "shell", "band", "bumps", "sigmoid", "saturating")
@@ -417,7 +418,7 @@ def _attempt(index: int, seed: int, attempt: int) -> Problem | None:
         if not _starts_feasible(data, responses, design_seed):
             return None
     problem = Problem(
-        name=f"family-s{seed}-{index:03d}",
+        name=family_name(index, seed),
         source=f"generated (planner.simulation.family, index {index}, seed {seed}, attempt {attempt})",
         protocol_dict=data, evaluate=responses, optimum=float("nan"), optimum_x=(), noise=noise,
         n_start=FAMILY_N_START, budget=FAMILY_BUDGET)
@@ -436,6 +437,17 @@ def _attempt(index: int, seed: int, attempt: int) -> Problem | None:
         optimum=found.value, optimum_x=tuple(float(v) for v in found.x), noise=noise,
         n_start=FAMILY_N_START, budget=FAMILY_BUDGET,
         optimum_method=f"locate_optimum: {found.method}", tags=tags)
+
+
+def family_name(index: int, seed: int = 0) -> str:
+    """The name of problem ``index`` of the family drawn with ``seed``: ``family-s<seed>-<index>``."""
+    return f"family-s{seed}-{index:03d}"
+
+
+def family_index(name: str) -> tuple[int, int] | None:
+    """``(index, seed)`` of a name :func:`family_name` gives; None for any other name."""
+    m = re.fullmatch(r"family-s(\d+)-(\d+)", name)
+    return (int(m.group(2)), int(m.group(1))) if m else None
 
 
 def family_problem(index: int, seed: int = 0) -> Problem:

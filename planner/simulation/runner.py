@@ -223,10 +223,8 @@ def simulate(
     for st in strategies:
         check_strategy(st)
     noise = dict(noise or {})
-    protocol = combine_settings(problem, settings)
-    if pool_size is not None:  # the campaigns' pool, as the result's settings line shows it
-        protocol = parse_protocol({**protocol.model_dump(mode="python"),
-                                   "batch": {**protocol.batch.model_dump(mode="python"), "pool": int(pool_size)}})
+    # the campaigns' pool, as the result's settings line shows it
+    protocol = combine_settings(problem, settings, pool=pool_size)
     base = protocol.model_dump(mode="python")
     # planner strategies with equal protocols share their campaigns
     runs_as, same_as, by_print = {}, {}, {}

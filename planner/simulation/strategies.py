@@ -66,8 +66,8 @@ NO_CAP = 1000.0
 SCREEN_OFF = 1e-9
 
 
-def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
-    """The problem's protocol with the planner settings of ``settings``.
+def combine_settings(problem: Problem, settings: Protocol | None, *, pool: int | None = None) -> Protocol:
+    """The problem's protocol with the planner settings of ``settings`` (and ``pool`` candidates, given).
 
     Parameters
     ----------
@@ -78,6 +78,8 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
         batch.refine, batch.method, batch.search_per_run, batch.least_worth and the model
         settings (restarts, the priors rule,
         the limit models' length-scale cap); None keeps the problem's own.
+    pool : int, optional
+        Candidates drawn per step, over the settings' (a command-line override).
 
     Returns
     -------
@@ -93,6 +95,8 @@ def combine_settings(problem: Problem, settings: Protocol | None) -> Protocol:
         for key in ("size", "pool", "refine", "method", "search_per_run", "least_worth"):
             data["batch"][key] = getattr(settings.batch, key)
         data["model"] = settings.model.model_dump(mode="python")
+    if pool is not None:
+        data["batch"]["pool"] = int(pool)
     return parse_protocol(data, source=f"problem {problem.name} with settings")
 
 

@@ -299,6 +299,6 @@ def test_a_last_plan_that_recorded_no_models_is_not_taken_for_another_study(tmp_
 
     log = tmp_path / "decisions.jsonl"
     ledger.append_record(log, "plan", {"models": [], "protocol_file": {"name": "x.toml"}})
-    assert other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml")) == []
+    assert other_study_warning(ledger.read_records(log), load_protocol(PROTOCOLS / "tablet_blend.toml")) == []
     ledger.append_record(log, "plan", {"models": [{"response": "y"}], "protocol_file": {"name": "x.toml"}})
-    assert "is of another study" in other_study_warning(log, load_protocol(PROTOCOLS / "tablet_blend.toml"))[0]
+    assert "is of another study" in other_study_warning(ledger.read_records(log), load_protocol(PROTOCOLS / "tablet_blend.toml"))[0]

@@ -14,7 +14,6 @@ value is still checked here on the measurement, which is what the lab saw.
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 
@@ -58,10 +57,9 @@ def _not_as_proposed(protocol: Protocol, x, proposed: dict) -> str:
     return ", ".join(out)
 
 
-def campaign_calibration(log_path: str | Path, protocol: Protocol, runs: RunsTable) -> EarnedCalibration:
-    """The calibration earned so far by the planned runs of the log at ``log_path``."""
-    log_path = Path(log_path)
-    promised = promised_runs(ledger.read_records(log_path)) if log_path.exists() else {}
+def campaign_calibration(records: list[dict], protocol: Protocol, runs: RunsTable) -> EarnedCalibration:
+    """The calibration earned so far by the planned runs of the log's ``records``."""
+    promised = promised_runs(records)
     rules = limit_rules(protocol)
     measured = ~runs.pending
     for rule in rules:

@@ -23,7 +23,7 @@ from pathlib import Path
 from guardband.planner.app.campaign import commit_step
 from guardband.planner.app.fileio import table_with_notes
 from guardband.planner.app.workflow import (LOG_NAME, _RUNS_SUFFIXES, _read_input, _short, cautions_of,
-                                            table_file_names, warm_start_for)
+                                            log_records, table_file_names, warm_start_for)
 from guardband.planner.errors import OutputError, ProtocolError, RunsDataError
 from guardband.planner.inputs.protocol import load_protocol
 from guardband.planner.inputs.runs import read_runs_bytes
@@ -120,7 +120,7 @@ def run_judge(protocol_path, runs_path, recipes_path, out_dir, *, seed: int | No
     log_path = out_dir / LOG_NAME
     if log_path.exists():
         ledger.verify_or_raise(log_path)
-    warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
+    warm, warm_from = warm_start_for(log_records(log_path), protocol.fingerprint, runs.sha256, seed)
     with blas_limit(), ProtocolError.naming(protocol_path):
         result = judge_points(protocol, runs, recipes.X, recipes.run_ids, seed=seed, warm_start=warm)
     header, rows = judge_table(protocol, result)

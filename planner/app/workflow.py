@@ -354,8 +354,15 @@ class PlanOutcome:
     warnings: tuple[str, ...] = ()  # about the campaign folder (another study's steps in its log)
 
 
-def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int) -> tuple[dict, int | None]:
-    """The warm start of a step on these inputs, and the record it comes from (None: none).
+def log_records(log_path: Path) -> list[dict]:
+    """The records of the decision log at ``log_path`` (none when there is no log yet), read once
+    per step for the warm start, the earned calibration and the other-study check."""
+    return ledger.read_records(log_path) if log_path.exists() else []
+
+
+def warm_start_for(records: list[dict], fingerprint: str, runs_sha256: str, seed: int) -> tuple[dict, int | None]:
+    """The warm start of a step on these inputs, and the record it comes from (None: none), from the
+    log's ``records``.
 
     A warm start changes where the hyperparameter search begins, and so can
     move the answer in its last digits. So a step on the same protocol, runs
@@ -363,9 +370,7 @@ def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int
     (and names the same source), and gives the same plan; any other step
     starts from the hyperparameters of the last plan on this protocol.
     """
-    if not log_path.exists():
-        return {}, None
-    plans = [rec for rec in ledger.read_records(log_path)
+    plans = [rec for rec in records
              if rec.get("kind") == "plan" and rec.get("body", {}).get("protocol_fingerprint") == fingerprint]
     for rec in reversed(plans):
         body = rec["body"]
@@ -378,12 +383,11 @@ def warm_start_for(log_path: Path, fingerprint: str, runs_sha256: str, seed: int
              if m.get("hyperparameters")}, int(last["index"]))
 
 
-def other_study_warning(log_path: Path, protocol: Protocol) -> list[str]:
-    """A warning when the log's last plan modelled other responses than ``protocol``: another study's
-    campaign folder, most likely (an amendment that keeps the responses is the campaign's own)."""
-    if not log_path.exists():
-        return []
-    plans = [rec for rec in ledger.read_records(log_path) if rec.get("kind") == "plan"]
+def other_study_warning(records: list[dict], protocol: Protocol) -> list[str]:
+    """A warning when the last plan of the log's ``records`` modelled other responses than ``protocol``:
+    another study's campaign folder, most likely (an amendment that keeps the responses is the
+    campaign's own)."""
+    plans = [rec for rec in records if rec.get("kind") == "plan"]
     if not plans:
         return []
     last = plans[-1]
@@ -449,9 +453,10 @@ def run_plan(
     log_path = out_dir / LOG_NAME
     if log_path.exists():
         ledger.verify_or_raise(log_path)
-    warm, warm_from = warm_start_for(log_path, protocol.fingerprint, runs.sha256, seed)
-    calibration = campaign_calibration(log_path, protocol, runs)
-    warnings = tuple(other_study_warning(log_path, protocol))
+    records = log_records(log_path)
+    warm, warm_from = warm_start_for(records, protocol.fingerprint, runs.sha256, seed)
+    calibration = campaign_calibration(records, protocol, runs)
+    warnings = tuple(other_study_warning(records, protocol))
     with blas_limit(), ProtocolError.naming(protocol_path):
         result = plan_step(protocol, runs, seed=seed, count=count, warm_start=warm, pool_size=pool_size)
     outcome = _write_plan(result, protocol, protocol_bytes, runs_bytes, out_dir, log_path,

@@ -150,8 +150,6 @@ def proposal_rows(result: PlanResult, step_label: str) -> list[dict]:
     return rows
 
 
-
-
 def count_rows(result: PlanResult) -> list[dict]:
     """How many candidates survived and how many each rule excluded, with the rule in words."""
     counts = result.counts()
